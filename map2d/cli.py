@@ -1,0 +1,179 @@
+"""Command line: argument parsing only. Every command calls a function of the library.
+
+Exit codes: 0 ok, 1 internal error, 2 bad input.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import warnings
+from pathlib import Path
+
+CAUTION = ("Caution: flashing and high-contrast patterns can trigger seizures in photosensitive people. "
+           "Follow local guidance and your local animal-care approvals when presenting these stimuli.")
+
+
+def _add_common(p):
+    p.add_argument("--debug", action="store_true", help="show the full traceback of any error")
+    p.add_argument("--quiet", action="store_true", help="no progress bars or progress messages")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="map2d",
+        description="Map 2-D receptive fields from sparse noise and gratings, and check that the two agree.")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    # -- stimulus ---------------------------------------------------------------------------------
+    p_stim = sub.add_parser("stimulus", help="generate stimulus files for presentation",
+                            description="Generate seeded, reproducible stimulus files. " + CAUTION)
+    stim_sub = p_stim.add_subparsers(dest="stimulus_kind", metavar="KIND")
+    sn = stim_sub.add_parser("sparse-noise", help="bright and dark spots on a grid",
+                             description="Sparse noise: a few bright and dark spots per frame on a grid. " + CAUTION)
+    sn.add_argument("--out", required=True, type=Path, help="folder to write sparse_noise.npy and times into")
+    sn.add_argument("--ny", type=int, default=16, help="grid rows (default 16)")
+    sn.add_argument("--nx", type=int, default=24, help="grid columns (default 24)")
+    sn.add_argument("--spacing-deg", type=float, nargs=2, default=(2.0, 2.0), metavar=("DX", "DY"),
+                    help="pixel spacing in degrees (default 2 2)")
+    sn.add_argument("--center-deg", type=float, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
+                    help="grid centre azimuth and elevation in degrees (default 0 0)")
+    sn.add_argument("--spots", type=int, default=4, help="spots per frame (default 4)")
+    sn.add_argument("--min-distance-deg", type=float, default=5.0,
+                    help="minimum distance between spots in one frame, degrees (default 5)")
+    sn.add_argument("--rate-hz", type=float, default=20.0, help="frames per second (default 20)")
+    sn.add_argument("--minutes", type=float, default=10.0, help="duration in minutes (default 10)")
+    sn.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    _add_render_args(sn)
+    _add_common(sn)
+
+    gr = stim_sub.add_parser("gratings", help="flashed or drifting sinusoidal gratings",
+                             description="Gratings: a flashed sequence (one grating per frame, random "
+                                         "orientation x SF x phase) or drifting trials. " + CAUTION)
+    gr.add_argument("--out", required=True, type=Path, help="folder to write gratings.csv into")
+    gr.add_argument("--mode", choices=("flashed", "drifting"), default="flashed",
+                    help="flashed sequence or drifting trials (default flashed)")
+    gr.add_argument("--orientations", type=int, default=12,
+                    help="number of orientations over 0-180 (flashed) or directions over 0-360 (drifting)")
+    gr.add_argument("--sf-cpd", type=float, nargs="+", default=(0.02, 0.04, 0.08, 0.16, 0.32),
+                    help="spatial frequencies in cycles/deg")
+    gr.add_argument("--phases", type=int, default=4, help="phases per grating, flashed mode (default 4)")
+    gr.add_argument("--blank-fraction", type=float, default=0.1, help="fraction of blank frames, flashed mode")
+    gr.add_argument("--contrast", type=float, default=1.0, help="Michelson contrast (default 1)")
+    gr.add_argument("--rate-hz", type=float, default=10.0, help="frames per second, flashed mode (default 10)")
+    gr.add_argument("--minutes", type=float, default=10.0, help="duration, flashed mode (default 10)")
+    gr.add_argument("--tf-hz", type=float, default=2.0, help="temporal frequency, drifting mode (default 2)")
+    gr.add_argument("--duration-s", type=float, default=2.0, help="trial duration, drifting mode (default 2)")
+    gr.add_argument("--gap-s", type=float, default=1.0, help="gap between trials, drifting mode (default 1)")
+    gr.add_argument("--repeats", type=int, default=5, help="repeats per condition, drifting mode (default 5)")
+    gr.add_argument("--start-s", type=float, default=0.0, help="onset of the first presentation (default 0)")
+    gr.add_argument("--phase-origin-deg", type=float, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
+                    help="phase origin (xc, yc) in degrees (default 0 0)")
+    gr.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    _add_render_args(gr)
+    _add_common(gr)
+
+    # -- simulate ---------------------------------------------------------------------------------
+    sim = sub.add_parser("simulate", help="write a simulated session with known answers",
+                         description="Simulate model cells (DoG, Gabor simple, energy complex, unresponsive) "
+                                     "answering sparse noise and gratings; writes a session folder and "
+                                     "OUT.truth.json beside it.")
+    sim.add_argument("out", type=Path, help="session folder to create")
+    sim.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    sim.add_argument("--cells", type=int, default=20, help="number of cells (default 20)")
+    sim.add_argument("--minutes", type=float, default=20.0, help="sparse-noise duration in minutes (default 20)")
+    sim.add_argument("--responses", choices=("spikes", "traces"), default="spikes",
+                     help="electrophysiology spikes or imaging traces (default spikes)")
+    sim.add_argument("--overwrite", action="store_true", help="replace an existing session folder")
+    _add_common(sim)
+
+    # -- analysis ---------------------------------------------------------------------------------
+    for name, helptext in (("maps", "spatial maps from sparse noise"),
+                           ("gratings", "grating response surfaces and tuning"),
+                           ("analyze", "maps, gratings, reconciliation, TIFF stacks and report")):
+        p = sub.add_parser(name, help=helptext, description=f"Compute {helptext} for every cell of a session.")
+        p.add_argument("session", type=Path, help="session folder (holding session.json)")
+        p.add_argument("--out", required=True, type=Path, help="results folder (replaced only after success)")
+        p.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
+                       help="longest lag in seconds (default 0.2)")
+        p.add_argument("--seed", type=int, default=0, help="seed for shuffles and bootstraps (default 0)")
+        _add_common(p)
+
+    demo = sub.add_parser("demo", help="run the whole job on the shipped demo session",
+                          description="Analyse data_demo/ (simulated) and write a report.")
+    demo.add_argument("--out", type=Path, default=Path("map2d_demo_results"),
+                      help="results folder (default ./map2d_demo_results)")
+    _add_common(demo)
+    return parser
+
+
+def _add_render_args(p):
+    p.add_argument("--render", action="store_true",
+                   help="also write frames at display resolution as a uint8 TIFF stack")
+    p.add_argument("--display", type=float, nargs=5, metavar=("W_CM", "H_CM", "W_PX", "H_PX", "DIST_CM"),
+                   default=(52.0, 29.25, 1920, 1080, 30.0),
+                   help="screen width and height (cm), resolution (px) and viewing distance (cm)")
+    p.add_argument("--eye-cm", type=float, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
+                   help="eye position relative to the screen centre (cm)")
+    p.add_argument("--render-scale", type=int, default=1,
+                   help="render every Nth screen pixel (1 = full resolution)")
+
+
+def _dispatch(args) -> int:
+    from . import pipeline
+    if args.command == "stimulus":
+        if args.stimulus_kind is None:
+            raise SystemExit("map2d stimulus: choose sparse-noise or gratings (see --help)")
+        print(CAUTION, file=sys.stderr)
+        return pipeline.run_stimulus(args)
+    if args.command == "simulate":
+        return pipeline.run_simulate(args)
+    if args.command == "maps":
+        return pipeline.run_maps(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed, quiet=args.quiet)
+    if args.command == "gratings":
+        return pipeline.run_gratings(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
+                                     quiet=args.quiet)
+    if args.command == "analyze":
+        return pipeline.run_analyze(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
+                                    quiet=args.quiet)
+    if args.command == "demo":
+        return pipeline.run_demo(args.out, quiet=args.quiet)
+    raise AssertionError(args.command)
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 0
+    from .contract import InputWarning
+    from .errors import BadInput
+
+    def show_warning(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, InputWarning):
+            print(f"map2d: warning: {message}", file=sys.stderr)
+        elif getattr(args, "debug", False):
+            print(warnings.formatwarning(message, category, filename, lineno, line), file=sys.stderr, end="")
+
+    warnings.showwarning = show_warning
+    try:
+        return int(_dispatch(args) or 0)
+    except BadInput as exc:
+        if args.debug:
+            raise
+        print(f"map2d: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("map2d: interrupted; no results were written", file=sys.stderr)
+        return 130
+    except Exception as exc:  # an internal error: one line and a hint
+        if args.debug:
+            raise
+        print(f"map2d: internal error: {type(exc).__name__}: {exc}. "
+              f"Run again with --debug for the traceback and report it.", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,532 @@
+"""The session folder: load, validate and write (the only module that knows the file names).
+
+See ``shared/contract.md`` for the contract and the README for the optional keys map2d adds
+(``display``, ``rois``).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import os
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .errors import BadInput
+from .geometry import Display, Grid
+
+__all__ = [
+    "SparseNoise", "GratingTable", "Spikes", "Traces", "Session", "InputWarning",
+    "load_session", "write_session", "write_table", "read_table", "GRATING_COLUMNS",
+]
+
+MANIFEST = "session.json"
+GRATING_COLUMNS = ("onset_s", "offset_s", "orientation_deg", "sf_cpd", "phase_deg", "contrast", "tf_hz")
+KNOWN_TOP_KEYS = {"sparse_noise", "gratings", "responses", "display", "rois", "name", "notes"}
+
+
+class InputWarning(UserWarning):
+    """Something odd in the input that map2d handled (it is counted and reported, not refused)."""
+
+
+# ----------------------------------------------------------------------------------------------
+# data holders
+# ----------------------------------------------------------------------------------------------
+@dataclass
+class SparseNoise:
+    """Sparse-noise (or any noise) frames and their onsets.
+
+    ``frames`` is ``(frames, ny, nx)``: int8 with +1 bright, -1 dark, 0 background for sparse noise,
+    or any real values for dense noise. A frame lasts until the next onset; the last one lasts the
+    median frame interval.
+    """
+
+    frames: np.ndarray
+    times_s: np.ndarray
+    grid: Grid
+
+    @property
+    def n_frames(self) -> int:
+        return int(self.frames.shape[0])
+
+    @property
+    def frame_interval_s(self) -> float:
+        if self.times_s.size < 2:
+            return float("nan")
+        return float(np.median(np.diff(self.times_s)))
+
+    def frame_ends_s(self) -> np.ndarray:
+        ends = np.empty_like(self.times_s)
+        ends[:-1] = self.times_s[1:]
+        if self.times_s.size:
+            ends[-1] = self.times_s[-1] + (self.frame_interval_s if self.times_s.size > 1 else 0.0)
+        return ends
+
+
+@dataclass
+class GratingTable:
+    """One row per grating presentation (columns of ``gratings.csv``)."""
+
+    onset_s: np.ndarray
+    offset_s: np.ndarray
+    orientation_deg: np.ndarray
+    sf_cpd: np.ndarray
+    phase_deg: np.ndarray
+    contrast: np.ndarray
+    tf_hz: np.ndarray
+    phase_origin_deg: tuple[float, float] = (0.0, 0.0)
+    extra: dict = field(default_factory=dict)
+
+    def __len__(self) -> int:
+        return int(self.onset_s.size)
+
+    @property
+    def is_blank(self) -> np.ndarray:
+        return self.contrast == 0
+
+    @property
+    def is_static(self) -> np.ndarray:
+        """Flashed presentations (``tf_hz == 0``), blanks included."""
+        return self.tf_hz == 0
+
+    @property
+    def is_drifting(self) -> np.ndarray:
+        return (self.tf_hz != 0) & (self.contrast != 0)
+
+    def subset(self, mask) -> "GratingTable":
+        mask = np.asarray(mask)
+        return GratingTable(*(getattr(self, c)[mask] for c in GRATING_COLUMNS),
+                            phase_origin_deg=self.phase_origin_deg,
+                            extra={k: list(np.asarray(v, dtype=object)[mask]) for k, v in self.extra.items()})
+
+    @classmethod
+    def from_columns(cls, phase_origin_deg=(0.0, 0.0), **cols) -> "GratingTable":
+        arrays = {c: np.asarray(cols[c], dtype=float) for c in GRATING_COLUMNS}
+        n = {a.size for a in arrays.values()}
+        if len(n) != 1:
+            raise ValueError("grating columns must have equal lengths")
+        return cls(**arrays, phase_origin_deg=tuple(float(v) for v in phase_origin_deg))
+
+
+@dataclass
+class Spikes:
+    """Spike times (s) and the cell each belongs to."""
+
+    time_s: np.ndarray
+    cell: np.ndarray
+    cell_ids: np.ndarray | None = None  # all cells, including any with no spikes
+
+    def __post_init__(self):
+        if self.cell_ids is None:
+            self.cell_ids = np.unique(self.cell)
+        self.cell_ids = np.asarray(self.cell_ids, dtype=np.int64)
+
+    kind = "spikes"
+    unit = "spikes/s"
+
+
+@dataclass
+class Traces:
+    """Imaging traces ``(cells, samples)`` sampled at ``times_s``; cell ids are the row numbers."""
+
+    values: np.ndarray
+    times_s: np.ndarray
+
+    kind = "traces"
+    unit = "trace units"
+
+    @property
+    def cell_ids(self) -> np.ndarray:
+        return np.arange(self.values.shape[0], dtype=np.int64)
+
+
+@dataclass
+class Session:
+    """A loaded, validated session folder."""
+
+    responses: Spikes | Traces
+    sparse_noise: SparseNoise | None = None
+    gratings: GratingTable | None = None
+    display: Display | None = None
+    rois: np.ndarray | None = None
+    path: Path | None = None
+    name: str = "session"
+    notes: list = field(default_factory=list)
+
+    @property
+    def cell_ids(self) -> np.ndarray:
+        return self.responses.cell_ids
+
+
+# ----------------------------------------------------------------------------------------------
+# loading
+# ----------------------------------------------------------------------------------------------
+def _note(session_notes, message):
+    session_notes.append(message)
+    warnings.warn(message, InputWarning, stacklevel=3)
+
+
+def _load_npy(folder: Path, rel: str, key: str):
+    path = folder / rel
+    if not path.is_file():
+        raise BadInput(path, key, "file not found")
+    try:
+        return np.load(path, allow_pickle=False)
+    except Exception as exc:  # numpy raises several types for damaged files
+        raise BadInput(path, key, f"not a readable .npy file ({type(exc).__name__})") from None
+
+
+def _load_npz(folder: Path, rel: str, key: str) -> dict:
+    path = folder / rel
+    if not path.is_file():
+        raise BadInput(path, key, "file not found")
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            return {k: z[k] for k in z.files}
+    except Exception as exc:
+        raise BadInput(path, key, f"not a readable .npz file ({type(exc).__name__})") from None
+
+
+def _require(mapping, key, where):
+    if not isinstance(mapping, dict) or key not in mapping:
+        raise BadInput(where, key, "is missing")
+    return mapping[key]
+
+
+def _pair(value, where, key):
+    try:
+        a, b = (float(v) for v in value)
+    except Exception:
+        raise BadInput(where, key, "must be a list of two numbers") from None
+    if not (math.isfinite(a) and math.isfinite(b)):
+        raise BadInput(where, key, "must be finite")
+    return a, b
+
+
+def _check_times(times, path, key, expected=None):
+    times = np.asarray(times)
+    if times.ndim != 1:
+        raise BadInput(path, key, f"must be one-dimensional, got shape {times.shape}")
+    if not np.issubdtype(times.dtype, np.number):
+        raise BadInput(path, key, f"must be numeric, got {times.dtype}")
+    times = times.astype(np.float64)
+    if expected is not None and times.size != expected:
+        raise BadInput(path, key, f"has {times.size} entries but {expected} were expected")
+    bad = np.flatnonzero(~np.isfinite(times))
+    if bad.size:
+        raise BadInput(path, key, "is not finite", row=int(bad[0]))
+    d = np.diff(times)
+    bad = np.flatnonzero(d <= 0)
+    if bad.size:
+        raise BadInput(path, key, "times are not strictly increasing", row=int(bad[0]) + 1)
+    return times
+
+
+def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
+    where = f"{folder / MANIFEST} sparse_noise"
+    frames_rel = _require(spec, "frames", where)
+    times_rel = _require(spec, "times", where)
+    grid_spec = _require(spec, "grid", where)
+    cx, cy = _pair(_require(grid_spec, "center_deg", where + ".grid"), where + ".grid", "center_deg")
+    dx, dy = _pair(_require(grid_spec, "spacing_deg", where + ".grid"), where + ".grid", "spacing_deg")
+    if not (dx > 0 and dy > 0):
+        raise BadInput(folder / MANIFEST, "sparse_noise.grid.spacing_deg", f"must be positive, got [{dx}, {dy}]")
+    frames = _load_npy(folder, frames_rel, "frames")
+    fpath = folder / frames_rel
+    if frames.ndim != 3:
+        raise BadInput(fpath, "frames", f"must have shape (frames, ny, nx), got {frames.shape}")
+    if frames.shape[0] < 2:
+        raise BadInput(fpath, "frames", "needs at least two frames")
+    if np.issubdtype(frames.dtype, np.integer):
+        bad = np.flatnonzero(((frames < -1) | (frames > 1)).any(axis=(1, 2)))
+        if bad.size:
+            raise BadInput(fpath, "frames", "values must be -1, 0 or +1", row=int(bad[0]))
+        frames = frames.astype(np.int8, copy=False)
+    elif np.issubdtype(frames.dtype, np.floating):
+        # dense (real-valued) noise is accepted; NaN is not
+        finite = np.isfinite(frames).all(axis=(1, 2)) if frames.size < 2**28 else None
+        if finite is not None and not finite.all():
+            raise BadInput(fpath, "frames", "is not finite", row=int(np.flatnonzero(~finite)[0]))
+    else:
+        raise BadInput(fpath, "frames", f"must be int8 (or float for dense noise), got {frames.dtype}")
+    times = _check_times(_load_npy(folder, times_rel, "times"), folder / times_rel, "times",
+                         expected=frames.shape[0])
+    grid = Grid(ny=frames.shape[1], nx=frames.shape[2], center_x_deg=cx, center_y_deg=cy, dx_deg=dx, dy_deg=dy)
+    return SparseNoise(frames=frames, times_s=times, grid=grid)
+
+
+def read_table(path) -> tuple[list[str], list[list[str]]]:
+    """Read a CSV file into its header and rows of strings (no type conversion)."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except UnicodeDecodeError:
+        raise BadInput(path, None, "is not UTF-8 text") from None
+    reader = csv.reader(io.StringIO(text))
+    rows = [r for r in reader if r and any(c.strip() for c in r)]
+    if not rows:
+        raise BadInput(path, None, "is empty (a header row is required)")
+    return [h.strip() for h in rows[0]], rows[1:]
+
+
+def _load_gratings(folder: Path, spec, default_origin, notes) -> GratingTable:
+    where = f"{folder / MANIFEST} gratings"
+    rel = _require(spec, "table", where)
+    path = folder / rel
+    if not path.is_file():
+        raise BadInput(path, "table", "file not found")
+    header, rows = read_table(path)
+    missing = [c for c in GRATING_COLUMNS if c not in header]
+    if missing:
+        raise BadInput(path, missing[0], "column is missing from the header")
+    idx = {c: header.index(c) for c in header}
+    data = {c: np.empty(len(rows)) for c in GRATING_COLUMNS}
+    extra = {c: [] for c in header if c not in GRATING_COLUMNS}
+    for r, row in enumerate(rows, start=1):
+        if len(row) != len(header):
+            raise BadInput(path, None, f"has {len(row)} fields, header has {len(header)}", row=r)
+        for c in GRATING_COLUMNS:
+            text = row[idx[c]].strip()
+            try:
+                v = float(text)
+            except ValueError:
+                raise BadInput(path, c, f"'{text}' is not a number", row=r) from None
+            if not math.isfinite(v):
+                raise BadInput(path, c, f"'{text}' is not finite", row=r)
+            data[c][r - 1] = v
+        for c in extra:
+            extra[c].append(row[idx[c]])
+    bad = np.flatnonzero(data["offset_s"] <= data["onset_s"])
+    if bad.size:
+        raise BadInput(path, "offset_s", "must be later than onset_s", row=int(bad[0]) + 1)
+    for c in ("sf_cpd", "contrast"):
+        bad = np.flatnonzero(data[c] < 0)
+        if bad.size:
+            raise BadInput(path, c, "must not be negative", row=int(bad[0]) + 1)
+    bad = np.flatnonzero((data["sf_cpd"] == 0) & (data["contrast"] != 0))
+    if bad.size:
+        raise BadInput(path, "sf_cpd", "must be positive for a grating with contrast", row=int(bad[0]) + 1)
+    if "phase_origin_deg" in spec:
+        origin = _pair(spec["phase_origin_deg"], where, "phase_origin_deg")
+    else:
+        origin = default_origin
+    order = np.argsort(data["onset_s"], kind="stable")
+    if np.any(order != np.arange(order.size)):
+        _note(notes, f"{path}: rows are not in onset order; sorted by onset_s")
+        data = {c: v[order] for c, v in data.items()}
+        extra = {c: [v[i] for i in order] for c, v in extra.items()}
+    if len(rows) > 1:
+        overlap = np.flatnonzero(data["onset_s"][1:] < data["offset_s"][:-1] - 1e-9)
+        if overlap.size:
+            _note(notes, f"{path}: {overlap.size} presentations overlap the previous one "
+                         f"(first at row {int(overlap[0]) + 2})")
+    return GratingTable(**data, phase_origin_deg=origin, extra=extra)
+
+
+def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
+    where = f"{folder / MANIFEST} responses"
+    kind = _require(spec, "kind", where)
+    rel = _require(spec, "file", where)
+    if kind == "spikes":
+        z = _load_npz(folder, rel, "file")
+        path = folder / rel
+        for key in ("time_s", "cell"):
+            if key not in z:
+                raise BadInput(path, key, "array is missing")
+        t, c = np.asarray(z["time_s"]), np.asarray(z["cell"])
+        if t.ndim != 1 or c.ndim != 1:
+            raise BadInput(path, "time_s", "time_s and cell must be one-dimensional")
+        if t.size != c.size:
+            raise BadInput(path, "cell", f"has {c.size} entries but time_s has {t.size}")
+        if not np.issubdtype(t.dtype, np.number):
+            raise BadInput(path, "time_s", f"must be numeric, got {t.dtype}")
+        t = t.astype(np.float64)
+        bad = np.flatnonzero(~np.isfinite(t))
+        if bad.size:
+            raise BadInput(path, "time_s", "is not finite", row=int(bad[0]))
+        if np.issubdtype(c.dtype, np.floating):
+            if not np.all(np.isfinite(c)) or np.any(c != np.round(c)):
+                bad = np.flatnonzero(~np.isfinite(c) | (c != np.round(c)))
+                raise BadInput(path, "cell", "must hold integers", row=int(bad[0]))
+        elif not np.issubdtype(c.dtype, np.integer):
+            raise BadInput(path, "cell", f"must hold integers, got {c.dtype}")
+        c = c.astype(np.int64)
+        ids = None
+        if "cell_ids" in spec:
+            try:
+                ids = np.asarray(spec["cell_ids"], dtype=np.int64)
+            except Exception:
+                raise BadInput(folder / MANIFEST, "responses.cell_ids", "must be a list of integers") from None
+            unknown = np.setdiff1d(c, ids)
+            if unknown.size:
+                raise BadInput(path, "cell", f"cell {int(unknown[0])} is not in responses.cell_ids")
+            ids = np.unique(ids)
+        order = np.argsort(t, kind="stable")
+        return Spikes(time_s=t[order], cell=c[order], cell_ids=ids)
+    if kind == "traces":
+        path = folder / rel
+        values = _load_npy(folder, rel, "file")
+        if values.ndim != 2:
+            raise BadInput(path, "traces", f"must have shape (cells, samples), got {values.shape}")
+        if not np.issubdtype(values.dtype, np.number):
+            raise BadInput(path, "traces", f"must be numeric, got {values.dtype}")
+        times_rel = _require(spec, "times", where)
+        times = _check_times(_load_npy(folder, times_rel, "times"), folder / times_rel, "times",
+                             expected=values.shape[1])
+        values = values.astype(np.float32, copy=False)
+        n_nan = int(np.count_nonzero(~np.isfinite(values)))
+        if n_nan:
+            _note(notes, f"{path}: {n_nan} samples are NaN or infinite; they are left out of every average")
+        return Traces(values=values, times_s=times)
+    raise BadInput(folder / MANIFEST, "responses.kind", f"must be 'spikes' or 'traces', got {kind!r}")
+
+
+def load_session(folder) -> Session:
+    """Load and validate a session folder.
+
+    Parameters
+    ----------
+    folder : str or Path
+        Folder holding ``session.json`` and the files it names.
+
+    Returns
+    -------
+    Session
+
+    Raises
+    ------
+    BadInput
+        With a message naming the file, the field and (where it applies) the row.
+    """
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise BadInput(folder, None, "session folder not found")
+    mpath = folder / MANIFEST
+    if not mpath.is_file():
+        raise BadInput(mpath, None, "file not found")
+    try:
+        manifest = json.loads(mpath.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise BadInput(mpath, None, f"is not valid JSON ({exc})") from None
+    if not isinstance(manifest, dict):
+        raise BadInput(mpath, None, "must hold a JSON object")
+    notes: list = []
+    for key in sorted(set(manifest) - KNOWN_TOP_KEYS):
+        _note(notes, f"{mpath}: unknown key '{key}' ignored")
+    if "responses" not in manifest:
+        raise BadInput(mpath, "responses", "is missing (every session needs responses)")
+    responses = _load_responses(folder, manifest["responses"], notes)
+    sparse = None
+    if manifest.get("sparse_noise") is not None:
+        sparse = _load_sparse_noise(folder, manifest["sparse_noise"], notes)
+    gratings = None
+    if manifest.get("gratings") is not None:
+        default_origin = ((sparse.grid.center_x_deg, sparse.grid.center_y_deg) if sparse is not None
+                          else (0.0, 0.0))
+        gratings = _load_gratings(folder, manifest["gratings"], default_origin, notes)
+    display = None
+    if manifest.get("display") is not None:
+        d = manifest["display"]
+        try:
+            eye = d.get("eye_cm", [0.0, 0.0])
+            display = Display(width_cm=float(d["width_cm"]), height_cm=float(d["height_cm"]),
+                              width_px=int(d["width_px"]), height_px=int(d["height_px"]),
+                              distance_cm=float(d["distance_cm"]), eye_x_cm=float(eye[0]), eye_y_cm=float(eye[1]))
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise BadInput(mpath, "display", f"is incomplete or invalid ({exc})") from None
+    rois = None
+    if manifest.get("rois") is not None:
+        rois = _load_rois(folder, manifest["rois"])
+    return Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
+                   rois=rois, path=folder, name=str(manifest.get("name", folder.name)), notes=notes)
+
+
+def _load_rois(folder: Path, rel) -> np.ndarray:
+    path = folder / str(rel)
+    if not path.is_file():
+        raise BadInput(path, "rois", "file not found")
+    try:
+        import tifffile
+        labels = tifffile.imread(path)
+    except Exception as exc:
+        raise BadInput(path, "rois", f"not a readable TIFF ({type(exc).__name__})") from None
+    labels = np.squeeze(labels)
+    if labels.ndim != 2 or not np.issubdtype(labels.dtype, np.integer):
+        raise BadInput(path, "rois", f"must be a 2-D integer label image, got {labels.dtype} {labels.shape}")
+    return labels
+
+
+# ----------------------------------------------------------------------------------------------
+# writing
+# ----------------------------------------------------------------------------------------------
+def _fmt(v) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, (bool, np.bool_)):
+        return "true" if v else "false"
+    if isinstance(v, (int, np.integer)):
+        return str(int(v))
+    if isinstance(v, (float, np.floating)):
+        return "" if not math.isfinite(float(v)) else format(float(v), ".7g")
+    return str(v)
+
+
+def write_table(path, columns: dict) -> None:
+    """Write columns (equal-length sequences) as CSV: booleans true/false, NaN/None empty."""
+    names = list(columns)
+    n = {len(columns[c]) for c in names}
+    if len(n) > 1:
+        raise ValueError(f"columns have unequal lengths: { {c: len(columns[c]) for c in names} }")
+    nrows = n.pop() if n else 0
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh, lineterminator="\n")
+        w.writerow(names)
+        for i in range(nrows):
+            w.writerow([_fmt(columns[c][i]) for c in names])
+
+
+def write_session(folder, session: Session, overwrite: bool = False) -> Path:
+    """Write a session folder following the contract. Returns the folder path."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    if not overwrite and (folder / MANIFEST).exists():
+        raise BadInput(folder, None, "already holds a session (use overwrite)")
+    manifest: dict = {"name": session.name}
+    if session.sparse_noise is not None:
+        sn = session.sparse_noise
+        np.save(folder / "sparse_noise.npy", sn.frames)
+        np.save(folder / "sparse_noise_times.npy", np.asarray(sn.times_s, dtype=np.float64))
+        manifest["sparse_noise"] = {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy",
+                                    "grid": sn.grid.to_manifest()}
+    if session.gratings is not None:
+        g = session.gratings
+        cols = {c: getattr(g, c) for c in GRATING_COLUMNS}
+        cols.update(g.extra)
+        write_table(folder / "gratings.csv", cols)
+        manifest["gratings"] = {"table": "gratings.csv", "phase_origin_deg": list(map(float, g.phase_origin_deg))}
+    r = session.responses
+    if isinstance(r, Spikes):
+        np.savez(folder / "spikes.npz", time_s=np.asarray(r.time_s, np.float64), cell=np.asarray(r.cell, np.int64))
+        manifest["responses"] = {"kind": "spikes", "file": "spikes.npz"}
+        if not np.array_equal(np.unique(r.cell), r.cell_ids):
+            manifest["responses"]["cell_ids"] = [int(c) for c in r.cell_ids]
+    else:
+        np.save(folder / "traces.npy", np.asarray(r.values, dtype=np.float32))
+        np.save(folder / "trace_times.npy", np.asarray(r.times_s, dtype=np.float64))
+        manifest["responses"] = {"kind": "traces", "file": "traces.npy", "times": "trace_times.npy"}
+    if session.display is not None:
+        manifest["display"] = session.display.to_manifest()
+    if session.rois is not None:
+        import tifffile
+        tifffile.imwrite(folder / "rois.tif", np.asarray(session.rois, dtype=np.int32))
+        manifest["rois"] = "rois.tif"
+    tmp = folder / (MANIFEST + ".tmp")
+    tmp.write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
+    os.replace(tmp, folder / MANIFEST)
+    return folder
+
