@@ -23,6 +23,7 @@ from .geometry import Display, Grid
 __all__ = [
     "SparseNoise", "GratingTable", "Spikes", "Traces", "Session", "InputWarning",
     "load_session", "write_session", "write_table", "read_table", "GRATING_COLUMNS",
+    "write_stimulus", "load_stimulus", "STIMULUS_MANIFEST",
 ]
 
 MANIFEST = "session.json"
@@ -498,17 +499,9 @@ def write_session(folder, session: Session, overwrite: bool = False) -> Path:
         raise BadInput(folder, None, "already holds a session (use overwrite)")
     manifest: dict = {"name": session.name}
     if session.sparse_noise is not None:
-        sn = session.sparse_noise
-        np.save(folder / "sparse_noise.npy", sn.frames)
-        np.save(folder / "sparse_noise_times.npy", np.asarray(sn.times_s, dtype=np.float64))
-        manifest["sparse_noise"] = {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy",
-                                    "grid": sn.grid.to_manifest()}
+        manifest["sparse_noise"] = _write_sparse_noise(folder, session.sparse_noise)
     if session.gratings is not None:
-        g = session.gratings
-        cols = {c: getattr(g, c) for c in GRATING_COLUMNS}
-        cols.update(g.extra)
-        write_table(folder / "gratings.csv", cols)
-        manifest["gratings"] = {"table": "gratings.csv", "phase_origin_deg": list(map(float, g.phase_origin_deg))}
+        manifest["gratings"] = _write_gratings(folder, session.gratings)
     r = session.responses
     if isinstance(r, Spikes):
         np.savez(folder / "spikes.npz", time_s=np.asarray(r.time_s, np.float64), cell=np.asarray(r.cell, np.int64))
@@ -530,3 +523,102 @@ def write_session(folder, session: Session, overwrite: bool = False) -> Path:
     os.replace(tmp, folder / MANIFEST)
     return folder
 
+
+# ----------------------------------------------------------------------------------------------
+# stimulus folders (output of ``map2d stimulus``)
+# ----------------------------------------------------------------------------------------------
+STIMULUS_MANIFEST = "stimulus.json"
+
+
+def _write_sparse_noise(folder: Path, sn: SparseNoise) -> dict:
+    """Write ``sparse_noise.npy`` and ``sparse_noise_times.npy``; return the manifest entry."""
+    np.save(folder / "sparse_noise.npy", sn.frames)
+    np.save(folder / "sparse_noise_times.npy", np.asarray(sn.times_s, dtype=np.float64))
+    return {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy", "grid": sn.grid.to_manifest()}
+
+
+def _write_gratings(folder: Path, g: GratingTable) -> dict:
+    """Write ``gratings.csv``; return the manifest entry."""
+    cols = {c: getattr(g, c) for c in GRATING_COLUMNS}
+    cols.update(g.extra)
+    write_table(folder / "gratings.csv", cols)
+    return {"table": "gratings.csv", "phase_origin_deg": list(map(float, g.phase_origin_deg))}
+
+
+def write_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: GratingTable | None = None,
+                   display: Display | None = None, info: dict | None = None) -> Path:
+    """Write stimulus files for presentation, the same files a session folder uses.
+
+    Parameters
+    ----------
+    folder : str or Path
+        Existing or new folder. Files of the same names are replaced.
+    sparse_noise : SparseNoise, optional
+        Written as ``sparse_noise.npy`` (int8 frames) and ``sparse_noise_times.npy`` (float64 onsets).
+    gratings : GratingTable, optional
+        Written as ``gratings.csv`` (contract columns, then any extra columns).
+    display : Display, optional
+        Screen geometry used for rendering, stored under ``display`` (the session manifest's key).
+    info : dict, optional
+        JSON-serialisable description of how the stimulus was made (generator, arguments, seed,
+        rendered frames), stored under ``generator``.
+
+    Returns
+    -------
+    Path
+        The folder.
+
+    Notes
+    -----
+    ``stimulus.json`` has the layout of a session's ``session.json`` without ``responses``:
+    ``sparse_noise`` (frames, times, grid), ``gratings`` (table, phase_origin_deg), optionally
+    ``display`` and ``generator``. Adding a ``responses`` entry (and renaming it ``session.json``)
+    turns the folder into a session, so what was shown and what is analysed are the same files.
+    """
+    if sparse_noise is None and gratings is None:
+        raise ValueError("write_stimulus: give sparse_noise or gratings (or both)")
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    manifest: dict = {}
+    if sparse_noise is not None:
+        manifest["sparse_noise"] = _write_sparse_noise(folder, sparse_noise)
+    if gratings is not None:
+        manifest["gratings"] = _write_gratings(folder, gratings)
+    if display is not None:
+        manifest["display"] = display.to_manifest()
+    if info is not None:
+        manifest["generator"] = info
+    tmp = folder / (STIMULUS_MANIFEST + ".tmp")
+    tmp.write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
+    os.replace(tmp, folder / STIMULUS_MANIFEST)
+    return folder
+
+
+def load_stimulus(folder) -> tuple[SparseNoise | None, GratingTable | None, dict]:
+    """Load a folder written by :func:`write_stimulus`, validated as a session's stimulus files are.
+
+    Returns
+    -------
+    (SparseNoise or None, GratingTable or None, dict)
+        The stimuli and the raw ``stimulus.json`` manifest.
+    """
+    folder = Path(folder)
+    mpath = folder / STIMULUS_MANIFEST
+    if not mpath.is_file():
+        raise BadInput(mpath, None, "file not found")
+    try:
+        manifest = json.loads(mpath.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise BadInput(mpath, None, f"is not valid JSON ({exc})") from None
+    if not isinstance(manifest, dict):
+        raise BadInput(mpath, None, "must hold a JSON object")
+    notes: list = []
+    sparse = None
+    if manifest.get("sparse_noise") is not None:
+        sparse = _load_sparse_noise(folder, manifest["sparse_noise"], notes)
+    gratings = None
+    if manifest.get("gratings") is not None:
+        default_origin = ((sparse.grid.center_x_deg, sparse.grid.center_y_deg) if sparse is not None
+                          else (0.0, 0.0))
+        gratings = _load_gratings(folder, manifest["gratings"], default_origin, notes)
+    return sparse, gratings, manifest
