@@ -117,6 +117,12 @@ def _add_render_args(p):
                    help="eye position relative to the screen centre (cm)")
     p.add_argument("--render-scale", type=int, default=1,
                    help="render every Nth screen pixel (1 = full resolution)")
+    p.add_argument("--render-frames", type=int, default=60,
+                   help="number of frames to render (default 60; a whole session is very large)")
+    p.add_argument("--render-start", type=int, default=0,
+                   help="first frame to render (default 0)")
+    p.add_argument("--render-rate-hz", type=float, default=60.0,
+                   help="display refresh rate used to render drifting gratings (default 60)")
 
 
 def _dispatch(args) -> int:

@@ -530,6 +530,15 @@ def write_session(folder, session: Session, overwrite: bool = False) -> Path:
 STIMULUS_MANIFEST = "stimulus.json"
 
 
+def _fmt_exact(v: float) -> str:
+    """A float as the shortest text that reads back exactly (integers without ``.0``, NaN empty)."""
+    if not math.isfinite(v):
+        return ""
+    if v.is_integer() and abs(v) < 1e15:
+        return str(int(v))
+    return repr(float(v))
+
+
 def _write_sparse_noise(folder: Path, sn: SparseNoise) -> dict:
     """Write ``sparse_noise.npy`` and ``sparse_noise_times.npy``; return the manifest entry."""
     np.save(folder / "sparse_noise.npy", sn.frames)
@@ -539,7 +548,8 @@ def _write_sparse_noise(folder: Path, sn: SparseNoise) -> dict:
 
 def _write_gratings(folder: Path, g: GratingTable) -> dict:
     """Write ``gratings.csv``; return the manifest entry."""
-    cols = {c: getattr(g, c) for c in GRATING_COLUMNS}
+    # shortest text that reads back to the same float64 (times such as k / 60 keep every digit)
+    cols = {c: [_fmt_exact(v) for v in np.asarray(getattr(g, c), dtype=float)] for c in GRATING_COLUMNS}
     cols.update(g.extra)
     write_table(folder / "gratings.csv", cols)
     return {"table": "gratings.csv", "phase_origin_deg": list(map(float, g.phase_origin_deg))}
