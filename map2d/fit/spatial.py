@@ -1,0 +1,845 @@
+"""Model fits to a spatial receptive-field map: 2-D Gaussian, difference of Gaussians, Gabor.
+
+A map is an array ``(ny, nx)`` on a :class:`map2d.geometry.Grid` (row 0 at the top). Every model is
+evaluated at the pixel centres in degrees from :meth:`Grid.mesh_deg`, never at array indices, so a
+fitted centre is in visual-space degrees (azimuth ``x``, elevation ``y`` up) and a fitted orientation
+follows the contract (wave-vector angle counter-clockwise from +x, 0 deg = vertical stripes).
+
+Models (functions from :mod:`map2d.models`)
+-------------------------------------------
+``gaussian``
+    :func:`~map2d.models.gaussian2d`: centre, two widths, angle of the major axis, signed amplitude
+    (6 parameters). A negative amplitude is an OFF field.
+``dog``
+    :func:`~map2d.models.dog2d` (Enroth-Cugell & Robson 1966): circular centre and surround,
+    ``kc exp(-r^2/rc^2) - ks exp(-r^2/rs^2)`` with ``rs > rc`` and ``kc``, ``ks`` of the same sign
+    (ON centre: both >= 0; OFF centre: both <= 0); 6 parameters. With ``ks = 0`` it is a circular
+    Gaussian, so it nests the circular case of the ``gaussian`` model (not the elliptical one).
+``gabor``
+    :func:`~map2d.models.gabor2d` (Jones & Palmer 1987): envelope centre, widths along (``sigma_u``)
+    and across (``sigma_v``) the wave vector, orientation, spatial frequency, phase, amplitude
+    (8 parameters). The phase is relative to the envelope centre (``gabor2d``'s convention).
+
+Fitting
+-------
+:func:`scipy.optimize.least_squares` (trust-region reflective, bounds) with analytic Jacobians in an
+internal parameterisation chosen for conditioning (the Gabor uses the wave vector ``(kx, ky)`` and
+the cosine/sine amplitudes, so neither angle nor phase wraps during the search), from a few data-driven
+starts: the peak of the lightly smoothed map and its second moments (Gaussian, DoG), and the peaks of
+the zero-padded 2-D power spectrum for the Gabor's wave vector (the row axis is flipped, since row 0 is
+the top). Bounds: centre within a quarter of the grid's extent beyond its edges; widths between 0.3
+pixel and the grid's largest extent (the DoG surround up to twice that); Gabor frequency below the
+Nyquist limit on each axis (``|kx| <= 1/(2 dx)``, ``|ky| <= 1/(2 dy)``). Non-finite pixels are ignored.
+
+Weighting, information criterion and confidence intervals
+---------------------------------------------------------
+With ``noise_sd`` (scalar or per pixel) residuals are divided by it. The information criterion is
+computed from the Gaussian log-likelihood:
+
+- known noise: ``AIC = chi2 + n ln(2 pi sd^2) + 2 k`` with ``chi2 = sum(((model - map) / sd)^2)``;
+- unknown noise: ``AIC = n ln(RSS / n) + 2 k`` (maximum-likelihood variance; the constant and the
+  variance parameter are common to all models and cancel in comparisons);
+- ``BIC`` replaces ``2 k`` by ``k ln n`` (Schwarz 1978); pass ``criterion="bic"`` to :func:`fit_map`.
+
+Confidence intervals are Wald intervals from the Jacobian at the optimum, ``cov = s^2 (J^T J)^-1``,
+95 % as ``estimate +- 1.96 sd``, with ``J`` the central-difference Jacobian of the :mod:`map2d.models`
+function with respect to the *reported* parameters (so intervals are in the reported units). ``s^2`` is
+``RSS / (n - k)`` when the noise is unknown; with a known ``noise_sd`` it is ``sd^2`` inflated by the
+reduced chi-square when that exceeds 1 (the scale-factor practice of the Particle Data Group, Review of
+Particle Physics, "Introduction": protects against a model that misfits). A parameter that is not
+identifiable at the optimum (e.g. the angle of a circular Gaussian, a surround of zero strength) has a
+NaN interval. Angles' and phases' intervals are ``estimate +- 1.96 sd`` and may extend past the folding
+range. Intervals are local (linearised) and assume independent pixel noise.
+
+References
+----------
+Enroth-Cugell C, Robson JG (1966) J Physiol 187:517-552.
+Jones JP, Palmer LA (1987) J Neurophysiol 58:1233-1258.
+Akaike H (1974) A new look at the statistical model identification. IEEE Trans Autom Control 19:716-723.
+Schwarz G (1978) Estimating the dimension of a model. Ann Stat 6:461-464.
+Press WH et al., Numerical Recipes, 3rd ed., section 15.6 (confidence limits from the covariance matrix).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage
+from scipy.optimize import least_squares
+
+from ..geometry import Grid
+from ..models import dog2d, gabor2d, gaussian2d
+
+__all__ = [
+    "SpatialFit",
+    "fit_gaussian",
+    "fit_dog",
+    "fit_gabor",
+    "fit_map",
+    "fit_maps",
+    "FIT_COLUMNS",
+    "MODELS",
+]
+
+MODELS = ("gaussian", "dog", "gabor")
+Z95 = 1.959963984540054  # two-sided 95 % normal quantile
+
+# Reported parameter names (and order) per model.
+_PARAM_NAMES = {
+    "gaussian": ("center_x_deg", "center_y_deg", "sigma_major_deg", "sigma_minor_deg", "theta_deg",
+                 "amplitude"),
+    "dog": ("center_x_deg", "center_y_deg", "kc", "rc_deg", "ks", "rs_deg"),
+    "gabor": ("center_x_deg", "center_y_deg", "sigma_u_deg", "sigma_v_deg", "orientation_deg",
+              "sf_cpd", "phase_deg", "amplitude"),
+}
+
+
+# --------------------------------------------------------------------------------------------------
+# result
+# --------------------------------------------------------------------------------------------------
+
+@dataclass
+class SpatialFit:
+    """The fit of one model to one map (the chosen one, for :func:`fit_map`).
+
+    Attributes
+    ----------
+    model : str
+        ``'gaussian'``, ``'dog'`` or ``'gabor'``.
+    params : dict of str to float
+        Named parameters with units in the names, model by model:
+        gaussian: ``center_x_deg, center_y_deg, sigma_major_deg, sigma_minor_deg, theta_deg`` (major
+        axis, counter-clockwise from +x, in [0, 180)), ``amplitude`` (signed);
+        dog: ``center_x_deg, center_y_deg, kc, rc_deg, ks, rs_deg`` (``kc``, ``ks`` >= 0 ON centre,
+        <= 0 OFF centre; ``rc``, ``rs`` are 1/e radii);
+        gabor: ``center_x_deg, center_y_deg, sigma_u_deg`` (envelope sd along the wave vector),
+        ``sigma_v_deg`` (across), ``orientation_deg`` (wave-vector angle in [0, 180)), ``sf_cpd``,
+        ``phase_deg`` (in [0, 360), relative to the envelope centre), ``amplitude`` (> 0).
+    ci : dict of str to (float, float)
+        95 % Wald interval per parameter (module notes); ``(nan, nan)`` when not identifiable.
+    aic : dict of str to float
+        AIC of every model tried (module notes).
+    bic : dict of str to float
+        BIC of every model tried.
+    r2 : float
+        ``1 - RSS / TSS`` of the chosen model on the finite pixels (unweighted).
+    predicted : numpy.ndarray
+        The model evaluated on the grid, ``(ny, nx)``.
+    criterion : str
+        ``'aic'`` or ``'bic'``: what chose the model (for a single-model fit, ``'aic'``).
+    n_pixels : int
+        Number of finite pixels used.
+    """
+
+    model: str
+    params: dict
+    ci: dict
+    aic: dict
+    r2: float
+    predicted: np.ndarray
+    bic: dict = field(default_factory=dict)
+    criterion: str = "aic"
+    n_pixels: int = 0
+
+    @property
+    def center_x_deg(self) -> float:
+        """Azimuth of the centre of the model's envelope (degrees)."""
+        return float(self.params["center_x_deg"])
+
+    @property
+    def center_y_deg(self) -> float:
+        """Elevation of the centre of the model's envelope (degrees)."""
+        return float(self.params["center_y_deg"])
+
+
+# --------------------------------------------------------------------------------------------------
+# shared preparation
+# --------------------------------------------------------------------------------------------------
+
+class _Problem:
+    """Pixel positions, data and weights of one map (finite pixels only)."""
+
+    def __init__(self, map_yx, grid, noise_sd):
+        if not isinstance(grid, Grid):
+            raise TypeError(f"grid must be a map2d.geometry.Grid, got {type(grid).__name__}")
+        m = np.asarray(map_yx, dtype=float)
+        if m.shape != grid.shape:
+            raise ValueError(f"map_yx has shape {m.shape}, the grid is {grid.shape}")
+        self.grid = grid
+        self.map = m
+        X, Y = grid.mesh_deg()
+        self.X, self.Y = X, Y
+        ok = np.isfinite(m)
+        if noise_sd is None:
+            sd = None
+        else:
+            sd = np.broadcast_to(np.asarray(noise_sd, dtype=float), m.shape)
+            if not np.all(np.isfinite(sd[ok]) & (sd[ok] > 0)):
+                raise ValueError("noise_sd must be finite and > 0 at every finite pixel")
+        self.known_noise = sd is not None
+        self.ok = ok
+        self.x = X[ok]
+        self.y = Y[ok]
+        self.d = m[ok]
+        self.n = int(ok.sum())
+        self.w = (1.0 / sd[ok]) if sd is not None else np.ones(self.n)
+        self.sd = sd[ok] if sd is not None else None
+        self.dx, self.dy = float(grid.dx_deg), float(grid.dy_deg)
+        ext_x, ext_y = grid.nx * self.dx, grid.ny * self.dy
+        self.ext = max(ext_x, ext_y)
+        self.wmin = 0.3 * min(self.dx, self.dy)
+        self.wmax = self.ext
+        xs, ys = grid.x_deg, grid.y_deg
+        mx, my = 0.25 * ext_x, 0.25 * ext_y
+        self.xlo, self.xhi = xs.min() - mx, xs.max() + mx
+        self.ylo, self.yhi = ys.min() - my, ys.max() + my
+        self.nyq_x, self.nyq_y = 0.5 / self.dx, 0.5 / self.dy
+        scale = np.nanmax(np.abs(m)) if self.n else 0.0
+        self.scale = float(scale) if np.isfinite(scale) and scale > 0 else 1.0
+
+    # ---- data-driven starting points -----------------------------------------------------------
+    def smoothed(self, sigma_px=0.8):
+        m = np.where(self.ok, self.map, 0.0)
+        wts = ndimage.gaussian_filter(self.ok.astype(float), sigma_px, mode="constant")
+        sm = ndimage.gaussian_filter(m, sigma_px, mode="constant")
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(wts > 1e-6, sm / wts, 0.0)
+
+    def blob_start(self):
+        """(x0, y0, s_major, s_minor, theta_rad, amplitude) from the peak and second moments."""
+        sm = self.smoothed()
+        i, j = np.unravel_index(np.argmax(np.abs(sm)), sm.shape)
+        sign = 1.0 if sm[i, j] >= 0 else -1.0
+        peak = sm[i, j]
+        x0, y0 = self.X[i, j], self.Y[i, j]
+        w = np.clip(sign * sm, 0.0, None)
+        w = np.where(w > 0.3 * abs(peak), w, 0.0)
+        # keep the connected blob containing the peak
+        lab, _ = ndimage.label(w > 0)
+        w = np.where(lab == lab[i, j], w, 0.0)
+        tot = w.sum()
+        s_maj = s_min = 1.5 * min(self.dx, self.dy)
+        theta = 0.0
+        if tot > 0:
+            mx = (w * self.X).sum() / tot
+            my = (w * self.Y).sum() / tot
+            cxx = (w * (self.X - mx) ** 2).sum() / tot + self.dx**2 / 12
+            cyy = (w * (self.Y - my) ** 2).sum() / tot + self.dy**2 / 12
+            cxy = (w * (self.X - mx) * (self.Y - my)).sum() / tot
+            ev, evec = np.linalg.eigh(np.array([[cxx, cxy], [cxy, cyy]]))
+            # the thresholded blob (above 0.3 of the peak) under-estimates the sd: a Gaussian cut at
+            # 0.3 of its peak has a truncated variance of about 0.55 sigma^2
+            ev = np.clip(ev / 0.55, self.wmin**2 * 4, self.wmax**2)
+            s_min, s_maj = float(np.sqrt(ev[0])), float(np.sqrt(ev[1]))
+            theta = float(np.arctan2(evec[1, 1], evec[0, 1]))
+            x0, y0 = mx, my
+        return (float(x0), float(y0), s_maj, s_min, theta, float(self.map[i, j]) if
+                np.isfinite(self.map[i, j]) else float(peak))
+
+    def spectral_peaks(self, n_peaks=2):
+        """Wave vectors ``(kx, ky)`` of the largest local maxima of the padded power spectrum."""
+        m = np.where(self.ok, self.map - np.mean(self.d), 0.0)
+        ny, nx = m.shape
+        Ny, Nx = max(64, 4 * ny), max(64, 4 * nx)
+        P = np.abs(np.fft.fft2(m, s=(Ny, Nx))) ** 2
+        fx = np.fft.fftfreq(Nx, d=self.dx)
+        fr = np.fft.fftfreq(Ny, d=self.dy)
+        # row index grows downward, i.e. toward lower elevation: the y-frequency is minus the row one
+        KX, KY = np.meshgrid(fx, -fr)
+        half = (KX > 0) | ((KX == 0) & (KY > 0))
+        mx = ndimage.maximum_filter(P, size=3, mode="wrap")
+        cand = np.flatnonzero((P == mx) & half & (P > 0))
+        if cand.size == 0:
+            return [(0.5 * self.nyq_x * 0.2, 0.0)]
+        order = cand[np.argsort(P.ravel()[cand])[::-1]]
+        out = []
+        for idx in order[:n_peaks]:
+            out.append((float(KX.ravel()[idx]), float(KY.ravel()[idx])))
+        return out
+
+    # ---- statistics -----------------------------------------------------------------------------
+    def criteria(self, pred, k):
+        r = pred - self.d
+        if self.known_noise:
+            chi2 = float(np.sum((r * self.w) ** 2))
+            base = chi2 + float(np.sum(np.log(2 * np.pi * self.sd**2)))
+        else:
+            rss = float(np.sum(r**2))
+            base = self.n * math.log(max(rss, 1e-300) / self.n)
+        return base + 2 * k, base + k * math.log(self.n)
+
+    def r2(self, pred):
+        tss = float(np.sum((self.d - self.d.mean()) ** 2))
+        rss = float(np.sum((pred - self.d) ** 2))
+        return 1.0 - rss / tss if tss > 0 else float("nan")
+
+    def covariance(self, fun, p):
+        """Wald covariance of the reported parameters ``p`` of ``fun(x, y, *p)`` (module notes)."""
+        p = np.asarray(p, float)
+        k = p.size
+        J = np.empty((self.n, k))
+        for i in range(k):
+            h = 1e-6 * (abs(p[i]) + 1.0)
+            pp, pm = p.copy(), p.copy()
+            pp[i] += h
+            pm[i] -= h
+            J[:, i] = (fun(self.x, self.y, *pp) - fun(self.x, self.y, *pm)) / (2 * h)
+        J *= self.w[:, None]
+        r = (fun(self.x, self.y, *p) - self.d) * self.w
+        dof = max(self.n - k, 1)
+        red = float(r @ r) / dof
+        s2 = max(1.0, red) if self.known_noise else red
+        A = J.T @ J
+        # scale columns for a meaningful eigen-threshold
+        c = np.sqrt(np.diag(A))
+        cov = np.full((k, k), np.nan)
+        if not np.all(np.isfinite(A)):
+            return cov
+        good = c > 0
+        if not np.any(good):
+            return cov
+        Ag = A[np.ix_(good, good)] / np.outer(c[good], c[good])
+        w, V = np.linalg.eigh(Ag)
+        null = w <= 1e-9 * max(w.max(), 1e-300)
+        inv = (V[:, ~null] / w[~null]) @ V[:, ~null].T
+        covg = s2 * inv / np.outer(c[good], c[good])
+        # a parameter with a real share in an unidentified direction has no finite interval
+        bad = np.sum(V[:, null] ** 2, axis=1) > 1e-6 if np.any(null) else np.zeros(good.sum(), bool)
+        idx = np.flatnonzero(good)
+        cov[np.ix_(idx, idx)] = covg
+        for ii in idx[bad]:
+            cov[ii, :] = np.nan
+            cov[:, ii] = np.nan
+        return cov
+
+
+def _intervals(names, p, cov):
+    sd = np.sqrt(np.where(np.diag(cov) >= 0, np.diag(cov), np.nan))
+    return {n: (float(v - Z95 * s), float(v + Z95 * s)) if np.isfinite(s) else (np.nan, np.nan)
+            for n, v, s in zip(names, p, sd)}
+
+
+def _solve(fun, jac, starts, lo, hi, args=()):
+    """Run least_squares from each start, return the best result (lowest cost)."""
+    best = None
+    lo = np.asarray(lo, float)
+    hi = np.asarray(hi, float)
+    for p0 in starts:
+        with np.errstate(invalid="ignore"):
+            lo_in = np.where(np.isfinite(lo), lo + 1e-9 * (np.abs(lo) + 1), lo)
+            hi_in = np.where(np.isfinite(hi), hi - 1e-9 * (np.abs(hi) + 1), hi)
+        p0 = np.clip(np.asarray(p0, float), lo_in, hi_in)
+        try:
+            res = least_squares(fun, p0, jac=jac, bounds=(lo, hi), args=args, method="trf",
+                                x_scale="jac", ftol=1e-9, xtol=1e-9, gtol=1e-9, max_nfev=300)
+        except (ValueError, np.linalg.LinAlgError):
+            continue
+        if not np.all(np.isfinite(res.x)):
+            continue
+        if best is None or res.cost < best.cost:
+            best = res
+    return best
+
+
+def _empty_fit(model, pr):
+    names = _PARAM_NAMES[model]
+    return SpatialFit(model=model, params={n: np.nan for n in names},
+                      ci={n: (np.nan, np.nan) for n in names}, aic={model: np.nan},
+                      bic={model: np.nan}, r2=np.nan, predicted=np.full(pr.grid.shape, np.nan),
+                      n_pixels=pr.n)
+
+
+def _finish(model, pr, fun, p_rep):
+    names = _PARAM_NAMES[model]
+    pred_full = fun(pr.X, pr.Y, *p_rep)
+    pred = pred_full[pr.ok]
+    k = len(names)
+    aic, bic = pr.criteria(pred, k)
+    cov = pr.covariance(fun, p_rep)
+    return SpatialFit(model=model, params={n: float(v) for n, v in zip(names, p_rep)},
+                      ci=_intervals(names, p_rep, cov), aic={model: aic}, bic={model: bic},
+                      r2=pr.r2(pred), predicted=pred_full, criterion="aic", n_pixels=pr.n)
+
+
+def _enough(pr, k):
+    return pr.n > k + 1 and np.any(pr.d != pr.d[0])
+
+
+# --------------------------------------------------------------------------------------------------
+# Gaussian
+# --------------------------------------------------------------------------------------------------
+
+def _gauss_parts(p, x, y):
+    x0, y0, su, sv, th, A = p
+    c, s = math.cos(th), math.sin(th)
+    dx, dy = x - x0, y - y0
+    u = dx * c + dy * s
+    v = -dx * s + dy * c
+    E = np.exp(-0.5 * (u / su) ** 2 - 0.5 * (v / sv) ** 2)
+    return c, s, u, v, E
+
+
+def _gauss_res(p, pr):
+    *_, E = _gauss_parts(p, pr.x, pr.y)
+    return (p[5] * E - pr.d) * pr.w
+
+
+def _gauss_jac(p, pr):
+    x0, y0, su, sv, th, A = p
+    c, s, u, v, E = _gauss_parts(p, pr.x, pr.y)
+    AE = A * E
+    au, av = u / su**2, v / sv**2
+    J = np.empty((pr.n, 6))
+    J[:, 0] = AE * (au * c - av * s)           # -dq/dx0 = u/su^2 c - v/sv^2 s
+    J[:, 1] = AE * (au * s + av * c)
+    J[:, 2] = AE * u**2 / su**3
+    J[:, 3] = AE * v**2 / sv**3
+    J[:, 4] = -AE * u * v * (1 / su**2 - 1 / sv**2)
+    J[:, 5] = E
+    return J * pr.w[:, None]
+
+
+def _gauss_report(p):
+    """Internal (x0, y0, su, sv, theta_rad, A) -> reported (.., major, minor, theta_deg mod 180, A)."""
+    x0, y0, su, sv, th, A = p
+    if sv > su:
+        su, sv, th = sv, su, th + math.pi / 2
+    return np.array([x0, y0, su, sv, math.degrees(th) % 180.0, A])
+
+
+def _gauss_model(x, y, x0, y0, s_major, s_minor, theta_deg, amplitude):
+    return gaussian2d(x, y, x0, y0, s_major, s_minor, theta_deg, amplitude)
+
+
+def _fit_gaussian_pr(pr):
+    if not _enough(pr, 6):
+        return _empty_fit("gaussian", pr)
+    x0, y0, smaj, smin, th, A = pr.blob_start()
+    r = 1.5 * min(pr.dx, pr.dy)
+    starts = [(x0, y0, smaj, smin, th, A), (x0, y0, r, r, 0.0, A)]
+    big = 1e3 * pr.scale
+    lo = [pr.xlo, pr.ylo, pr.wmin, pr.wmin, -np.inf, -big]
+    hi = [pr.xhi, pr.yhi, pr.wmax, pr.wmax, np.inf, big]
+    res = _solve(_gauss_res, _gauss_jac, starts, lo, hi, args=(pr,))
+    if res is None:
+        return _empty_fit("gaussian", pr)
+    return _finish("gaussian", pr, _gauss_model, _gauss_report(res.x))
+
+
+# --------------------------------------------------------------------------------------------------
+# difference of Gaussians
+# --------------------------------------------------------------------------------------------------
+
+def _dog_parts(p, x, y):
+    x0, y0, kc, rc, ks, m = p
+    rs = rc * m
+    dx, dy = x - x0, y - y0
+    r2 = dx * dx + dy * dy
+    Ec = np.exp(-r2 / rc**2)
+    Es = np.exp(-r2 / rs**2)
+    return rs, dx, dy, r2, Ec, Es
+
+
+def _dog_res(p, pr):
+    rs, dx, dy, r2, Ec, Es = _dog_parts(p, pr.x, pr.y)
+    return (p[2] * Ec - p[4] * Es - pr.d) * pr.w
+
+
+def _dog_jac(p, pr):
+    x0, y0, kc, rc, ks, m = p
+    rs, dx, dy, r2, Ec, Es = _dog_parts(p, pr.x, pr.y)
+    a = kc * Ec * 2 / rc**2
+    b = ks * Es * 2 / rs**2
+    J = np.empty((pr.n, 6))
+    J[:, 0] = (a - b) * dx
+    J[:, 1] = (a - b) * dy
+    J[:, 2] = Ec
+    J[:, 3] = kc * Ec * 2 * r2 / rc**3 - ks * Es * 2 * r2 / rs**3 * m
+    J[:, 4] = -Es
+    J[:, 5] = -ks * Es * 2 * r2 / rs**3 * rc
+    return J * pr.w[:, None]
+
+
+def _fit_dog_pr(pr):
+    if not _enough(pr, 6):
+        return _empty_fit("dog", pr)
+    x0, y0, smaj, smin, th, A = pr.blob_start()
+    rc = math.sqrt(2.0 * smaj * smin)  # exp(-r^2/rc^2) has sd rc / sqrt(2)
+    rc = min(max(rc, 2 * pr.wmin), pr.wmax / 2)
+    big = 1e3 * pr.scale
+    sign = 1.0 if A >= 0 else -1.0
+    if sign > 0:
+        klo, khi = 0.0, big
+    else:
+        klo, khi = -big, 0.0
+    lo = [pr.xlo, pr.ylo, klo, pr.wmin, klo, 1.05]
+    hi = [pr.xhi, pr.yhi, khi, pr.wmax, khi, 2 * pr.wmax / pr.wmin]
+    A = A if A != 0 else sign * pr.scale
+    starts = [(x0, y0, 1.2 * A, rc, 0.2 * A / 4, 2.0), (x0, y0, 1.5 * A, 0.8 * rc, 0.5 * A / 9, 3.0)]
+    res = _solve(_dog_res, _dog_jac, starts, lo, hi, args=(pr,))
+    if res is None:
+        return _empty_fit("dog", pr)
+    x0, y0, kc, rc, ks, m = res.x
+    return _finish("dog", pr, dog2d, np.array([x0, y0, kc, rc, ks, rc * m]))
+
+
+# --------------------------------------------------------------------------------------------------
+# Gabor
+# --------------------------------------------------------------------------------------------------
+
+def _gabor_parts(p, x, y):
+    x0, y0, su, sv, kx, ky, a, b = p
+    f = max(math.hypot(kx, ky), 1e-12)
+    c, s = kx / f, ky / f
+    dx, dy = x - x0, y - y0
+    u = dx * c + dy * s
+    v = -dx * s + dy * c
+    E = np.exp(-0.5 * (u / su) ** 2 - 0.5 * (v / sv) ** 2)
+    ph = 2 * np.pi * (kx * dx + ky * dy)
+    cp, sp = np.cos(ph), np.sin(ph)
+    return f, c, s, dx, dy, u, v, E, cp, sp
+
+
+def _gabor_res(p, pr):
+    f, c, s, dx, dy, u, v, E, cp, sp = _gabor_parts(p, pr.x, pr.y)
+    return (E * (p[6] * cp + p[7] * sp) - pr.d) * pr.w
+
+
+def _gabor_jac(p, pr):
+    x0, y0, su, sv, kx, ky, a, b = p
+    f, c, s, dx, dy, u, v, E, cp, sp = _gabor_parts(p, pr.x, pr.y)
+    C = a * cp + b * sp
+    S = -a * sp + b * cp           # dC/dphase
+    EC, ES = E * C, E * S
+    au, av = u / su**2, v / sv**2
+    dq_dth = u * v * (1 / su**2 - 1 / sv**2)
+    dth_dkx, dth_dky = -ky / f**2, kx / f**2
+    tp = 2 * np.pi
+    J = np.empty((pr.n, 8))
+    # g = E C;  dg = E S dphase - E C dq
+    J[:, 0] = ES * (-tp * kx) - EC * (-au * c + av * s)
+    J[:, 1] = ES * (-tp * ky) - EC * (-au * s - av * c)
+    J[:, 2] = EC * u**2 / su**3
+    J[:, 3] = EC * v**2 / sv**3
+    J[:, 4] = ES * tp * dx - EC * dq_dth * dth_dkx
+    J[:, 5] = ES * tp * dy - EC * dq_dth * dth_dky
+    J[:, 6] = E * cp
+    J[:, 7] = E * sp
+    return J * pr.w[:, None]
+
+
+def _gabor_report(p):
+    """Internal -> (x0, y0, su, sv, orientation_deg in [0,180), sf, phase_deg in [0,360), A > 0).
+
+    ``E (a cos(phi) + b sin(phi)) = A E cos(phi + phase)`` with ``A = hypot(a, b)``,
+    ``phase = atan2(-b, a)``. Turning the wave vector by 180 deg negates ``u`` and so the phase.
+    """
+    x0, y0, su, sv, kx, ky, a, b = p
+    sf = math.hypot(kx, ky)
+    ori = math.degrees(math.atan2(ky, kx))
+    A = math.hypot(a, b)
+    ph = math.degrees(math.atan2(-b, a))
+    if ori < 0 or ori >= 180:
+        ori = ori % 360.0
+        if ori >= 180:
+            ori -= 180.0
+            ph = -ph
+    return np.array([x0, y0, su, sv, ori % 180.0, sf, ph % 360.0, A])
+
+
+def _gabor_amplitudes(pr, x0, y0, su, sv, kx, ky):
+    """Best (a, b) for fixed envelope and wave vector (linear least squares)."""
+    p = (x0, y0, su, sv, kx, ky, 0.0, 0.0)
+    f, c, s, dx, dy, u, v, E, cp, sp = _gabor_parts(p, pr.x, pr.y)
+    M = np.stack([E * cp, E * sp], axis=1) * pr.w[:, None]
+    ab, *_ = np.linalg.lstsq(M, pr.d * pr.w, rcond=None)
+    return float(ab[0]), float(ab[1])
+
+
+def _fit_gabor_pr(pr, n_peaks=2):
+    if not _enough(pr, 8):
+        return _empty_fit("gabor", pr)
+    lo = [pr.xlo, pr.ylo, pr.wmin, pr.wmin, -pr.nyq_x, -pr.nyq_y, -np.inf, -np.inf]
+    hi = [pr.xhi, pr.yhi, pr.wmax, pr.wmax, pr.nyq_x, pr.nyq_y, np.inf, np.inf]
+    # envelope from the local energy (smoothed squared map)
+    e2 = ndimage.gaussian_filter(np.where(pr.ok, pr.map, 0.0) ** 2, 1.0, mode="constant")
+    i, j = np.unravel_index(np.argmax(e2), e2.shape)
+    w = np.where(e2 > 0.2 * e2[i, j], e2, 0.0)
+    lab, _ = ndimage.label(w > 0)
+    w = np.where(lab == lab[i, j], w, 0.0)
+    tot = w.sum()
+    ex = (w * pr.X).sum() / tot
+    ey = (w * pr.Y).sum() / tot
+    var = 0.5 * ((w * ((pr.X - ex) ** 2 + (pr.Y - ey) ** 2)).sum() / tot)
+    # E^2 has half the variance of E; a cut at 0.2 of the peak keeps about 0.6 of it
+    s0 = float(np.clip(math.sqrt(2 * var / 0.6), 2 * pr.wmin, pr.wmax / 2))
+    starts = []
+    for kx, ky in pr.spectral_peaks(n_peaks):
+        f = math.hypot(kx, ky)
+        if f == 0:
+            continue
+        s_use = s0
+        a, b = _gabor_amplitudes(pr, ex, ey, s_use, s_use, kx, ky)
+        starts.append((ex, ey, s_use, s_use, kx, ky, a, b))
+    res = _solve(_gabor_res, _gabor_jac, starts, lo, hi, args=(pr,))
+    if res is None:
+        return _empty_fit("gabor", pr)
+    return _finish("gabor", pr, gabor2d, _gabor_report(res.x))
+
+
+# --------------------------------------------------------------------------------------------------
+# public API
+# --------------------------------------------------------------------------------------------------
+
+_FITTERS = {"gaussian": _fit_gaussian_pr, "dog": _fit_dog_pr, "gabor": _fit_gabor_pr}
+
+
+def fit_gaussian(map_yx, grid, noise_sd=None) -> SpatialFit:
+    """Fit an elliptical 2-D Gaussian (:func:`map2d.models.gaussian2d`) to a map.
+
+    Parameters
+    ----------
+    map_yx : array_like, shape (ny, nx)
+        The map on ``grid`` (row 0 at the top); non-finite pixels are ignored.
+    grid : map2d.geometry.Grid
+        Pixel positions in degrees.
+    noise_sd : float or array_like (ny, nx), optional
+        Standard deviation of the map's noise per pixel (e.g. from a shuffle null). Weights the fit
+        and makes the AIC a known-variance likelihood; ``None`` estimates it from the residuals.
+
+    Returns
+    -------
+    SpatialFit
+        Parameters ``center_x_deg, center_y_deg, sigma_major_deg, sigma_minor_deg, theta_deg,
+        amplitude`` (NaN when the map has too few finite, non-constant pixels).
+
+    Examples
+    --------
+    >>> from map2d.geometry import Grid
+    >>> from map2d.models import gaussian2d
+    >>> g = Grid(ny=15, nx=21, center_x_deg=5.0, center_y_deg=-3.0, dx_deg=1.0, dy_deg=1.0)
+    >>> X, Y = g.mesh_deg()
+    >>> f = fit_gaussian(gaussian2d(X, Y, 7.0, -1.0, 3.0, 1.5, 30.0), g)
+    >>> [round(f.params[k], 3) for k in ("center_x_deg", "center_y_deg", "sigma_major_deg", "theta_deg")]
+    [7.0, -1.0, 3.0, 30.0]
+    """
+    return _fit_gaussian_pr(_Problem(map_yx, grid, noise_sd))
+
+
+def fit_dog(map_yx, grid, noise_sd=None) -> SpatialFit:
+    """Fit a difference of Gaussians (:func:`map2d.models.dog2d`, Enroth-Cugell & Robson 1966).
+
+    The sign of the centre (ON: ``kc, ks >= 0``; OFF: ``kc, ks <= 0``) is taken from the peak of the
+    lightly smoothed map; the surround is constrained wider than the centre (``rs >= 1.05 rc``).
+    Parameters and returns as :func:`fit_gaussian`; parameters ``center_x_deg, center_y_deg, kc,
+    rc_deg, ks, rs_deg``.
+    """
+    return _fit_dog_pr(_Problem(map_yx, grid, noise_sd))
+
+
+def fit_gabor(map_yx, grid, noise_sd=None) -> SpatialFit:
+    """Fit a Gabor (:func:`map2d.models.gabor2d`, Jones & Palmer 1987).
+
+    Starts from the two largest peaks of the zero-padded power spectrum for the wave vector, the
+    local energy for the envelope and a linear solve for amplitude and phase. Orientation is the
+    wave-vector angle folded into [0, 180) (contract), the phase adjusted consistently (turning the
+    wave vector by 180 deg negates it) and reported in [0, 360) relative to the envelope centre, with
+    a positive amplitude. Parameters and returns as :func:`fit_gaussian`; parameters
+    ``center_x_deg, center_y_deg, sigma_u_deg, sigma_v_deg, orientation_deg, sf_cpd, phase_deg,
+    amplitude``.
+    """
+    return _fit_gabor_pr(_Problem(map_yx, grid, noise_sd))
+
+
+def fit_map(map_yx, grid, noise_sd=None, models=MODELS, criterion="aic") -> SpatialFit:
+    """Fit several models and return the best by an information criterion.
+
+    Parameters
+    ----------
+    map_yx, grid, noise_sd
+        As :func:`fit_gaussian`.
+    models : sequence of str
+        Any of ``'gaussian'``, ``'dog'``, ``'gabor'``.
+    criterion : {'aic', 'bic'}
+        Which criterion chooses (module notes). Both are reported for every model tried.
+
+    Returns
+    -------
+    SpatialFit
+        The chosen model's fit, with ``aic`` and ``bic`` holding every model tried (NaN for a model
+        that could not be fitted). A map that cannot be fitted at all gives the first model's NaN fit.
+    """
+    models = tuple(models)
+    if not models or any(m not in _FITTERS for m in models):
+        raise ValueError(f"models must be a non-empty subset of {MODELS}, got {models!r}")
+    if criterion not in ("aic", "bic"):
+        raise ValueError(f"criterion must be 'aic' or 'bic', got {criterion!r}")
+    pr = _Problem(map_yx, grid, noise_sd)
+    fits = {m: _FITTERS[m](pr) for m in models}
+    aic = {m: f.aic[m] for m, f in fits.items()}
+    bic = {m: f.bic[m] for m, f in fits.items()}
+    score = aic if criterion == "aic" else bic
+    finite = [m for m in models if np.isfinite(score[m])]
+    best = min(finite, key=lambda m: score[m]) if finite else models[0]
+    out = fits[best]
+    out.aic, out.bic, out.criterion = aic, bic, criterion
+    return out
+
+
+# --------------------------------------------------------------------------------------------------
+# many cells
+# --------------------------------------------------------------------------------------------------
+
+FIT_COLUMNS = (
+    "model", "center_x_deg", "center_y_deg",
+    "center_x_ci_low", "center_x_ci_high", "center_y_ci_low", "center_y_ci_high",
+    "size_deg", "fit_sign", "amplitude",
+    "sigma_major_deg", "sigma_minor_deg", "theta_deg",
+    "sigma_major_ci_low", "sigma_major_ci_high", "sigma_minor_ci_low", "sigma_minor_ci_high",
+    "theta_ci_low", "theta_ci_high",
+    "rc_deg", "rs_deg", "dog_kc", "dog_ks",
+    "rc_ci_low", "rc_ci_high", "rs_ci_low", "rs_ci_high",
+    "gabor_orientation_deg", "gabor_sf_cpd", "gabor_phase_deg", "gabor_sigma_u_deg",
+    "gabor_sigma_v_deg",
+    "gabor_orientation_ci_low", "gabor_orientation_ci_high", "gabor_sf_ci_low", "gabor_sf_ci_high",
+    "gabor_phase_ci_low", "gabor_phase_ci_high",
+    "r2", "aic_gaussian", "aic_dog", "aic_gabor",
+)
+"""Columns returned by :func:`fit_maps`, in order (for ``cells.csv``)."""
+
+
+def _row(fit: SpatialFit) -> dict:
+    """One cells.csv row (NaN where the chosen model has no such parameter)."""
+    row = {c: np.nan for c in FIT_COLUMNS}
+    row["model"] = fit.model
+    p, ci = fit.params, fit.ci
+
+    def put(col, name, ci_col=None):
+        row[col] = p[name]
+        if ci_col is not None:
+            row[ci_col + "_ci_low"], row[ci_col + "_ci_high"] = ci[name]
+
+    put("center_x_deg", "center_x_deg", "center_x")
+    put("center_y_deg", "center_y_deg", "center_y")
+    if fit.model == "gaussian":
+        put("sigma_major_deg", "sigma_major_deg", "sigma_major")
+        put("sigma_minor_deg", "sigma_minor_deg", "sigma_minor")
+        put("theta_deg", "theta_deg", "theta")
+        put("amplitude", "amplitude")
+        row["size_deg"] = math.sqrt(p["sigma_major_deg"] * p["sigma_minor_deg"])
+        row["fit_sign"] = float(np.sign(p["amplitude"])) if np.isfinite(p["amplitude"]) else np.nan
+    elif fit.model == "dog":
+        put("rc_deg", "rc_deg", "rc")
+        put("rs_deg", "rs_deg", "rs")
+        put("dog_kc", "kc")
+        put("dog_ks", "ks")
+        row["size_deg"] = p["rc_deg"] / math.sqrt(2.0)
+        row["fit_sign"] = float(np.sign(p["kc"])) if np.isfinite(p["kc"]) and p["kc"] != 0 else np.nan
+    elif fit.model == "gabor":
+        su, sv = p["sigma_u_deg"], p["sigma_v_deg"]
+        if su >= sv:
+            put("sigma_major_deg", "sigma_u_deg", "sigma_major")
+            put("sigma_minor_deg", "sigma_v_deg", "sigma_minor")
+            row["theta_deg"] = p["orientation_deg"]
+        else:
+            put("sigma_major_deg", "sigma_v_deg", "sigma_major")
+            put("sigma_minor_deg", "sigma_u_deg", "sigma_minor")
+            row["theta_deg"] = (p["orientation_deg"] + 90.0) % 180.0
+        row["theta_ci_low"], row["theta_ci_high"] = (
+            ci["orientation_deg"][0] + (row["theta_deg"] - p["orientation_deg"]),
+            ci["orientation_deg"][1] + (row["theta_deg"] - p["orientation_deg"]))
+        put("amplitude", "amplitude")
+        put("gabor_orientation_deg", "orientation_deg", "gabor_orientation")
+        put("gabor_sf_cpd", "sf_cpd", "gabor_sf")
+        put("gabor_phase_deg", "phase_deg", "gabor_phase")
+        put("gabor_sigma_u_deg", "sigma_u_deg")
+        put("gabor_sigma_v_deg", "sigma_v_deg")
+        row["size_deg"] = math.sqrt(su * sv)
+    row["r2"] = fit.r2
+    for m in MODELS:
+        row["aic_" + m] = float(fit.aic.get(m, np.nan))
+    return row
+
+
+def _fit_chunk(maps, grid, noise_sd, models, criterion):
+    rows = []
+    for c in range(maps.shape[0]):
+        sd = None if noise_sd is None else noise_sd[c]
+        rows.append(_row(fit_map(maps[c], grid, sd, models=models, criterion=criterion)))
+    return rows
+
+
+def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
+             criterion="aic") -> dict:
+    """Fit every responsive cell's map; columns for ``cells.csv``.
+
+    Parameters
+    ----------
+    maps : array_like, shape (C, ny, nx)
+        One map per cell (e.g. the linear map at the peak lag), on ``grid``.
+    grid : map2d.geometry.Grid
+    responsive : array_like of bool, shape (C,)
+        Only these cells are fitted; the others get NaN everywhere and ``model = ''`` (empty, not
+        invented).
+    noise_sd : array_like, shape (C,) or (C, ny, nx), optional
+        Noise sd of each cell's map (module notes); ``None`` estimates it from the residuals.
+    n_jobs : int, optional
+        Worker processes. Default: 1 below 50 responsive cells, otherwise 2 (the maps are sent in a
+        few large chunks so pickling stays cheap).
+    models, criterion
+        As :func:`fit_map`.
+
+    Returns
+    -------
+    dict of str to numpy.ndarray
+        Every name in :data:`FIT_COLUMNS`, each of length ``C``: ``model`` (str; the chosen model),
+        centre and its 95 % interval, ``size_deg`` (geometric-mean envelope sd; for the DoG the centre's
+        sd ``rc / sqrt(2)``), ``fit_sign`` (+1 ON / -1 OFF for Gaussian and DoG, NaN for the Gabor),
+        ``amplitude`` (Gaussian, Gabor), ``sigma_major_deg``, ``sigma_minor_deg``, ``theta_deg``
+        (Gaussian, or the Gabor's envelope; major-axis angle in [0, 180)), ``rc_deg``, ``rs_deg``,
+        ``dog_kc``, ``dog_ks`` (DoG), ``gabor_*`` (Gabor), ``r2`` and the AIC of each model tried.
+        Interval columns ``<name>_ci_low`` / ``<name>_ci_high`` share the unit of their parameter.
+        NaN where the chosen model has no such parameter.
+    """
+    maps = np.asarray(maps, dtype=float)
+    if maps.ndim != 3 or maps.shape[1:] != grid.shape:
+        raise ValueError(f"maps must have shape (cells, {grid.ny}, {grid.nx}), got {maps.shape}")
+    C = maps.shape[0]
+    resp = np.asarray(responsive, dtype=bool).reshape(-1)
+    if resp.shape != (C,):
+        raise ValueError(f"responsive must have one entry per map ({C}), got {resp.shape}")
+    sd = None
+    if noise_sd is not None:
+        sd = np.asarray(noise_sd, dtype=float)
+        if sd.shape not in ((C,), maps.shape):
+            raise ValueError(f"noise_sd must have shape ({C},) or {maps.shape}, got {sd.shape}")
+    idx = np.flatnonzero(resp)
+    if n_jobs is None:
+        n_jobs = 1 if idx.size < 50 else 2
+    n_jobs = max(1, min(int(n_jobs), os.cpu_count() or 1, max(idx.size, 1)))
+
+    out = {c: np.full(C, np.nan) for c in FIT_COLUMNS}
+    out["model"] = np.full(C, "", dtype=object)
+    if idx.size == 0:
+        return out
+    sub = maps[idx]
+    subsd = None if sd is None else sd[idx]
+    if n_jobs == 1:
+        rows = _fit_chunk(sub, grid, subsd, tuple(models), criterion)
+    else:
+        chunks = np.array_split(np.arange(idx.size), n_jobs * 4)
+        chunks = [ch for ch in chunks if ch.size]
+        rows = []
+        with ProcessPoolExecutor(max_workers=n_jobs) as ex:
+            futs = [ex.submit(_fit_chunk, sub[ch], grid, None if subsd is None else subsd[ch],
+                              tuple(models), criterion) for ch in chunks]
+            for fu in futs:
+                rows.extend(fu.result())
+    for k, row in zip(idx, rows):
+        for c in FIT_COLUMNS:
+            out[c][k] = row[c]
+    return out
