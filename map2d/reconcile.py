@@ -1,0 +1,564 @@
+"""Reconciliation: the spatial map and the grating responses predict each other.
+
+For a linear cell with spatial kernel ``k(x, y)`` the response to a static grating of orientation ``ori``,
+spatial frequency ``sf``, phase ``phi`` and contrast ``c`` is ``c Re(H exp(i phi))``, where ``H`` is the
+kernel's Fourier sum at the grating's wave vector in the convention of :mod:`map2d.geometry`
+(Enroth-Cugell & Robson 1966; Hochstein & Shapley 1976). The first harmonic over phase of the measured
+responses is therefore ``H`` itself, up to one positive gain, and the map and the gratings are two views
+of one thing:
+
+- forward: the map predicts the complex grating surface (:func:`predict_gratings`,
+  :func:`forward_agreement`);
+- inverse: the grating surface predicts the map, band-limited to the frequencies the gratings covered
+  (:func:`inverse_map`, :func:`band_limit`, :func:`inverse_comparison`);
+- area summation: the map predicts disk and annulus responses (:func:`size_tuning`);
+- where the two views disagree the cell is not linear (:func:`linearity_call`).
+
+References
+----------
+Enroth-Cugell C, Robson JG (1966) The contrast sensitivity of retinal ganglion cells of the cat.
+J Physiol 187:517-552.
+Hochstein S, Shapley RM (1976) Quantitative analysis of retinal ganglion cell classifications.
+J Physiol 262:237-264.
+Hubel DH, Wiesel TN (1962) Receptive fields, binocular interaction and functional architecture in the
+cat's visual cortex. J Physiol 160:106-154.
+Skottun BC, De Valois RL, Grosof DH, Movshon JA, Albrecht DG, Bonds AB (1991) Classifying simple and
+complex cells on the basis of response modulation. Vision Res 31:1079-1086.
+Bracewell RN (2000) The Fourier Transform and Its Applications, 3rd ed. McGraw-Hill.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .geometry import Grid
+from .spectral import fourier_at, inverse_fourier, orientation_period, polar_area_weights
+
+__all__ = [
+    "predict_gratings",
+    "predict_static_responses",
+    "forward_agreement",
+    "inverse_map",
+    "band_limit",
+    "map_similarity",
+    "InverseComparison",
+    "inverse_comparison",
+    "size_tuning",
+    "linearity_call",
+    "AGREEMENT_THRESHOLD",
+    "F1_F0_THRESHOLD",
+    "OVERLAP_THRESHOLD",
+    "MIN_CONDITIONS",
+]
+
+#: Forward agreement at or above which the map and the gratings are called consistent (ours: halfway
+#: between the >= 0.8 of linear and the <= 0.3 of phase-invariant model cells).
+AGREEMENT_THRESHOLD = 0.5
+#: F1/F0 above which a cell is called simple (Skottun et al. 1991).
+F1_F0_THRESHOLD = 1.0
+#: ON/OFF overlap (0 = segregated subregions, 1 = coextensive) above which ON and OFF subregions are
+#: called overlapping, against the Hubel & Wiesel (1962) simple-cell criterion (threshold ours).
+OVERLAP_THRESHOLD = 0.5
+#: Fewest valid grating conditions for which an agreement is computed.
+MIN_CONDITIONS = 3
+
+
+# ----------------------------------------------------------------------------------------------------
+# forward prediction
+# ----------------------------------------------------------------------------------------------------
+
+def predict_gratings(maps, grid: Grid, orientations_deg, sfs_cpd, origin_deg=None, outer=True):
+    """Complex grating responses predicted from spatial maps (the forward prediction).
+
+    Parameters
+    ----------
+    maps : array_like, shape (ny, nx) or (C, ny, nx)
+        Spatial maps (e.g. the linear map at the peak lag), row 0 at the top.
+    grid : Grid
+        The sparse-noise grid the maps live on.
+    orientations_deg, sfs_cpd : array_like
+        With ``outer=True`` (default) the 1-D axes ``(O,)`` and ``(S,)`` of an orientation x SF grid;
+        with ``outer=False`` paired arrays ``(K,)`` listing the wave vectors actually shown.
+    origin_deg : (float, float), optional
+        The gratings' phase origin; default the grid centre (contract).
+
+    Returns
+    -------
+    numpy.ndarray, complex, shape (..., O, S) or (..., K)
+        ``H`` at every wave vector (:func:`map2d.spectral.fourier_at`): the linear prediction of the
+        first harmonic over phase of the responses, per unit contrast.
+    """
+    ori = np.asarray(orientations_deg, float)
+    sf = np.asarray(sfs_cpd, float)
+    if outer:
+        if ori.ndim != 1 or sf.ndim != 1:
+            raise ValueError("with outer=True, orientations_deg and sfs_cpd must be 1-D axes")
+        return fourier_at(maps, grid, ori[:, None], sf[None, :], origin_deg)
+    if ori.shape != sf.shape:
+        raise ValueError(f"with outer=False, orientations_deg {ori.shape} and sfs_cpd {sf.shape} "
+                         "must have the same shape")
+    return fourier_at(maps, grid, ori, sf, origin_deg)
+
+
+def predict_static_responses(maps, grid: Grid, orientation_deg, sf_cpd, phase_deg, contrast=1.0,
+                             origin_deg=None):
+    """Linear response of spatial maps to individual static gratings.
+
+    ``r = contrast Re(H exp(i phase))`` with ``H`` the Fourier sum at the grating's wave vector: the dot
+    product of the map with the contract's grating image, times the pixel area.
+
+    Parameters
+    ----------
+    maps : array_like, shape (..., ny, nx)
+    grid : Grid
+    orientation_deg, sf_cpd, phase_deg, contrast : array_like
+        Broadcast together to the shape ``N`` of the presentations.
+    origin_deg : (float, float), optional
+
+    Returns
+    -------
+    numpy.ndarray, shape (..., *N)
+    """
+    ori, sf, ph, c = np.broadcast_arrays(*(np.asarray(v, float) for v in
+                                          (orientation_deg, sf_cpd, phase_deg, contrast)))
+    h = fourier_at(maps, grid, ori, sf, origin_deg)
+    return c * np.real(h * np.exp(1j * np.deg2rad(ph)))
+
+
+def _cells_last(a, name):
+    a = np.asarray(a)
+    if a.ndim == 0:
+        raise ValueError(f"{name} must have at least one dimension")
+    single = a.ndim == 1
+    a2 = a.reshape(1, -1) if single else a.reshape(a.shape[0], -1)
+    return a2, single
+
+
+def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS):
+    """How well the map's predicted grating surface matches the measured one.
+
+    Parameters
+    ----------
+    predicted : array_like, complex, shape (C, ...) or (K,)
+        Predicted first harmonics ``H`` per cell (:func:`predict_gratings`); leading axis = cells, the
+        remaining axes (e.g. orientation x SF) are the conditions. A 1-D input is one cell.
+    measured : array_like, complex, same shape
+        Measured first harmonics over phase in the same convention (response per unit contrast).
+        NaN marks a condition that was not measured; it is left out.
+    min_conditions : int
+        Fewest valid conditions (finite in both) needed; otherwise every output is NaN.
+
+    Returns
+    -------
+    dict of numpy.ndarray, each of shape (C,) (0-d for a 1-D input)
+        ``gain``
+            The one real, non-negative gain ``g`` minimising ``sum |meas - g pred|^2``:
+            ``max(0, sum Re(conj(pred) meas) / sum |pred|^2)``. Real because the phase of a linear
+            cell's first harmonic is fixed by the kernel and the phase origin (a complex gain would
+            forgive any phase error); non-negative because the map and the gratings come from the same
+            cell with the same sign of response. No offset is fitted: the first harmonic over phase
+            contains no constant term (the phase-invariant part goes to the mean response, not to ``H``).
+        ``agreement``
+            Explained variance of the measured complex surface, ``1 - sum |meas - g pred|^2 /
+            sum |meas|^2`` in [0, 1]. The reference is zero, not the surface mean: a cell with no linear
+            component has a first harmonic of zero at every wave vector. With the least-squares gain this
+            equals ``c^2``, ``c = sum Re(conj(pred) meas) / (||pred|| ||meas||)`` (0 when ``c <= 0``),
+            the squared cosine between the two surfaces as real vectors.
+        ``magnitude_agreement``
+            Explained variance of ``|meas|`` by a gain and an offset on ``|pred|``: the squared Pearson
+            correlation of the magnitudes, 0 when the correlation is negative. An offset is fitted here
+            because measured magnitudes carry a positive noise floor.
+        ``phase_error_deg``
+            Mean absolute phase difference ``|arg(meas conj(pred))|`` in degrees (0-180), weighted by
+            ``|meas| |pred|`` so that conditions where both surfaces are strong count most.
+        ``n_conditions``
+            Number of valid conditions used (int).
+
+    Examples
+    --------
+    >>> h = np.array([[1 + 1j, 2.0, -1j, 0.5]])
+    >>> r = forward_agreement(h, 3 * h)
+    >>> float(r["gain"][0]), float(r["agreement"][0]), float(r["phase_error_deg"][0])
+    (3.0, 1.0, 0.0)
+    """
+    p, single = _cells_last(np.asarray(predicted, complex), "predicted")
+    m, _ = _cells_last(np.asarray(measured, complex), "measured")
+    if np.shape(predicted) != np.shape(measured):
+        raise ValueError(f"predicted {np.shape(predicted)} and measured {np.shape(measured)} "
+                         "must have the same shape")
+    valid = np.isfinite(p) & np.isfinite(m)
+    n = valid.sum(axis=1)
+    p0 = np.where(valid, p, 0)
+    m0 = np.where(valid, m, 0)
+    pp = np.sum(np.abs(p0) ** 2, axis=1)
+    mm = np.sum(np.abs(m0) ** 2, axis=1)
+    pm = np.sum(np.real(np.conj(p0) * m0), axis=1)
+    ok = (n >= max(1, int(min_conditions))) & (pp > 0) & (mm > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        gain = np.where(ok, np.maximum(pm / pp, 0.0), np.nan)
+        sse = mm - 2 * gain * pm + gain**2 * pp
+        agreement = np.where(ok, np.clip(1.0 - sse / mm, 0.0, 1.0), np.nan)
+
+        # magnitudes: Pearson correlation over the valid conditions
+        a = np.where(valid, np.abs(m0), np.nan)
+        b = np.where(valid, np.abs(p0), np.nan)
+        a = a - np.nanmean(np.where(ok[:, None], a, 0.0), axis=1, keepdims=True)
+        b = b - np.nanmean(np.where(ok[:, None], b, 0.0), axis=1, keepdims=True)
+        sab = np.nansum(a * b, axis=1)
+        saa = np.nansum(a * a, axis=1)
+        sbb = np.nansum(b * b, axis=1)
+        r = sab / np.sqrt(saa * sbb)
+        mag_ok = ok & (saa > 0) & (sbb > 0)
+        magnitude = np.where(mag_ok, np.maximum(r, 0.0) ** 2, np.nan)
+
+        w = np.abs(m0) * np.abs(p0)
+        dphi = np.abs(np.angle(m0 * np.conj(p0), deg=True))
+        sw = w.sum(axis=1)
+        phase_err = np.where(ok & (sw > 0), np.sum(w * dphi, axis=1) / sw, np.nan)
+    out = {"gain": gain, "agreement": agreement, "magnitude_agreement": magnitude,
+           "phase_error_deg": phase_err, "n_conditions": n.astype(int)}
+    if single:
+        out = {k: v[0] if k == "n_conditions" else np.asarray(v[0]) for k, v in out.items()}
+    return out
+
+
+# ----------------------------------------------------------------------------------------------------
+# inverse prediction
+# ----------------------------------------------------------------------------------------------------
+
+def inverse_map(measured, orientations_deg, sfs_cpd, grid: Grid, origin_deg=None, sf_axis="auto"):
+    """Spatial map predicted from complex grating responses (the inverse prediction).
+
+    The inverse of the convention's transform is ``k(x) = integral H(f) exp(-i 2 pi f . (x - xc)) d^2f``
+    (Bracewell 2000). Over the polar orientation x SF grid, with area weights ``w`` from
+    :func:`map2d.spectral.polar_area_weights`, and with ``H(-f) = conj H(f)`` for a real map when the
+    orientations cover only half of the plane (0-180 deg), this is the weighted sum of cosine gratings
+
+        ``k(x) ~ 2 sum_{o,s} w_os Re(H_os exp(-i 2 pi k_os . (x - xc)))``
+
+    (factor 1 instead of 2 when the orientations cover 0-360 deg). The result contains only the
+    frequencies inside the band the gratings covered.
+
+    Parameters
+    ----------
+    measured : array_like, complex, shape (..., O, S)
+        First harmonics over phase (response per unit contrast, :mod:`map2d.geometry` convention).
+    orientations_deg : array_like, shape (O,)
+    sfs_cpd : array_like, shape (S,)
+    grid : Grid
+        Grid on which to evaluate the map.
+    origin_deg : (float, float), optional
+        The phase origin of the measured responses; default the grid centre.
+    sf_axis : {"auto", "log", "linear"}
+        Passed to :func:`map2d.spectral.polar_area_weights`.
+
+    Returns
+    -------
+    numpy.ndarray, shape (..., ny, nx)
+        The predicted map; all NaN for a cell with any missing (NaN) condition, or when the grid of
+        gratings has a single orientation or SF (the area weights cannot be estimated).
+    """
+    ori = np.asarray(orientations_deg, float).ravel()
+    sf = np.asarray(sfs_cpd, float).ravel()
+    h = np.asarray(measured, complex)
+    if h.ndim < 2 or h.shape[-2:] != (ori.size, sf.size):
+        raise ValueError(f"measured must have shape (..., {ori.size}, {sf.size}) "
+                         f"(orientations x SFs), got {h.shape}")
+    w = polar_area_weights(ori, sf, sf_axis=sf_axis)
+    factor = 360.0 / orientation_period(ori)
+    bad = ~np.all(np.isfinite(h), axis=(-2, -1))
+    coeff = np.where(np.isfinite(h), h, 0) * w
+    if not np.all(np.isfinite(w)):
+        coeff = np.zeros_like(coeff)
+        bad = np.ones(h.shape[:-2], bool)
+    k = factor * np.real(inverse_fourier(coeff, grid, ori[:, None], sf[None, :], origin_deg))
+    k[bad] = np.nan
+    return k
+
+
+def band_limit(maps, grid: Grid, orientations_deg, sfs_cpd, origin_deg=None, sf_axis="auto"):
+    """Limit spatial maps to the frequency band covered by an orientation x SF grid of gratings.
+
+    Defined as forward then inverse on the same polar grid:
+    ``inverse_map(predict_gratings(maps, ...), ...)``. So the inverse prediction of a perfectly linear
+    cell equals, up to its gain, the band-limited map by construction, and any difference between
+    :func:`inverse_map` of the measured surface and this map is a difference in the data. The phase
+    origin cancels; it is accepted only for symmetry.
+
+    Parameters
+    ----------
+    maps : array_like, shape (..., ny, nx)
+    grid : Grid
+    orientations_deg, sfs_cpd : array_like, 1-D
+    origin_deg, sf_axis
+        As in :func:`inverse_map`.
+
+    Returns
+    -------
+    numpy.ndarray, shape (..., ny, nx)
+    """
+    h = predict_gratings(maps, grid, orientations_deg, sfs_cpd, origin_deg)
+    return inverse_map(h, orientations_deg, sfs_cpd, grid, origin_deg, sf_axis=sf_axis)
+
+
+def map_similarity(a, b):
+    """Pearson correlation between maps, over the pixels finite in both.
+
+    Parameters
+    ----------
+    a, b : array_like, shape (..., ny, nx)
+
+    Returns
+    -------
+    numpy.ndarray, shape (...)
+        Correlation in [-1, 1]; NaN when fewer than 3 pixels are finite in both or either map is flat.
+
+    Examples
+    --------
+    >>> x = np.arange(12.0).reshape(3, 4)
+    >>> float(map_similarity(x, 2 * x + 1)), float(map_similarity(x, -x))
+    (1.0, -1.0)
+    """
+    a = np.asarray(a, float)
+    b = np.asarray(b, float)
+    if a.shape != b.shape or a.ndim < 2:
+        raise ValueError(f"maps must have the same shape (..., ny, nx), got {a.shape} and {b.shape}")
+    valid = np.isfinite(a) & np.isfinite(b)
+    n = valid.sum(axis=(-2, -1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        a0 = np.where(valid, a, 0.0)
+        b0 = np.where(valid, b, 0.0)
+        ma = a0.sum(axis=(-2, -1), keepdims=True) / np.maximum(n, 1)[..., None, None]
+        mb = b0.sum(axis=(-2, -1), keepdims=True) / np.maximum(n, 1)[..., None, None]
+        da = np.where(valid, a0 - ma, 0.0)
+        db = np.where(valid, b0 - mb, 0.0)
+        saa = np.sum(da * da, axis=(-2, -1))
+        sbb = np.sum(db * db, axis=(-2, -1))
+        sab = np.sum(da * db, axis=(-2, -1))
+        r = sab / np.sqrt(saa * sbb)
+        scale = np.maximum(np.max(np.abs(a0), axis=(-2, -1)) ** 2, 1e-300) * n
+        flat = (saa <= 1e-24 * scale) | (sbb <= 1e-24 * np.maximum(
+            np.max(np.abs(b0), axis=(-2, -1)) ** 2, 1e-300) * n)
+    return np.where((n >= 3) & ~flat, np.clip(r, -1.0, 1.0), np.nan)
+
+
+@dataclass
+class InverseComparison:
+    """Both maps of the inverse prediction and their similarity, for the report.
+
+    Attributes
+    ----------
+    from_gratings : numpy.ndarray, shape (C, ny, nx)
+        The map predicted from the measured grating responses (:func:`inverse_map`), in response units
+        per unit contrast times deg^2 / deg^2 (i.e. the gratings' units).
+    from_map : numpy.ndarray, shape (C, ny, nx)
+        The measured map limited to the same band (:func:`band_limit`), in the map's units.
+    similarity : numpy.ndarray, shape (C,)
+        :func:`map_similarity` of the two (scale-free, so the different units do not matter).
+    """
+
+    from_gratings: np.ndarray
+    from_map: np.ndarray
+    similarity: np.ndarray
+
+
+def inverse_comparison(measured, maps, grid: Grid, orientations_deg, sfs_cpd, origin_deg=None,
+                       sf_axis="auto") -> InverseComparison:
+    """The map predicted from the gratings beside the band-limited measured map.
+
+    Parameters
+    ----------
+    measured : array_like, complex, shape (C, O, S)
+        Measured first harmonics over phase.
+    maps : array_like, shape (C, ny, nx)
+        Measured spatial maps (e.g. the linear map at the peak lag).
+    grid, orientations_deg, sfs_cpd, origin_deg, sf_axis
+        As in :func:`inverse_map`.
+
+    Returns
+    -------
+    InverseComparison
+    """
+    from_gratings = inverse_map(measured, orientations_deg, sfs_cpd, grid, origin_deg, sf_axis)
+    from_map = band_limit(maps, grid, orientations_deg, sfs_cpd, origin_deg, sf_axis)
+    if from_gratings.shape != from_map.shape:
+        raise ValueError(f"measured {np.shape(measured)} and maps {np.shape(maps)} describe "
+                         "different numbers of cells")
+    return InverseComparison(from_gratings, from_map, map_similarity(from_gratings, from_map))
+
+
+# ----------------------------------------------------------------------------------------------------
+# size tuning
+# ----------------------------------------------------------------------------------------------------
+
+def size_tuning(maps, grid: Grid, center_xy_deg, radii_deg, supersample=8):
+    """Linear responses to centred disks and annuli, predicted from spatial maps (area summation).
+
+    The response to a uniform patch of unit contrast is ``sum_pixels k(x, y) coverage(x, y) dx dy``,
+    where ``coverage`` is the fraction of the pixel inside the patch, estimated on a
+    ``supersample x supersample`` lattice of points in each pixel. A centre-surround map answers a disk
+    about the size of its centre more than a large one (Enroth-Cugell & Robson 1966).
+
+    Parameters
+    ----------
+    maps : array_like, shape (ny, nx) or (C, ny, nx)
+    grid : Grid
+    center_xy_deg : (float, float) or array_like, shape (C, 2)
+        Centre of the disks, one for all maps or one per map.
+    radii_deg : array_like, shape (R,)
+        Radii, >= 0.
+    supersample : int
+        Points per pixel side for partial coverage.
+
+    Returns
+    -------
+    disk : numpy.ndarray, shape (..., R)
+        Response to a disk of radius ``radii_deg[r]``.
+    annulus : numpy.ndarray, shape (..., R)
+        Response to an annulus with inner radius ``radii_deg[r]`` and outer radius ``max(radii_deg)``
+        (``disk[max] - disk[r]``): the surround alone as the hole grows.
+        A bright patch (contrast +1) is assumed; a dark patch gives the negatives.
+    """
+    m = np.asarray(maps, float)
+    if m.ndim not in (2, 3) or m.shape[-2:] != grid.shape:
+        raise ValueError(f"maps must have shape ({grid.ny}, {grid.nx}) or (C, {grid.ny}, {grid.nx}), "
+                         f"got {m.shape}")
+    radii = np.asarray(radii_deg, float).ravel()
+    if radii.size == 0 or not np.all(np.isfinite(radii)) or np.any(radii < 0):
+        raise ValueError(f"radii_deg must be finite and >= 0, got {radii_deg!r}")
+    n_sub = int(supersample)
+    if n_sub < 1:
+        raise ValueError(f"supersample must be >= 1, got {supersample!r}")
+    single = m.ndim == 2
+    m3 = m[None] if single else m
+    n_c = m3.shape[0]
+    centre = np.asarray(center_xy_deg, float)
+    if centre.shape == (2,):
+        centre = np.broadcast_to(centre, (n_c, 2))
+    if centre.shape != (n_c, 2):
+        raise ValueError(f"center_xy_deg must be (x, y) or shape ({n_c}, 2), got {centre.shape}")
+    u = ((np.arange(n_sub) + 0.5) / n_sub - 0.5)
+    sx = (grid.x_deg[:, None] + u[None, :] * grid.dx_deg).ravel()        # (nx * n,)
+    sy = (grid.y_deg[:, None] + u[None, :] * grid.dy_deg).ravel()        # (ny * n,)
+    area = grid.dx_deg * grid.dy_deg / n_sub**2
+    disk = np.full((n_c, radii.size), np.nan)
+    for c in range(n_c):  # one centre per cell: a small loop over cells, vectorised over pixels
+        d2 = (sx[None, :] - centre[c, 0]) ** 2 + (sy[:, None] - centre[c, 1]) ** 2   # (ny n, nx n)
+        sub = np.repeat(np.repeat(m3[c], n_sub, axis=0), n_sub, axis=1) * area
+        order = np.argsort(d2, axis=None)
+        d2s = d2.ravel()[order]
+        cum = np.concatenate([[0.0], np.cumsum(sub.ravel()[order])])
+        disk[c] = cum[np.searchsorted(d2s, radii**2, side="right")]
+    annulus = disk[:, [int(np.argmax(radii))]] - disk
+    if single:
+        return disk[0], annulus[0]
+    return disk, annulus
+
+
+# ----------------------------------------------------------------------------------------------------
+# linearity call
+# ----------------------------------------------------------------------------------------------------
+
+def _as_float(v, n, name):
+    if v is None:
+        return np.full(n, np.nan)
+    a = np.array([np.nan if x is None else x for x in np.asarray(v, object).ravel()], float)
+    if a.size == 1 and n != 1:
+        a = np.full(n, a[0])
+    if a.size != n:
+        raise ValueError(f"{name} must have one value per cell ({n}), got {a.size}")
+    return a
+
+
+def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
+                   agreement_threshold=AGREEMENT_THRESHOLD, f1_f0_threshold=F1_F0_THRESHOLD,
+                   overlap_threshold=OVERLAP_THRESHOLD):
+    """Call each cell linear or not, with the reason.
+
+    A cell is linear when all available criteria agree:
+
+    1. the forward agreement between map and gratings is ``>= agreement_threshold`` (default 0.5,
+       ours: the map predicts at least half the power of the measured grating surface);
+    2. F1/F0 from drifting gratings is ``> f1_f0_threshold`` (default 1, Skottun et al. 1991), when
+       drifting gratings exist (NaN = not available, criterion skipped);
+    3. the ON/OFF overlap is ``<= overlap_threshold`` (default 0.5, ours): segregated ON and OFF
+       subregions, the simple-cell criterion of Hubel & Wiesel (1962), when available.
+
+    Parameters
+    ----------
+    agreement : array_like, shape (C,)
+        Forward agreement (:func:`forward_agreement`), NaN when there were no gratings or no map.
+    f1_f0 : array_like or None
+        F1/F0 at the preferred condition; None or NaN when not available.
+    onoff_overlap : array_like or None
+        ON/OFF overlap in [0, 1] (0 = segregated, 1 = coextensive); None or NaN when not available.
+    responsive : array_like of bool or None
+        The sparse-noise ``responsive`` call per cell (None or NaN for a cell = no map: the call is
+        empty with reason "no map"). None for the whole argument skips this check.
+
+    Returns
+    -------
+    linear : numpy.ndarray of object, shape (C,)
+        True, False, or None (empty: cannot be called).
+    reason : numpy.ndarray of str, shape (C,)
+        ``"not responsive"``, ``"no map"``, ``"no gratings"``, or the criteria that decided, e.g.
+        ``"agreement 0.12 < 0.50"``, ``"f1/f0 0.60 <= 1.00"``, ``"ON/OFF overlap 0.80 > 0.50"`` (all
+        failing criteria, joined by "; "), or for a linear cell all criteria that were tested, joined
+        by ", ".
+
+    Examples
+    --------
+    >>> lin, why = linearity_call([0.9, 0.1, np.nan, 0.9], f1_f0=[1.5, 0.4, 1.0, np.nan],
+    ...                           responsive=[True, True, True, False])
+    >>> lin.tolist()
+    [True, False, None, None]
+    >>> why.tolist()
+    ['agreement 0.90 >= 0.50, f1/f0 1.50 > 1.00', 'agreement 0.10 < 0.50; f1/f0 0.40 <= 1.00', \
+'no gratings', 'not responsive']
+    """
+    agr = np.asarray(agreement, float).ravel()
+    n = agr.size
+    f = _as_float(f1_f0, n, "f1_f0")
+    ov = _as_float(onoff_overlap, n, "onoff_overlap")
+    if responsive is None:
+        resp = np.full(n, None, object)
+    else:
+        resp = np.asarray(responsive, object).ravel()
+        if resp.size == 1 and n != 1:
+            resp = np.full(n, resp[0], object)
+        if resp.size != n:
+            raise ValueError(f"responsive must have one value per cell ({n}), got {resp.size}")
+    linear = np.full(n, None, object)
+    reason = np.empty(n, object)
+    for c in range(n):  # per-cell strings; C is small
+        if responsive is not None:
+            r = resp[c]
+            if r is None or (isinstance(r, float) and np.isnan(r)):
+                reason[c] = "no map"
+                continue
+            if not bool(r):
+                reason[c] = "not responsive"
+                continue
+        if np.isnan(agr[c]):
+            reason[c] = "no gratings"
+            continue
+        passed, failed = [], []
+        if agr[c] >= agreement_threshold:
+            passed.append(f"agreement {agr[c]:.2f} >= {agreement_threshold:.2f}")
+        else:
+            failed.append(f"agreement {agr[c]:.2f} < {agreement_threshold:.2f}")
+        if np.isfinite(f[c]):
+            if f[c] > f1_f0_threshold:
+                passed.append(f"f1/f0 {f[c]:.2f} > {f1_f0_threshold:.2f}")
+            else:
+                failed.append(f"f1/f0 {f[c]:.2f} <= {f1_f0_threshold:.2f}")
+        if np.isfinite(ov[c]):
+            if ov[c] <= overlap_threshold:
+                passed.append(f"ON/OFF overlap {ov[c]:.2f} <= {overlap_threshold:.2f}")
+            else:
+                failed.append(f"ON/OFF overlap {ov[c]:.2f} > {overlap_threshold:.2f}")
+        linear[c] = not failed
+        reason[c] = "; ".join(failed) if failed else ", ".join(passed)
+    return linear, reason.astype(str)
