@@ -1,0 +1,884 @@
+"""Reverse correlation: ON, OFF and linear maps for every cell and lag, and their significance.
+
+Sparse noise (int8 frames, +1 bright / -1 dark / 0 background) goes through the sparse engine: one
+``scipy.sparse`` matrix ``B`` of shape ``(frames, 2 * pixels)`` says which pixel was bright (first
+half of the columns) or dark (second half) in which frame, and for lag ``l`` the sums over all cells
+are one sparse-times-dense product ``B[:F - l].T @ X[l:]`` with ``X`` the ``(frames, cells)``
+centred responses (a view, no copy). Cost per lag is ``spots x frames x cells`` multiply-adds; there
+is no Python loop over spikes or frames.
+
+Real-valued (dense) noise goes through :func:`dense_sta` (the plain spike-triggered average, as a
+cross-covariance) and :func:`whitened_sta` (ridge-regularised whitening with the penalty chosen by
+cross-validation over blocks of time), both accumulated over chunks of frames so that the frames may
+be a memory-mapped array larger than memory.
+
+Conventions
+-----------
+- Lag ``l`` (whole frames, ``0 .. floor(max_lag_s / frame_interval)``) pairs the stimulus of frame
+  ``t`` with the response in frame ``t + l``. Responses outside the stimulus are never used: at lag
+  ``l`` the last ``l`` frames have no response and are left out.
+- Maps are ``(cells, lags, ny, nx)`` float32 with row 0 at the top (contract).
+- ``on``: mean response in the frames after a bright spot at the pixel minus the cell's mean
+  response; ``off`` the same for dark spots; ``linear = on - off``. Units are those of the responses
+  (spikes/s, or trace units). A pixel never shown gets NaN.
+
+References
+----------
+Chichilnisky EJ (2001) A simple white noise analysis of neuronal light responses.
+Network 12:199-213 (spike-triggered average and its statistics).
+Jones JP, Palmer LA (1987) The two-dimensional spatial structure of simple receptive fields in cat
+striate cortex. J Neurophysiol 58:1187-1211 (ON and OFF maps from sparse noise).
+Theunissen FE et al. (2001) Estimating spatio-temporal receptive fields of auditory and visual
+neurons from their responses to natural stimuli. Network 12:289-316 (whitening and regularisation).
+Besag J, Clifford P (1991) Sequential Monte Carlo p-values. Biometrika 78:301-304.
+Nichols TE, Holmes AP (2002) Nonparametric permutation tests for functional neuroimaging.
+Hum Brain Mapp 15:1-25 (max-statistic correction for many tests).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.sparse as sp
+from scipy import ndimage
+
+from .align import interval_responses
+from .contract import SparseNoise, Spikes, Traces
+from .geometry import Grid
+
+__all__ = ["MapResult", "compute_maps", "frame_responses", "map_lags", "dense_sta", "whitened_sta",
+           "map_centroid_deg", "KINDS"]
+
+#: Map kinds, in the order used by every ``kind`` axis.
+KINDS = ("on", "off", "linear")
+
+_CHUNK_FRAMES = 8192
+
+
+# ----------------------------------------------------------------------------------------------
+# result
+# ----------------------------------------------------------------------------------------------
+@dataclass
+class MapResult:
+    """Maps and their statistics for every cell.
+
+    Attributes
+    ----------
+    grid : Grid
+    lags_s : ndarray (L,)
+        Lag of each map in seconds (``lag_frames * frame_s``).
+    lag_frames : ndarray int (L,)
+    cell_ids : ndarray int (C,)
+    unit : str
+        Response unit ('spikes/s' or 'trace units').
+    stimulus : str
+        'sparse' (bright/dark spots) or 'dense' (real-valued noise).
+    on, off, linear : ndarray float32 (C, L, ny, nx)
+        Maps in response units. For dense noise ``on`` and ``off`` are NaN and ``linear`` is the
+        kernel estimate in response units per unit of stimulus (see :func:`compute_maps`).
+    on_z, off_z, linear_z : ndarray float32 (C, L, ny, nx)
+        z-scores against the null of no stimulus dependence (see :func:`compute_maps`).
+    responsive : ndarray bool (C,)
+        ``p_value <= alpha``.
+    p_value : ndarray (C,)
+        Max-statistic shuffle p-value, corrected for pixels x lags x kinds; NaN when the cell's
+        responses do not vary (no spikes, constant trace).
+    max_abs_z : ndarray (C,)
+        The observed max-statistic (largest ``|z|`` over pixels, lags and kinds).
+    z_critical : ndarray (C,)
+        The ``1 - alpha`` quantile of the shuffle distribution of the max-statistic.
+    peak_lag_index : ndarray int (C,)
+        Index into ``lags_s`` of the lag holding the largest ``|z|``; -1 when not responsive.
+    peak_lag_s : ndarray (C,)
+        NaN when not responsive.
+    polarity : ndarray str (C,)
+        'ON-centre', 'OFF-centre', 'mixed', or '' when not responsive (see :func:`compute_maps`).
+    onoff_overlap : ndarray (C,)
+        Overlap (0-1) of the excitatory ON and OFF regions at the peak lag; NaN when not responsive
+        or not estimable (dense noise).
+    snr : ndarray (C,)
+        Largest ``|linear_z|`` at the peak lag (the linear map's peak over the null sd); for a cell
+        that is not responsive, at the lag of its largest ``|z|``.
+    n_frames_used : ndarray int (C,)
+        Frames with a valid response (within the stimulus, not NaN).
+    frame_s : float
+        Median frame interval.
+    n_shuffles : ndarray int (C,)
+        Shuffles drawn for each cell (fewer than requested when sequential stopping applied).
+    null_scale : ndarray (C, 3)
+        Ratio of the shuffle sd to the analytic sd per kind (about 1 for spikes).
+    alpha : float
+    method : str
+        'sparse', 'sta' or 'whitened'.
+    ridge_lambda : ndarray (C,)
+        Cross-validated ridge penalty (whitened dense noise), NaN otherwise.
+    """
+
+    grid: Grid
+    lags_s: np.ndarray
+    lag_frames: np.ndarray
+    cell_ids: np.ndarray
+    unit: str
+    stimulus: str
+    on: np.ndarray
+    off: np.ndarray
+    linear: np.ndarray
+    on_z: np.ndarray
+    off_z: np.ndarray
+    linear_z: np.ndarray
+    responsive: np.ndarray
+    p_value: np.ndarray
+    max_abs_z: np.ndarray
+    z_critical: np.ndarray
+    peak_lag_index: np.ndarray
+    peak_lag_s: np.ndarray
+    polarity: np.ndarray
+    onoff_overlap: np.ndarray
+    snr: np.ndarray
+    n_frames_used: np.ndarray
+    frame_s: float
+    n_shuffles: np.ndarray
+    null_scale: np.ndarray
+    alpha: float
+    method: str = "sparse"
+    ridge_lambda: np.ndarray = field(default_factory=lambda: np.zeros(0))
+
+    @property
+    def n_cells(self) -> int:
+        return int(self.cell_ids.size)
+
+    def maps(self, kind: str) -> np.ndarray:
+        """The map of one kind ('on', 'off', 'linear'), ``(C, L, ny, nx)``."""
+        return {"on": self.on, "off": self.off, "linear": self.linear}[kind]
+
+    def zmaps(self, kind: str) -> np.ndarray:
+        """The z-map of one kind, ``(C, L, ny, nx)``."""
+        return {"on": self.on_z, "off": self.off_z, "linear": self.linear_z}[kind]
+
+    def peak_kind_index(self) -> np.ndarray:
+        """For each cell, the kind index (0 on, 1 off, 2 linear) of the largest ``|z|`` at the peak lag
+        (-1 when not responsive)."""
+        out = np.full(self.n_cells, -1, dtype=int)
+        for c in range(self.n_cells):
+            li = int(self.peak_lag_index[c])
+            if li < 0:
+                continue
+            peaks = [np.nanmax(np.abs(self.zmaps(k)[c, li])) if np.isfinite(self.zmaps(k)[c, li]).any()
+                     else -np.inf for k in KINDS]
+            out[c] = int(np.argmax(peaks))
+        return out
+
+
+# ----------------------------------------------------------------------------------------------
+# alignment
+# ----------------------------------------------------------------------------------------------
+def map_lags(frame_s: float, max_lag_s: float) -> np.ndarray:
+    """Whole-frame lags ``0 .. floor(max_lag_s / frame_s)``.
+
+    Examples
+    --------
+    >>> map_lags(0.05, 0.2)
+    array([0, 1, 2, 3, 4])
+    """
+    if not np.isfinite(frame_s) or frame_s <= 0:
+        raise ValueError(f"frame interval must be positive, got {frame_s}")
+    if not np.isfinite(max_lag_s) or max_lag_s < 0:
+        raise ValueError(f"max_lag_s must be >= 0, got {max_lag_s}")
+    return np.arange(int(np.floor(max_lag_s / frame_s + 1e-9)) + 1)
+
+
+def frame_responses(responses: Spikes | Traces, noise: SparseNoise) -> np.ndarray:
+    """Response of every cell in every stimulus frame, ``(cells, frames)`` float32.
+
+    Spikes/s for spikes; the trace's time average over the frame for traces (NaN where a frame holds
+    no valid sample). Uses :func:`map2d.align.interval_responses` with the frames of ``noise``.
+    """
+    return interval_responses(responses, noise.times_s, noise.frame_ends_s())
+
+
+# ----------------------------------------------------------------------------------------------
+# correlators: sums of stimulus x shifted response for a set of offsets
+# ----------------------------------------------------------------------------------------------
+class _SparseCorrelator:
+    """``B`` (frames, 2P) csr: column p = bright at pixel p, column P + p = dark at pixel p."""
+
+    def __init__(self, frames: np.ndarray):
+        F = frames.shape[0]
+        P = int(np.prod(frames.shape[1:]))
+        flat = frames.reshape(F, P)
+        rows, cols, vals = [], [], []
+        for a in range(0, F, _CHUNK_FRAMES * 4):  # chunked so a huge int8 stack never widens at once
+            blk = np.asarray(flat[a:a + _CHUNK_FRAMES * 4])
+            r, c = np.nonzero(blk)
+            rows.append(r + a)
+            cols.append(np.where(blk[r, c] > 0, c, c + P))
+        rows = np.concatenate(rows) if rows else np.zeros(0, int)
+        cols = np.concatenate(cols) if cols else np.zeros(0, int)
+        self.B = sp.csr_matrix((np.ones(rows.size, np.float32), (rows, cols)), shape=(F, 2 * P))
+        self.F, self.P = F, P
+        self._cum = None
+
+    def counts(self, lag: int) -> np.ndarray:
+        """Events per column over frames ``t < F - lag``, (2P,)."""
+        return np.asarray(self.B[: self.F - lag].sum(axis=0)).ravel()
+
+    def sums(self, X: np.ndarray, offset: int, circular: bool) -> np.ndarray:
+        """``sum_t B[t] X[t + offset]`` -> (2P, C). Non-circular: only ``t + offset < F``."""
+        F = self.F
+        o = offset % F if circular else offset
+        out = self.B[: F - o].T @ X[o:]
+        if circular and o:
+            out += self.B[F - o:].T @ X[:o]
+        return np.asarray(out, dtype=np.float32)
+
+
+# ----------------------------------------------------------------------------------------------
+# sparse engine
+# ----------------------------------------------------------------------------------------------
+def _center(R: np.ndarray):
+    """(C, F) responses -> X (F, C) centred with NaN -> 0, valid mask, means, sds, valid counts."""
+    R = np.asarray(R, dtype=np.float32)
+    valid = np.isfinite(R)
+    n_valid = valid.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(valid, R, 0).sum(axis=1, dtype=np.float64) / np.maximum(n_valid, 1)
+        Xc = np.where(valid, R - mean[:, None].astype(np.float32), np.float32(0))
+        sd = np.sqrt((Xc.astype(np.float64) ** 2).sum(axis=1) / np.maximum(n_valid, 1))
+    X = np.ascontiguousarray(Xc.T, dtype=np.float32)
+    return X, valid, mean, sd, n_valid
+
+
+def _analytic_sd(sd, n_frames, n_on, n_off):
+    """Null sd of the mean-map value for random disjoint event sets (sampling without replacement).
+
+    ``sd`` (C,), ``n_frames`` (C,), ``n_on``/``n_off`` (C, P) or (P,). Returns (3, C, P) for on/off/linear.
+    For ``n`` of ``F`` values of population variance ``s^2``: ``var(mean) = s^2 (F/n - 1)/(F - 1)``, and
+    two disjoint samples have ``cov = -s^2/(F - 1)``, so ``var(mean_a - mean_b) = s^2 F/(F - 1) (1/n_a + 1/n_b)``.
+    """
+    s2 = (sd.astype(np.float64) ** 2)[:, None]
+    F = n_frames.astype(np.float64)[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        n_on = np.broadcast_to(np.asarray(n_on, np.float64), (sd.size, np.shape(n_on)[-1]))
+        n_off = np.broadcast_to(np.asarray(n_off, np.float64), (sd.size, np.shape(n_off)[-1]))
+        v_on = s2 * (F / n_on - 1) / (F - 1)
+        v_off = s2 * (F / n_off - 1) / (F - 1)
+        v_lin = s2 * F / (F - 1) * (1 / n_on + 1 / n_off)
+        out = np.sqrt(np.stack([v_on, v_off, v_lin]))
+    out[~np.isfinite(out) | (out <= 0)] = np.nan
+    return out
+
+
+def _sparse_maps_one(sums, n_on, n_off, P):
+    """(2P, C) sums + counts (C, P) -> (3, C, P) mean maps (NaN where a pixel was never shown)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        on = sums[:P].T / n_on
+        off = sums[P:].T / n_off
+    on = np.where(n_on > 0, on, np.nan)
+    off = np.where(n_off > 0, off, np.nan)
+    return np.stack([on, off, on - off])
+
+
+def _shift_offsets(F: int, n: int, L: int, min_shift: int, rng) -> np.ndarray:
+    lo = min(max(min_shift, L + 1), max(F // 4, L + 1))
+    hi = F - lo - L
+    if hi <= lo:
+        raise ValueError(f"too few frames ({F}) for circular-shift shuffles with {L} lags")
+    return rng.integers(lo, hi + 1, size=n)
+
+
+# ----------------------------------------------------------------------------------------------
+# public engine
+# ----------------------------------------------------------------------------------------------
+def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffles: int = 200,
+                 alpha: float = 0.01, rng=None, min_shift_s: float = 10.0, stop_after: int = 10,
+                 dense_method: str = "auto", n_folds: int = 5) -> MapResult:
+    """ON, OFF and linear maps at every lag for every cell, with z-scores and the responsive call.
+
+    Parameters
+    ----------
+    responses : Spikes, Traces, or ndarray (cells, frames)
+        The responses; an array is taken as the response of every cell in every frame of ``noise``
+        (NaN = no valid response), e.g. from :func:`frame_responses`.
+    noise : SparseNoise
+        int8 frames (sparse noise) or real-valued frames (dense noise), their onsets and grid.
+    max_lag_s : float
+        Longest lag; lags are the whole frames ``0 .. floor(max_lag_s / frame_interval)``.
+    n_shuffles : int
+        Circular-shift shuffles for the null (at least ``ceil(1/alpha)`` are needed to reach ``alpha``).
+    alpha : float
+        Family-wise level of the responsive call (per cell, over pixels x lags x kinds).
+    rng : numpy.random.Generator or int, optional
+        Seed for the shuffle offsets.
+    min_shift_s : float
+        Smallest circular shift (seconds; capped at a quarter of the session), so that a shuffled
+        response never overlaps the cell's own response to the same frames (calcium decays included).
+    stop_after : int
+        Sequential stopping (Besag & Clifford 1991): a cell stops drawing shuffles once this many
+        shuffles reached its observed statistic (its p-value is then ``stop_after / k``, certainly
+        above ``alpha``). 0 turns it off.
+    dense_method : {'auto', 'sta', 'whitened'}
+        For real-valued frames: the plain STA, the ridge-whitened estimate, or 'auto' (whitened when
+        the pixels of the stimulus are correlated beyond chance).
+    n_folds : int
+        Folds (contiguous blocks of time) for choosing the ridge penalty.
+
+    Returns
+    -------
+    MapResult
+
+    Notes
+    -----
+    **z-scores.** Under the null of no stimulus dependence the events of a pixel are a random subset
+    of the frames, so the mean of its ``n`` centred responses has variance
+    ``s^2 (F/n - 1)/(F - 1)`` (sampling without replacement from the ``F`` valid frames of population
+    variance ``s^2``); ON and OFF events of one pixel are disjoint, so the linear map has variance
+    ``s^2 F/(F - 1) (1/n_on + 1/n_off)``. Conditioning on the responses and randomising the
+    stimulus makes this hold whatever the response autocorrelation (the sum of a mean-subtracted
+    record's circular autocovariance is zero), but the realised stimulus may have structure (held
+    frames, constrained designs) and a fixed stimulus against an autocorrelated trace is what we
+    really test. Therefore the analytic sd only shapes the z-score across pixels, and its scale is
+    calibrated per cell and kind from circular-shift shuffles: the responses are shifted circularly by
+    a random offset (at least ``min_shift_s``, far beyond the longest lag) which keeps their
+    autocorrelation and destroys their relation to the stimulus, maps are recomputed with the same
+    sparse products, and ``z = map / (analytic sd x g)`` with ``g`` the RMS of the analytic z of
+    the shuffled maps (pooled over pixels, lags and the first shuffles). The tests check that the
+    z-scores of unresponsive cells have sd 1 +- 0.05 for spikes and for calcium-like traces.
+
+    **responsive.** The max-statistic over the same shuffles: ``T = max |z|`` over pixels x lags x
+    kinds; ``p = (1 + #{shuffles with T* >= T}) / (1 + n_shuffles)`` (Nichols & Holmes 2002). This
+    controls the family-wise error over every pixel, lag and kind tested for that cell whatever
+    their correlation; ``responsive = p <= alpha``. Cells that are clearly not significant stop early
+    (Besag & Clifford 1991), which keeps hundreds of shuffles cheap. Each shuffle costs one sparse
+    product per lag, restricted to the cells still drawing.
+
+    **Peak lag** = the lag with the largest ``|z|`` over pixels and kinds. **Polarity** (responsive
+    cells): with ``e_on``/``e_off`` the largest positive z of the ON/OFF map at the peak lag (the
+    strongest excitation by a bright/dark spot), the cell is 'mixed' when both reach ``z_critical``
+    and the weaker is at least half the stronger; otherwise the sign of the linear map at its
+    largest ``|z|`` pixel: positive 'ON-centre', negative 'OFF-centre'. A simple cell with separate
+    ON and OFF subregions, or an ON-OFF cell, is therefore 'mixed'; the overlap tells them apart.
+    **ON/OFF overlap** = cosine similarity of the soft-thresholded excitatory z-maps
+    ``max(z_on - 2, 0)`` and ``max(z_off - 2, 0)`` at the peak lag (1 = same pixels, 0 = disjoint or
+    one polarity absent; NaN when neither has an excitatory region). **SNR** = the largest
+    ``|linear_z|`` at the peak lag.
+
+    **Dense noise** (real-valued frames): ``linear`` is the kernel in response units per unit of
+    stimulus — the cross-covariance of the stimulus and the lagged response divided by the pixel's
+    stimulus variance (plain STA, exact for spatially white noise) or the ridge-whitened estimate
+    (correlated noise); ``on``/``off`` and their z are NaN and the max-statistic runs over pixels x lags
+    of the linear map only. Its analytic null sd is ``s / sqrt(F var_p)`` (plain) or from the ridge
+    operator (whitened), calibrated by the same shuffles.
+    """
+    if not isinstance(noise, SparseNoise):
+        raise TypeError("noise must be a SparseNoise")
+    if not (0 < alpha < 1):
+        raise ValueError(f"alpha must be in (0, 1), got {alpha}")
+    if int(n_shuffles) < 1:
+        raise ValueError(f"n_shuffles must be >= 1, got {n_shuffles}")
+    rng = np.random.default_rng(rng)
+    frame_s = noise.frame_interval_s
+    lags = map_lags(frame_s, max_lag_s)
+    L = lags.size
+    if isinstance(responses, (Spikes, Traces)):
+        R = frame_responses(responses, noise)
+        cell_ids = np.asarray(responses.cell_ids, dtype=np.int64)
+        unit = responses.unit
+    else:
+        R = np.asarray(responses, dtype=np.float32)
+        if R.ndim != 2 or R.shape[1] != noise.n_frames:
+            raise ValueError(f"responses must be (cells, {noise.n_frames}), got {R.shape}")
+        cell_ids = np.arange(R.shape[0], dtype=np.int64)
+        unit = "response units"
+    if L >= noise.n_frames:
+        raise ValueError(f"max_lag_s={max_lag_s} spans the whole stimulus ({noise.n_frames} frames)")
+    dense = not np.issubdtype(noise.frames.dtype, np.integer)
+    min_shift = int(round(min_shift_s / frame_s))
+    if dense:
+        return _compute_dense(R, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
+                              min_shift, stop_after, dense_method, n_folds)
+    return _compute_sparse(R, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
+                           min_shift, stop_after)
+
+
+def _compute_sparse(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift, stop_after):
+    ny, nx = noise.grid.shape
+    C, F = R.shape
+    L = lags.size
+    cor = _SparseCorrelator(noise.frames)
+    P = cor.P
+    X, valid, mean, sd, n_valid = _center(R)
+    has_nan = not valid.all()
+    W = np.ascontiguousarray(valid.T, dtype=np.float32) if has_nan else None
+
+    maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
+    asd = np.full((3, C, L, P), np.nan, dtype=np.float64)
+    for li, lag in enumerate(lags):
+        sums = cor.sums(X, int(lag), circular=False)
+        if has_nan:
+            cnt = cor.sums(W, int(lag), circular=False).T      # (C, 2P) valid events per cell
+            n_on, n_off = cnt[:, :P], cnt[:, P:]
+        else:
+            cnt = cor.counts(int(lag))
+            n_on = np.broadcast_to(cnt[:P], (C, P))
+            n_off = np.broadcast_to(cnt[P:], (C, P))
+        maps[:, :, li] = _sparse_maps_one(sums, n_on, n_off, P)
+        asd[:, :, li] = _analytic_sd(sd, n_valid, n_on, n_off)
+    z_an = maps / asd                                               # (3, C, L, P)
+
+    # shuffle null: counts over the whole circle, valid events ~ fraction of valid frames per cell
+    cnt_all = cor.counts(0)
+    frac = n_valid / F
+    n_on_null = cnt_all[None, :P] * frac[:, None]
+    n_off_null = cnt_all[None, P:] * frac[:, None]
+    asd_null = _analytic_sd(sd, n_valid, n_on_null, n_off_null)    # (3, C, P)
+
+    def null_stats(active, offset, Xa):
+        """(3, Ca, L, P) analytic-z maps of one shuffle for the active cells."""
+        out = np.empty((3, active.size, L, P), dtype=np.float32)
+        for li, lag in enumerate(lags):
+            s = cor.sums(Xa, int(offset + lag), circular=True)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                m = _sparse_maps_one(s, n_on_null[active], n_off_null[active], P)
+            out[:, :, li] = m / asd_null[:, active]
+        return out
+
+    offsets = _shift_offsets(F, K, L, min_shift, rng)
+    return _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
+                   unit, alpha, stop_after, kinds_used=(0, 1, 2), stimulus="sparse", method="sparse",
+                   ridge=np.full(C, np.nan))
+
+
+def _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, grid, lags, frame_s, unit, alpha,
+            stop_after, kinds_used, stimulus, method, ridge):
+    """Shuffle calibration, max-statistic, peak lag, polarity, overlap, SNR -> MapResult."""
+    ny, nx = grid.shape
+    C = cell_ids.size
+    L = lags.size
+    K = offsets.size
+    ku = list(kinds_used)
+    ok_cell = np.isfinite(sd) & (sd > 0) & (n_valid > lags[-1] + 2)
+    # calibration of the scale per cell and kind on the first shuffles (all cells)
+    n_cal = min(K, 20)
+    sumsq = np.zeros((3, C))
+    nsq = np.zeros((3, C))
+    null_max = np.full((K, C), np.nan)
+    cells = np.flatnonzero(ok_cell)
+    zcal = []
+    for k in range(n_cal):
+        if cells.size == 0:
+            break
+        zn = null_stats(cells, int(offsets[k]), X[:, cells])
+        fin = np.isfinite(zn)
+        sumsq[:, cells] += np.where(fin, zn.astype(np.float64) ** 2, 0).sum(axis=(2, 3))
+        nsq[:, cells] += fin.sum(axis=(2, 3))
+        zcal.append(zn)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        g = np.sqrt(sumsq / nsq)                                    # (3, C)
+    g[~np.isfinite(g) | (g <= 0)] = np.nan
+    z = (z_an / g[:, :, None, None]).astype(np.float32)            # (3, C, L, P)
+
+    def stat(zz):  # (3, Ca, L, P) -> (Ca,) max |z| over used kinds, lags, pixels
+        a = np.abs(zz[ku])
+        a = np.where(np.isfinite(a), a, -np.inf)
+        return a.max(axis=(0, 2, 3))
+
+    T = np.full(C, np.nan)
+    if cells.size:
+        T[cells] = stat(z[:, cells])
+    T[~np.isfinite(T)] = np.nan
+    exceed = np.zeros(C, dtype=int)
+    drawn = np.zeros(C, dtype=int)
+    for k, zn in enumerate(zcal):
+        m = stat(zn / g[:, cells][:, :, None, None])
+        null_max[k, cells] = m
+        exceed[cells] += m >= T[cells]
+        drawn[cells] += 1
+    active = cells.copy()
+    if stop_after > 0:
+        active = active[exceed[active] < stop_after]
+    Xa = X[:, active]
+    for k in range(n_cal, K):
+        if active.size == 0:
+            break
+        zn = null_stats(active, int(offsets[k]), Xa)
+        m = stat(zn / g[:, active][:, :, None, None])
+        null_max[k, active] = m
+        exceed[active] += m >= T[active]
+        drawn[active] += 1
+        if stop_after > 0:
+            keep = exceed[active] < stop_after
+            if not keep.all():
+                active = active[keep]
+                Xa = X[:, active]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        full = drawn == K
+        p = np.where(full, (1 + exceed) / (1 + K), exceed / np.maximum(drawn, 1))
+    p = np.where(ok_cell & np.isfinite(T), p, np.nan)
+    responsive = np.isfinite(p) & (p <= alpha)
+    zcrit = np.full(C, np.nan)
+    for c in cells:
+        v = null_max[:, c]
+        v = v[np.isfinite(v)]
+        if v.size:
+            zcrit[c] = np.quantile(v, 1 - alpha)
+
+    # peak lag, polarity, overlap, snr
+    absz = np.where(np.isfinite(z[ku]), np.abs(z[ku]), -np.inf)     # (k, C, L, P)
+    per_lag = absz.max(axis=(0, 3))                                  # (C, L)
+    best_lag = np.argmax(per_lag, axis=1)
+    peak_idx = np.where(responsive, best_lag, -1)
+    peak_s = np.where(responsive, lags[best_lag] * frame_s, np.nan)
+    polarity = np.full(C, "", dtype=object)
+    overlap = np.full(C, np.nan)
+    snr = np.full(C, np.nan)
+    for c in range(C):
+        li = best_lag[c]
+        zl = z[2, c, li]
+        if np.isfinite(zl).any():
+            snr[c] = float(np.nanmax(np.abs(zl)))
+        if not responsive[c] or stimulus != "sparse":
+            if responsive[c]:
+                j = int(np.nanargmax(np.abs(zl)))
+                polarity[c] = "ON-centre" if zl[j] > 0 else "OFF-centre"
+            continue
+        zon, zoff = z[0, c, li], z[1, c, li]
+        e_on = float(np.nanmax(zon)) if np.isfinite(zon).any() else -np.inf
+        e_off = float(np.nanmax(zoff)) if np.isfinite(zoff).any() else -np.inf
+        crit = zcrit[c]
+        if e_on >= crit and e_off >= crit and min(e_on, e_off) >= 0.5 * max(e_on, e_off):
+            polarity[c] = "mixed"
+        else:
+            j = int(np.nanargmax(np.abs(zl)))
+            polarity[c] = "ON-centre" if zl[j] > 0 else "OFF-centre"
+        a = np.nan_to_num(np.maximum(zon - 2.0, 0))
+        b = np.nan_to_num(np.maximum(zoff - 2.0, 0))
+        na, nb = np.linalg.norm(a), np.linalg.norm(b)
+        if na > 0 and nb > 0:
+            overlap[c] = float(a @ b / (na * nb))
+        elif na > 0 or nb > 0:
+            overlap[c] = 0.0
+
+    shape = (C, L, ny, nx)
+    return MapResult(
+        grid=grid, lags_s=lags * frame_s, lag_frames=lags, cell_ids=cell_ids, unit=unit, stimulus=stimulus,
+        on=maps[0].reshape(shape), off=maps[1].reshape(shape), linear=maps[2].reshape(shape),
+        on_z=z[0].reshape(shape), off_z=z[1].reshape(shape), linear_z=z[2].reshape(shape),
+        responsive=responsive, p_value=p, max_abs_z=T, z_critical=zcrit, peak_lag_index=peak_idx,
+        peak_lag_s=peak_s, polarity=np.asarray(polarity, dtype=str), onoff_overlap=overlap, snr=snr,
+        n_frames_used=n_valid.astype(int), frame_s=float(frame_s), n_shuffles=drawn,
+        null_scale=g.T.copy(), alpha=float(alpha), method=method, ridge_lambda=ridge)
+
+
+# ----------------------------------------------------------------------------------------------
+# dense noise
+# ----------------------------------------------------------------------------------------------
+def _as_frame_matrix(responses, n_frames):
+    R = np.asarray(responses, dtype=np.float32)
+    if R.ndim == 1:
+        R = R[None]
+    if R.ndim != 2 or R.shape[1] != n_frames:
+        raise ValueError(f"responses must be (cells, {n_frames}) frame responses, got {R.shape}")
+    return R
+
+
+def _stimulus_moments(frames, chunk=_CHUNK_FRAMES):
+    """Per-pixel mean and variance of real frames (F, ...), streamed over chunks."""
+    F = frames.shape[0]
+    P = int(np.prod(frames.shape[1:]))
+    s1 = np.zeros(P)
+    s2 = np.zeros(P)
+    for a in range(0, F, chunk):
+        blk = np.asarray(frames[a:a + chunk], dtype=np.float64).reshape(-1, P)
+        s1 += blk.sum(axis=0)
+        s2 += (blk ** 2).sum(axis=0)
+    mu = s1 / F
+    return mu, np.maximum(s2 / F - mu ** 2, 0.0)
+
+
+def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks=1, gram=False):
+    """Sums ``sum_t (s_t - mu) X[t + o]`` for every offset, streamed over chunks of frames.
+
+    Returns ``cross`` (n_blocks, O, P, C) summed within each contiguous time block (the frame of
+    the stimulus decides the block) and, if ``gram``, the per-block Gram matrices (n_blocks, P, P).
+    Non-circular offsets leave out frames with ``t + o >= F``.
+    """
+    F = frames.shape[0]
+    P = int(np.prod(frames.shape[1:]))
+    C = X.shape[1]
+    offsets = np.asarray(offsets, dtype=int)
+    O = offsets.size
+    edges = np.linspace(0, F, n_blocks + 1).astype(int)
+    cross = np.zeros((n_blocks, O, P, C), dtype=np.float64)
+    G = np.zeros((n_blocks, P, P)) if gram else None
+    for a in range(0, F, chunk):
+        b = min(F, a + chunk)
+        S = (np.asarray(frames[a:b], dtype=np.float64).reshape(-1, P) - mu).astype(np.float32)
+        t = np.arange(a, b)
+        blk = np.searchsorted(edges, t, side="right") - 1
+        for bi in np.unique(blk):
+            sel = blk == bi
+            Sb = S[sel]
+            tb = t[sel]
+            if gram:
+                G[bi] += Sb.T.astype(np.float64) @ Sb.astype(np.float64)
+            for oi, o in enumerate(offsets):
+                idx = tb + o
+                if circular:
+                    idx = idx % F
+                    cross[bi, oi] += Sb.T @ X[idx]
+                else:
+                    ok = idx < F
+                    if ok.any():
+                        cross[bi, oi] += Sb[ok].T @ X[idx[ok]]
+    return cross, G
+
+
+def dense_sta(responses, frames, lags, chunk: int = _CHUNK_FRAMES) -> np.ndarray:
+    """Plain spike-triggered average of real-valued noise, as a stimulus-response cross-covariance.
+
+    Parameters
+    ----------
+    responses : ndarray (cells, F)
+        Response of each cell in each frame (NaN = not valid, left out).
+    frames : array_like (F, ny, nx)
+        Real-valued stimulus (binary, Gaussian, ...); may be a memory-mapped array (read in chunks).
+    lags : sequence of int
+        Lags in frames (response in frame ``t + l`` after the stimulus in frame ``t``).
+    chunk : int
+        Frames read at a time.
+
+    Returns
+    -------
+    ndarray float32 (cells, L, ny, nx)
+        ``c_l(p) = (1/N_l) sum_t (s_t(p) - mean_p) (r_{t+l} - mean_r)``. For a linear cell
+        ``r = k . s + noise`` this is ``Sigma k`` with ``Sigma`` the stimulus covariance (derived:
+        ``E[s r] = E[s s^T] k``); the classical spike-triggered average (Chichilnisky 2001) is
+        ``c_l / mean_r`` added to the stimulus mean.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> s = rng.standard_normal((4000, 2, 3))
+    >>> r = 2.0 * s[:, 0, 1][None]          # responds at lag 0 to pixel (0, 1)
+    >>> c = dense_sta(r, s, [0, 1])
+    >>> bool(abs(c[0, 0, 0, 1] - 2.0) < 0.2 and abs(c[0, 1, 0, 1]) < 0.2)
+    True
+    """
+    F = frames.shape[0]
+    R = _as_frame_matrix(responses, F)
+    X, valid, _, _, _ = _center(R)
+    mu, _ = _stimulus_moments(frames, chunk)
+    lags = np.asarray(lags, dtype=int)
+    cross, _ = _dense_cross(frames, X, lags, mu, circular=False, chunk=chunk)
+    W = np.ascontiguousarray(valid.T, dtype=np.float32)
+    n = np.array([W[lag:].sum(axis=0) for lag in lags])              # (L, C) valid pairs
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = cross[0] / n[:, None, :]                                # (L, P, C)
+    return out.transpose(2, 0, 1).reshape((R.shape[0], lags.size) + tuple(frames.shape[1:])).astype(np.float32)
+
+
+def _ridge_cv(G_blocks, c_blocks, rr_blocks, lambdas):
+    """Cross-validated ridge over time blocks from sufficient statistics.
+
+    ``G_blocks`` (B, P, P), ``c_blocks`` (B, L, P, C) sums ``S^T r``, ``rr_blocks`` (B, L, C) sums ``r^T r``.
+    Returns the chosen penalty per cell (C,) and the test error (n_lambda, C).
+    The test error of fold b, ``|r_b - S_b k|^2 = rr_b - 2 k.c_b + k^T G_b k``, needs no frames.
+    """
+    nb = G_blocks.shape[0]
+    C = c_blocks.shape[-1]
+    err = np.zeros((lambdas.size, C))
+    Gt, ct = G_blocks.sum(0), c_blocks.sum(0)
+    for b in range(nb):
+        Gtr = Gt - G_blocks[b]
+        ctr = ct - c_blocks[b]
+        evals, V = np.linalg.eigh(Gtr)
+        evals = np.maximum(evals, 0)
+        cr = np.einsum("pq,lpc->lqc", V, ctr)                        # rotated training sums
+        Gte = V.T @ G_blocks[b] @ V
+        cte = np.einsum("pq,lpc->lqc", V, c_blocks[b])
+        for i, lam in enumerate(lambdas):
+            k = cr / (evals + lam)[None, :, None]                     # (L, P, C) in the eigenbasis
+            quad = np.einsum("lpc,pq,lqc->c", k, Gte, k)
+            err[i] += rr_blocks[b].sum(0) - 2 * np.einsum("lpc,lpc->c", k, cte) + quad
+    return lambdas[np.argmin(err, axis=0)], err
+
+
+def whitened_sta(responses, frames, lags, n_folds: int = 5, lambdas=None, chunk: int = _CHUNK_FRAMES,
+                 return_lambda: bool = False):
+    """Ridge-regularised whitened kernel estimate for correlated real-valued noise.
+
+    Solves ``(S^T S + lambda I) k_l = S^T r_l`` for every cell and lag, ``S`` the mean-subtracted
+    stimulus (frames x pixels) and ``r_l`` the centred response ``l`` frames later. The penalty is
+    chosen per cell from a log-spaced grid by ``n_folds``-fold cross-validation over contiguous
+    blocks of time (the summed squared prediction error over all lags), computed from per-block
+    sufficient statistics so the frames are read once, in chunks.
+
+    Parameters
+    ----------
+    responses : ndarray (cells, F)
+    frames : array_like (F, ny, nx)
+    lags : sequence of int
+    n_folds : int
+    lambdas : array_like, optional
+        Candidate penalties; by default ``mean eigenvalue of S^T S x logspace(-4, 2, 25)``.
+    chunk : int
+    return_lambda : bool
+        Also return the chosen penalty per cell.
+
+    Returns
+    -------
+    ndarray float32 (cells, L, ny, nx)
+        The kernel in response units per unit of stimulus (for white noise it equals
+        ``dense_sta / variance``). With ``return_lambda``, ``(kernel, lambda (cells,))``.
+
+    References
+    ----------
+    Theunissen FE et al. (2001) Network 12:289-316; Hastie T, Tibshirani R, Friedman J (2009) The
+    Elements of Statistical Learning, 2nd ed., sections 3.4.1 (ridge) and 7.10 (cross-validation).
+    """
+    F = frames.shape[0]
+    R = _as_frame_matrix(responses, F)
+    lags = np.asarray(lags, dtype=int)
+    X, _, _, _, _ = _center(R)
+    mu, _ = _stimulus_moments(frames, chunk)
+    k, lam = _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk)
+    out = k.transpose(2, 0, 1).reshape((R.shape[0], lags.size) + tuple(frames.shape[1:])).astype(np.float32)
+    return (out, lam) if return_lambda else out
+
+
+def _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk):
+    """-> kernel (L, P, C) and chosen lambda (C,); also stashes the operator pieces on the function."""
+    F = frames.shape[0]
+    n_folds = int(max(2, min(n_folds, F // 20 if F >= 40 else 2)))
+    cross, G = _dense_cross(frames, X, lags, mu, circular=False, chunk=chunk, n_blocks=n_folds, gram=True)
+    edges = np.linspace(0, F, n_folds + 1).astype(int)
+    X64 = X.astype(np.float64)
+    rr = np.zeros((n_folds, lags.size, X.shape[1]))
+    for b in range(n_folds):
+        for li, lag in enumerate(lags):
+            a, e = edges[b] + lag, min(edges[b + 1] + lag, F)
+            rr[b, li] = (X64[a:e] ** 2).sum(0)
+    Gt = G.sum(0)
+    P = Gt.shape[0]
+    if lambdas is None:
+        lambdas = np.trace(Gt) / P * np.logspace(-4, 2, 25)
+    lambdas = np.asarray(lambdas, dtype=float)
+    lam, _ = _ridge_cv(G, cross, rr, lambdas)
+    evals, V = np.linalg.eigh(Gt)
+    evals = np.maximum(evals, 0)
+    ct = np.einsum("pq,lpc->lqc", V, cross.sum(0))
+    k = np.einsum("pq,lqc->lpc", V, ct / (evals[:, None] + lam[None, :])[None])
+    return k, lam
+
+
+def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift, stop_after,
+                   dense_method, n_folds):
+    frames = noise.frames
+    F = frames.shape[0]
+    C = R.shape[0]
+    L = lags.size
+    ny, nx = noise.grid.shape
+    P = ny * nx
+    X, valid, mean, sd, n_valid = _center(R)
+    mu, var = _stimulus_moments(frames)
+    if dense_method not in ("auto", "sta", "whitened"):
+        raise ValueError(f"dense_method must be 'auto', 'sta' or 'whitened', got {dense_method!r}")
+    cross0, G = _dense_cross(frames, X, [0], mu, circular=True, n_blocks=1, gram=True)
+    G = G[0]
+    if dense_method == "auto":
+        with np.errstate(invalid="ignore", divide="ignore"):
+            d = np.sqrt(np.diag(G))
+            corr = G / np.outer(d, d)
+        off = np.abs(corr[~np.eye(P, dtype=bool)])
+        method = "whitened" if off.size and np.nanmax(off) > 0.05 + 5 / np.sqrt(F) else "sta"
+    else:
+        method = dense_method
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if method == "sta":
+            cross, _ = _dense_cross(frames, X, lags, mu, circular=False)
+            npair = np.array([float(F - lag) for lag in lags])
+            lin = cross[0] / npair[:, None, None] / var[None, :, None]     # (L, P, C)
+            op_sd = 1.0 / np.sqrt(var)                                      # per unit s / sqrt(N)
+            ridge = np.full(C, np.nan)
+
+            def apply(c_sums, active):                                      # (P, Ca) -> (P, Ca)
+                return c_sums / F / var[:, None]
+        else:
+            k, lam = _whitened_core(frames, X, lags, mu, n_folds, None, _CHUNK_FRAMES)
+            lin = k
+            ridge = lam
+            evals, V = np.linalg.eigh(G)
+            evals = np.maximum(evals, 0)
+            # null covariance of k = M G M^T s^2 with M = V diag(1/(e + lam)) V^T
+            op_var = np.einsum("pq,qc->pc", V ** 2, evals[:, None] / (evals[:, None] + lam[None, :]) ** 2)
+            op_sd = np.sqrt(op_var)                                         # (P, C), times s
+
+            def apply(c_sums, active):
+                ct = V.T @ c_sums
+                return V @ (ct / (evals[:, None] + lam[None, active]))
+        if method == "sta":
+            a_sd = sd[None, :] * op_sd[:, None] / np.sqrt(F)               # (P, C)
+        else:
+            a_sd = sd[None, :] * op_sd
+        a_sd = np.where(a_sd > 0, a_sd, np.nan)
+        z_lin = lin / a_sd[None]                                            # (L, P, C)
+    maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
+    z_an = np.full((3, C, L, P), np.nan)
+    maps[2] = lin.transpose(2, 0, 1)
+    z_an[2] = z_lin.transpose(2, 0, 1)
+
+    def null_stats(active, offset, Xa):
+        crs, _ = _dense_cross(frames, Xa, offset + lags, mu, circular=True)
+        out = np.full((3, active.size, L, P), np.nan, dtype=np.float32)
+        for li in range(L):
+            kk = apply(crs[0, li], active)                                  # (P, Ca)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                out[2, :, li] = (kk / a_sd[:, active]).T
+        return out
+
+    offsets = _shift_offsets(F, K, L, min_shift, rng)
+    return _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
+                   unit, alpha, stop_after, kinds_used=(2,), stimulus="dense", method=method, ridge=ridge)
+
+
+# ----------------------------------------------------------------------------------------------
+# centre of the map (placeholder until a model fit gives the envelope centre)
+# ----------------------------------------------------------------------------------------------
+def map_centroid_deg(result: MapResult, cell_index: int, threshold_z: float | None = None):
+    """Centre of the significant region around the peak pixel, in degrees ``(x, y)``.
+
+    At the peak lag, the map kind holding the largest ``|z|`` is taken; the region is the connected
+    set of pixels (8-neighbourhood) around the peak pixel whose z has the peak's sign and
+    ``|z| >= max(threshold_z, |z_peak| / 2)`` (``threshold_z`` defaults to 2); the centre is the
+    centroid of the map values (response units, absolute) over that region, converted to degrees
+    with the grid (row 0 at the top). NaN for a cell that is not responsive.
+
+    This is a model-free stand-in: the analysis pipeline replaces it with the centre of the fitted
+    model's envelope when a fit exists.
+    """
+    if threshold_z is None:
+        threshold_z = 2.0
+    li = int(result.peak_lag_index[cell_index])
+    if li < 0:
+        return float("nan"), float("nan")
+    kinds = [k for k in KINDS if np.isfinite(result.zmaps(k)[cell_index, li]).any()]
+    peaks = [np.nanmax(np.abs(result.zmaps(k)[cell_index, li])) for k in kinds]
+    kind = kinds[int(np.argmax(peaks))]
+    z = result.zmaps(kind)[cell_index, li].astype(float)
+    m = result.maps(kind)[cell_index, li].astype(float)
+    zz = np.nan_to_num(z)
+    i, j = np.unravel_index(int(np.argmax(np.abs(zz))), zz.shape)
+    sign = np.sign(zz[i, j])
+    thr = max(threshold_z, abs(zz[i, j]) / 2)
+    mask = sign * zz >= thr
+    lab, _ = ndimage.label(mask, structure=np.ones((3, 3), bool))
+    region = lab == lab[i, j]
+    w = np.where(region, np.abs(np.nan_to_num(m)), 0.0)
+    if w.sum() <= 0:
+        w = region.astype(float)
+    rows, cols = np.indices(z.shape)
+    r = float((w * rows).sum() / w.sum())
+    c = float((w * cols).sum() / w.sum())
+    x, y = result.grid.point_of(r, c)
+    return float(x), float(y)
