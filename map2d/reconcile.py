@@ -406,7 +406,8 @@ def size_tuning(maps, grid: Grid, center_xy_deg, radii_deg, supersample=8):
     maps : array_like, shape (ny, nx) or (C, ny, nx)
     grid : Grid
     center_xy_deg : (float, float) or array_like, shape (C, 2)
-        Centre of the disks, one for all maps or one per map.
+        Centre of the disks, one for all maps or one per map. A NaN centre gives NaN responses, and
+        so does a NaN pixel inside a disk.
     radii_deg : array_like, shape (R,)
         Radii, >= 0.
     supersample : int
@@ -445,6 +446,8 @@ def size_tuning(maps, grid: Grid, center_xy_deg, radii_deg, supersample=8):
     area = grid.dx_deg * grid.dy_deg / n_sub**2
     disk = np.full((n_c, radii.size), np.nan)
     for c in range(n_c):  # one centre per cell: a small loop over cells, vectorised over pixels
+        if not np.all(np.isfinite(centre[c])):
+            continue                                   # no centre (e.g. no fit): responses NaN
         d2 = (sx[None, :] - centre[c, 0]) ** 2 + (sy[:, None] - centre[c, 1]) ** 2   # (ny n, nx n)
         sub = np.repeat(np.repeat(m3[c], n_sub, axis=0), n_sub, axis=1) * area
         order = np.argsort(d2, axis=None)

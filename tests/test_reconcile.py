@@ -317,6 +317,9 @@ def test_centre_surround_map_prefers_a_small_disk():
     shifted = dog2d(x, y, -1.3, 0.6, 1.0, 1.0, 0.08, 3.0)
     d2, _ = size_tuning(np.stack([on, shifted]), grid, [(0.7, -0.4), (-1.3, 0.6)], radii[:10])
     assert np.allclose(d2[0], d2[1], rtol=0.02)
+    # no centre (unresponsive cell, no fit): empty, not invented
+    d3, a3 = size_tuning(np.stack([on, on]), grid, [(0.7, -0.4), (np.nan, np.nan)], radii[:3])
+    assert np.all(np.isfinite(d3[0])) and np.all(np.isnan(d3[1])) and np.all(np.isnan(a3[1]))
     with pytest.raises(ValueError, match="radii"):
         size_tuning(on, grid, (0, 0), [-1.0])
 
