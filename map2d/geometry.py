@@ -128,8 +128,9 @@ def wave_vector(orientation_deg, sf_cpd):
 
     Examples
     --------
-    >>> wave_vector(90.0, 0.5)
-    (array(3.061617e-17), array(0.5))
+    >>> kx, ky = wave_vector(90.0, 0.5)
+    >>> round(float(kx), 12), float(ky)
+    (0.0, 0.5)
     """
     th = np.deg2rad(np.asarray(orientation_deg, float))
     sf = np.asarray(sf_cpd, float)
