@@ -178,9 +178,21 @@ def test_model_choice_gabor_vs_centre_surround():
     assert fg.model == "gabor" and set(fg.aic) == {"gaussian", "dog", "gabor"}
     assert fg.aic["gabor"] < min(fg.aic["gaussian"], fg.aic["dog"])
     assert fd.model in ("dog", "gaussian") and fd.model == "dog"   # the surround is strong here
-    assert fit_map(dog, BIG, SD, criterion="bic").model == "dog"
+    assert fd.criterion == "bic" and fit_map(dog, BIG, SD, criterion="aic").model == "dog"
+    # BIC - AIC = k (ln n - 2) with k = 8 Gabor parameters (Akaike 1974; Schwarz 1978)
+    assert np.isclose(fg.bic["gabor"] - fg.aic["gabor"], 8 * (np.log(fg.n_pixels) - 2))
     # without a known noise sd the criterion still chooses well
     assert fit_map(gab, BIG).model == "gabor"
+
+
+def test_plain_gaussian_field_is_not_called_a_gabor():
+    # the Gabor contains the Gaussian as its zero-frequency limit; the default criterion (BIC,
+    # Schwarz 1978) should not spend two extra parameters on noise
+    X, Y = BIG.mesh_deg()
+    clean = gaussian2d(X, Y, 2.0, -1.0, 4.5, 2.5, 75.0, 1.0)
+    rng = np.random.default_rng(11)
+    chosen = [fit_map(noisy(clean, rng, 0.1), BIG, 0.1).model for _ in range(6)]
+    assert "gabor" not in chosen, chosen
 
 
 # --- confidence intervals ------------------------------------------------------------------------
