@@ -1,0 +1,233 @@
+"""The whole job as one library call: maps, fits, gratings, tuning, reconciliation.
+
+:func:`analyze_session` runs every stage the session's data allow, in the order of the data flow
+(align -> maps / gratings -> fits -> reconcile), and returns an :class:`Analysis` holding every
+intermediate result plus the ``cells.csv`` table. It reads no files and writes none:
+:func:`map2d.pipeline.run_analyze` does that.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .contract import Session
+
+__all__ = ["Analysis", "analyze_session", "CONTRACT_COLUMNS"]
+
+#: The columns the results contract requires, first and in this order.
+CONTRACT_COLUMNS = ("cell", "responsive", "center_x_deg", "center_y_deg", "peak_lag_s",
+                    "pref_orientation_deg", "pref_sf_cpd", "f1_f0", "agreement", "linear")
+
+
+@dataclass
+class Analysis:
+    """Everything :func:`analyze_session` computed for one session.
+
+    Attributes
+    ----------
+    session_name : str
+    cell_ids : ndarray (C,)  sorted, the row order of ``cells``
+    unit : str  response unit
+    maps : map2d.maps.MapResult or None  (None without sparse noise)
+    fits : list of map2d.fit.spatial.SpatialFit or None, per cell (None for a cell not fitted)
+    peak_maps : ndarray (C, ny, nx) or None  the linear map at each cell's peak lag (NaN when not responsive)
+    flashed : map2d.gratings.FlashedResult or None
+    drifting : map2d.gratings.DriftingResult or None
+    predicted_h : ndarray complex (C, O, S) or None  forward prediction of the flashed surface from the map
+    measured_h : ndarray complex (C, O, S) or None  measured first harmonic at the grating peak lag
+    forward : dict of arrays or None  :func:`map2d.reconcile.forward_agreement` output
+    inverse : map2d.reconcile.InverseComparison or None
+    size_radii_deg : ndarray (R,) or None ; size_disk, size_annulus : ndarray (C, R) or None
+    cells : dict of column name -> list/array  the ``cells.csv`` table (contract columns first)
+    notes : list of str  what was skipped and why
+    """
+
+    session_name: str
+    cell_ids: np.ndarray
+    unit: str
+    phase_origin_deg: tuple | None = None
+    maps: object | None = None
+    fits: list | None = None
+    peak_maps: np.ndarray | None = None
+    flashed: object | None = None
+    drifting: object | None = None
+    predicted_h: np.ndarray | None = None
+    measured_h: np.ndarray | None = None
+    forward: dict | None = None
+    inverse: object | None = None
+    size_radii_deg: np.ndarray | None = None
+    size_disk: np.ndarray | None = None
+    size_annulus: np.ndarray | None = None
+    cells: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
+
+    @property
+    def grid(self):
+        return None if self.maps is None else self.maps.grid
+
+    def row_of(self, cell_id) -> int:
+        return int(np.searchsorted(self.cell_ids, cell_id))
+
+
+def _peak_maps(maps):
+    """Linear map at each cell's peak lag (NaN for cells without one) and its noise sd per cell."""
+    C = maps.n_cells
+    ny, nx = maps.grid.shape
+    peak = np.full((C, ny, nx), np.nan)
+    noise_sd = np.full(C, np.nan)
+    for c in np.flatnonzero(maps.peak_lag_index >= 0):
+        li = int(maps.peak_lag_index[c])
+        m = maps.linear[c, li].astype(float)
+        z = maps.linear_z[c, li].astype(float)
+        peak[c] = m
+        ok = np.isfinite(m) & np.isfinite(z) & (np.abs(z) > 1e-6)
+        if ok.any():
+            noise_sd[c] = float(np.median(np.abs(m[ok] / z[ok])))
+    return peak, noise_sd
+
+
+def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
+                    n_shuffles: int = 200, alpha: float = 0.01, size_radii_deg=None,
+                    progress=None) -> Analysis:
+    """Run every stage the session's data allow.
+
+    Parameters
+    ----------
+    session : Session
+        A loaded session (:func:`map2d.contract.load_session`).
+    max_lag_s : float
+        Longest lag for sparse noise and flashed gratings.
+    rng : numpy.random.Generator or int, optional
+        Seed for the shuffle tests (same seed, same results).
+    n_jobs : int, optional
+        Worker processes for the model fits (default: chosen by :func:`map2d.fit.spatial.fit_maps`).
+    n_shuffles, alpha : int, float
+        Shuffle count and family-wise level of the ``responsive`` calls.
+    size_radii_deg : array_like, optional
+        Disk radii for the predicted size tuning (default: 8 radii up to half the grid's width).
+    progress : callable, optional
+        Called with a short stage name as each stage starts (for progress bars).
+
+    Returns
+    -------
+    Analysis
+    """
+    from . import reconcile
+    from .fit.spatial import fit_map, fit_maps
+    from .fit.tuning import TUNING_COLUMNS, grating_tuning_columns
+    from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
+    from .maps import compute_maps
+
+    rng = np.random.default_rng(rng)
+    step = progress or (lambda name: None)
+    ids = np.asarray(session.cell_ids)
+    C = ids.size
+    an = Analysis(session_name=session.name, cell_ids=ids, unit=session.responses.unit)
+    nan = np.full(C, np.nan)
+
+    # -- sparse noise: maps, significance, fits ----------------------------------------------------
+    fit_cols = None
+    if session.sparse_noise is not None:
+        step("maps")
+        an.maps = compute_maps(session.responses, session.sparse_noise, max_lag_s=max_lag_s,
+                               n_shuffles=n_shuffles, alpha=alpha, rng=rng)
+        an.peak_maps, noise_sd = _peak_maps(an.maps)
+        step("fits")
+        resp = np.asarray(an.maps.responsive, bool)
+        fit_cols = fit_maps(np.nan_to_num(an.peak_maps), an.maps.grid, resp,
+                            noise_sd=np.where(np.isfinite(noise_sd), noise_sd, 1.0), n_jobs=n_jobs)
+    else:
+        an.notes.append("no sparse noise: no maps, no fits, no reconciliation")
+
+    # -- gratings ------------------------------------------------------------------------------------
+    g = session.gratings
+    if g is not None:
+        an.phase_origin_deg = tuple(g.phase_origin_deg)
+        if has_flashed(g):
+            step("flashed gratings")
+            an.flashed = analyze_flashed(session.responses, g, max_lag_s=max_lag_s, rng=rng, alpha=alpha)
+        if has_drifting(g):
+            step("drifting gratings")
+            an.drifting = analyze_drifting(session.responses, g, alpha=alpha)
+    else:
+        an.notes.append("no gratings: no tuning, no reconciliation")
+    tuning = None
+    if an.flashed is not None or an.drifting is not None:
+        step("tuning")
+        tuning = grating_tuning_columns(an.flashed, an.drifting, cell_ids=ids)
+
+    # -- reconciliation --------------------------------------------------------------------------------
+    agreement = nan.copy()
+    if an.maps is not None and an.flashed is not None:
+        step("reconcile")
+        fl = an.flashed
+        grid = an.maps.grid
+        origin = an.phase_origin_deg
+        an.predicted_h = reconcile.predict_gratings(np.nan_to_num(an.peak_maps), grid, fl.orientations_deg,
+                                                    fl.sfs_cpd, origin)
+        an.measured_h = fl.harmonic_at_peak
+        pred = np.where(an.maps.responsive[:, None, None], an.predicted_h, np.nan)
+        an.forward = reconcile.forward_agreement(pred, an.measured_h)
+        agreement = np.asarray(an.forward["agreement"], float)
+        if len(fl.orientations_deg) > 1 and len(fl.sfs_cpd) > 1:
+            an.inverse = reconcile.inverse_comparison(an.measured_h, np.nan_to_num(an.peak_maps), grid,
+                                                      fl.orientations_deg, fl.sfs_cpd, origin)
+    elif an.maps is not None:
+        an.notes.append("no flashed gratings: agreement left empty")
+    if an.maps is not None:
+        grid = an.maps.grid
+        if size_radii_deg is None:
+            half = 0.5 * min(grid.nx * grid.dx_deg, grid.ny * grid.dy_deg)
+            size_radii_deg = np.linspace(half / 8, half, 8)
+        an.size_radii_deg = np.asarray(size_radii_deg, float)
+        centres = np.column_stack([fit_cols["center_x_deg"], fit_cols["center_y_deg"]]).astype(float)
+        an.size_disk, an.size_annulus = reconcile.size_tuning(np.nan_to_num(an.peak_maps), grid, centres,
+                                                              an.size_radii_deg)
+
+    # -- the table ---------------------------------------------------------------------------------------
+    step("table")
+    cells: dict = {"cell": ids.tolist()}
+    if an.maps is not None:
+        m = an.maps
+        cells["responsive"] = [bool(v) for v in m.responsive]
+        cells["center_x_deg"] = list(np.asarray(fit_cols["center_x_deg"], float))
+        cells["center_y_deg"] = list(np.asarray(fit_cols["center_y_deg"], float))
+        cells["peak_lag_s"] = list(m.peak_lag_s)
+    else:
+        for k in ("responsive", "center_x_deg", "center_y_deg", "peak_lag_s"):
+            cells[k] = [None] * C
+    tun = tuning or {}
+    for k in ("pref_orientation_deg", "pref_sf_cpd", "f1_f0"):
+        cells[k] = list(tun.get(k, [None] * C))
+    cells["agreement"] = list(agreement)
+    f1f0 = np.asarray([np.nan if v is None else v for v in cells["f1_f0"]], float)
+    overlap = None if an.maps is None else np.asarray(an.maps.onoff_overlap, float)
+    responsive = None if an.maps is None else np.asarray(an.maps.responsive, bool)
+    # criteria that are missing (no map, no gratings) are skipped or leave the call empty
+    linear, reason = reconcile.linearity_call(agreement, f1f0, overlap, responsive)
+    cells["linear"] = list(linear)
+    cells["linear_reason"] = list(reason)
+    # -- extra columns ----------------------------------------------------------------------------------
+    if an.maps is not None:
+        m = an.maps
+        cells["p_value"] = list(m.p_value)
+        cells["polarity"] = list(m.polarity)
+        cells["onoff_overlap"] = list(m.onoff_overlap)
+        cells["snr"] = list(m.snr)
+        for k, v in fit_cols.items():
+            if k not in cells:
+                cells[k] = list(v)
+    if an.forward is not None:
+        cells["magnitude_agreement"] = list(an.forward["magnitude_agreement"])
+        cells["phase_error_deg"] = list(an.forward["phase_error_deg"])
+        cells["agreement_gain"] = list(an.forward["gain"])
+    if an.inverse is not None:
+        cells["inverse_similarity"] = list(np.where(np.asarray(responsive, bool), an.inverse.similarity, np.nan))
+    if tuning is not None:
+        for k in TUNING_COLUMNS:
+            if k not in cells:
+                cells[k] = list(tuning[k])
+    an.cells = cells
+    return an
