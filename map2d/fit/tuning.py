@@ -1,0 +1,598 @@
+"""Orientation, direction and spatial-frequency tuning: fits, selectivity indices, cells.csv columns.
+
+Models
+------
+- Orientation: von Mises on the doubled angle, ``b + a exp(kappa (cos 2(theta - theta0) - 1))``;
+  ``theta0`` is the preferred orientation in the contract's wave-vector convention, modulo 180.
+- Direction: two von Mises peaks 180 deg apart with one width,
+  ``b + a1 exp(kappa (cos(theta - theta0) - 1)) + a2 exp(kappa (cos(theta - theta0 - 180) - 1))``.
+- Spatial frequency: log-Gaussian, ``b + a exp(-(log2(f / f0))^2 / (2 sigma^2))`` (full bandwidth at
+  half height above ``b`` is ``2 sqrt(2 ln 2) sigma`` octaves), or a Gaussian in linear SF (the
+  spectrum of a Gabor), whichever fits better; ``sf_fit_width`` is ``sigma`` in octaves or in cpd.
+
+Fits use :func:`scipy.optimize.least_squares` from several starts; 95 % confidence intervals come from
+the covariance ``s^2 (J^T J)^-1`` (``s^2`` the residual variance) with Student-t quantiles. A quantity
+that the data cannot give (too few points, a failed fit, a peak outside the tested range) is NaN.
+
+Selectivity: circular variance ``CV = 1 - |sum r exp(2 i theta)| / sum r`` and
+``OSI = (R_pref - R_orth) / (R_pref + R_orth)`` (Ringach, Shapley & Hawken 2002); negative responses
+(below the blank or spontaneous level) are set to 0 first (common practice).
+
+References
+----------
+Ringach DL, Shapley RM, Hawken MJ (2002) Orientation selectivity in macaque V1: diversity and laminar
+dependence. J Neurosci 22:5639-5651.
+Skottun BC et al. (1991) Classifying simple and complex cells on the basis of response modulation.
+Vision Res 31:1079-1086.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import optimize, stats
+
+__all__ = [
+    "von_mises_orientation", "von_mises_direction", "log_gaussian_sf", "gaussian_sf",
+    "OrientationFit", "SFFit", "DirectionFit",
+    "fit_orientation", "fit_direction", "fit_sf",
+    "circular_variance", "osi", "f1_f0", "grating_tuning_columns", "TUNING_COLUMNS",
+]
+
+_LN2 = np.log(2.0)
+
+
+# ----------------------------------------------------------------------------------------------
+# models
+# ----------------------------------------------------------------------------------------------
+def von_mises_orientation(theta_deg, b, a, kappa, theta0_deg):
+    """``b + a exp(kappa (cos 2(theta - theta0) - 1))``; peak ``b + a`` at ``theta0`` (mod 180).
+
+    Examples
+    --------
+    >>> float(von_mises_orientation(190.0, 1.0, 2.0, 3.0, 10.0))
+    3.0
+    """
+    d = np.deg2rad(np.asarray(theta_deg, float) - theta0_deg)
+    return b + a * np.exp(kappa * (np.cos(2 * d) - 1.0))
+
+
+def von_mises_direction(theta_deg, b, a1, a2, kappa, theta0_deg):
+    """Two-peaked von Mises: ``a1`` at ``theta0``, ``a2`` at ``theta0 + 180``, common width."""
+    d = np.deg2rad(np.asarray(theta_deg, float) - theta0_deg)
+    return (b + a1 * np.exp(kappa * (np.cos(d) - 1.0))
+            + a2 * np.exp(kappa * (np.cos(d - np.pi) - 1.0)))
+
+
+def log_gaussian_sf(sf_cpd, b, a, log2_f0, sigma_oct):
+    """``b + a exp(-(log2 f - log2 f0)^2 / (2 sigma^2))``.
+
+    Examples
+    --------
+    >>> float(log_gaussian_sf(0.2, 0.0, 1.0, np.log2(0.1), 1.0))
+    0.6065306597126334
+    """
+    z = (np.log2(np.asarray(sf_cpd, float)) - log2_f0) / sigma_oct
+    return b + a * np.exp(-0.5 * z * z)
+
+
+# ----------------------------------------------------------------------------------------------
+# selectivity indices
+# ----------------------------------------------------------------------------------------------
+def circular_variance(theta_deg, r):
+    """Circular variance of an orientation tuning curve and the vector-average preference.
+
+    Parameters
+    ----------
+    theta_deg : array_like
+        Orientations (any range; ``theta`` and ``theta + 180`` are the same orientation).
+    r : array_like
+        Responses; negative values are set to 0, NaN entries are left out.
+
+    Returns
+    -------
+    cv : float
+        ``1 - |sum r exp(2 i theta)| / sum r`` (Ringach, Shapley & Hawken 2002): 0 for a response
+        at one orientation only, 1 for flat tuning; NaN when all responses are 0.
+    pref_deg : float
+        ``arg(sum r exp(2 i theta)) / 2`` in ``[0, 180)``; NaN when undefined.
+
+    Examples
+    --------
+    >>> cv, pref = circular_variance([0, 45, 90, 135], [1, 2, 1, 0])
+    >>> round(cv, 6), round(pref, 6)
+    (0.5, 45.0)
+    """
+    th = np.deg2rad(np.asarray(theta_deg, float))
+    r = np.asarray(r, float)
+    ok = np.isfinite(r) & np.isfinite(th)
+    rr = np.maximum(r[ok], 0.0)
+    tot = rr.sum()
+    if not tot > 0:
+        return float("nan"), float("nan")
+    z = np.sum(rr * np.exp(2j * th[ok]))
+    cv = 1.0 - abs(z) / tot
+    pref = float(np.mod(np.degrees(np.angle(z)) / 2.0, 180.0)) if abs(z) > 1e-12 * tot else float("nan")
+    return float(min(max(cv, 0.0), 1.0)), pref
+
+
+def osi(theta_deg, r):
+    """Orientation selectivity index ``(R_pref - R_orth) / (R_pref + R_orth)`` from sampled responses.
+
+    ``R_pref`` is the largest response, ``R_orth`` the response at the sampled orientation nearest
+    to ``pref + 90`` (modulo 180). Negative responses are set to 0 (Ringach, Shapley & Hawken 2002).
+
+    Examples
+    --------
+    >>> osi([0, 45, 90, 135], [4, 2, 1, 2])
+    0.6
+    """
+    th = np.mod(np.asarray(theta_deg, float), 180.0)
+    r = np.maximum(np.asarray(r, float), 0.0)
+    ok = np.isfinite(r)
+    if ok.sum() < 2:
+        return float("nan")
+    th, r = th[ok], r[ok]
+    i = int(np.argmax(r))
+    dist = np.abs(np.mod(th - th[i] - 90.0 + 90.0, 180.0) - 90.0)  # distance to pref + 90, mod 180
+    j = int(np.argmin(dist))
+    if dist[j] > 22.5 or r[i] <= 0:
+        return float("nan")
+    return float((r[i] - r[j]) / (r[i] + r[j]))
+
+
+def f1_f0(f0, f1):
+    """Modulation ratio ``|F1| / F0``; NaN where ``F0 <= 0`` (Skottun et al. 1991: > 1 is simple).
+
+    Examples
+    --------
+    >>> f1_f0([1.0, 0.0], [2.0, 1.0]).tolist()
+    [2.0, nan]
+    """
+    f0 = np.asarray(f0, float)
+    f1 = np.abs(np.asarray(f1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(f0 > 0, f1 / np.where(f0 > 0, f0, 1.0), np.nan)
+
+
+# ----------------------------------------------------------------------------------------------
+# fits
+# ----------------------------------------------------------------------------------------------
+@dataclass
+class _Fit:
+    params: np.ndarray = field(default_factory=lambda: np.full(0, np.nan))
+    cov: np.ndarray = field(default_factory=lambda: np.full((0, 0), np.nan))
+    r2: float = float("nan")
+    ok: bool = False
+
+
+def _least_squares(model, x, y, starts, lower, upper):
+    """Best of several bounded least-squares fits; covariance from the Jacobian."""
+    best = None
+    for p0 in starts:
+        p0 = np.clip(np.asarray(p0, float), np.asarray(lower) + 1e-9, np.asarray(upper) - 1e-9)
+        try:
+            res = optimize.least_squares(lambda p: model(x, *p) - y, p0, bounds=(lower, upper),
+                                         method="trf", max_nfev=2000)
+        except (ValueError, np.linalg.LinAlgError):
+            continue
+        if best is None or res.cost < best.cost:
+            best = res
+    fit = _Fit(params=np.full(len(lower), np.nan), cov=np.full((len(lower),) * 2, np.nan))
+    if best is None or not np.all(np.isfinite(best.x)):
+        return fit
+    p = best.x
+    resid = best.fun
+    n, k = y.size, p.size
+    ss_res = float(resid @ resid)
+    ss_tot = float(np.sum((y - y.mean()) ** 2))
+    fit.params = p
+    fit.r2 = 1.0 - ss_res / ss_tot if ss_tot > 0 else float("nan")
+    fit.ok = True
+    if n > k:
+        jac = best.jac
+        try:
+            fit.cov = np.linalg.pinv(jac.T @ jac) * ss_res / (n - k)
+        except np.linalg.LinAlgError:
+            pass
+    return fit
+
+
+def _t95(dof):
+    return float(stats.t.ppf(0.975, dof)) if dof > 0 else float("nan")
+
+
+@dataclass
+class OrientationFit:
+    """Von Mises fit of an orientation tuning curve.
+
+    ``pref_deg`` in ``[0, 180)``, ``pref_ci95_deg`` the half-width of its 95 % interval,
+    ``hwhh_deg`` the half-width at half height above the baseline (NaN when the curve never falls to
+    half height, ``kappa < ln 2 / 2``), ``params`` = ``(b, a, kappa, theta0)``.
+    """
+
+    pref_deg: float
+    pref_ci95_deg: float
+    hwhh_deg: float
+    hwhh_ci95_deg: float
+    params: np.ndarray
+    r2: float
+    ok: bool
+
+
+def _hwhh_deg(kappa):
+    c = 1.0 - _LN2 / kappa if kappa > 0 else -np.inf
+    if c < -1.0:
+        return float("nan")
+    return float(np.degrees(0.5 * np.arccos(c)))
+
+
+def fit_orientation(theta_deg, r) -> OrientationFit:
+    """Fit :func:`von_mises_orientation` to responses at orientations ``theta_deg`` (any range).
+
+    Needs at least 5 finite points and a positive peak; the amplitude is constrained >= 0.
+
+    Examples
+    --------
+    >>> th = np.arange(0, 180, 15.0)
+    >>> f = fit_orientation(th, von_mises_orientation(th, 1.0, 5.0, 2.0, 40.0))
+    >>> round(f.pref_deg, 3), round(f.hwhh_deg, 2)
+    (40.0, 24.6)
+    """
+    th = np.mod(np.asarray(theta_deg, float), 180.0)
+    y = np.asarray(r, float)
+    ok = np.isfinite(th) & np.isfinite(y)
+    th, y = th[ok], y[ok]
+    nan = float("nan")
+    empty = OrientationFit(nan, nan, nan, nan, np.full(4, nan), nan, False)
+    if th.size < 5 or np.ptp(y) <= 0:
+        return empty
+    _, pref0 = circular_variance(th, y - y.min())
+    if not np.isfinite(pref0):
+        pref0 = float(th[np.argmax(y)])
+    b0, a0 = float(y.min()), float(np.ptp(y))
+    span = max(abs(float(y.max())), abs(float(y.min())), a0)
+    lower = [-10 * span - 1e-9, 0.0, 1e-3, pref0 - 180.0]
+    upper = [10 * span + 1e-9, 20 * span + 1e-9, 50.0, pref0 + 180.0]
+    starts = [[b0, a0, k, t] for k in (0.7, 2.0, 6.0) for t in (pref0, float(th[np.argmax(y)]))]
+    fit = _least_squares(von_mises_orientation, th, y, starts, lower, upper)
+    if not fit.ok or not fit.params[1] > 0:
+        return empty
+    b, a, kappa, t0 = fit.params
+    t95 = _t95(th.size - 4)
+    se_t0 = np.sqrt(fit.cov[3, 3]) if np.isfinite(fit.cov[3, 3]) else nan
+    se_k = np.sqrt(fit.cov[2, 2]) if np.isfinite(fit.cov[2, 2]) else nan
+    hw = _hwhh_deg(kappa)
+    # delta method for the HWHH: d/dkappa of 0.5 arccos(1 - ln2 / kappa)
+    c = 1.0 - _LN2 / kappa
+    with np.errstate(invalid="ignore", divide="ignore"):
+        dhw = np.degrees(0.5 * (-1.0 / np.sqrt(1.0 - c * c)) * (_LN2 / kappa**2))
+    hw_ci = abs(dhw) * se_k * t95 if np.isfinite(hw) else nan
+    return OrientationFit(pref_deg=float(np.mod(t0, 180.0)), pref_ci95_deg=float(min(se_t0 * t95, 90.0)),
+                          hwhh_deg=hw, hwhh_ci95_deg=float(hw_ci), params=fit.params, r2=fit.r2, ok=True)
+
+
+@dataclass
+class DirectionFit:
+    """Two-peaked von Mises fit: ``pref_deg`` in ``[0, 360)`` (the larger peak),
+    ``params`` = ``(b, a1, a2, kappa, theta0)``."""
+
+    pref_deg: float
+    pref_ci95_deg: float
+    params: np.ndarray
+    r2: float
+    ok: bool
+
+
+def fit_direction(theta_deg, r) -> DirectionFit:
+    """Fit :func:`von_mises_direction` to responses at directions ``theta_deg`` (needs >= 6 points).
+
+    Examples
+    --------
+    >>> th = np.arange(0, 360, 30.0)
+    >>> f = fit_direction(th, von_mises_direction(th, 0.5, 4.0, 1.0, 3.0, 200.0))
+    >>> round(f.pref_deg, 3)
+    200.0
+    """
+    th = np.mod(np.asarray(theta_deg, float), 360.0)
+    y = np.asarray(r, float)
+    ok = np.isfinite(th) & np.isfinite(y)
+    th, y = th[ok], y[ok]
+    nan = float("nan")
+    empty = DirectionFit(nan, nan, np.full(5, nan), nan, False)
+    if th.size < 6 or np.ptp(y) <= 0:
+        return empty
+    i = int(np.argmax(y))
+    t_start = float(th[i])
+    b0, a0 = float(y.min()), float(np.ptp(y))
+    span = max(abs(float(y.max())), abs(float(y.min())), a0)
+    lower = [-10 * span - 1e-9, 0.0, 0.0, 1e-3, t_start - 180.0]
+    upper = [10 * span + 1e-9, 20 * span + 1e-9, 20 * span + 1e-9, 50.0, t_start + 180.0]
+    starts = [[b0, a0, a2, k, t_start] for k in (1.0, 3.0) for a2 in (0.1 * a0, 0.8 * a0)]
+    fit = _least_squares(von_mises_direction, th, y, starts, lower, upper)
+    if not fit.ok:
+        return empty
+    b, a1, a2, kappa, t0 = fit.params
+    if a2 > a1:
+        t0 = t0 + 180.0
+    if not max(a1, a2) > 0:
+        return empty
+    se = np.sqrt(fit.cov[4, 4]) if np.isfinite(fit.cov[4, 4]) else nan
+    return DirectionFit(pref_deg=float(np.mod(t0, 360.0)),
+                        pref_ci95_deg=float(min(se * _t95(th.size - 5), 180.0)),
+                        params=fit.params, r2=fit.r2, ok=True)
+
+
+def gaussian_sf(sf_cpd, b, a, f0_cpd, sigma_cpd):
+    """``b + a exp(-(f - f0)^2 / (2 sigma^2))``: Gaussian in linear SF, the spectrum of a Gabor along
+    its wave vector (the transform of a Gaussian envelope, Bracewell, The Fourier Transform and Its
+    Applications), neglecting the mirror lobe at ``-f0``.
+
+    Examples
+    --------
+    >>> round(float(gaussian_sf(0.3, 0.0, 2.0, 0.2, 0.1)), 6)
+    1.213061
+    """
+    z = (np.asarray(sf_cpd, float) - f0_cpd) / sigma_cpd
+    return b + a * np.exp(-0.5 * z * z)
+
+
+@dataclass
+class SFFit:
+    """Spatial-frequency fit: ``pref_cpd`` with its 95 % interval ``(ci_low, ci_high)``, the full
+    bandwidth at half height above the baseline ``bandwidth_oct`` (octaves) with the half-width of its
+    95 % interval; ``model`` is ``"log_gaussian"`` (``params`` = ``(b, a, log2_f0, sigma_oct)``) or
+    ``"gaussian"`` (``params`` = ``(b, a, f0_cpd, sigma_cpd)``)."""
+
+    pref_cpd: float
+    pref_ci_low_cpd: float
+    pref_ci_high_cpd: float
+    bandwidth_oct: float
+    bandwidth_ci95_oct: float
+    params: np.ndarray
+    r2: float
+    ok: bool
+    model: str = ""
+
+
+_FWHH = 2.0 * np.sqrt(2.0 * _LN2)
+
+
+def _delta_ci(fun, p, cov, idx, t95):
+    """95 % half-width of ``fun(p)`` by the delta method over parameters ``idx`` (numeric gradient)."""
+    if not np.all(np.isfinite(cov[np.ix_(idx, idx)])):
+        return float("nan")
+    g = np.zeros(len(idx))
+    for n, i in enumerate(idx):
+        h = 1e-6 * max(abs(p[i]), 1e-3)
+        up, dn = p.copy(), p.copy()
+        up[i] += h
+        dn[i] -= h
+        g[n] = (fun(up) - fun(dn)) / (2 * h)
+    var = float(g @ cov[np.ix_(idx, idx)] @ g)
+    return float(np.sqrt(var) * t95) if var >= 0 and np.isfinite(var) else float("nan")
+
+
+def fit_sf(sf_cpd, r) -> SFFit:
+    """Fit spatial-frequency tuning: log-Gaussian and Gaussian-in-linear-SF, keeping the better one.
+
+    Both models have the same number of parameters; the one with the smaller residual sum of squares
+    is kept (real cells are often close to log-Gaussian, Gabor-like ones to a Gaussian in linear SF,
+    and forcing either shape on the other biases the peak by up to ~10 % when SFs are sampled an
+    octave or half an octave apart). With 5 or more SFs all four parameters are free; with 3 or 4
+    the baseline is fixed at 0. The preferred SF is NaN if the fitted peak lies more than half an
+    octave outside the tested range (it was not measured); the bandwidth is NaN when a half-height
+    point lies more than one octave outside the tested range (or below 0 SF).
+
+    Examples
+    --------
+    >>> f = np.geomspace(0.02, 0.64, 6)
+    >>> s = fit_sf(f, log_gaussian_sf(f, 0.0, 3.0, np.log2(0.1), 1.0))
+    >>> s.model, round(s.pref_cpd, 4), round(s.bandwidth_oct, 3)
+    ('log_gaussian', 0.1, 2.355)
+    """
+    f = np.asarray(sf_cpd, float)
+    y = np.asarray(r, float)
+    ok = np.isfinite(f) & np.isfinite(y) & (f > 0)
+    f, y = f[ok], y[ok]
+    nan = float("nan")
+    empty = SFFit(nan, nan, nan, nan, nan, np.full(4, nan), nan, False, "")
+    if f.size < 3 or np.ptp(y) <= 0 or not y.max() > 0:
+        return empty
+    lf = np.log2(f)
+    lo, hi = float(lf.min()), float(lf.max())
+    i_max = int(np.argmax(y))
+    span = max(abs(float(y.max())), abs(float(y.min())), float(np.ptp(y)))
+    free_b = f.size >= 5
+    b_lo, b_hi = -10 * span - 1e-9, 10 * span + 1e-9
+    a_hi = 20 * span + 1e-9
+    # (model, lower, upper, starts) over (b, a, centre, width)
+    s_hi_oct = max(4.0, 2 * (hi - lo))
+    cands = {
+        "log_gaussian": (log_gaussian_sf, [b_lo, 0.0, lo - 2.0, 0.15], [b_hi, a_hi, hi + 2.0, s_hi_oct],
+                         [[float(y.min()), float(np.ptp(y)), float(lf[i_max]), s] for s in (0.7, 1.5)]),
+        "gaussian": (gaussian_sf, [b_lo, 0.0, f.min() / 4, 0.02 * f.min()], [b_hi, a_hi, f.max() * 4, 4 * f.max()],
+                     [[float(y.min()), float(np.ptp(y)), float(f[i_max]), w * float(f[i_max])] for w in (0.3, 1.0)]),
+    }
+    best = None
+    for name, (model, lower, upper, starts) in cands.items():
+        if free_b:
+            fit = _least_squares(model, f, y, starts, lower, upper)
+            p = fit.params
+            cov = fit.cov
+        else:
+            def m3(x, a, c, w, model=model):
+                return model(x, 0.0, a, c, w)
+            fit = _least_squares(m3, f, y, [s[1:] for s in starts], lower[1:], upper[1:])
+            p = np.concatenate([[0.0], fit.params])
+            cov = np.full((4, 4), np.nan)
+            cov[1:, 1:] = fit.cov
+        if not fit.ok or not p[1] > 0:
+            continue
+        ssr = float(np.sum((model(f, *p) - y) ** 2))
+        if best is None or ssr < best[0] - 1e-12 * max(1.0, best[0]):
+            best = (ssr, name, p, cov, fit.r2)
+    if best is None:
+        return empty
+    _, name, p, cov, r2 = best
+    t95 = _t95(f.size - (4 if free_b else 3))
+    half = np.sqrt(2.0 * _LN2)
+    if name == "log_gaussian":
+        mu = p[2]
+        se_mu = np.sqrt(cov[2, 2]) if np.isfinite(cov[2, 2]) else nan
+        pref = 2.0**mu if lo - 0.5 <= mu <= hi + 0.5 else nan
+        ci = (2.0 ** (mu - t95 * se_mu), 2.0 ** (mu + t95 * se_mu))
+        edges = (mu - half * p[3], mu + half * p[3])
+
+        def bw_fun(q):
+            return _FWHH * q[3]
+    else:
+        f0 = p[2]
+        se = np.sqrt(cov[2, 2]) if np.isfinite(cov[2, 2]) else nan
+        pref = f0 if (f0 > 0 and lo - 0.5 <= np.log2(f0) <= hi + 0.5) else nan
+        ci = (max(f0 - t95 * se, 0.0), f0 + t95 * se)
+        low_edge = f0 - half * p[3]
+        edges = (np.log2(low_edge) if low_edge > 0 else -np.inf, np.log2(f0 + half * p[3]))
+
+        def bw_fun(q):
+            le = q[2] - half * q[3]
+            return np.log2((q[2] + half * q[3]) / le) if le > 0 else np.nan
+    bw = float(bw_fun(p)) if (edges[0] >= lo - 1.0 and edges[1] <= hi + 1.0) else nan
+    bw_ci = _delta_ci(bw_fun, p, cov, [2, 3], t95) if np.isfinite(bw) else nan
+    if not np.isfinite(pref):
+        ci = (nan, nan)
+    return SFFit(pref_cpd=float(pref), pref_ci_low_cpd=float(ci[0]), pref_ci_high_cpd=float(ci[1]),
+                 bandwidth_oct=bw, bandwidth_ci95_oct=bw_ci, params=p, r2=r2, ok=True, model=name)
+
+
+# ----------------------------------------------------------------------------------------------
+# cells.csv columns
+# ----------------------------------------------------------------------------------------------
+TUNING_COLUMNS = (
+    "cell", "grating_responsive", "tuning_source", "pref_orientation_deg", "pref_orientation_ci95_deg",
+    "orientation_hwhh_deg", "orientation_hwhh_ci95_deg", "pref_sf_cpd", "pref_sf_ci_low_cpd",
+    "pref_sf_ci_high_cpd", "sf_bandwidth_oct", "sf_bandwidth_ci95_oct", "circular_variance", "osi",
+    "pref_direction_deg", "dsi", "f1_f0", "grating_class", "flashed_peak_lag_s", "flashed_p_value",
+    "drifting_p_value", "ori_fit_baseline", "ori_fit_amplitude", "ori_fit_kappa", "ori_fit_r2",
+    "sf_fit_model", "sf_fit_baseline", "sf_fit_amplitude", "sf_fit_width", "sf_fit_r2",
+)
+
+
+def _flashed_curves(fl, c):
+    """Orientation curve at the best SF and SF curve at the best orientation (peak lag)."""
+    resp = fl.peak_response[c]
+    if not np.isfinite(resp).any():
+        return None
+    o, s = np.unravel_index(int(np.nanargmax(resp)), resp.shape)
+    return fl.orientations_deg, resp[:, s], fl.sfs_cpd, resp[o, :], None, None
+
+
+def _drifting_curves(dr, c):
+    """Orientation (directions folded mod 180 and averaged), SF and direction curves."""
+    d_i, s_i, t_i = dr.pref_index[c]
+    if d_i < 0:
+        return None
+    resp = dr.response[c]
+    dir_curve = resp[:, s_i, t_i]
+    ori = np.mod(dr.directions_deg, 180.0)
+    uo = np.unique(np.round(ori, 6))
+    idx = np.searchsorted(uo, np.round(ori, 6))
+    fin = np.isfinite(dir_curve)
+    tot = np.bincount(idx, weights=np.where(fin, dir_curve, 0.0), minlength=uo.size)
+    cnt = np.bincount(idx, weights=fin.astype(float), minlength=uo.size)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ori_curve = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
+    return uo, ori_curve, dr.sfs_cpd, resp[d_i, :, t_i], dr.directions_deg, dir_curve
+
+
+def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None) -> dict:
+    """Tuning columns for ``cells.csv``, one row per cell (sorted by cell id).
+
+    Parameters
+    ----------
+    flashed : map2d.gratings.FlashedResult, optional
+    drifting : map2d.gratings.DriftingResult, optional
+    cell_ids : array_like, optional
+        All cells (defaults to those of the results).
+
+    Returns
+    -------
+    dict of column name -> list, the columns of :data:`TUNING_COLUMNS`.
+
+    Notes
+    -----
+    Orientation and SF tuning come from the flashed sequence when the cell responds significantly
+    to it (its finer orientation x SF sampling and phase coverage make it the natural choice), else
+    from drifting gratings when it responds to those; ``tuning_source`` says which. F1/F0, the
+    simple/complex class, direction preference and DSI come from drifting gratings only. A cell
+    without a significant response to any grating gets empty values. ``circular_variance`` is the
+    circular variance itself (0 = one orientation, 1 = untuned); ``osi`` and ``circular_variance``
+    use the same orientation curve as the fit.
+    """
+    if flashed is None and drifting is None:
+        raise ValueError("give flashed and/or drifting results")
+    ids = [np.asarray(r.cell_ids) for r in (flashed, drifting) if r is not None]
+    if cell_ids is None:
+        cell_ids = ids[0]
+    cell_ids = np.sort(np.asarray(cell_ids, dtype=np.int64))
+    pos = [{int(c): i for i, c in enumerate(a)} for a in ids]
+    fl_pos = pos[0] if flashed is not None else {}
+    dr_pos = pos[-1] if drifting is not None else {}
+    out = {k: [] for k in TUNING_COLUMNS}
+    nan = float("nan")
+    for cid in cell_ids:
+        cid = int(cid)
+        row = dict.fromkeys(TUNING_COLUMNS, nan)
+        row["cell"] = cid
+        row["tuning_source"] = ""
+        row["grating_class"] = ""
+        row["sf_fit_model"] = ""
+        fi = fl_pos.get(cid)
+        di = dr_pos.get(cid)
+        fl_resp = fi is not None and bool(flashed.responsive[fi])
+        dr_resp = di is not None and bool(drifting.responsive[di])
+        if fi is not None:
+            row["flashed_p_value"] = float(flashed.p_value[fi])
+        if di is not None:
+            row["drifting_p_value"] = float(drifting.p_value[di])
+        row["grating_responsive"] = fl_resp or dr_resp
+        curves = None
+        if fl_resp:
+            row["flashed_peak_lag_s"] = float(flashed.peak_lag_s[fi])
+            curves = _flashed_curves(flashed, fi)
+            row["tuning_source"] = "flashed" if curves is not None else ""
+        if curves is None and dr_resp:
+            curves = _drifting_curves(drifting, di)
+            row["tuning_source"] = "drifting" if curves is not None else ""
+        if dr_resp:
+            row["f1_f0"] = float(drifting.f1_f0[di])
+            row["grating_class"] = "simple" if drifting.simple[di] else "complex"
+            row["dsi"] = float(drifting.dsi[di])
+            dc = _drifting_curves(drifting, di)
+            if dc is not None:
+                dfit = fit_direction(dc[4], dc[5])
+                row["pref_direction_deg"] = dfit.pref_deg if dfit.ok else float(drifting.pref_direction_deg[di])
+        if curves is not None:
+            th, ocurve, sfs, scurve = curves[:4]
+            cv, vec_pref = circular_variance(th, ocurve)
+            row["circular_variance"] = cv
+            row["osi"] = osi(th, ocurve)
+            of = fit_orientation(th, ocurve)
+            if of.ok:
+                row.update(pref_orientation_deg=of.pref_deg, pref_orientation_ci95_deg=of.pref_ci95_deg,
+                           orientation_hwhh_deg=of.hwhh_deg, orientation_hwhh_ci95_deg=of.hwhh_ci95_deg,
+                           ori_fit_baseline=of.params[0], ori_fit_amplitude=of.params[1],
+                           ori_fit_kappa=of.params[2], ori_fit_r2=of.r2)
+            elif np.isfinite(vec_pref) and np.isfinite(ocurve).sum() >= 3:
+                row["pref_orientation_deg"] = vec_pref
+            sfit = fit_sf(sfs, scurve)
+            if sfit.ok:
+                row.update(pref_sf_cpd=sfit.pref_cpd, pref_sf_ci_low_cpd=sfit.pref_ci_low_cpd,
+                           pref_sf_ci_high_cpd=sfit.pref_ci_high_cpd, sf_bandwidth_oct=sfit.bandwidth_oct,
+                           sf_bandwidth_ci95_oct=sfit.bandwidth_ci95_oct, sf_fit_baseline=sfit.params[0],
+                           sf_fit_amplitude=sfit.params[1], sf_fit_width=sfit.params[3], sf_fit_r2=sfit.r2,
+                           sf_fit_model=sfit.model)
+        for k in TUNING_COLUMNS:
+            out[k].append(row[k])
+    return out

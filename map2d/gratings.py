@@ -1,0 +1,721 @@
+"""Grating responses: flashed sequences (subspace reverse correlation) and drifting-grating trials.
+
+Flashed gratings
+----------------
+A flashed sequence shows one static grating per frame (``tf_hz = 0``), in random order over
+orientation x spatial frequency (SF) x phase, with blank frames (``contrast = 0``) among them. The
+mean response to each condition in the frame ``lag`` frames later, minus the mean response after a
+blank at the same lag, is the subspace reverse-correlation kernel (Ringach, Sapiro & Shapley 1997;
+Ringach, Hawken & Shapley 1997). Its first harmonic over phase is a complex response per
+(orientation, SF) in the convention of :mod:`map2d.geometry`:
+
+    ``H = (2 / P) sum_p r(phi_p) exp(-i phi_p) / contrast``,
+
+with ``phi`` measured from the table's phase origin, so that a linear cell with spatial kernel ``k``
+gives ``H = gain * sum k(x, y) exp(+i 2 pi (kx (x - xc) + ky (y - yc))) dA``. (When the phases shown
+are not equally spaced the harmonic is the least-squares fit of ``a0 + Re(H c exp(i phi))``, which
+equals the sum above for equally spaced phases.) The mean over phase is the phase-invariant part.
+
+Static gratings at ``ori`` and ``ori + 180`` are the same pattern with the phase negated
+(``cos(2 pi sf u(ori + 180) + phi) = cos(2 pi sf u(ori) - phi)``), so orientations are folded into
+``[0, 180)`` with the phase flipped; ``H(-k) = conj(H(k))`` gives the other half of the (kx, ky) plane.
+
+Drifting gratings
+-----------------
+Each drifting trial (``tf_hz != 0``, ``contrast != 0``) gives the mean response above spontaneous
+(F0) and the complex first harmonic at the temporal frequency (F1), measured from the exact trial
+onset over a whole number of cycles: the analysis window is ``floor(duration * tf) / tf`` seconds
+from the onset (the full trial when it is shorter than one cycle). For spikes
+``F1 = (2 / T) sum_spikes exp(-i 2 pi tf (t - onset))``; for traces ``F1 = a - i b`` from the
+least-squares fit of ``a0 + a cos(theta) + b sin(theta)``, ``theta = 2 pi tf (t - onset)``, to the
+samples inside the window (exact for any sampling). A rate ``r(t) = r0 + |F1| cos(theta + arg F1)``
+gives back ``F1``. A negative ``tf_hz`` is a grating moving toward ``ori + 180`` with the phase negated,
+and is folded so.
+
+References
+----------
+Ringach DL, Sapiro G, Shapley R (1997) A subspace reverse-correlation technique for the study of
+visual neurons. Vision Res 37:2455-2464.
+Ringach DL, Hawken MJ, Shapley R (1997) Dynamics of orientation tuning in macaque primary visual
+cortex. Nature 387:281-284.
+Skottun BC, De Valois RL, Grosof DH, Movshon JA, Albrecht DG, Bonds AB (1991) Classifying simple and
+complex cells on the basis of response modulation. Vision Res 31:1079-1086.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import sparse, stats
+
+from .align import cell_index, interval_responses
+from .contract import GratingTable, Spikes, Traces
+from .geometry import wave_vector
+
+__all__ = [
+    "FlashedResult", "DriftingResult", "analyze_flashed", "analyze_drifting",
+    "flashed_rows", "fold_static", "has_flashed", "has_drifting",
+]
+
+_ROUND = 6  # decimals used to identify equal orientations / phases (degrees)
+
+
+# ----------------------------------------------------------------------------------------------
+# small helpers
+# ----------------------------------------------------------------------------------------------
+def fold_static(orientation_deg, phase_deg):
+    """Fold static gratings into orientations ``[0, 180)``, negating the phase of folded ones.
+
+    ``(ori + 180, phi)`` shows the same pattern as ``(ori, -phi)`` under the contract formula.
+
+    Examples
+    --------
+    >>> o, p = fold_static([200.0, 30.0], [90.0, 90.0])
+    >>> o.tolist(), p.tolist()
+    ([20.0, 30.0], [270.0, 90.0])
+    """
+    ori = np.mod(np.round(np.mod(np.asarray(orientation_deg, float), 360.0), _ROUND), 360.0)
+    ph = np.asarray(phase_deg, float)
+    flip = ori >= 180.0
+    ori = np.where(flip, ori - 180.0, ori)
+    ph = np.where(flip, -ph, ph)
+    ph = np.mod(np.round(np.mod(ph, 360.0), _ROUND), 360.0)
+    return ori, ph
+
+
+def flashed_rows(table: GratingTable) -> np.ndarray:
+    """Boolean mask of the rows that belong to flashed sequences (blank frames included).
+
+    Static rows (``tf_hz == 0``) whose duration is at most twice the median duration of the static
+    gratings with contrast; longer static blanks (e.g. blank trials among drifting gratings) are left
+    to the drifting analysis.
+    """
+    dur = table.offset_s - table.onset_s
+    stim = table.is_static & (table.contrast > 0)
+    if not stim.any():
+        return np.zeros(len(table), dtype=bool)
+    ref = float(np.median(dur[stim]))
+    return table.is_static & (dur <= 2.0 * ref + 1e-9)
+
+
+def has_flashed(table: GratingTable | None) -> bool:
+    """Whether ``table`` holds a flashed sequence (static gratings with contrast)."""
+    return table is not None and bool(np.any(table.is_static & (table.contrast > 0)))
+
+
+def has_drifting(table: GratingTable | None) -> bool:
+    """Whether ``table`` holds drifting-grating trials."""
+    return table is not None and bool(np.any(table.is_drifting))
+
+
+def _index(values, axis_values):
+    return np.searchsorted(axis_values, values)
+
+
+def _group_sums(values, labels, n_groups):
+    """Sum ``values`` (cells, m) over columns grouped by ``labels`` (m,) -> (cells, n_groups)."""
+    m = labels.size
+    onehot = sparse.csc_matrix((np.ones(m), (labels, np.arange(m))), shape=(n_groups, m))
+    return np.asarray(onehot @ values.T).T
+
+
+def _grouped_anova(values, finite, labels, n_groups, no_nan):
+    """Per-cell one-way ANOVA pieces over groups: sums, counts, SSB, SSW, groups used, N."""
+    s = _group_sums(values, labels, n_groups)
+    q = _group_sums(values * values, labels, n_groups)
+    if no_nan:
+        n = np.broadcast_to(np.bincount(labels, minlength=n_groups).astype(float), s.shape)
+    else:
+        n = _group_sums(finite.astype(float), labels, n_groups)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        s2n = np.where(n > 0, s * s / np.where(n > 0, n, 1), 0.0)
+    n_tot = n.sum(axis=1)
+    s_tot = s.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ssb = s2n.sum(axis=1) - np.where(n_tot > 0, s_tot**2 / np.where(n_tot > 0, n_tot, 1), 0.0)
+    ssw = q.sum(axis=1) - s2n.sum(axis=1)
+    k = (n > 0).sum(axis=1)
+    return s, q, n, np.maximum(ssb, 0.0), np.maximum(ssw, 0.0), k, n_tot
+
+
+# ----------------------------------------------------------------------------------------------
+# flashed sequences
+# ----------------------------------------------------------------------------------------------
+@dataclass
+class FlashedResult:
+    """Subspace reverse correlation of a flashed-grating sequence.
+
+    Axes: ``O`` orientations in ``[0, 180)``, ``S`` spatial frequencies, ``P`` phases (relative to
+    the phase origin), ``L`` lags of whole frames. Response units are those of the responses
+    (spikes/s, or trace units). ``NaN`` where a condition was not shown (or had no valid data).
+
+    Attributes
+    ----------
+    cell_ids : (cells,) int
+    orientations_deg, sfs_cpd, phases_deg : (O,), (S,), (P,)
+    lags_s : (L,)  lag ``l`` frames times the frame period
+    frame_s : float  median onset-to-onset interval of the sequence
+    mean : (cells, O, S, P, L)  mean response minus the blank mean at the same lag
+    count : (cells, O, S, P, L)  number of presentations behind each mean
+    blank_mean : (cells, L)  mean response after a blank (the reference; NaN if no blanks, in
+        which case the reference is the mean over all presentations at that lag)
+    condition_contrast : (O, S)  mean contrast of the gratings of each (orientation, SF)
+    harmonic : (cells, O, S, L) complex  first harmonic over phase, divided by contrast (``H``)
+    phase_mean : (cells, O, S, L)  mean over phase of ``mean`` (phase-invariant part)
+    energy : (cells, L)  variance of the true condition means across conditions, estimated without
+        noise bias from the ANOVA mean squares (``(SSB - (k - 1) MSW) / N``); the tuning time course
+    peak_lag_index : (cells,) int ; peak_lag_s : (cells,)  lag of largest ``energy``
+    p_value : (cells,)  shuffle test: the condition sequence is permuted and the largest (over
+        lags) between-condition share of variance compared with the observed one
+    responsive : (cells,) bool  ``p_value < alpha``
+    kx_cpd, ky_cpd : (O, S)  wave vectors of the (orientation, SF) conditions
+    n_shuffles, alpha : the test's settings
+    """
+
+    cell_ids: np.ndarray
+    orientations_deg: np.ndarray
+    sfs_cpd: np.ndarray
+    phases_deg: np.ndarray
+    lags_s: np.ndarray
+    frame_s: float
+    mean: np.ndarray
+    count: np.ndarray
+    blank_mean: np.ndarray
+    condition_contrast: np.ndarray
+    harmonic: np.ndarray
+    phase_mean: np.ndarray
+    energy: np.ndarray
+    peak_lag_index: np.ndarray
+    peak_lag_s: np.ndarray
+    p_value: np.ndarray
+    responsive: np.ndarray
+    kx_cpd: np.ndarray
+    ky_cpd: np.ndarray
+    n_shuffles: int
+    alpha: float
+
+    def _at_peak(self, a):
+        idx = self.peak_lag_index[:, None, None, None]
+        return np.take_along_axis(a, np.broadcast_to(idx, a.shape[:3] + (1,)), axis=3)[..., 0]
+
+    @property
+    def harmonic_at_peak(self) -> np.ndarray:
+        """``H`` at each cell's peak lag, (cells, O, S) complex."""
+        return self._at_peak(self.harmonic)
+
+    @property
+    def phase_mean_at_peak(self) -> np.ndarray:
+        """Phase-invariant response at each cell's peak lag, (cells, O, S)."""
+        return self._at_peak(self.phase_mean)
+
+    @property
+    def peak_response(self) -> np.ndarray:
+        """Peak over phase of the first-harmonic fit, ``phase_mean + contrast |H|``, at the peak lag.
+
+        This is the response measure used for tuning: it serves simple cells (carried by ``|H|``)
+        and complex cells (carried by the phase-invariant part) alike. Shape (cells, O, S).
+        """
+        return self.phase_mean_at_peak + self.condition_contrast[None] * np.abs(self.harmonic_at_peak)
+
+    def full_plane(self, values=None):
+        """Values on both halves of the (kx, ky) plane: ``(kx, ky, v)`` each (cells?, 2 O, S).
+
+        ``values`` defaults to :attr:`harmonic_at_peak`; the half at ``ori + 180`` holds the complex
+        conjugate (``H(-k) = conj(H(k))`` for a real kernel), real values are repeated.
+        """
+        v = self.harmonic_at_peak if values is None else np.asarray(values)
+        kx = np.concatenate([self.kx_cpd, -self.kx_cpd], axis=0)
+        ky = np.concatenate([self.ky_cpd, -self.ky_cpd], axis=0)
+        other = np.conj(v) if np.iscomplexobj(v) else v
+        return kx, ky, np.concatenate([v, other], axis=-2)
+
+
+def _frame_windows(onset, offset):
+    """Response window of each presentation: onset to next onset, at most one frame period."""
+    n = onset.size
+    frame = float(np.median(np.diff(onset))) if n > 1 else float(offset[0] - onset[0])
+    if not frame > 0:
+        frame = float(np.median(offset - onset))
+    nxt = np.append(onset[1:], np.inf)
+    end = np.minimum(nxt, onset + frame)
+    # a presentation sharing its onset with the next one (should not happen) keeps its own offset
+    end = np.where(end > onset, end, offset)
+    return frame, end
+
+
+def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: float = 0.2,
+                    rng=None, n_shuffles: int = 199, alpha: float = 0.01,
+                    shuffle_block: int = 16) -> FlashedResult:
+    """Subspace reverse correlation of the flashed-grating rows of ``table``.
+
+    Parameters
+    ----------
+    responses : Spikes or Traces
+    table : GratingTable
+        Its flashed rows (see :func:`flashed_rows`) are used; other rows are ignored.
+    max_lag_s : float
+        Longest lag; lags are ``0, 1, ..., floor(max_lag_s / frame)`` frames.
+    rng : numpy.random.Generator or int, optional
+        Seed for the shuffle test.
+    n_shuffles : int
+        Permutations of the condition sequence for the significance test (0 skips the test:
+        ``p_value`` is NaN and no cell is called responsive).
+    alpha : float
+        Significance level for ``responsive``.
+    shuffle_block : int
+        Shuffles evaluated together (memory vs speed).
+
+    Returns
+    -------
+    FlashedResult
+
+    Notes
+    -----
+    Each presentation's response is the mean rate (or trace value) from its onset to the next onset,
+    at most one frame period long (:func:`map2d.align.interval_responses`), so lag bins tile time
+    even when a grating fills only part of its frame. The response at lag ``l`` to presentation
+    ``k`` is that of presentation ``k + l``, used only if it starts within half a frame of
+    ``onset_k + l * frame`` (so gaps in the sequence never pair unrelated frames).
+    Condition means are computed for all cells at once with sparse one-hot sums (no loop over
+    presentations).
+    """
+    if not np.isfinite(max_lag_s) or max_lag_s < 0:
+        raise ValueError(f"max_lag_s must be >= 0, got {max_lag_s}")
+    if int(n_shuffles) < 0:
+        raise ValueError(f"n_shuffles must be >= 0, got {n_shuffles}")
+    if not 0 < alpha < 1:
+        raise ValueError(f"alpha must be in (0, 1), got {alpha}")
+    rng = np.random.default_rng(rng)
+    rows = np.flatnonzero(flashed_rows(table))
+    if rows.size == 0:
+        raise ValueError("table holds no flashed (static) gratings with contrast")
+    rows = rows[np.argsort(table.onset_s[rows], kind="stable")]
+    onset = table.onset_s[rows].astype(float)
+    offset = table.offset_s[rows].astype(float)
+    contrast = table.contrast[rows].astype(float)
+    blank = contrast == 0
+    ori, ph = fold_static(table.orientation_deg[rows], table.phase_deg[rows])
+    sf = np.round(table.sf_cpd[rows].astype(float), 9)
+    oris = np.unique(ori[~blank])
+    sfs = np.unique(sf[~blank])
+    phs = np.unique(ph[~blank])
+    n_o, n_s, n_p = oris.size, sfs.size, phs.size
+    n_c = n_o * n_s * n_p
+    oi, si, pi = _index(ori, oris), _index(sf, sfs), _index(ph, phs)
+    cond = np.where(blank, n_c, (np.clip(oi, 0, n_o - 1) * n_s + np.clip(si, 0, n_s - 1)) * n_p
+                    + np.clip(pi, 0, n_p - 1)).astype(np.int64)
+    n_groups = n_c + 1
+    has_blank = bool(blank.any())
+
+    frame, end = _frame_windows(onset, offset)
+    n_lags = int(np.floor(max_lag_s / frame + 1e-9)) + 1
+    r = interval_responses(responses, onset, end).astype(np.float64)  # (cells, n)
+    n_cells, n = r.shape
+    finite = np.isfinite(r)
+    no_nan = bool(finite.all())
+    r0 = np.where(finite, r, 0.0)
+
+    pairs = []
+    for lag in range(n_lags):
+        k = np.arange(max(n - lag, 0))
+        j = k + lag
+        ok = np.abs(onset[j] - onset[k] - lag * frame) < 0.5 * frame
+        pairs.append((k[ok], j[ok]))
+
+    means = np.full((n_cells, n_groups, n_lags), np.nan)
+    counts = np.zeros((n_cells, n_groups, n_lags))
+    energy = np.full((n_cells, n_lags), np.nan)
+    share = np.full((n_cells, n_lags), np.nan)
+    sst = np.zeros((n_cells, n_lags))
+    for lag, (k, j) in enumerate(pairs):
+        if k.size == 0:
+            continue
+        v, f = r0[:, j], finite[:, j]
+        s, q, cnt, ssb, ssw, kk, ntot = _grouped_anova(v, f, cond[k], n_groups, no_nan)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            means[:, :, lag] = np.where(cnt > 0, s / np.where(cnt > 0, cnt, 1), np.nan)
+            msw = np.where(ntot - kk > 0, ssw / np.maximum(ntot - kk, 1), np.nan)
+            energy[:, lag] = np.where(ntot > 0, (ssb - (kk - 1) * msw) / ntot, np.nan)
+            sst[:, lag] = ssb + ssw
+            share[:, lag] = np.where(sst[:, lag] > 0, ssb / sst[:, lag], np.nan)
+        counts[:, :, lag] = cnt
+
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if has_blank:
+            ref = means[:, n_c, :]
+        else:
+            tot = np.nansum(means[:, :n_c, :] * counts[:, :n_c, :], axis=1)
+            ref = tot / counts[:, :n_c, :].sum(axis=1)
+    blank_mean = means[:, n_c, :] if has_blank else np.full((n_cells, n_lags), np.nan)
+    d = (means[:, :n_c, :] - ref[:, None, :]).reshape(n_cells, n_o, n_s, n_p, n_lags)
+    count = counts[:, :n_c, :].reshape(n_cells, n_o, n_s, n_p, n_lags)
+
+    # contrast of each (orientation, SF)
+    stim = ~blank
+    os_idx = oi[stim] * n_s + si[stim]
+    csum = np.bincount(os_idx, weights=contrast[stim], minlength=n_o * n_s)
+    cn = np.bincount(os_idx, minlength=n_o * n_s)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cond_contrast = np.where(cn > 0, csum / np.maximum(cn, 1), np.nan).reshape(n_o, n_s)
+
+    harmonic, phase_mean = _phase_harmonic(d, count > 0, np.deg2rad(phs), cond_contrast)
+
+    e = np.where(np.isfinite(energy), energy, -np.inf)
+    peak = np.argmax(e, axis=1)
+    lags_s = np.arange(n_lags) * frame
+
+    p_value = np.full(n_cells, np.nan)
+    if n_shuffles > 0:
+        obs = np.nanmax(np.where(np.isfinite(share), share, -np.inf), axis=1)
+        exceed = np.zeros(n_cells)
+        done = 0
+        while done < n_shuffles:
+            b = min(int(shuffle_block), n_shuffles - done)
+            perms = np.argsort(rng.random((b, n)), axis=1)
+            null = np.full((n_cells, b), -np.inf)
+            for lag, (k, j) in enumerate(pairs):
+                if k.size == 0:
+                    continue
+                labels = (cond[perms[:, k]] + n_groups * np.arange(b)[:, None]).ravel()
+                m = k.size
+                v = np.tile(r0[:, j], (1, b))
+                s = _group_sums(v, labels, n_groups * b)
+                if no_nan:
+                    cnt = np.bincount(labels, minlength=n_groups * b).astype(float)[None, :]
+                else:
+                    cnt = _group_sums(np.tile(finite[:, j].astype(float), (1, b)), labels, n_groups * b)
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    s2n = np.where(cnt > 0, s * s / np.where(cnt > 0, cnt, 1), 0.0)
+                s2n = s2n.reshape(n_cells, b, n_groups).sum(axis=2)
+                s_tot = r0[:, j].sum(axis=1)
+                n_tot = finite[:, j].sum(axis=1) if not no_nan else np.full(n_cells, float(m))
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    ssb = s2n - (s_tot**2 / np.where(n_tot > 0, n_tot, 1))[:, None]
+                    sh = np.where(sst[:, lag:lag + 1] > 0, ssb / sst[:, lag:lag + 1], -np.inf)
+                null = np.maximum(null, sh)
+            exceed += (null >= obs[:, None] - 1e-12).sum(axis=1)
+            done += b
+        p_value = (1.0 + exceed) / (1.0 + n_shuffles)
+        p_value[~np.isfinite(obs)] = 1.0
+    responsive = np.isfinite(p_value) & (p_value < alpha)
+
+    kx, ky = wave_vector(oris[:, None], sfs[None, :])
+    return FlashedResult(
+        cell_ids=np.asarray(responses.cell_ids), orientations_deg=oris, sfs_cpd=sfs, phases_deg=phs,
+        lags_s=lags_s, frame_s=frame, mean=d, count=count, blank_mean=blank_mean,
+        condition_contrast=cond_contrast, harmonic=harmonic, phase_mean=phase_mean, energy=energy,
+        peak_lag_index=peak, peak_lag_s=lags_s[peak], p_value=p_value, responsive=responsive,
+        kx_cpd=np.asarray(kx, float), ky_cpd=np.asarray(ky, float), n_shuffles=int(n_shuffles),
+        alpha=float(alpha))
+
+
+def _phase_harmonic(d, avail, phi, cond_contrast):
+    """First harmonic over phase (least squares on ``[1, cos, sin]``) and the mean over phase.
+
+    ``d`` (cells, O, S, P, L); returns ``H`` (cells, O, S, L) complex divided by contrast, and the
+    plain mean over the available phases.
+    """
+    w = avail.astype(float)
+    g = np.stack([np.ones_like(phi), np.cos(phi), np.sin(phi)], axis=1)  # (P, 3)
+    d0 = np.where(avail, d, 0.0)
+    a = np.einsum("cospl,pa,pb->colsab", w, g, g)
+    rhs = np.einsum("cospl,pa->colsa", w * d0, g)
+    det = np.linalg.det(a)
+    ok = np.abs(det) > 1e-9
+    a_safe = np.where(ok[..., None, None], a, np.eye(3))
+    coef = np.linalg.solve(a_safe, rhs[..., None])[..., 0]
+    coef[~ok] = np.nan
+    # (cells, O, L, S, 3) -> (cells, O, S, L)
+    coef = np.moveaxis(coef, 2, 3)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        h = (coef[..., 1] - 1j * coef[..., 2]) / cond_contrast[None, :, :, None]
+        n_av = w.sum(axis=3)
+        phase_mean = np.where(n_av > 0, d0.sum(axis=3) / np.maximum(n_av, 1), np.nan)
+    return h, phase_mean
+
+
+# ----------------------------------------------------------------------------------------------
+# drifting trials
+# ----------------------------------------------------------------------------------------------
+@dataclass
+class DriftingResult:
+    """Drifting-grating trials: F0 and F1 per trial and per condition.
+
+    Axes: ``D`` directions in ``[0, 360)`` (toward which the grating moves), ``S`` SFs, ``T`` temporal
+    frequencies. Responses in the units of the data (spikes/s or trace units).
+
+    Attributes
+    ----------
+    cell_ids : (cells,)
+    directions_deg, sfs_cpd, tfs_hz : (D,), (S,), (T,)
+    trial_onset_s, trial_window_s : (n,)  onset and analysis window (whole cycles) of each trial
+    trial_condition : (n, 3) int  (direction, SF, TF) index of each trial
+    trial_f0 : (cells, n)  mean response in the window minus spontaneous
+    trial_f1 : (cells, n) complex  first harmonic at the TF (see module notes)
+    spontaneous : (cells,)  spontaneous level (NaN when it could not be measured; F0 is then the raw
+        mean response)
+    spontaneous_source : str  ``"blanks"``, ``"gaps"`` or ``"none"``
+    f0_mean, f0_sem : (cells, D, S, T)
+    f1_mean : (cells, D, S, T) complex  vector mean of ``trial_f1`` (|f1_mean| is the condition's F1)
+    f1_sem : (cells, D, S, T)  standard error of the vector mean, ``sqrt(var(re) + var(im)) / sqrt(n)``
+    f1_amp_mean : (cells, D, S, T)  mean over trials of ``|trial_f1|`` (biased upward by noise)
+    n_trials : (cells, D, S, T)
+    pref_index : (cells, 3) int  condition with the largest ``F0 + |F1|`` (-1 if none)
+    f1_f0 : (cells,)  ``|F1| / F0`` at the preferred condition (NaN when ``F0 <= 0``)
+    simple : (cells,) bool  ``|F1| > F0`` at the preferred condition (Skottun et al. 1991)
+    response : (cells, D, S, T)  the response measure used for tuning: ``|F1|`` for simple cells,
+        ``F0`` for complex cells (common practice)
+    pref_direction_deg : (cells,)  direction of the largest ``response`` at the preferred SF/TF
+    dsi : (cells,)  ``(R_pref - R_opp) / (R_pref + R_opp)`` with ``R_opp`` (opposite direction,
+        same SF/TF) clipped at 0; NaN if the opposite direction was not shown
+    p_value : (cells,)  ``min(1, 2 min(p_F0, p_F1))``: one-way ANOVA of the trial F0 across
+        conditions, and (Bonferroni over conditions) the F test of a non-zero vector-mean F1 against
+        the pooled within-condition scatter
+    responsive : (cells,) bool
+    """
+
+    cell_ids: np.ndarray
+    directions_deg: np.ndarray
+    sfs_cpd: np.ndarray
+    tfs_hz: np.ndarray
+    trial_onset_s: np.ndarray
+    trial_window_s: np.ndarray
+    trial_condition: np.ndarray
+    trial_f0: np.ndarray
+    trial_f1: np.ndarray
+    spontaneous: np.ndarray
+    spontaneous_source: str
+    f0_mean: np.ndarray
+    f0_sem: np.ndarray
+    f1_mean: np.ndarray
+    f1_sem: np.ndarray
+    f1_amp_mean: np.ndarray
+    n_trials: np.ndarray
+    pref_index: np.ndarray
+    f1_f0: np.ndarray
+    simple: np.ndarray
+    response: np.ndarray
+    pref_direction_deg: np.ndarray
+    dsi: np.ndarray
+    p_value: np.ndarray
+    responsive: np.ndarray
+    alpha: float
+
+
+def _spike_f1(spikes: Spikes, onset, end, tf):
+    n_cells, n = spikes.cell_ids.size, onset.size
+    out = np.zeros((n_cells, n), dtype=complex)
+    t = spikes.time_s
+    if t.size == 0 or n == 0:
+        return out
+    k = np.searchsorted(onset, t, side="right") - 1
+    ok = k >= 0
+    ok[ok] &= t[ok] < end[k[ok]]
+    k = k[ok]
+    theta = 2 * np.pi * tf[k] * (t[ok] - onset[k])
+    idx = cell_index(spikes)[ok] * n + k
+    re = np.bincount(idx, weights=np.cos(theta), minlength=n_cells * n)
+    im = np.bincount(idx, weights=-np.sin(theta), minlength=n_cells * n)
+    return ((re + 1j * im).reshape(n_cells, n)) * (2.0 / (end - onset))[None, :]
+
+
+def _trace_f1(traces: Traces, onset, end, tf):
+    times = traces.times_s
+    vals = np.asarray(traces.values, dtype=np.float64)
+    n_cells, n = vals.shape[0], onset.size
+    k = np.searchsorted(onset, times, side="right") - 1
+    ok = k >= 0
+    ok[ok] &= times[ok] < end[k[ok]]
+    sidx = np.flatnonzero(ok)
+    k = k[ok]
+    if sidx.size == 0:
+        return np.full((n_cells, n), np.nan), np.full((n_cells, n), np.nan, dtype=complex)
+    theta = 2 * np.pi * tf[k] * (times[sidx] - onset[k])
+    g = np.stack([np.ones_like(theta), np.cos(theta), np.sin(theta)])  # (3, m)
+    v = vals[:, sidx]
+    fin = np.isfinite(v)
+    v0 = np.where(fin, v, 0.0)
+    w = fin.astype(float)
+    a = np.empty((n_cells, n, 3, 3))
+    for p in range(3):
+        for q in range(p, 3):
+            a[:, :, p, q] = a[:, :, q, p] = _group_sums(w * (g[p] * g[q])[None], k, n)
+    rhs = np.stack([_group_sums(v0 * g[p][None], k, n) for p in range(3)], axis=-1)
+    det = np.linalg.det(a)
+    good = np.abs(det) > 1e-9 * np.maximum(a[..., 0, 0], 1.0) ** 3
+    coef = np.linalg.solve(np.where(good[..., None, None], a, np.eye(3)), rhs[..., None])[..., 0]
+    f1 = coef[..., 1] - 1j * coef[..., 2]
+    f1[~good] = np.nan
+    f0 = np.where(good, coef[..., 0], np.nan)
+    return f0, f1
+
+
+def _spontaneous(responses, table: GratingTable, drift_rows):
+    """Spontaneous level from blank rows outside flashed sequences, else from gaps between trials."""
+    blanks = np.flatnonzero(table.is_blank & ~flashed_rows(table))
+    if blanks.size:
+        blanks = blanks[np.argsort(table.onset_s[blanks], kind="stable")]
+        r = interval_responses(responses, table.onset_s[blanks], table.offset_s[blanks]).astype(float)
+        with np.errstate(invalid="ignore"):
+            return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "blanks"
+    on = table.onset_s[drift_rows]
+    off = table.offset_s[drift_rows]
+    if on.size > 1:
+        gap = on[1:] - off[:-1]
+        start = off[:-1] + gap / 2.0          # second half of each gap: responses have decayed,
+        stop = on[1:] - gap / 10.0            # and clear of the next onset (smoothing, sampling)
+        all_on = np.sort(table.onset_s)
+        # no other presentation may start inside the gap
+        inside = np.searchsorted(all_on, stop, side="left") - np.searchsorted(all_on, off[:-1], side="right")
+        use = (gap >= 0.2) & (inside == 0)
+        if use.any():
+            r = interval_responses(responses, start[use], stop[use]).astype(float)
+            with np.errstate(invalid="ignore"):
+                return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "gaps"
+    return np.full(responses.cell_ids.size, np.nan), "none"
+
+
+def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: float = 0.01) -> DriftingResult:
+    """F0 and F1 of drifting-grating trials, per trial and per (direction, SF, TF) condition.
+
+    Parameters
+    ----------
+    responses : Spikes or Traces
+    table : GratingTable
+        Rows with ``tf_hz != 0`` and ``contrast != 0`` are the trials.
+    alpha : float
+        Significance level for ``responsive``.
+
+    Returns
+    -------
+    DriftingResult
+
+    Notes
+    -----
+    Spontaneous activity comes from blank rows (``contrast = 0``) that are not part of a flashed
+    sequence; if there are none, from each gap of at least 0.2 s between consecutive trials in which
+    nothing else was shown, from its middle to 90 % of its length (responses to the previous trial
+    have decayed, and sampling or smoothing of the next onset does not reach in). For traces, the
+    trial F0 is the intercept of the same least-squares fit that gives F1 (the mean of the samples
+    over whole cycles); for spikes it is the spike count over the window divided by its length. F1/F0 uses the preferred condition (largest
+    ``F0 + |F1|``); a ratio above 1 marks a simple cell (Skottun et al. 1991).
+    """
+    if not 0 < alpha < 1:
+        raise ValueError(f"alpha must be in (0, 1), got {alpha}")
+    rows = np.flatnonzero(table.is_drifting)
+    if rows.size == 0:
+        raise ValueError("table holds no drifting gratings (tf_hz != 0 with contrast)")
+    rows = rows[np.argsort(table.onset_s[rows], kind="stable")]
+    onset = table.onset_s[rows].astype(float)
+    dur = (table.offset_s[rows] - table.onset_s[rows]).astype(float)
+    tf_signed = table.tf_hz[rows].astype(float)
+    tf = np.abs(tf_signed)
+    direction = np.mod(np.round(np.mod(table.orientation_deg[rows] + np.where(tf_signed < 0, 180.0, 0.0),
+                                       360.0), _ROUND), 360.0)
+    sf = np.round(table.sf_cpd[rows].astype(float), 9)
+    tfr = np.round(tf, 9)
+    n_cycles = np.floor(dur * tf + 1e-6)
+    window = np.where(n_cycles >= 1, n_cycles / np.where(tf > 0, tf, 1), dur)
+    end = onset + window
+
+    dirs, sfs, tfs = np.unique(direction), np.unique(sf), np.unique(tfr)
+    di, si, ti = _index(direction, dirs), _index(sf, sfs), _index(tfr, tfs)
+    n_d, n_s, n_t = dirs.size, sfs.size, tfs.size
+    n_groups = n_d * n_s * n_t
+    cond = (di * n_s + si) * n_t + ti
+
+    spont, source = _spontaneous(responses, table, rows)
+    if isinstance(responses, Spikes):
+        raw = interval_responses(responses, onset, end).astype(float)
+        trial_f1 = _spike_f1(responses, onset, end, tf)
+    else:
+        raw, trial_f1 = _trace_f1(responses, onset, end, tf)
+    trial_f0 = raw - np.where(np.isfinite(spont), spont, 0.0)[:, None]
+    n_cells = trial_f0.shape[0]
+
+    fin0 = np.isfinite(trial_f0)
+    fin1 = np.isfinite(trial_f1)
+    no_nan0, no_nan1 = bool(fin0.all()), bool(fin1.all())
+    s0, q0, n0, ssb0, ssw0, k0, nt0 = _grouped_anova(np.where(fin0, trial_f0, 0.0), fin0, cond, n_groups, no_nan0)
+    f1r = np.where(fin1, trial_f1.real, 0.0)
+    f1i = np.where(fin1, trial_f1.imag, 0.0)
+    sr, qr, n1, _, sswr, k1, nt1 = _grouped_anova(f1r, fin1, cond, n_groups, no_nan1)
+    si_, qi, _, _, sswi, _, _ = _grouped_anova(f1i, fin1, cond, n_groups, no_nan1)
+    amp = _group_sums(np.where(fin1, np.abs(trial_f1), 0.0), cond, n_groups)
+
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m0 = np.where(n0 > 0, s0 / np.maximum(n0, 1), np.nan)
+        var0 = np.where(n0 > 1, (q0 - n0 * m0**2) / np.maximum(n0 - 1, 1), np.nan)
+        sem0 = np.sqrt(np.maximum(var0, 0.0) / n0)
+        mr = np.where(n1 > 0, sr / np.maximum(n1, 1), np.nan)
+        mi = np.where(n1 > 0, si_ / np.maximum(n1, 1), np.nan)
+        varr = np.where(n1 > 1, (qr - n1 * mr**2) / np.maximum(n1 - 1, 1), np.nan)
+        vari = np.where(n1 > 1, (qi - n1 * mi**2) / np.maximum(n1 - 1, 1), np.nan)
+        sem1 = np.sqrt(np.maximum(varr + vari, 0.0) / n1)
+        amp_mean = np.where(n1 > 0, amp / np.maximum(n1, 1), np.nan)
+    f1m = mr + 1j * mi
+    f1a = np.abs(f1m)
+
+    shape = (n_cells, n_d, n_s, n_t)
+    # preferred condition, class, F1/F0
+    score = m0 + f1a
+    valid = np.isfinite(score)
+    pref = np.where(valid.any(axis=1), np.argmax(np.where(valid, score, -np.inf), axis=1), -1)
+    rows_c = np.arange(n_cells)
+    pf0 = np.where(pref >= 0, m0[rows_c, np.maximum(pref, 0)], np.nan)
+    pf1 = np.where(pref >= 0, f1a[rows_c, np.maximum(pref, 0)], np.nan)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.where(pf0 > 0, pf1 / pf0, np.nan)
+    simple = np.isfinite(pf1) & (pf1 > np.where(np.isfinite(pf0), pf0, np.inf))
+    response = np.where(simple[:, None], f1a, m0)
+
+    pref_idx = np.full((n_cells, 3), -1, dtype=np.int64)
+    ok = pref >= 0
+    pref_idx[ok, 0] = pref[ok] // (n_s * n_t)
+    pref_idx[ok, 1] = (pref[ok] // n_t) % n_s
+    pref_idx[ok, 2] = pref[ok] % n_t
+
+    # direction preference and DSI at the preferred SF and TF
+    resp4 = response.reshape(shape)
+    pref_dir = np.full(n_cells, np.nan)
+    dsi = np.full(n_cells, np.nan)
+    for c in np.flatnonzero(ok):
+        curve = resp4[c, :, pref_idx[c, 1], pref_idx[c, 2]]
+        if not np.isfinite(curve).any():
+            continue
+        i = int(np.nanargmax(curve))
+        pref_dir[c] = dirs[i]
+        opp = np.flatnonzero(np.abs(np.mod(dirs - dirs[i] - 180.0 + 180.0, 360.0) - 180.0) < 1e-6)
+        if opp.size and np.isfinite(curve[opp[0]]) and curve[i] > 0:
+            rn = max(float(curve[opp[0]]), 0.0)
+            dsi[c] = (curve[i] - rn) / (curve[i] + rn)
+
+    # significance: F0 ANOVA and F1 vector-mean F test
+    with np.errstate(invalid="ignore", divide="ignore"):
+        df_b, df_w = k0 - 1, nt0 - k0
+        f_stat = (ssb0 / np.maximum(df_b, 1)) / (ssw0 / np.maximum(df_w, 1))
+        p_f0 = np.where((df_b > 0) & (df_w > 0) & (ssw0 > 0), stats.f.sf(f_stat, df_b, df_w), np.nan)
+        p_f0 = np.where((df_b > 0) & (df_w > 0) & (ssw0 == 0) & (ssb0 > 0), 0.0, p_f0)
+        dfw1 = nt1 - k1
+        sigma2 = (sswr + sswi) / np.maximum(2 * dfw1, 1)   # per-component variance
+        f1_stat = n1 * (mr**2 + mi**2) / (2 * sigma2[:, None])
+        p_each = stats.f.sf(f1_stat, 2, np.maximum(2 * dfw1, 1)[:, None])
+        p_each = np.where((n1 > 0) & (dfw1[:, None] > 0) & (sigma2[:, None] > 0), p_each, np.nan)
+        n_tested = np.isfinite(p_each).sum(axis=1)
+        p_f1 = np.where(n_tested > 0, np.minimum(1.0, np.nanmin(np.where(np.isfinite(p_each), p_each, np.inf),
+                                                                 axis=1) * n_tested), np.nan)
+        both = np.stack([p_f0, p_f1])
+        pmin = np.where(np.isfinite(both).any(axis=0), np.nanmin(np.where(np.isfinite(both), both, np.inf), axis=0),
+                        np.nan)
+        p_value = np.minimum(1.0, 2.0 * pmin)
+    responsive = np.isfinite(p_value) & (p_value < alpha)
+
+    return DriftingResult(
+        cell_ids=np.asarray(responses.cell_ids), directions_deg=dirs, sfs_cpd=sfs, tfs_hz=tfs,
+        trial_onset_s=onset, trial_window_s=window, trial_condition=np.stack([di, si, ti], axis=1),
+        trial_f0=trial_f0, trial_f1=trial_f1, spontaneous=spont, spontaneous_source=source,
+        f0_mean=m0.reshape(shape), f0_sem=sem0.reshape(shape), f1_mean=f1m.reshape(shape),
+        f1_sem=sem1.reshape(shape), f1_amp_mean=amp_mean.reshape(shape), n_trials=n0.reshape(shape),
+        pref_index=pref_idx, f1_f0=ratio, simple=simple, response=resp4, pref_direction_deg=pref_dir,
+        dsi=dsi, p_value=p_value, responsive=responsive, alpha=float(alpha))
