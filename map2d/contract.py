@@ -23,12 +23,22 @@ from .geometry import Display, Grid
 __all__ = [
     "SparseNoise", "GratingTable", "Spikes", "Traces", "Session", "InputWarning",
     "load_session", "write_session", "write_table", "read_table", "GRATING_COLUMNS",
-    "write_stimulus", "load_stimulus", "STIMULUS_MANIFEST",
+    "write_stimulus", "load_stimulus", "STIMULUS_MANIFEST", "count_spikes_outside", "find_frame_gaps",
+    "GAP_FACTOR",
 ]
 
 MANIFEST = "session.json"
 GRATING_COLUMNS = ("onset_s", "offset_s", "orientation_deg", "sf_cpd", "phase_deg", "contrast", "tf_hz")
-KNOWN_TOP_KEYS = {"sparse_noise", "gratings", "responses", "display", "rois", "name", "notes"}
+KNOWN_TOP_KEYS = {"sparse_noise", "gratings", "responses", "display", "rois", "name", "notes", "generator"}
+KNOWN_SUB_KEYS = {
+    "sparse_noise": {"frames", "times", "grid", "exclude_gaps"},
+    "sparse_noise.grid": {"center_deg", "spacing_deg"},
+    "gratings": {"table", "phase_origin_deg"},
+    "responses.spikes": {"kind", "file", "cell_ids"},
+    "responses.traces": {"kind", "file", "times"},
+}
+#: A frame interval longer than this many median intervals looks like dropped frames.
+GAP_FACTOR = 1.5
 
 
 class InputWarning(UserWarning):
@@ -45,11 +55,17 @@ class SparseNoise:
     ``frames`` is ``(frames, ny, nx)``: int8 with +1 bright, -1 dark, 0 background for sparse noise,
     or any real values for dense noise. A frame lasts until the next onset; the last one lasts the
     median frame interval.
+
+    ``valid`` is None (every frame is usable) or a boolean mask ``(frames,)``: False for a frame
+    whose interval to the next onset is longer than ``GAP_FACTOR`` median intervals (it spans
+    dropped frames). The loader sets it when the manifest has ``sparse_noise.exclude_gaps: true``;
+    the engines leave frames with ``valid == False`` out.
     """
 
     frames: np.ndarray
     times_s: np.ndarray
     grid: Grid
+    valid: np.ndarray | None = None
 
     @property
     def n_frames(self) -> int:
@@ -177,9 +193,38 @@ def _load_npy(folder: Path, rel: str, key: str):
     if not path.is_file():
         raise BadInput(path, key, "file not found")
     try:
-        return np.load(path, allow_pickle=False)
+        arr = np.load(path, allow_pickle=False)
     except Exception as exc:  # numpy raises several types for damaged files
         raise BadInput(path, key, f"not a readable .npy file ({type(exc).__name__})") from None
+    if not isinstance(arr, np.ndarray):  # e.g. an .npz archive under an .npy name
+        if hasattr(arr, "close"):
+            arr.close()
+        raise BadInput(path, key, "not a .npy file (holds an archive of several arrays)")
+    return arr
+
+
+def _is_real(arr) -> bool:
+    """True for integer, unsigned or floating arrays (not bool, complex, text, structured)."""
+    return np.asarray(arr).dtype.kind in "iuf"
+
+
+def _rel(spec, key, manifest_path, section) -> str:
+    """A file name from the manifest section ``section``: present and a non-empty string."""
+    if key not in spec:
+        raise BadInput(manifest_path, f"{section}.{key}", "is missing")
+    value = spec[key]
+    if not isinstance(value, str) or not value.strip():
+        raise BadInput(manifest_path, f"{section}.{key}", f"must be a file name, got {value!r}")
+    return value
+
+
+def _section(manifest_path, spec, name, notes, known_as=None):
+    """A manifest section: must be a JSON object; unknown keys are reported and ignored."""
+    if not isinstance(spec, dict):
+        raise BadInput(manifest_path, name, f"must be a JSON object, got {type(spec).__name__}")
+    for key in sorted(set(spec) - KNOWN_SUB_KEYS[known_as or name]):
+        _note(notes, f"{manifest_path}: unknown key '{name}.{key}' ignored")
+    return spec
 
 
 def _load_npz(folder: Path, rel: str, key: str) -> dict:
@@ -213,9 +258,11 @@ def _check_times(times, path, key, expected=None):
     times = np.asarray(times)
     if times.ndim != 1:
         raise BadInput(path, key, f"must be one-dimensional, got shape {times.shape}")
-    if not np.issubdtype(times.dtype, np.number):
+    if not _is_real(times):
         raise BadInput(path, key, f"must be numeric, got {times.dtype}")
     times = times.astype(np.float64)
+    if times.size == 0:
+        raise BadInput(path, key, "is empty")
     if expected is not None and times.size != expected:
         raise BadInput(path, key, f"has {times.size} entries but {expected} were expected")
     bad = np.flatnonzero(~np.isfinite(times))
@@ -228,37 +275,78 @@ def _check_times(times, path, key, expected=None):
     return times
 
 
+def find_frame_gaps(times_s, factor: float = GAP_FACTOR) -> np.ndarray:
+    """Indices of frames whose interval to the next onset exceeds ``factor`` median intervals.
+
+    Such a frame stayed on screen while frames were dropped (or the record of their onsets was
+    lost). ``factor = 1.5`` is common practice: one dropped frame doubles an interval, while jitter
+    of a few milliseconds stays far below it.
+
+    Examples
+    --------
+    >>> find_frame_gaps([0.0, 0.1, 0.2, 0.4, 0.5, 0.6])
+    array([2])
+    """
+    d = np.diff(np.asarray(times_s, dtype=np.float64))
+    if d.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    return np.flatnonzero(d > factor * np.median(d)).astype(np.int64)
+
+
 def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
-    where = f"{folder / MANIFEST} sparse_noise"
-    frames_rel = _require(spec, "frames", where)
-    times_rel = _require(spec, "times", where)
-    grid_spec = _require(spec, "grid", where)
-    cx, cy = _pair(_require(grid_spec, "center_deg", where + ".grid"), where + ".grid", "center_deg")
-    dx, dy = _pair(_require(grid_spec, "spacing_deg", where + ".grid"), where + ".grid", "spacing_deg")
+    mpath = folder / MANIFEST
+    spec = _section(mpath, spec, "sparse_noise", notes)
+    frames_rel = _rel(spec, "frames", mpath, "sparse_noise")
+    times_rel = _rel(spec, "times", mpath, "sparse_noise")
+    if "grid" not in spec:
+        raise BadInput(mpath, "sparse_noise.grid", "is missing")
+    grid_spec = _section(mpath, spec["grid"], "sparse_noise.grid", notes)
+    for key in ("center_deg", "spacing_deg"):
+        if key not in grid_spec:
+            raise BadInput(mpath, f"sparse_noise.grid.{key}", "is missing")
+    cx, cy = _pair(grid_spec["center_deg"], mpath, "sparse_noise.grid.center_deg")
+    dx, dy = _pair(grid_spec["spacing_deg"], mpath, "sparse_noise.grid.spacing_deg")
     if not (dx > 0 and dy > 0):
-        raise BadInput(folder / MANIFEST, "sparse_noise.grid.spacing_deg", f"must be positive, got [{dx}, {dy}]")
+        raise BadInput(mpath, "sparse_noise.grid.spacing_deg", f"must be positive, got [{dx}, {dy}]")
+    exclude_gaps = spec.get("exclude_gaps", False)
+    if not isinstance(exclude_gaps, bool):
+        raise BadInput(mpath, "sparse_noise.exclude_gaps", f"must be true or false, got {exclude_gaps!r}")
     frames = _load_npy(folder, frames_rel, "frames")
     fpath = folder / frames_rel
     if frames.ndim != 3:
         raise BadInput(fpath, "frames", f"must have shape (frames, ny, nx), got {frames.shape}")
     if frames.shape[0] < 2:
-        raise BadInput(fpath, "frames", "needs at least two frames")
-    if np.issubdtype(frames.dtype, np.integer):
+        raise BadInput(fpath, "frames", f"needs at least two frames, got {frames.shape[0]}")
+    if frames.shape[1] < 1 or frames.shape[2] < 1:
+        raise BadInput(fpath, "frames", f"the grid is empty: shape {frames.shape}")
+    if frames.dtype.kind in "iu":
         bad = np.flatnonzero(((frames < -1) | (frames > 1)).any(axis=(1, 2)))
         if bad.size:
             raise BadInput(fpath, "frames", "values must be -1, 0 or +1", row=int(bad[0]))
         frames = frames.astype(np.int8, copy=False)
-    elif np.issubdtype(frames.dtype, np.floating):
+    elif frames.dtype.kind == "f":
         # dense (real-valued) noise is accepted; NaN is not
         finite = np.isfinite(frames).all(axis=(1, 2)) if frames.size < 2**28 else None
         if finite is not None and not finite.all():
             raise BadInput(fpath, "frames", "is not finite", row=int(np.flatnonzero(~finite)[0]))
     else:
         raise BadInput(fpath, "frames", f"must be int8 (or float for dense noise), got {frames.dtype}")
-    times = _check_times(_load_npy(folder, times_rel, "times"), folder / times_rel, "times",
-                         expected=frames.shape[0])
+    tpath = folder / times_rel
+    times = _check_times(_load_npy(folder, times_rel, "times"), tpath, "times", expected=frames.shape[0])
     grid = Grid(ny=frames.shape[1], nx=frames.shape[2], center_x_deg=cx, center_y_deg=cy, dx_deg=dx, dy_deg=dy)
-    return SparseNoise(frames=frames, times_s=times, grid=grid)
+    gaps = find_frame_gaps(times)
+    if gaps.size:
+        med = float(np.median(np.diff(times)))
+        shown = ", ".join(str(int(k)) for k in gaps[:5]) + (", ..." if gaps.size > 5 else "")
+        what = ("those frames are excluded" if exclude_gaps else
+                "set sparse_noise.exclude_gaps to true in session.json to leave those frames out")
+        _note(notes, f"{tpath}: field times: {gaps.size} frame intervals are longer than {GAP_FACTOR:g} x the "
+                     f"median {med * 1e3:.4g} ms and look like dropped frames (after frame {shown}); {what}")
+    valid = None
+    if exclude_gaps:
+        valid = np.ones(times.size, dtype=bool)
+        valid[gaps] = False
+    return SparseNoise(frames=frames, times_s=times, grid=grid, valid=valid)
 
 
 def read_table(path) -> tuple[list[str], list[list[str]]]:
@@ -269,15 +357,19 @@ def read_table(path) -> tuple[list[str], list[list[str]]]:
     except UnicodeDecodeError:
         raise BadInput(path, None, "is not UTF-8 text") from None
     reader = csv.reader(io.StringIO(text))
-    rows = [r for r in reader if r and any(c.strip() for c in r)]
+    try:
+        rows = [r for r in reader if r and any(c.strip() for c in r)]
+    except csv.Error as exc:
+        raise BadInput(path, None, f"is not a readable CSV table ({exc})", row=max(reader.line_num - 1, 0)) from None
     if not rows:
         raise BadInput(path, None, "is empty (a header row is required)")
     return [h.strip() for h in rows[0]], rows[1:]
 
 
 def _load_gratings(folder: Path, spec, default_origin, notes) -> GratingTable:
-    where = f"{folder / MANIFEST} gratings"
-    rel = _require(spec, "table", where)
+    mpath = folder / MANIFEST
+    spec = _section(mpath, spec, "gratings", notes)
+    rel = _rel(spec, "table", mpath, "gratings")
     path = folder / rel
     if not path.is_file():
         raise BadInput(path, "table", "file not found")
@@ -285,6 +377,8 @@ def _load_gratings(folder: Path, spec, default_origin, notes) -> GratingTable:
     missing = [c for c in GRATING_COLUMNS if c not in header]
     if missing:
         raise BadInput(path, missing[0], "column is missing from the header")
+    if not rows:
+        raise BadInput(path, None, "has a header but no presentations")
     idx = {c: header.index(c) for c in header}
     data = {c: np.empty(len(rows)) for c in GRATING_COLUMNS}
     extra = {c: [] for c in header if c not in GRATING_COLUMNS}
@@ -312,8 +406,26 @@ def _load_gratings(folder: Path, spec, default_origin, notes) -> GratingTable:
     bad = np.flatnonzero((data["sf_cpd"] == 0) & (data["contrast"] != 0))
     if bad.size:
         raise BadInput(path, "sf_cpd", "must be positive for a grating with contrast", row=int(bad[0]) + 1)
+    # exact duplicates (every value equal, extra columns included): keep the first
+    keys = np.column_stack([data[c] for c in GRATING_COLUMNS])
+    seen: dict = {}
+    dup = []
+    for r in range(len(rows)):
+        key = (keys[r].tobytes(), tuple(extra[c][r] for c in extra))
+        if key in seen:
+            dup.append(r)
+        else:
+            seen[key] = r
+    if dup:
+        keep = np.ones(len(rows), dtype=bool)
+        keep[dup] = False
+        _note(notes, f"{path}: {len(dup)} rows repeat an earlier row exactly (first at row {dup[0] + 1}, "
+                     f"same as row {seen[(keys[dup[0]].tobytes(), tuple(extra[c][dup[0]] for c in extra))] + 1}); "
+                     f"the repeats are dropped")
+        data = {c: v[keep] for c, v in data.items()}
+        extra = {c: [v for v, k in zip(vals, keep) if k] for c, vals in extra.items()}
     if "phase_origin_deg" in spec:
-        origin = _pair(spec["phase_origin_deg"], where, "phase_origin_deg")
+        origin = _pair(spec["phase_origin_deg"], mpath, "gratings.phase_origin_deg")
     else:
         origin = default_origin
     order = np.argsort(data["onset_s"], kind="stable")
@@ -330,61 +442,122 @@ def _load_gratings(folder: Path, spec, default_origin, notes) -> GratingTable:
 
 
 def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
-    where = f"{folder / MANIFEST} responses"
-    kind = _require(spec, "kind", where)
-    rel = _require(spec, "file", where)
+    mpath = folder / MANIFEST
+    if not isinstance(spec, dict):
+        raise BadInput(mpath, "responses", f"must be a JSON object, got {type(spec).__name__}")
+    if "kind" not in spec:
+        raise BadInput(mpath, "responses.kind", "is missing")
+    kind = spec["kind"]
+    if kind not in ("spikes", "traces"):
+        raise BadInput(mpath, "responses.kind", f"must be 'spikes' or 'traces', got {kind!r}")
+    spec = _section(mpath, spec, "responses", notes, known_as=f"responses.{kind}")
+    rel = _rel(spec, "file", mpath, "responses")
+    path = folder / rel
     if kind == "spikes":
         z = _load_npz(folder, rel, "file")
-        path = folder / rel
         for key in ("time_s", "cell"):
             if key not in z:
                 raise BadInput(path, key, "array is missing")
         t, c = np.asarray(z["time_s"]), np.asarray(z["cell"])
-        if t.ndim != 1 or c.ndim != 1:
-            raise BadInput(path, "time_s", "time_s and cell must be one-dimensional")
+        for key, a in (("time_s", t), ("cell", c)):
+            if a.ndim != 1:
+                raise BadInput(path, key, f"must be one-dimensional, got shape {a.shape}")
         if t.size != c.size:
             raise BadInput(path, "cell", f"has {c.size} entries but time_s has {t.size}")
-        if not np.issubdtype(t.dtype, np.number):
+        if not _is_real(t):
             raise BadInput(path, "time_s", f"must be numeric, got {t.dtype}")
         t = t.astype(np.float64)
         bad = np.flatnonzero(~np.isfinite(t))
         if bad.size:
             raise BadInput(path, "time_s", "is not finite", row=int(bad[0]))
-        if np.issubdtype(c.dtype, np.floating):
-            if not np.all(np.isfinite(c)) or np.any(c != np.round(c)):
-                bad = np.flatnonzero(~np.isfinite(c) | (c != np.round(c)))
+        if c.dtype.kind == "f":
+            bad = np.flatnonzero(~np.isfinite(c) | (c != np.round(c)) | (np.abs(c) > 2.0**53))
+            if bad.size:
                 raise BadInput(path, "cell", "must hold integers", row=int(bad[0]))
-        elif not np.issubdtype(c.dtype, np.integer):
+        elif c.dtype.kind == "u" and c.size and c.max() > np.iinfo(np.int64).max:
+            raise BadInput(path, "cell", "holds an id too large for a 64-bit integer")
+        elif c.dtype.kind not in "iu":
             raise BadInput(path, "cell", f"must hold integers, got {c.dtype}")
         c = c.astype(np.int64)
         ids = None
         if "cell_ids" in spec:
+            raw = spec["cell_ids"]
             try:
-                ids = np.asarray(spec["cell_ids"], dtype=np.int64)
-            except Exception:
-                raise BadInput(folder / MANIFEST, "responses.cell_ids", "must be a list of integers") from None
+                if not isinstance(raw, list) or not all(isinstance(v, int) and not isinstance(v, bool)
+                                                        for v in raw):
+                    raise TypeError
+                ids = np.asarray(raw, dtype=np.int64).reshape(-1)
+            except (TypeError, ValueError, OverflowError):
+                raise BadInput(mpath, "responses.cell_ids", "must be a list of integers") from None
             unknown = np.setdiff1d(c, ids)
             if unknown.size:
                 raise BadInput(path, "cell", f"cell {int(unknown[0])} is not in responses.cell_ids")
             ids = np.unique(ids)
         order = np.argsort(t, kind="stable")
-        return Spikes(time_s=t[order], cell=c[order], cell_ids=ids)
-    if kind == "traces":
-        path = folder / rel
-        values = _load_npy(folder, rel, "file")
-        if values.ndim != 2:
-            raise BadInput(path, "traces", f"must have shape (cells, samples), got {values.shape}")
-        if not np.issubdtype(values.dtype, np.number):
-            raise BadInput(path, "traces", f"must be numeric, got {values.dtype}")
-        times_rel = _require(spec, "times", where)
-        times = _check_times(_load_npy(folder, times_rel, "times"), folder / times_rel, "times",
-                             expected=values.shape[1])
-        values = values.astype(np.float32, copy=False)
-        n_nan = int(np.count_nonzero(~np.isfinite(values)))
-        if n_nan:
-            _note(notes, f"{path}: {n_nan} samples are NaN or infinite; they are left out of every average")
-        return Traces(values=values, times_s=times)
-    raise BadInput(folder / MANIFEST, "responses.kind", f"must be 'spikes' or 'traces', got {kind!r}")
+        spikes = Spikes(time_s=t[order], cell=c[order], cell_ids=ids)
+        if spikes.cell_ids.size == 0:
+            raise BadInput(path, "time_s", "holds no spikes and responses.cell_ids names no cells: "
+                                           "there is no cell to analyse")
+        silent = np.setdiff1d(spikes.cell_ids, spikes.cell)
+        if silent.size:
+            shown = ", ".join(str(int(v)) for v in silent[:5]) + (", ..." if silent.size > 5 else "")
+            _note(notes, f"{path}: field cell: {silent.size} of {spikes.cell_ids.size} cells have no spikes "
+                         f"(cell {shown}); they are kept, with empty results")
+        return spikes
+    values = _load_npy(folder, rel, "file")
+    if values.ndim != 2:
+        raise BadInput(path, "traces", f"must have shape (cells, samples), got {values.shape}")
+    if not _is_real(values):
+        raise BadInput(path, "traces", f"must be numeric, got {values.dtype}")
+    if values.shape[0] == 0:
+        raise BadInput(path, "traces", f"has no cells (shape {values.shape})")
+    if values.shape[1] < 2:
+        raise BadInput(path, "traces", f"needs at least two samples, got {values.shape[1]}")
+    times_rel = _rel(spec, "times", mpath, "responses")
+    times = _check_times(_load_npy(folder, times_rel, "times"), folder / times_rel, "times",
+                         expected=values.shape[1])
+    values = values.astype(np.float32, copy=False)
+    finite = np.isfinite(values)
+    n_nan = int(values.size - np.count_nonzero(finite))
+    if n_nan:
+        dead = np.flatnonzero(~finite.any(axis=1))
+        more = (f"; {dead.size} cells have no valid sample at all (first row {int(dead[0])}), their results "
+                f"are empty" if dead.size else "")
+        first = np.argwhere(~finite)[0]
+        _note(notes, f"{path}: field traces: {n_nan} samples are NaN or infinite (first at row {int(first[0])}, "
+                     f"sample {int(first[1])}); they are left out of every average{more}")
+    return Traces(values=values, times_s=times)
+
+
+def count_spikes_outside(session: "Session") -> int:
+    """Number of spikes outside every stimulus window (sparse-noise frames, grating presentations).
+
+    A sparse-noise frame lasts from its onset to the next (the last one a median interval); frames
+    marked invalid (``SparseNoise.valid``) are not windows. A grating presentation lasts from
+    ``onset_s`` to ``offset_s``. Such spikes are ignored by every analysis. Returns 0 for traces or a
+    session without stimuli.
+    """
+    r = session.responses
+    if not isinstance(r, Spikes) or r.time_s.size == 0:
+        return 0
+    starts, ends = [], []
+    sn = session.sparse_noise
+    if sn is not None:
+        keep = slice(None) if sn.valid is None else np.asarray(sn.valid, dtype=bool)
+        starts.append(sn.times_s[keep])
+        ends.append(sn.frame_ends_s()[keep])
+    if session.gratings is not None and len(session.gratings):
+        starts.append(session.gratings.onset_s)
+        ends.append(session.gratings.offset_s)
+    if not starts:
+        return 0
+    starts, ends = np.concatenate(starts), np.concatenate(ends)
+    order = np.argsort(starts, kind="stable")
+    starts, reach = starts[order], np.maximum.accumulate(ends[order])
+    k = np.searchsorted(starts, r.time_s, side="right") - 1
+    inside = k >= 0
+    inside[inside] = reach[k[inside]] > r.time_s[inside]
+    return int(r.time_s.size - np.count_nonzero(inside))
 
 
 def load_session(folder) -> Session:
@@ -419,7 +592,7 @@ def load_session(folder) -> Session:
     notes: list = []
     for key in sorted(set(manifest) - KNOWN_TOP_KEYS):
         _note(notes, f"{mpath}: unknown key '{key}' ignored")
-    if "responses" not in manifest:
+    if manifest.get("responses") is None:
         raise BadInput(mpath, "responses", "is missing (every session needs responses)")
     responses = _load_responses(folder, manifest["responses"], notes)
     sparse = None
@@ -438,13 +611,21 @@ def load_session(folder) -> Session:
             display = Display(width_cm=float(d["width_cm"]), height_cm=float(d["height_cm"]),
                               width_px=int(d["width_px"]), height_px=int(d["height_px"]),
                               distance_cm=float(d["distance_cm"]), eye_x_cm=float(eye[0]), eye_y_cm=float(eye[1]))
-        except (KeyError, TypeError, ValueError, IndexError) as exc:
+        except (KeyError, TypeError, ValueError, IndexError, AttributeError, OverflowError) as exc:
             raise BadInput(mpath, "display", f"is incomplete or invalid ({exc})") from None
     rois = None
     if manifest.get("rois") is not None:
+        if not isinstance(manifest["rois"], str) or not manifest["rois"].strip():
+            raise BadInput(mpath, "rois", f"must be a file name, got {manifest['rois']!r}")
         rois = _load_rois(folder, manifest["rois"])
-    return Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
-                   rois=rois, path=folder, name=str(manifest.get("name", folder.name)), notes=notes)
+    session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
+                      rois=rois, path=folder, name=str(manifest.get("name", folder.name)), notes=notes)
+    n_out = count_spikes_outside(session)
+    if n_out:
+        _note(notes, f"{folder / manifest['responses']['file']}: field time_s: {n_out} of "
+                     f"{session.responses.time_s.size} spikes fall outside every stimulus window "
+                     f"(sparse-noise frames, grating presentations); they are ignored")
+    return session
 
 
 def _load_rois(folder: Path, rel) -> np.ndarray:
@@ -543,7 +724,11 @@ def _write_sparse_noise(folder: Path, sn: SparseNoise) -> dict:
     """Write ``sparse_noise.npy`` and ``sparse_noise_times.npy``; return the manifest entry."""
     np.save(folder / "sparse_noise.npy", sn.frames)
     np.save(folder / "sparse_noise_times.npy", np.asarray(sn.times_s, dtype=np.float64))
-    return {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy", "grid": sn.grid.to_manifest()}
+    entry = {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy", "grid": sn.grid.to_manifest()}
+    if sn.valid is not None:
+        # only the gap rule is stored: the loader recomputes the mask from the frame times
+        entry["exclude_gaps"] = True
+    return entry
 
 
 def _write_gratings(folder: Path, g: GratingTable) -> dict:
