@@ -374,8 +374,9 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
         raise TypeError("noise must be a SparseNoise")
     if not (0 < alpha < 1):
         raise ValueError(f"alpha must be in (0, 1), got {alpha}")
-    if int(n_shuffles) < 1:
-        raise ValueError(f"n_shuffles must be >= 1, got {n_shuffles}")
+    if int(n_shuffles) < 1 or 1.0 / (1 + int(n_shuffles)) > alpha:
+        raise ValueError(f"n_shuffles={n_shuffles} cannot reach alpha={alpha}: the smallest shuffle "
+                         f"p-value is 1/(1 + n_shuffles); use at least {int(np.ceil(1 / alpha)) - 1}")
     rng = np.random.default_rng(rng)
     frame_s = noise.frame_interval_s
     lags = map_lags(frame_s, max_lag_s)
@@ -610,6 +611,7 @@ def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks
     O = offsets.size
     edges = np.linspace(0, F, n_blocks + 1).astype(int)
     cross = np.zeros((n_blocks, O, P, C), dtype=np.float64)
+    Xp = np.vstack([X, np.zeros((1, C), dtype=X.dtype)])
     G = np.zeros((n_blocks, P, P)) if gram else None
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
@@ -622,15 +624,10 @@ def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks
             tb = t[sel]
             if gram:
                 G[bi] += Sb.T.astype(np.float64) @ Sb.astype(np.float64)
-            for oi, o in enumerate(offsets):
-                idx = tb + o
-                if circular:
-                    idx = idx % F
-                    cross[bi, oi] += Sb.T @ X[idx]
-                else:
-                    ok = idx < F
-                    if ok.any():
-                        cross[bi, oi] += Sb[ok].T @ X[idx[ok]]
+            idx = tb[:, None] + offsets[None, :]                     # (n, O): one product for all offsets
+            idx = idx % F if circular else np.where(idx < F, idx, F)  # row F of Xp is zeros
+            prod = Sb.T @ Xp[idx].reshape(idx.shape[0], O * C)
+            cross[bi] += prod.reshape(P, O, C).transpose(1, 0, 2)
     return cross, G
 
 
@@ -782,6 +779,9 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
     P = ny * nx
     X, valid, mean, sd, n_valid = _center(R)
     mu, var = _stimulus_moments(frames)
+    if F * P <= 50_000_000:           # fits in memory: centre once, the shuffles reuse it
+        frames = (np.asarray(frames, dtype=np.float32).reshape(F, P) - mu.astype(np.float32))
+        mu = np.zeros(P)
     if dense_method not in ("auto", "sta", "whitened"):
         raise ValueError(f"dense_method must be 'auto', 'sta' or 'whitened', got {dense_method!r}")
     cross0, G = _dense_cross(frames, X, [0], mu, circular=True, n_blocks=1, gram=True)

@@ -157,8 +157,58 @@ def run_simulate(args) -> int:
 
 
 def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
-    """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``."""
-    raise NotImplementedError("maps command not built yet")
+    """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``.
+
+    ``maps.npz`` holds ``on, off, linear`` and ``on_z, off_z, linear_z`` (float32, cells x lags x ny x nx,
+    row 0 at the top), ``lags_s``, ``cell_ids`` and the grid (``grid_shape``, ``grid_center_deg``,
+    ``grid_spacing_deg``). ``cells.csv`` has one row per cell sorted by id: ``cell, responsive,
+    center_x_deg, center_y_deg, peak_lag_s`` and the map statistics. Until model fits are joined in,
+    the centre is :func:`map2d.maps.map_centroid_deg` (centroid of the significant region around the
+    peak pixel); empty for cells that are not responsive.
+    """
+    import numpy as np
+
+    from .contract import load_session, write_table
+    from .maps import compute_maps, map_centroid_deg
+
+    session = load_session(session_path)
+    if session.sparse_noise is None:
+        raise BadInput(Path(session_path) / "session.json", "sparse_noise",
+                       "is missing (maps need a sparse-noise stimulus)")
+    sn = session.sparse_noise
+    if not (max_lag_s >= 0):
+        raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {max_lag_s}")
+    if max_lag_s / sn.frame_interval_s >= sn.n_frames / 4:
+        raise BadInput("--max-lag", None, f"{max_lag_s} s is too long for {sn.n_frames} frames "
+                                          f"of {sn.frame_interval_s:.4g} s")
+    res = compute_maps(session.responses, sn, max_lag_s=max_lag_s, rng=seed)
+    order = np.argsort(res.cell_ids, kind="stable")
+    centres = np.array([map_centroid_deg(res, int(c)) for c in range(res.n_cells)], dtype=float)
+    g = res.grid
+    with results_folder(out) as tmp:
+        np.savez_compressed(
+            tmp / "maps.npz", on=res.on[order], off=res.off[order], linear=res.linear[order],
+            on_z=res.on_z[order], off_z=res.off_z[order], linear_z=res.linear_z[order],
+            lags_s=res.lags_s, cell_ids=res.cell_ids[order], unit=np.array(res.unit),
+            grid_shape=np.array(g.shape), grid_center_deg=np.array([g.center_x_deg, g.center_y_deg]),
+            grid_spacing_deg=np.array([g.dx_deg, g.dy_deg]))
+        write_table(tmp / "cells.csv", {
+            "cell": res.cell_ids[order],
+            "responsive": res.responsive[order],
+            "center_x_deg": centres[order, 0],
+            "center_y_deg": centres[order, 1],
+            "peak_lag_s": res.peak_lag_s[order],
+            "p_value": res.p_value[order],
+            "max_abs_z": res.max_abs_z[order],
+            "polarity": res.polarity[order],
+            "onoff_overlap": res.onoff_overlap[order],
+            "snr": res.snr[order],
+            "n_frames_used": res.n_frames_used[order],
+        })
+    if not quiet:
+        print(f"map2d maps: {int(res.responsive.sum())} of {res.n_cells} cells responsive; "
+              f"wrote {Path(out) / 'maps.npz'} and cells.csv")
+    return 0
 
 
 def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
@@ -166,11 +216,132 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
     raise NotImplementedError("gratings command not built yet")
 
 
+class _StageBar:
+    """A progress bar over analysis stages: silent with ``quiet`` or when stderr is not a terminal."""
+
+    STAGES = ("maps", "fits", "flashed gratings", "drifting gratings", "tuning", "reconcile", "table",
+              "writing")
+
+    def __init__(self, quiet):
+        import sys
+
+        from tqdm import tqdm
+        self.bar = tqdm(total=len(self.STAGES), disable=quiet or not sys.stderr.isatty(),
+                        unit="stage", leave=False, bar_format="{desc:<20} {bar} {n_fmt}/{total_fmt}")
+
+    def __call__(self, name):
+        self.bar.set_description_str(name)
+        self.bar.update(1)
+
+    def close(self):
+        self.bar.close()
+
+
+def write_analysis(folder, analysis, session, report=True) -> list:
+    """Write every result file of :func:`map2d.analysis.analyze_session` into ``folder``.
+
+    Returns the paths written. The results contract: ``cells.csv``, ``maps.tif`` (ImageJ hyperstack
+    TZCYX), plus ``maps.ome.tif``, ``results.npz`` (all arrays), ``fov.tif`` and PNGs (with ROIs) and
+    ``report.html``.
+    """
+    import numpy as np
+
+    from .contract import write_table
+    folder = Path(folder)
+    written = []
+    write_table(folder / "cells.csv", analysis.cells)
+    written.append(folder / "cells.csv")
+    arrays = {"cell_ids": analysis.cell_ids}
+    an = analysis
+    if an.maps is not None:
+        from .export.tiff import write_maps_ome_tiff, write_maps_tiff
+        m = an.maps
+        stack = np.stack([m.on, m.off, m.linear], axis=2).transpose(1, 0, 2, 3, 4)  # (L, C, K, ny, nx)
+        stack = np.ascontiguousarray(stack, dtype=np.float32)
+        write_maps_tiff(folder / "maps.tif", stack, m.grid, m.lags_s, m.cell_ids, unit_label=m.unit)
+        write_maps_ome_tiff(folder / "maps.ome.tif", stack, m.grid, m.lags_s, m.cell_ids, unit_label=m.unit)
+        written += [folder / "maps.tif", folder / "maps.ome.tif"]
+        arrays.update(lags_s=m.lags_s, on=m.on, off=m.off, linear=m.linear, on_z=m.on_z, off_z=m.off_z,
+                      linear_z=m.linear_z, peak_maps=an.peak_maps,
+                      grid_center_deg=np.array([m.grid.center_x_deg, m.grid.center_y_deg]),
+                      grid_spacing_deg=np.array([m.grid.dx_deg, m.grid.dy_deg]))
+    if an.flashed is not None:
+        fl = an.flashed
+        arrays.update(orientations_deg=fl.orientations_deg, sfs_cpd=fl.sfs_cpd, phases_deg=fl.phases_deg,
+                      grating_lags_s=fl.lags_s, measured_h=fl.harmonic_at_peak,
+                      phase_invariant=fl.phase_mean_at_peak, kx_cpd=fl.kx_cpd, ky_cpd=fl.ky_cpd)
+    if an.predicted_h is not None:
+        arrays["predicted_h"] = an.predicted_h
+    if an.inverse is not None:
+        arrays.update(map_from_gratings=an.inverse.from_gratings, map_band_limited=an.inverse.from_map)
+    if an.size_disk is not None:
+        arrays.update(size_radii_deg=an.size_radii_deg, size_disk=an.size_disk, size_annulus=an.size_annulus)
+    if an.drifting is not None:
+        dr = an.drifting
+        arrays.update(directions_deg=dr.directions_deg, drift_sfs_cpd=dr.sfs_cpd, drift_tfs_hz=dr.tfs_hz,
+                      f0_mean=dr.f0_mean, f0_sem=dr.f0_sem, f1_mean=dr.f1_mean, f1_sem=dr.f1_sem)
+    np.savez_compressed(folder / "results.npz", **arrays)
+    written.append(folder / "results.npz")
+    if session.rois is not None and an.maps is not None:
+        from .export.fov import write_fov
+        props = {k: np.asarray([np.nan if v is None else float(v) for v in an.cells[k]], float)
+                 for k in ("center_x_deg", "center_y_deg", "pref_orientation_deg", "pref_sf_cpd",
+                           "agreement", "responsive")}
+        written += write_fov(folder, session.rois, an.cell_ids, props,
+                             label_offset=int(getattr(session, "roi_label_offset", 0)))
+    if report:
+        try:
+            from .report.html import write_report
+        except ImportError:  # the report module arrives with the outputs issue
+            write_report = None
+        if write_report is not None:
+            written.append(write_report(folder, an, session))
+    return written
+
+
 def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
-    """``map2d analyze``: everything, the results contract."""
-    raise NotImplementedError("analyze command not built yet")
+    """``map2d analyze``: everything, the results contract, written atomically into ``out``."""
+    from .analysis import analyze_session
+    from .contract import load_session
+    session = load_session(session_path)
+    bar = _StageBar(quiet)
+    try:
+        analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, progress=bar)
+        bar("writing")
+        with results_folder(out) as tmp:
+            write_analysis(tmp, analysis, session)
+    finally:
+        bar.close()
+    if not quiet:
+        n_resp = sum(1 for v in analysis.cells.get("responsive", []) if v is True)
+        print(f"map2d: {len(analysis.cell_ids)} cells, {n_resp} responsive; results in {Path(out)}")
+        for note in analysis.notes:
+            print(f"map2d: note: {note}")
+    return 0
+
+
+DEMO_FOLDER = "data_demo"
+
+
+def demo_session_path() -> Path:
+    """The shipped demo session: ``data_demo/`` beside the package (a source checkout), else in the
+    current folder."""
+    for base in (Path(__file__).resolve().parent.parent, Path.cwd()):
+        candidate = base / DEMO_FOLDER
+        if (candidate / "session.json").is_file():
+            return candidate
+    raise BadInput(DEMO_FOLDER, None, "demo session not found (run from the map2d source folder)")
 
 
 def run_demo(out, quiet=False) -> int:
-    """``map2d demo``: analyze the shipped demo session."""
-    raise NotImplementedError("demo command not built yet")
+    """``map2d demo``: analyze the shipped demo session and say where the report is."""
+    import time
+    t0 = time.perf_counter()
+    session = demo_session_path()
+    if not quiet:
+        print(f"map2d: analysing the demo session {session} (simulated; truth in "
+              f"{session.parent / (session.name + '.truth.json')})")
+    run_analyze(session, out, quiet=quiet)
+    report = Path(out).absolute() / "report.html"
+    print(f"map2d: done in {time.perf_counter() - t0:.1f} s; open {report}")
+    return 0
