@@ -212,8 +212,65 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
 
 
 def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
-    """``map2d gratings``: grating surfaces and tuning -> ``gratings.npz`` and ``cells.csv``."""
-    raise NotImplementedError("gratings command not built yet")
+    """``map2d gratings``: grating surfaces and tuning -> ``gratings.npz`` and ``cells.csv``.
+
+    ``gratings.npz`` (cells sorted by id, ``cell_ids``): for a flashed sequence ``orientations_deg``,
+    ``sfs_cpd``, ``phases_deg``, ``lags_s``, ``kx_cpd``/``ky_cpd`` (orientation x SF), the complex
+    first harmonic at each cell's peak lag ``flashed_harmonic`` (cells x ori x SF, divided by contrast,
+    phase referenced to the phase origin, :mod:`map2d.geometry` convention), ``flashed_phase_invariant``,
+    the full time course ``flashed_harmonic_lags`` / ``flashed_phase_mean_lags`` (... x lag),
+    ``flashed_mean`` (cells x ori x SF x phase x lag, minus blank), ``flashed_energy`` (cells x lag),
+    ``flashed_peak_lag_s``, ``flashed_p_value``; for drifting trials ``directions_deg``,
+    ``drift_sfs_cpd``, ``drift_tfs_hz``, ``f0_mean``, ``f0_sem``, ``f1_mean`` (complex), ``f1_sem``,
+    ``f1_amp_mean``, ``n_trials`` (cells x direction x SF x TF), ``spontaneous``, ``drifting_p_value``.
+    ``cells.csv`` holds :data:`map2d.fit.tuning.TUNING_COLUMNS`.
+    """
+    import numpy as np
+
+    from .contract import load_session, write_table
+    from .fit.tuning import grating_tuning_columns
+    from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
+
+    session = load_session(session_path)
+    manifest = Path(session_path) / "session.json"
+    g = session.gratings
+    if g is None:
+        raise BadInput(manifest, "gratings", "is missing (this command needs grating presentations)")
+    if not (has_flashed(g) or has_drifting(g)):
+        raise BadInput(manifest, "gratings", "the table holds no gratings with contrast (only blanks)")
+    if not (np.isfinite(max_lag_s) and max_lag_s >= 0):
+        raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {max_lag_s}")
+    rng = np.random.default_rng(seed)
+    fl = analyze_flashed(session.responses, g, max_lag_s=max_lag_s, rng=rng) if has_flashed(g) else None
+    dr = analyze_drifting(session.responses, g) if has_drifting(g) else None
+    ids = np.asarray(session.cell_ids)
+    order = np.argsort(ids, kind="stable")
+    arrays = {"cell_ids": ids[order]}
+    if fl is not None:
+        arrays.update(
+            orientations_deg=fl.orientations_deg, sfs_cpd=fl.sfs_cpd, phases_deg=fl.phases_deg,
+            lags_s=fl.lags_s, kx_cpd=fl.kx_cpd, ky_cpd=fl.ky_cpd, frame_s=np.float64(fl.frame_s),
+            flashed_harmonic=fl.harmonic_at_peak[order], flashed_phase_invariant=fl.phase_mean_at_peak[order],
+            flashed_harmonic_lags=fl.harmonic[order], flashed_phase_mean_lags=fl.phase_mean[order],
+            flashed_mean=fl.mean[order], flashed_blank_mean=fl.blank_mean[order],
+            flashed_energy=fl.energy[order], flashed_peak_lag_s=fl.peak_lag_s[order],
+            flashed_p_value=fl.p_value[order], condition_contrast=fl.condition_contrast)
+    if dr is not None:
+        arrays.update(
+            directions_deg=dr.directions_deg, drift_sfs_cpd=dr.sfs_cpd, drift_tfs_hz=dr.tfs_hz,
+            f0_mean=dr.f0_mean[order], f0_sem=dr.f0_sem[order], f1_mean=dr.f1_mean[order],
+            f1_sem=dr.f1_sem[order], f1_amp_mean=dr.f1_amp_mean[order], n_trials=dr.n_trials[order],
+            spontaneous=dr.spontaneous[order], drifting_p_value=dr.p_value[order],
+            trial_window_s=dr.trial_window_s)
+    columns = grating_tuning_columns(fl, dr, cell_ids=ids)
+    with results_folder(out) as tmp:
+        np.savez_compressed(tmp / "gratings.npz", **arrays)
+        write_table(tmp / "cells.csv", columns)
+    if not quiet:
+        n_resp = int(np.sum(columns["grating_responsive"]))
+        print(f"map2d gratings: {n_resp} of {ids.size} cells respond to gratings; "
+              f"wrote {Path(out) / 'gratings.npz'} and cells.csv")
+    return 0
 
 
 class _StageBar:

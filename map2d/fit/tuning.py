@@ -377,10 +377,13 @@ def _delta_ci(fun, p, cov, idx, t95):
 def fit_sf(sf_cpd, r) -> SFFit:
     """Fit spatial-frequency tuning: log-Gaussian and Gaussian-in-linear-SF, keeping the better one.
 
-    Both models have the same number of parameters; the one with the smaller residual sum of squares
-    is kept (real cells are often close to log-Gaussian, Gabor-like ones to a Gaussian in linear SF,
-    and forcing either shape on the other biases the peak by up to ~10 % when SFs are sampled an
-    octave or half an octave apart). With 5 or more SFs all four parameters are free; with 3 or 4
+    Both models have the same number of parameters; their preferred SFs (in log2) and bandwidths are
+    averaged with Akaike weights, ``w_i`` proportional to ``SSR_i^(-n/2)`` (Burnham & Anderson 2002,
+    Model Selection and Multimodel Inference), and so are the 95 % intervals
+    (``sum w_i sqrt(hw_i^2 + (v_i - v)^2)``). Real cells are often close to log-Gaussian, Gabor-like
+    ones to a Gaussian in linear SF; forcing either shape on the other biases the peak by up to
+    ~10 % when SFs are sampled half an octave apart. ``model`` names the winner when its weight is
+    above 0.95, else ``"average"``; ``params`` and ``r2`` are the heavier model's. With 5 or more SFs all four parameters are free; with 3 or 4
     the baseline is fixed at 0. The preferred SF is NaN if the fitted peak lies more than half an
     octave outside the tested range (it was not measured); the bandwidth is NaN when a half-height
     point lies more than one octave outside the tested range (or below 0 SF).
@@ -415,7 +418,7 @@ def fit_sf(sf_cpd, r) -> SFFit:
         "gaussian": (gaussian_sf, [b_lo, 0.0, f.min() / 4, 0.02 * f.min()], [b_hi, a_hi, f.max() * 4, 4 * f.max()],
                      [[float(y.min()), float(np.ptp(y)), float(f[i_max]), w * float(f[i_max])] for w in (0.3, 1.0)]),
     }
-    best = None
+    fits = []
     for name, (model, lower, upper, starts) in cands.items():
         if free_b:
             fit = _least_squares(model, f, y, starts, lower, upper)
@@ -431,39 +434,69 @@ def fit_sf(sf_cpd, r) -> SFFit:
         if not fit.ok or not p[1] > 0:
             continue
         ssr = float(np.sum((model(f, *p) - y) ** 2))
-        if best is None or ssr < best[0] - 1e-12 * max(1.0, best[0]):
-            best = (ssr, name, p, cov, fit.r2)
-    if best is None:
+        fits.append(_sf_summary(name, p, cov, fit.r2, ssr, lo, hi, _t95(f.size - (4 if free_b else 3))))
+    if not fits:
         return empty
-    _, name, p, cov, r2 = best
-    t95 = _t95(f.size - (4 if free_b else 3))
+    # Akaike weights (equal parameter counts): w_i proportional to SSR_i^(-n/2)
+    ssr = np.array([max(x["ssr"], 1e-300) for x in fits])
+    logw = -0.5 * f.size * np.log(ssr)
+    w = np.exp(logw - logw.max())
+    w /= w.sum()
+    best = fits[int(np.argmax(w))]
+
+    def average(key, ci_key, log=False):
+        vals = np.array([x[key] for x in fits])
+        if not np.all(np.isfinite(vals[w > 1e-6])):
+            return (nan, nan) if ci_key else nan
+        use = w > 1e-6
+        v = np.log2(vals[use]) if log else vals[use]
+        ww = w[use] / w[use].sum()
+        mean = float(ww @ v)
+        if ci_key is None:
+            return mean
+        half = np.array([x[ci_key] for x in np.array(fits, dtype=object)[use]], float)
+        # model-averaged interval (Burnham & Anderson 2002): sum w sqrt(hw^2 + (v - mean)^2)
+        hw = float(ww @ np.sqrt(half**2 + (v - mean) ** 2))
+        return mean, hw
+
+    mu, hw_mu = average("log2_pref", "log2_pref_ci95")
+    pref = 2.0**mu if np.isfinite(mu) else nan
+    ci = (2.0 ** (mu - hw_mu), 2.0 ** (mu + hw_mu)) if np.isfinite(hw_mu) else (nan, nan)
+    bw, bw_ci = average("bandwidth_oct", "bandwidth_ci95_oct")
+    name = best["name"] if w.max() > 0.95 else "average"
+    return SFFit(pref_cpd=float(pref), pref_ci_low_cpd=float(ci[0]), pref_ci_high_cpd=float(ci[1]),
+                 bandwidth_oct=float(bw), bandwidth_ci95_oct=float(bw_ci), params=best["params"],
+                 r2=best["r2"], ok=True, model=name)
+
+
+def _sf_summary(name, p, cov, r2, ssr, lo, hi, t95):
+    """Preferred SF (log2), bandwidth and their 95 % half-widths for one fitted SF model."""
+    nan = float("nan")
     half = np.sqrt(2.0 * _LN2)
     if name == "log_gaussian":
-        mu = p[2]
-        se_mu = np.sqrt(cov[2, 2]) if np.isfinite(cov[2, 2]) else nan
-        pref = 2.0**mu if lo - 0.5 <= mu <= hi + 0.5 else nan
-        ci = (2.0 ** (mu - t95 * se_mu), 2.0 ** (mu + t95 * se_mu))
-        edges = (mu - half * p[3], mu + half * p[3])
+        def pref_fun(q):
+            return q[2]
 
         def bw_fun(q):
             return _FWHH * q[3]
+        edges = (p[2] - half * p[3], p[2] + half * p[3])
     else:
-        f0 = p[2]
-        se = np.sqrt(cov[2, 2]) if np.isfinite(cov[2, 2]) else nan
-        pref = f0 if (f0 > 0 and lo - 0.5 <= np.log2(f0) <= hi + 0.5) else nan
-        ci = (max(f0 - t95 * se, 0.0), f0 + t95 * se)
-        low_edge = f0 - half * p[3]
-        edges = (np.log2(low_edge) if low_edge > 0 else -np.inf, np.log2(f0 + half * p[3]))
+        def pref_fun(q):
+            return np.log2(q[2]) if q[2] > 0 else np.nan
 
         def bw_fun(q):
             le = q[2] - half * q[3]
             return np.log2((q[2] + half * q[3]) / le) if le > 0 else np.nan
+        low_edge = p[2] - half * p[3]
+        edges = (np.log2(low_edge) if low_edge > 0 else -np.inf, np.log2(p[2] + half * p[3]))
+    mu = float(pref_fun(p))
+    if not (np.isfinite(mu) and lo - 0.5 <= mu <= hi + 0.5):
+        mu = nan
     bw = float(bw_fun(p)) if (edges[0] >= lo - 1.0 and edges[1] <= hi + 1.0) else nan
-    bw_ci = _delta_ci(bw_fun, p, cov, [2, 3], t95) if np.isfinite(bw) else nan
-    if not np.isfinite(pref):
-        ci = (nan, nan)
-    return SFFit(pref_cpd=float(pref), pref_ci_low_cpd=float(ci[0]), pref_ci_high_cpd=float(ci[1]),
-                 bandwidth_oct=bw, bandwidth_ci95_oct=bw_ci, params=p, r2=r2, ok=True, model=name)
+    return {"name": name, "params": p, "r2": r2, "ssr": ssr, "log2_pref": mu,
+            "log2_pref_ci95": _delta_ci(pref_fun, p, cov, [2], t95) if np.isfinite(mu) else nan,
+            "bandwidth_oct": bw,
+            "bandwidth_ci95_oct": _delta_ci(bw_fun, p, cov, [2, 3], t95) if np.isfinite(bw) else nan}
 
 
 # ----------------------------------------------------------------------------------------------
