@@ -615,13 +615,19 @@ def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks
     G = np.zeros((n_blocks, P, P)) if gram else None
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
-        S = (np.asarray(frames[a:b], dtype=np.float64).reshape(-1, P) - mu).astype(np.float32)
+        raw = np.asarray(frames[a:b])
+        if raw.dtype == np.float32 and not np.any(mu):
+            S = raw.reshape(-1, P)                                     # already centred, no copy
+        else:
+            S = (raw.astype(np.float64).reshape(-1, P) - mu).astype(np.float32)
         t = np.arange(a, b)
         blk = np.searchsorted(edges, t, side="right") - 1
         for bi in np.unique(blk):
-            sel = blk == bi
-            Sb = S[sel]
-            tb = t[sel]
+            if n_blocks == 1:
+                Sb, tb = S, t
+            else:
+                sel = blk == bi
+                Sb, tb = S[sel], t[sel]
             if gram:
                 G[bi] += Sb.T.astype(np.float64) @ Sb.astype(np.float64)
             idx = tb[:, None] + offsets[None, :]                     # (n, O): one product for all offsets
