@@ -356,6 +356,9 @@ def read_table(path) -> tuple[list[str], list[list[str]]]:
         text = path.read_text(encoding="utf-8-sig")
     except UnicodeDecodeError:
         raise BadInput(path, None, "is not UTF-8 text") from None
+    if "\x00" in text:
+        line = text.count("\n", 0, text.index("\x00"))        # 0 = header, k = data row k
+        raise BadInput(path, None, "is not a CSV text table (holds a NUL byte)", row=line)
     reader = csv.reader(io.StringIO(text))
     try:
         rows = [r for r in reader if r and any(c.strip() for c in r)]
