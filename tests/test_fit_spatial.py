@@ -6,7 +6,6 @@ Synthetic maps are made with map2d.models plus Gaussian noise, on deliberately a
 
 import numpy as np
 import pytest
-from scipy.optimize import approx_fprime
 
 from map2d.fit import spatial as S
 from map2d.fit.spatial import (FIT_COLUMNS, fit_dog, fit_gabor, fit_gaussian, fit_map, fit_maps)
@@ -294,6 +293,15 @@ def test_nan_pixels_are_ignored_and_bad_shapes_rejected():
     m[5, 7] = np.inf
     f = fit_gaussian(m, GRID)
     assert abs(f.center_x_deg - 11.0) < 0.5 and f.n_pixels == GRID.ny * GRID.nx - GRID.nx - 1
+    # a per-pixel noise sd is accepted (here: noisier bottom half, derived weighting)
+    sd_px = np.where(Y < GRID.center_y_deg, 2 * SD, SD)
+    f2 = fit_gaussian(m, GRID, noise_sd=sd_px)
+    assert abs(f2.center_x_deg - 11.0) < 0.5
+    with pytest.raises(ValueError, match="noise_sd"):
+        fit_gaussian(m, GRID, noise_sd=0.0)
+    cols = fit_maps(np.stack([m, m]), GRID, [True, True], noise_sd=[SD, np.nan],
+                    models=("gaussian",))
+    assert np.all(np.abs(cols["center_x_deg"] - 11.0) < 0.5)   # NaN sd -> estimated from residuals
     flat = fit_map(np.zeros(GRID.shape), GRID)         # nothing to fit: NaN, not invented
     assert np.isnan(flat.center_x_deg) and np.isnan(flat.r2)
     with pytest.raises(ValueError, match="shape"):
