@@ -675,6 +675,16 @@ def write_table(path, columns: dict) -> None:
             w.writerow([_fmt(columns[c][i]) for c in names])
 
 
+def _save_npz(path, **arrays) -> None:
+    """Like ``np.savez`` but with a fixed member timestamp, so equal arrays give byte-identical files."""
+    import zipfile
+    with zipfile.ZipFile(path, "w", zipfile.ZIP_STORED) as zf:
+        for name, arr in arrays.items():
+            info = zipfile.ZipInfo(name + ".npy", date_time=(1980, 1, 1, 0, 0, 0))
+            with zf.open(info, "w", force_zip64=True) as fh:
+                np.lib.format.write_array(fh, np.asarray(arr), allow_pickle=False)
+
+
 def write_session(folder, session: Session, overwrite: bool = False) -> Path:
     """Write a session folder following the contract. Returns the folder path."""
     folder = Path(folder)
@@ -688,7 +698,7 @@ def write_session(folder, session: Session, overwrite: bool = False) -> Path:
         manifest["gratings"] = _write_gratings(folder, session.gratings)
     r = session.responses
     if isinstance(r, Spikes):
-        np.savez(folder / "spikes.npz", time_s=np.asarray(r.time_s, np.float64), cell=np.asarray(r.cell, np.int64))
+        _save_npz(folder / "spikes.npz", time_s=np.asarray(r.time_s, np.float64), cell=np.asarray(r.cell, np.int64))
         manifest["responses"] = {"kind": "spikes", "file": "spikes.npz"}
         if not np.array_equal(np.unique(r.cell), r.cell_ids):
             manifest["responses"]["cell_ids"] = [int(c) for c in r.cell_ids]

@@ -152,8 +152,71 @@ def run_stimulus(args) -> int:
 
 
 def run_simulate(args) -> int:
-    """``map2d simulate ...``."""
-    raise NotImplementedError("simulate command not built yet")
+    """``map2d simulate OUT``: a simulated session folder and ``OUT.truth.json`` beside it.
+
+    Uses ``args.out``, ``args.seed``, ``args.cells``, ``args.minutes``, ``args.responses``,
+    ``args.overwrite`` (and ``args.quiet`` when present). The session is written into a temporary
+    folder beside ``OUT`` and renamed into place only when complete; the truth (model parameters and
+    true tuning of every cell, see :func:`map2d.simulate.simulate_session`) goes to
+    ``OUT.truth.json``, outside the session folder so that analysis never sees it. An existing
+    non-empty ``OUT`` is refused unless ``--overwrite``. The same seed gives byte-identical files.
+    """
+    import json
+    import math
+
+    from .contract import write_session
+    from .simulate import simulate_session
+
+    if int(args.cells) < 1:
+        raise BadInput("--cells", None, f"must be at least 1, got {args.cells}")
+    if not (math.isfinite(args.minutes) and args.minutes > 0):
+        raise BadInput("--minutes", None, f"must be a positive number, got {args.minutes}")
+    if args.responses not in ("spikes", "traces"):
+        raise BadInput("--responses", None, f"must be spikes or traces, got {args.responses}")
+    out = Path(args.out).absolute()
+    truth_path = Path(str(out) + ".truth.json")
+    if out.exists():
+        if not out.is_dir():
+            raise BadInput(out, None, "exists and is not a folder")
+        if any(out.iterdir()) and not args.overwrite:
+            raise BadInput(out, None, "is a non-empty folder; choose another or use --overwrite")
+    if truth_path.exists() and not truth_path.is_file():
+        raise BadInput(truth_path, None, "exists and is not a file")
+    session, truth = simulate_session(n_cells=int(args.cells), minutes=float(args.minutes),
+                                      responses=args.responses, seed=int(args.seed))
+    text = json.dumps(truth, indent=2, allow_nan=False) + "\n"
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o777 & ~umask)            # mkdtemp makes it private; a session folder is not
+    tmp_truth = out.parent / f".{truth_path.name}.partial-{os.getpid()}"
+    old = None
+    try:
+        write_session(tmp, session)
+        tmp_truth.write_text(text, encoding="utf-8")
+        if out.exists():
+            old = out.parent / f".{out.name}.old-{os.getpid()}"
+            os.replace(out, old)
+        os.replace(tmp, out)
+        os.replace(tmp_truth, truth_path)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        tmp_truth.unlink(missing_ok=True)
+        if old is not None and not out.exists():
+            os.replace(old, out)
+            old = None
+        raise
+    finally:
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+    if not getattr(args, "quiet", False):
+        kinds = {}
+        for c in truth["cells"]:
+            kinds[c["kind"]] = kinds.get(c["kind"], 0) + 1
+        summary = ", ".join(f"{n} {k}" for k, n in kinds.items())
+        print(f"map2d: wrote {out} ({summary}; {args.responses}) and {truth_path.name}")
+    return 0
 
 
 def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
