@@ -27,9 +27,11 @@ internal parameterisation chosen for conditioning (the Gabor uses the wave vecto
 the cosine/sine amplitudes, so neither angle nor phase wraps during the search), from a few data-driven
 starts: the peak of the lightly smoothed map and its second moments (Gaussian, DoG), and the peaks of
 the zero-padded 2-D power spectrum for the Gabor's wave vector (the row axis is flipped, since row 0 is
-the top). Bounds: centre within a quarter of the grid's extent beyond its edges; widths between 0.3
-pixel and the grid's largest extent (the DoG surround up to twice that); Gabor frequency below the
-Nyquist limit on each axis (``|kx| <= 1/(2 dx)``, ``|ky| <= 1/(2 dy)``). Non-finite pixels are ignored.
+the top). Each start gets a short run (12 evaluations) and the best is refined to convergence.
+Bounds: centre within a quarter of the grid's extent beyond its edges; widths between 0.3 pixel and
+the grid's largest extent (the DoG surround radius at least 1.05 times the centre's); Gabor frequency
+below the Nyquist limit on each axis (``|kx| <= 1/(2 dx)``, ``|ky| <= 1/(2 dy)``). Non-finite pixels
+are ignored. Cost on a 24 x 32 map: about 7, 11 and 19 ms of CPU for the Gaussian, DoG and Gabor.
 
 Weighting, information criterion and confidence intervals
 ---------------------------------------------------------
