@@ -61,6 +61,17 @@ def test_reported_parameters_reproduce_the_internal_model():
         assert np.allclose(S._gabor_res(q, pr), gabor2d(pr.x, pr.y, *rep), atol=1e-12)
 
 
+def test_spectral_start_has_the_right_wave_vector():
+    # the Gabor's starting wave vector comes from the 2-D FFT, whose row axis points DOWN; an
+    # oblique carrier tells a missing y flip from a correct one (contract: y up)
+    X, Y = BIG.mesh_deg()
+    for ori in (35.0, 125.0):
+        pr = S._Problem(gabor2d(X, Y, -3.0, 1.0, 5.0, 5.0, ori, 0.12, 0.0), BIG, None)
+        kx, ky = pr.spectral_peaks(1)[0]
+        assert angle_diff(np.degrees(np.arctan2(ky, kx)), ori) < 6
+        assert abs(np.hypot(kx, ky) / 0.12 - 1) < 0.15
+
+
 # --- recovery ------------------------------------------------------------------------------------
 
 @pytest.mark.parametrize("theta,amp", [(30.0, 1.0), (125.0, -1.0)])
