@@ -12,6 +12,7 @@ import json
 import math
 import os
 import warnings
+import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -200,6 +201,20 @@ def _load_npy(folder: Path, rel: str, key: str):
         if hasattr(arr, "close"):
             arr.close()
         raise BadInput(path, key, "not a .npy file (holds an archive of several arrays)")
+    # .npy has no checksum, but its header states the data size: a damaged header (shape, dtype)
+    # that still parses shows up as a file of another length than header + data
+    try:
+        with open(path, "rb") as fh:
+            major, _ = np.lib.format.read_magic(fh)
+            read = np.lib.format.read_array_header_1_0 if major == 1 else np.lib.format.read_array_header_2_0
+            read(fh)
+            offset = fh.tell()
+        extra = path.stat().st_size - offset - arr.nbytes
+    except Exception as exc:
+        raise BadInput(path, key, f"not a readable .npy file ({type(exc).__name__})") from None
+    if extra != 0:
+        raise BadInput(path, key, f"not a readable .npy file (its header describes {arr.nbytes} bytes of data, "
+                                  f"the file holds {arr.nbytes + extra})")
     return arr
 
 
@@ -232,8 +247,14 @@ def _load_npz(folder: Path, rel: str, key: str) -> dict:
     if not path.is_file():
         raise BadInput(path, key, "file not found")
     try:
+        with zipfile.ZipFile(path) as zf:   # every member's CRC-32: damaged data never loads silently
+            damaged = zf.testzip()
+        if damaged is not None:
+            raise BadInput(path, key, f"not a readable .npz file (member {damaged} fails its checksum)")
         with np.load(path, allow_pickle=False) as z:
             return {k: z[k] for k in z.files}
+    except BadInput:
+        raise
     except Exception as exc:
         raise BadInput(path, key, f"not a readable .npz file ({type(exc).__name__})") from None
 
@@ -352,10 +373,12 @@ def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
 def read_table(path) -> tuple[list[str], list[list[str]]]:
     """Read a CSV file into its header and rows of strings (no type conversion)."""
     path = Path(path)
+    raw = path.read_bytes()
     try:
-        text = path.read_text(encoding="utf-8-sig")
-    except UnicodeDecodeError:
-        raise BadInput(path, None, "is not UTF-8 text") from None
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = raw.count(b"\n", 0, exc.start)                 # 0 = header, k = data row k
+        raise BadInput(path, None, f"is not UTF-8 text (byte {raw[exc.start]:#04x})", row=line) from None
     if "\x00" in text:
         line = text.count("\n", 0, text.index("\x00"))        # 0 = header, k = data row k
         raise BadInput(path, None, "is not a CSV text table (holds a NUL byte)", row=line)
