@@ -55,7 +55,7 @@ from .geometry import wave_vector
 
 __all__ = [
     "FlashedResult", "DriftingResult", "analyze_flashed", "analyze_drifting",
-    "flashed_rows", "fold_static", "has_flashed", "has_drifting",
+    "flashed_rows", "fold_static", "has_flashed", "has_drifting", "estimate_decay_tau",
 ]
 
 _ROUND = 6  # decimals used to identify equal orientations / phases (degrees)
@@ -171,6 +171,14 @@ class FlashedResult:
     responsive : (cells,) bool  ``p_value < alpha``
     kx_cpd, ky_cpd : (O, S)  wave vectors of the (orientation, SF) conditions
     n_shuffles, alpha : the test's settings
+    temporal_weights : (cells, L)  the cell's temporal profile over lags: the first right singular
+        vector of its (conditions x lags) response matrix, signed and scaled so that its largest
+        entry is +1
+    harmonic_combined, phase_mean_combined : (cells, O, S) complex / real  the surfaces of
+        ``sum_l w_l mean[..., l]`` (``w`` = ``temporal_weights``): all lags pooled with the weights of
+        the cell's own time course (a rank-1 space-time separable estimate). A response that falls
+        across two frames (latency not a whole number of frames) is pooled instead of halved, which
+        raises the signal-to-noise ratio; the phase convention is that of ``harmonic``. Used for tuning.
     """
 
     cell_ids: np.ndarray
@@ -194,6 +202,9 @@ class FlashedResult:
     ky_cpd: np.ndarray
     n_shuffles: int
     alpha: float
+    temporal_weights: np.ndarray = None
+    harmonic_combined: np.ndarray = None
+    phase_mean_combined: np.ndarray = None
 
     def _at_peak(self, a):
         idx = self.peak_lag_index[:, None, None, None]
@@ -211,12 +222,13 @@ class FlashedResult:
 
     @property
     def peak_response(self) -> np.ndarray:
-        """Peak over phase of the first-harmonic fit, ``phase_mean + contrast |H|``, at the peak lag.
+        """Peak over phase of the first-harmonic fit, ``phase_mean + contrast |H|``, lags pooled.
 
         This is the response measure used for tuning: it serves simple cells (carried by ``|H|``)
-        and complex cells (carried by the phase-invariant part) alike. Shape (cells, O, S).
+        and complex cells (carried by the phase-invariant part) alike. Computed from the lag-pooled
+        surfaces (``harmonic_combined``, ``phase_mean_combined``). Shape (cells, O, S).
         """
-        return self.phase_mean_at_peak + self.condition_contrast[None] * np.abs(self.harmonic_at_peak)
+        return self.phase_mean_combined + self.condition_contrast[None] * np.abs(self.harmonic_combined)
 
     def full_plane(self, values=None):
         """Values on both halves of the (kx, ky) plane: ``(kx, ky, v)`` each (cells?, 2 O, S).
@@ -365,6 +377,20 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
     peak = np.argmax(e, axis=1)
     lags_s = np.arange(n_lags) * frame
 
+    # lags pooled with each cell's temporal profile (first singular vector of conditions x lags)
+    mat = np.where(np.isfinite(d), d, 0.0).reshape(n_cells, n_c, n_lags)
+    weights = np.zeros((n_cells, n_lags))
+    for c in range(n_cells):
+        if not np.any(mat[c]):
+            continue
+        _, _, vt = np.linalg.svd(mat[c], full_matrices=False)
+        w = vt[0]
+        weights[c] = w / w[np.argmax(np.abs(w))]
+    pooled = np.einsum("cospl,cl->cosp", np.where(np.isfinite(d), d, 0.0), weights)
+    pooled_avail = (count > 0).any(axis=-1)
+    pooled = np.where(pooled_avail, pooled, np.nan)
+    h_comb, pm_comb = _phase_harmonic(pooled[..., None], pooled_avail[..., None], np.deg2rad(phs), cond_contrast)
+
     p_value = np.full(n_cells, np.nan)
     if n_shuffles > 0:
         obs = np.nanmax(np.where(np.isfinite(share), share, -np.inf), axis=1)
@@ -407,7 +433,8 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
         condition_contrast=cond_contrast, harmonic=harmonic, phase_mean=phase_mean, energy=energy,
         peak_lag_index=peak, peak_lag_s=lags_s[peak], p_value=p_value, responsive=responsive,
         kx_cpd=np.asarray(kx, float), ky_cpd=np.asarray(ky, float), n_shuffles=int(n_shuffles),
-        alpha=float(alpha))
+        alpha=float(alpha), temporal_weights=weights, harmonic_combined=h_comb[..., 0],
+        phase_mean_combined=pm_comb[..., 0])
 
 
 def _phase_harmonic(d, avail, phi, cond_contrast):
@@ -473,6 +500,7 @@ class DriftingResult:
         conditions, and (Bonferroni over conditions) the F test of a non-zero vector-mean F1 against
         the pooled within-condition scatter
     responsive : (cells,) bool
+    trace_tau_s : float  traces: the indicator decay used to correct F1 (NaN: none; spikes: NaN)
     """
 
     cell_ids: np.ndarray
@@ -501,6 +529,7 @@ class DriftingResult:
     p_value: np.ndarray
     responsive: np.ndarray
     alpha: float
+    trace_tau_s: float = float("nan")
 
 
 def _spike_f1(spikes: Spikes, onset, end, tf):
@@ -551,6 +580,61 @@ def _trace_f1(traces: Traces, onset, end, tf):
     return f0, f1
 
 
+def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: float = 3.0,
+                       skip_s: float = 0.1) -> float:
+    """Decay time constant of the traces after stimulus offsets (e.g. a calcium indicator), seconds.
+
+    The trace of every cell is averaged over offsets (aligned by sample), its late level subtracted
+    and its level just after the offset normalised to 1; these curves are pooled over cells, weighted
+    by the squared offset response, and ``A exp(-t / tau)`` is fitted from ``skip_s`` on (the response
+    outlasts the stimulus by the response latency). NaN when no cell has a clear offset response.
+    """
+    from scipy import optimize
+
+    times = traces.times_s
+    vals = np.asarray(traces.values, dtype=np.float64)
+    ends = np.asarray(ends_s, float)
+    gaps = np.asarray(next_onsets_s, float) - ends
+    if ends.size == 0 or times.size < 4:
+        return float("nan")
+    dt = float(np.median(np.diff(times)))
+    win = min(max_window_s, float(np.median(gaps)))
+    nb = int(np.floor(win / dt))
+    if nb < 6:
+        return float("nan")
+    i0 = np.searchsorted(times, ends)
+    keep = (i0 + nb < times.size) & (gaps >= win)
+    if not keep.any():
+        return float("nan")
+    idx = i0[keep, None] + np.arange(nb)[None, :]
+    t_rel = np.mean(times[idx] - ends[keep, None], axis=0)
+    with np.errstate(invalid="ignore"):
+        mean = np.nanmean(vals[:, idx], axis=1)                       # (cells, nb)
+        sem = np.nanstd(vals[:, idx], axis=1) / np.sqrt(keep.sum())
+    late = t_rel >= 0.8 * t_rel[-1]
+    first = (t_rel >= skip_s) & (t_rel < skip_s + 2 * dt + 1e-12)
+    if not late.any() or not first.any():
+        return float("nan")
+    base = np.nanmean(mean[:, late], axis=1)
+    amp = np.nanmean(mean[:, first], axis=1) - base
+    noise = np.nanmean(sem[:, first], axis=1)
+    good = np.isfinite(amp) & (np.abs(amp) > 4 * noise)
+    if not good.any():
+        return float("nan")
+    curves = (mean[good] - base[good, None]) / amp[good, None]
+    w = amp[good] ** 2
+    pooled = np.nansum(curves * w[:, None], axis=0) / w.sum()
+    use = t_rel >= skip_s
+    t, y = t_rel[use] - skip_s, pooled[use]
+    try:
+        res = optimize.least_squares(lambda q: q[0] * np.exp(-t / q[1]) - y, [1.0, max(win / 4, dt)],
+                                     bounds=([0.0, dt / 4], [10.0, 10 * win]))
+    except ValueError:
+        return float("nan")
+    tau = float(res.x[1])
+    return tau if tau < 0.99 * 10 * win else float("nan")
+
+
 def _spontaneous(responses, table: GratingTable, drift_rows):
     """Spontaneous level from blank rows outside flashed sequences, else from gaps between trials."""
     blanks = np.flatnonzero(table.is_blank & ~flashed_rows(table))
@@ -576,7 +660,8 @@ def _spontaneous(responses, table: GratingTable, drift_rows):
     return np.full(responses.cell_ids.size, np.nan), "none"
 
 
-def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: float = 0.01) -> DriftingResult:
+def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: float = 0.01,
+                     trace_tau_s: float | None = None) -> DriftingResult:
     """F0 and F1 of drifting-grating trials, per trial and per (direction, SF, TF) condition.
 
     Parameters
@@ -586,6 +671,13 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         Rows with ``tf_hz != 0`` and ``contrast != 0`` are the trials.
     alpha : float
         Significance level for ``responsive``.
+    trace_tau_s : float, optional
+        Traces only: decay time constant of the indicator. The trace is a low-passed copy of the
+        firing rate, which divides the first harmonic by ``1 + i 2 pi tf tau`` (a first-order
+        low-pass) and leaves F0 alone, so F1/F0 of raw traces would call most simple cells complex.
+        F1 is multiplied back by ``1 + i 2 pi tf tau``. ``None`` estimates ``tau`` from the decay
+        after trial offsets (:func:`estimate_decay_tau`); ``0`` applies no correction. The value used
+        is ``DriftingResult.trace_tau_s``.
 
     Returns
     -------
@@ -629,8 +721,16 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     if isinstance(responses, Spikes):
         raw = interval_responses(responses, onset, end).astype(float)
         trial_f1 = _spike_f1(responses, onset, end, tf)
+        tau = float("nan")
     else:
         raw, trial_f1 = _trace_f1(responses, onset, end, tf)
+        if trace_tau_s is None:
+            nxt = np.append(onset[1:], np.inf)
+            tau = estimate_decay_tau(responses, table.offset_s[rows], nxt)
+        else:
+            tau = float(trace_tau_s)
+        if np.isfinite(tau) and tau > 0:
+            trial_f1 = trial_f1 * (1.0 + 2j * np.pi * tf * tau)[None, :]
     trial_f0 = raw - np.where(np.isfinite(spont), spont, 0.0)[:, None]
     n_cells = trial_f0.shape[0]
 
@@ -718,4 +818,4 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         f0_mean=m0.reshape(shape), f0_sem=sem0.reshape(shape), f1_mean=f1m.reshape(shape),
         f1_sem=sem1.reshape(shape), f1_amp_mean=amp_mean.reshape(shape), n_trials=n0.reshape(shape),
         pref_index=pref_idx, f1_f0=ratio, simple=simple, response=resp4, pref_direction_deg=pref_dir,
-        dsi=dsi, p_value=p_value, responsive=responsive, alpha=float(alpha))
+        dsi=dsi, p_value=p_value, responsive=responsive, alpha=float(alpha), trace_tau_s=float(tau))

@@ -405,3 +405,29 @@ def test_run_gratings_writes_surfaces_and_cells_csv(tmp_path, flashed_spikes, fl
     with pytest.raises(BadInput):
         run_gratings(tmp_path / "none", tmp_path / "out2", quiet=True)
     assert not (tmp_path / "out2").exists()
+
+
+# ----------------------------------------------------------------------------------------------
+# integration with the project's simulator (map2d.simulate)
+# ----------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("kind,ori_tol", [("spikes", 5.0), ("traces", 10.0)])
+def test_simulated_session_tuning_and_class(kind, ori_tol):
+    simulate = pytest.importorskip("map2d.simulate")
+    s, truth = simulate.simulate_session(n_cells=12, minutes=0, flashed_minutes=5, repeats=3, responses=kind,
+                                         seed=1)
+    fl = analyze_flashed(s.responses, s.gratings, rng=0)
+    dr = analyze_drifting(s.responses, s.gratings)
+    if kind == "traces":
+        assert 0.1 < dr.trace_tau_s < 1.0      # simulated indicator decay 0.4 s
+    cols = grating_tuning_columns(fl, dr)
+    for i, tc in enumerate(truth["cells"]):
+        if tc["kind"] in ("simple", "complex"):
+            d = abs((cols["pref_orientation_deg"][i] - tc["pref_orientation_deg"] + 90) % 180 - 90)
+            assert d < ori_tol, (i, tc["kind"])   # issue 4: 5 deg (spikes); calcium-smoothed traces looser
+            assert cols["grating_class"][i] == tc["kind"]      # F1/F0 > 1 simple (Skottun et al. 1991)
+        elif tc["kind"] == "unresponsive":
+            assert cols["grating_responsive"][i] is False and np.isnan(cols["pref_orientation_deg"][i])
+        else:                                   # centre-surround: responsive, linear, no orientation
+            assert cols["grating_responsive"][i] is True
+            assert np.isnan(cols["pref_orientation_deg"][i])
+            assert cols["grating_class"][i] == "simple"

@@ -209,7 +209,8 @@ class OrientationFit:
 
     ``pref_deg`` in ``[0, 180)``, ``pref_ci95_deg`` the half-width of its 95 % interval,
     ``hwhh_deg`` the half-width at half height above the baseline (NaN when the curve never falls to
-    half height, ``kappa < ln 2 / 2``), ``params`` = ``(b, a, kappa, theta0)``.
+    half height, ``kappa < ln 2 / 2``), ``params`` = ``(b, a, kappa, theta0)``, ``p_tuned`` the p value
+    of the F test of the fit against a constant (nested models).
     """
 
     pref_deg: float
@@ -219,6 +220,12 @@ class OrientationFit:
     params: np.ndarray
     r2: float
     ok: bool
+    p_tuned: float = float("nan")
+
+    @property
+    def tuned(self) -> bool:
+        """Whether the von Mises fit beats a constant (F test of the nested models, p < 0.01)."""
+        return bool(self.ok and np.isfinite(self.p_tuned) and self.p_tuned < 0.01)
 
 
 def _hwhh_deg(kappa):
@@ -269,8 +276,17 @@ def fit_orientation(theta_deg, r) -> OrientationFit:
     with np.errstate(invalid="ignore", divide="ignore"):
         dhw = np.degrees(0.5 * (-1.0 / np.sqrt(1.0 - c * c)) * (_LN2 / kappa**2))
     hw_ci = abs(dhw) * se_k * t95 if np.isfinite(hw) else nan
+    # nested-model F test: von Mises (4 parameters) against a constant (1)
+    ss1 = float(np.sum((von_mises_orientation(th, *fit.params) - y) ** 2))
+    ss0 = float(np.sum((y - y.mean()) ** 2))
+    dof = th.size - 4
+    if dof > 0 and ss1 > 0:
+        p_tuned = float(stats.f.sf(((ss0 - ss1) / 3.0) / (ss1 / dof), 3, dof))
+    else:
+        p_tuned = 0.0 if ss0 > 0 else nan
     return OrientationFit(pref_deg=float(np.mod(t0, 180.0)), pref_ci95_deg=float(min(se_t0 * t95, 90.0)),
-                          hwhh_deg=hw, hwhh_ci95_deg=float(hw_ci), params=fit.params, r2=fit.r2, ok=True)
+                          hwhh_deg=hw, hwhh_ci95_deg=float(hw_ci), params=fit.params, r2=fit.r2, ok=True,
+                          p_tuned=p_tuned)
 
 
 @dataclass
@@ -512,13 +528,39 @@ TUNING_COLUMNS = (
 )
 
 
-def _flashed_curves(fl, c):
-    """Orientation curve at the best SF and SF curve at the best orientation (peak lag)."""
-    resp = fl.peak_response[c]
-    if not np.isfinite(resp).any():
+def _rank1(surface):
+    """Rank-1 (SVD) orientation and SF profiles of an (O, S) surface, in response units."""
+    m = np.where(np.isfinite(surface), surface, 0.0)
+    if not np.any(m):
         return None
-    o, s = np.unravel_index(int(np.nanargmax(resp)), resp.shape)
-    return fl.orientations_deg, resp[:, s], fl.sfs_cpd, resp[o, :], None, None
+    u, sv, vt = np.linalg.svd(m, full_matrices=False)
+    u0, v0 = u[:, 0], vt[0]
+    if u0[np.argmax(np.abs(u0))] < 0:
+        u0, v0 = -u0, -v0
+    return u0 * sv[0] * np.max(v0), v0 * sv[0] * np.max(u0)
+
+
+def _flashed_curves(fl, c):
+    """Orientation curve: the rank-1 orientation profile of the (orientation x SF) response surface
+    (all SFs pooled with the weights of the cell's own SF tuning). SF curve: see :func:`_sf_near`."""
+    resp = fl.peak_response[c]
+    prof = _rank1(resp)
+    if prof is None:
+        return None
+    return fl.orientations_deg, prof[0], fl.sfs_cpd, prof[1], resp
+
+
+def _sf_near(theta_deg, surface, ofit):
+    """SF curve near the preferred orientation: the three orientation rows nearest the fitted
+    preference, averaged with the fitted von Mises weights (a single row is noisier, and pooling all
+    orientations biases the preferred SF low, since off-orientation rows favour low SFs)."""
+    dist = np.abs(np.mod(theta_deg - ofit.pref_deg + 90.0, 180.0) - 90.0)
+    near = np.argsort(dist)[:3]
+    w = von_mises_orientation(theta_deg[near], 0.0, 1.0, ofit.params[2], ofit.params[3])
+    rows = surface[near]
+    ok = np.isfinite(rows)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (np.where(ok, rows, 0.0) * w[:, None]).sum(0) / (ok * w[:, None]).sum(0)
 
 
 def _drifting_curves(dr, c):
@@ -536,7 +578,7 @@ def _drifting_curves(dr, c):
     cnt = np.bincount(idx, weights=fin.astype(float), minlength=uo.size)
     with np.errstate(invalid="ignore", divide="ignore"):
         ori_curve = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
-    return uo, ori_curve, dr.sfs_cpd, resp[d_i, :, t_i], dr.directions_deg, dir_curve
+    return uo, ori_curve, dr.sfs_cpd, resp[d_i, :, t_i], None, dr.directions_deg, dir_curve
 
 
 def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None) -> dict:
@@ -559,9 +601,16 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None) -> dict:
     to it (its finer orientation x SF sampling and phase coverage make it the natural choice), else
     from drifting gratings when it responds to those; ``tuning_source`` says which. F1/F0, the
     simple/complex class, direction preference and DSI come from drifting gratings only. A cell
-    without a significant response to any grating gets empty values. ``circular_variance`` is the
+    without a significant response to any grating gets empty values; a responsive cell whose
+    orientation fit does not beat a constant (F test, p >= 0.01, e.g. a centre-surround cell) gets an empty preferred orientation and width (its circular variance and
+    OSI are still reported). ``circular_variance`` is the
     circular variance itself (0 = one orientation, 1 = untuned); ``osi`` and ``circular_variance``
-    use the same orientation curve as the fit.
+    use the same orientation curve as the fit. For flashed gratings the orientation curve is the
+    rank-1 (SVD) orientation profile of the lag-pooled (orientation x SF) surface
+    (:attr:`map2d.gratings.FlashedResult.peak_response`), and the SF curve the average of the three
+    orientation rows nearest the fitted preference, weighted by the fitted von Mises (the rank-1 SF
+    profile for cells without orientation tuning). For drifting gratings the curves are slices at
+    the preferred condition, directions folded modulo 180.
     """
     if flashed is None and drifting is None:
         raise ValueError("give flashed and/or drifting results")
@@ -604,21 +653,21 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None) -> dict:
             row["dsi"] = float(drifting.dsi[di])
             dc = _drifting_curves(drifting, di)
             if dc is not None:
-                dfit = fit_direction(dc[4], dc[5])
+                dfit = fit_direction(dc[5], dc[6])
                 row["pref_direction_deg"] = dfit.pref_deg if dfit.ok else float(drifting.pref_direction_deg[di])
         if curves is not None:
-            th, ocurve, sfs, scurve = curves[:4]
-            cv, vec_pref = circular_variance(th, ocurve)
+            th, ocurve, sfs, scurve, surface = curves[:5]
+            cv, _ = circular_variance(th, ocurve)
             row["circular_variance"] = cv
             row["osi"] = osi(th, ocurve)
             of = fit_orientation(th, ocurve)
-            if of.ok:
+            if surface is not None and of.tuned:
+                scurve = _sf_near(th, surface, of)
+            if of.tuned:
                 row.update(pref_orientation_deg=of.pref_deg, pref_orientation_ci95_deg=of.pref_ci95_deg,
                            orientation_hwhh_deg=of.hwhh_deg, orientation_hwhh_ci95_deg=of.hwhh_ci95_deg,
                            ori_fit_baseline=of.params[0], ori_fit_amplitude=of.params[1],
                            ori_fit_kappa=of.params[2], ori_fit_r2=of.r2)
-            elif np.isfinite(vec_pref) and np.isfinite(ocurve).sum() >= 3:
-                row["pref_orientation_deg"] = vec_pref
             sfit = fit_sf(sfs, scurve)
             if sfit.ok:
                 row.update(pref_sf_cpd=sfit.pref_cpd, pref_sf_ci_low_cpd=sfit.pref_ci_low_cpd,
