@@ -78,7 +78,7 @@ from .models import dog2d, dog_peak_sf, dog_spectrum, gabor2d
 
 __all__ = [
     "CELL_TYPES", "TYPE_FRACTIONS", "ModelCell", "default_grid", "default_sfs_cpd", "type_counts",
-    "make_cells", "pixel_kernels", "lag_weights", "grating_drive", "stimulus_rates", "spikes_from_rates",
+    "make_cells", "pixel_kernels", "lag_weights", "frame_matrix", "grating_drive", "stimulus_rates", "spikes_from_rates",
     "calcium_traces", "simulate_responses", "simulate_session", "truth_dict", "cells_from_truth",
 ]
 
@@ -618,8 +618,16 @@ def _segment_edges(cells, sparse_noise, gratings, bin_s):
     return sparse_edges, grating_edges
 
 
+def frame_matrix(sparse_noise: SparseNoise, n_bins: int | None = None):
+    """Sparse-noise frames as a sparse ``(n_bins, pixels)`` matrix (rows past the last frame empty)."""
+    frames = sparse_noise.frames.reshape(sparse_noise.n_frames, -1)
+    n_bins = sparse_noise.n_frames if n_bins is None else int(n_bins)
+    fi, pi = np.nonzero(frames)
+    return _sparse.csr_matrix((frames[fi, pi].astype(float), (fi, pi)), shape=(n_bins, frames.shape[1]))
+
+
 def stimulus_rates(cells, sparse_noise: SparseNoise | None = None, gratings: GratingTable | None = None,
-                   bin_s: float = 0.01, supersample: int = 5, cell_subset=None):
+                   bin_s: float = 0.01, supersample: int = 5, cell_subset=None, frames_csr=None):
     """Firing rates in time bins, segment by segment (sparse noise first, then gratings).
 
     Parameters
@@ -636,6 +644,9 @@ def stimulus_rates(cells, sparse_noise: SparseNoise | None = None, gratings: Gra
         Points per pixel side for :func:`pixel_kernels`.
     cell_subset : sequence of int, optional
         Indices into ``cells`` to compute (default all); the bins do not depend on it.
+    frames_csr : scipy.sparse matrix, optional
+        :func:`frame_matrix` of ``sparse_noise`` with as many rows as sparse-noise bins, when the caller
+        computes rates chunk by chunk and builds it once.
 
     Yields
     ------
@@ -652,11 +663,9 @@ def stimulus_rates(cells, sparse_noise: SparseNoise | None = None, gratings: Gra
     sd = np.array([sub_cells[i].temporal_sd_s for i in owner])
     if sparse_edges is not None:
         n_bins = sparse_edges.size - 1
-        frames = sparse_noise.frames.reshape(sparse_noise.n_frames, -1)
         drive = np.zeros((n_bins, owner.size))
         if owner.size:
-            fi, pi = np.nonzero(frames)
-            S = _sparse.csr_matrix((frames[fi, pi].astype(float), (fi, pi)), shape=(n_bins, frames.shape[1]))
+            S = frame_matrix(sparse_noise, n_bins) if frames_csr is None else frames_csr
             K = pixel_kernels(sub_cells, sparse_noise.grid, supersample).reshape(owner.size, -1)
             drive = np.asarray(S @ K.T)
             w = lag_weights(sparse_noise.frame_interval_s, lat, sd, n_lags=n_bins - sparse_noise.n_frames + 1)
@@ -788,8 +797,9 @@ def simulate_responses(cells, sparse_noise: SparseNoise | None = None, gratings:
             times.append(t)
             rows.append(c)
     longest = max([e.size for e in (sparse_edges, grating_edges) if e is not None], default=1)
+    S = frame_matrix(sparse_noise, sparse_edges.size - 1) if sparse_edges is not None else None
     for chunk in _chunks(cells, longest):
-        for edges, rates in stimulus_rates(cells, sparse_noise, gratings, bin_s, supersample, chunk):
+        for edges, rates in stimulus_rates(cells, sparse_noise, gratings, bin_s, supersample, chunk, S):
             t, c = spikes_from_rates(edges, rates, rng)
             times.append(t)
             rows.append(np.asarray(chunk, dtype=np.int64)[c])
