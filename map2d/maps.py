@@ -54,6 +54,8 @@ __all__ = ["MapResult", "compute_maps", "frame_responses", "map_lags", "dense_st
 KINDS = ("on", "off", "linear")
 
 _CHUNK_FRAMES = 8192
+_NULL_BYTES = 128 * 2**20      # bound on the side-by-side shifted responses of one shuffle product
+_SHUFFLE_BATCH = 10            # shuffles between sequential-stopping checks
 
 
 # ----------------------------------------------------------------------------------------------
@@ -291,7 +293,7 @@ def _shift_offsets(F: int, n: int, L: int, min_shift: int, rng) -> np.ndarray:
 # public engine
 # ----------------------------------------------------------------------------------------------
 def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffles: int = 200,
-                 alpha: float = 0.01, rng=None, min_shift_s: float = 10.0, stop_after: int = 10,
+                 alpha: float = 0.01, rng=None, min_shift_s: float = 10.0, stop_after: int = 5,
                  dense_method: str = "auto", n_folds: int = 5) -> MapResult:
     """ON, OFF and linear maps at every lag for every cell, with z-scores and the responsive call.
 
@@ -434,15 +436,40 @@ def _compute_sparse(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_
     n_off_null = cnt_all[None, P:] * frac[:, None]
     asd_null = _analytic_sd(sd, n_valid, n_on_null, n_off_null)    # (3, C, P)
 
-    def null_stats(active, offset, Xa):
-        """(3, Ca, L, P) analytic-z maps of one shuffle for the active cells."""
-        out = np.empty((3, active.size, L, P), dtype=np.float32)
-        for li, lag in enumerate(lags):
-            s = cor.sums(Xa, int(offset + lag), circular=True)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                m = _sparse_maps_one(s, n_on_null[active], n_off_null[active], P)
-            out[:, :, li] = m / asd_null[:, active]
-        return out
+    # the stimulus matrix shifted down by each lag (wrapping), built once for all shuffles
+    coo = cor.B.tocoo()
+    ones = np.ones(coo.nnz, np.float32)
+    BLT = [sp.csr_matrix((ones, ((coo.row + int(lag)) % F, coo.col)), shape=(F, 2 * P)).T  # csc each
+           for lag in lags]
+    del coo
+
+    def null_stats(active, offs, Xa):
+        """Yield the (3, Ca, L, P) analytic-z maps of each shuffle offset, for the active cells.
+
+        The circularly shifted responses of several shuffles are laid side by side as columns
+        (bounded to ``_NULL_BYTES``) so one sparse product per lag serves them all; the lag is carried
+        by the stimulus matrix (shifted circularly once, up front), so responses are copied once.
+        """
+        Ca = active.size
+        nb_max = max(1, int(_NULL_BYTES // max(F * Ca * 4, 1)))
+        n_on_a, n_off_a, asd_a = n_on_null[active], n_off_null[active], asd_null[:, active]
+        for start in range(0, len(offs), nb_max):
+            ob = offs[start:start + nb_max]
+            Xs = np.empty((F, len(ob), Ca), dtype=np.float32)
+            for bi, o in enumerate(ob):
+                sh = int(o) % F
+                Xs[:F - sh, bi] = Xa[sh:]
+                Xs[F - sh:, bi] = Xa[:sh]
+            Xs = Xs.reshape(F, -1)
+            # per lag: the (2P, columns) result stays small enough for the cache
+            Y = np.stack([np.asarray(BL @ Xs) for BL in BLT]).reshape(L, 2, P, len(ob), Ca)
+            del Xs
+            for bi in range(len(ob)):
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    on = Y[:, 0, :, bi].transpose(2, 0, 1) / n_on_a[:, None, :]      # (Ca, L, P)
+                    off = Y[:, 1, :, bi].transpose(2, 0, 1) / n_off_a[:, None, :]
+                    out = np.stack([on, off, on - off]) / asd_a[:, :, None, :]
+                yield out.astype(np.float32, copy=False)
 
     offsets = _shift_offsets(F, K, L, min_shift, rng)
     return _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
@@ -460,20 +487,21 @@ def _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, grid, lag
     ku = list(kinds_used)
     ok_cell = np.isfinite(sd) & (sd > 0) & (n_valid > lags[-1] + 2)
     # calibration of the scale per cell and kind on the first shuffles (all cells)
-    n_cal = min(K, 20)
+    n_cal = min(K, 10)
     sumsq = np.zeros((3, C))
     nsq = np.zeros((3, C))
     null_max = np.full((K, C), np.nan)
     cells = np.flatnonzero(ok_cell)
-    zcal = []
-    for k in range(n_cal):
-        if cells.size == 0:
-            break
-        zn = null_stats(cells, int(offsets[k]), X[:, cells])
-        fin = np.isfinite(zn)
-        sumsq[:, cells] += np.where(fin, zn.astype(np.float64) ** 2, 0).sum(axis=(2, 3))
-        nsq[:, cells] += fin.sum(axis=(2, 3))
-        zcal.append(zn)
+    kind_max = np.full((n_cal, 3, C), -np.inf)                     # max |z_an| per shuffle and kind
+    if cells.size:
+        Xc_cells = np.ascontiguousarray(X[:, cells])
+        for k, zn in enumerate(null_stats(cells, offsets[:n_cal], Xc_cells)):
+            fin = np.isfinite(zn)
+            a = np.where(fin, np.abs(zn), 0).astype(np.float64)
+            sumsq[:, cells] += (a ** 2).sum(axis=(2, 3))
+            nsq[:, cells] += fin.sum(axis=(2, 3))
+            kind_max[k][:, cells] = np.where(fin, np.abs(zn), -np.inf).max(axis=(2, 3))
+        del Xc_cells
     with np.errstate(invalid="ignore", divide="ignore"):
         g = np.sqrt(sumsq / nsq)                                    # (3, C)
     g[~np.isfinite(g) | (g <= 0)] = np.nan
@@ -490,28 +518,30 @@ def _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, grid, lag
     T[~np.isfinite(T)] = np.nan
     exceed = np.zeros(C, dtype=int)
     drawn = np.zeros(C, dtype=int)
-    for k, zn in enumerate(zcal):
-        m = stat(zn / g[:, cells][:, :, None, None])
+    with np.errstate(invalid="ignore"):
+        cal_max = (kind_max[:, ku] / g[ku][None]).max(axis=1)     # (n_cal, C)
+    for k in range(n_cal if cells.size else 0):
+        m = cal_max[k, cells]
         null_max[k, cells] = m
         exceed[cells] += m >= T[cells]
         drawn[cells] += 1
     active = cells.copy()
     if stop_after > 0:
         active = active[exceed[active] < stop_after]
-    Xa = X[:, active]
-    for k in range(n_cal, K):
-        if active.size == 0:
-            break
-        zn = null_stats(active, int(offsets[k]), Xa)
-        m = stat(zn / g[:, active][:, :, None, None])
-        null_max[k, active] = m
-        exceed[active] += m >= T[active]
-        drawn[active] += 1
+    k = n_cal
+    while k < K and active.size:
+        batch = offsets[k:k + _SHUFFLE_BATCH]
+        Xa = np.ascontiguousarray(X[:, active])
+        g_a = g[:, active][:, :, None, None]
+        for j, zn in enumerate(null_stats(active, batch, Xa)):
+            m = stat(zn / g_a)
+            null_max[k + j, active] = m
+            exceed[active] += m >= T[active]
+            drawn[active] += 1
+        del Xa
+        k += batch.size
         if stop_after > 0:
-            keep = exceed[active] < stop_after
-            if not keep.all():
-                active = active[keep]
-                Xa = X[:, active]
+            active = active[exceed[active] < stop_after]
     with np.errstate(invalid="ignore", divide="ignore"):
         full = drawn == K
         p = np.where(full, (1 + exceed) / (1 + K), exceed / np.maximum(drawn, 1))
@@ -834,14 +864,15 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
     maps[2] = lin.transpose(2, 0, 1)
     z_an[2] = z_lin.transpose(2, 0, 1)
 
-    def null_stats(active, offset, Xa):
-        crs, _ = _dense_cross(frames, Xa, offset + lags, mu, circular=True)
-        out = np.full((3, active.size, L, P), np.nan, dtype=np.float32)
-        for li in range(L):
-            kk = apply(crs[0, li], active)                                  # (P, Ca)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                out[2, :, li] = (kk / a_sd[:, active]).T
-        return out
+    def null_stats(active, offs, Xa):
+        for offset in offs:
+            crs, _ = _dense_cross(frames, Xa, offset + lags, mu, circular=True)
+            out = np.full((3, active.size, L, P), np.nan, dtype=np.float32)
+            for li in range(L):
+                kk = apply(crs[0, li], active)                                  # (P, Ca)
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    out[2, :, li] = (kk / a_sd[:, active]).T
+            yield out
 
     offsets = _shift_offsets(F, K, L, min_shift, rng)
     return _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
