@@ -555,6 +555,20 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
     return Traces(values=values, times_s=times)
 
 
+def _stimulus_windows(session: "Session") -> tuple[np.ndarray, np.ndarray]:
+    """Starts and ends of every stimulus window (valid sparse-noise frames, grating presentations)."""
+    starts, ends = [np.zeros(0)], [np.zeros(0)]
+    sn = session.sparse_noise
+    if sn is not None:
+        keep = slice(None) if sn.valid is None else np.asarray(sn.valid, dtype=bool)
+        starts.append(sn.times_s[keep])
+        ends.append(sn.frame_ends_s()[keep])
+    if session.gratings is not None and len(session.gratings):
+        starts.append(session.gratings.onset_s)
+        ends.append(session.gratings.offset_s)
+    return np.concatenate(starts), np.concatenate(ends)
+
+
 def count_spikes_outside(session: "Session") -> int:
     """Number of spikes outside every stimulus window (sparse-noise frames, grating presentations).
 
@@ -566,18 +580,9 @@ def count_spikes_outside(session: "Session") -> int:
     r = session.responses
     if not isinstance(r, Spikes) or r.time_s.size == 0:
         return 0
-    starts, ends = [], []
-    sn = session.sparse_noise
-    if sn is not None:
-        keep = slice(None) if sn.valid is None else np.asarray(sn.valid, dtype=bool)
-        starts.append(sn.times_s[keep])
-        ends.append(sn.frame_ends_s()[keep])
-    if session.gratings is not None and len(session.gratings):
-        starts.append(session.gratings.onset_s)
-        ends.append(session.gratings.offset_s)
-    if not starts:
+    starts, ends = _stimulus_windows(session)
+    if starts.size == 0:
         return 0
-    starts, ends = np.concatenate(starts), np.concatenate(ends)
     order = np.argsort(starts, kind="stable")
     starts, reach = starts[order], np.maximum.accumulate(ends[order])
     k = np.searchsorted(starts, r.time_s, side="right") - 1
@@ -646,12 +651,34 @@ def load_session(folder) -> Session:
         rois = _load_rois(folder, manifest["rois"])
     session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
                       rois=rois, path=folder, name=str(manifest.get("name", folder.name)), notes=notes)
+    _check_time_overlap(session, folder, manifest["responses"])
     n_out = count_spikes_outside(session)
     if n_out:
         _note(notes, f"{folder / manifest['responses']['file']}: field time_s: {n_out} of "
                      f"{session.responses.time_s.size} spikes fall outside every stimulus window "
                      f"(sparse-noise frames, grating presentations); they are ignored")
     return session
+
+
+def _check_time_overlap(session: Session, folder: Path, spec) -> None:
+    """Refuse responses that share no time with the stimuli (wrong units or another clock): every
+    analysis would silently come out empty."""
+    starts, ends = _stimulus_windows(session)
+    if starts.size == 0:
+        return
+    lo, hi = float(starts.min()), float(ends.max())
+    r = session.responses
+    if isinstance(r, Spikes):
+        if r.time_s.size and count_spikes_outside(session) == r.time_s.size:
+            raise BadInput(folder / spec["file"], "time_s",
+                           f"no spike falls in any stimulus window (spikes {r.time_s[0]:.6g} to "
+                           f"{r.time_s[-1]:.6g} s, stimuli {lo:.6g} to {hi:.6g} s): check time units and clock")
+    else:
+        t = r.times_s
+        if not np.any((starts < t[-1]) & (ends > t[0])):
+            raise BadInput(folder / spec["times"], "times",
+                           f"the samples ({t[0]:.6g} to {t[-1]:.6g} s) overlap no stimulus window "
+                           f"({lo:.6g} to {hi:.6g} s): check time units and clock")
 
 
 def _load_rois(folder: Path, rel) -> np.ndarray:

@@ -91,7 +91,18 @@ def responses(draw):
 def sessions(draw):
     sn = draw(st.none() | sparse_noises())
     gr = draw(st.none() | grating_tables())
-    return Session(responses=draw(responses()), sparse_noise=sn, gratings=gr, name="prop")
+    r = draw(responses())
+    # responses that share no time with the stimuli are refused (another clock): keep some overlap
+    starts = [a[0] for a in (sn and sn.times_s, gr and gr.onset_s) if a is not None]
+    if starts:
+        t0 = min(starts)
+        if isinstance(r, Spikes) and r.time_s.size:
+            moved = np.maximum(r.time_s + (t0 - r.time_s[0]), t0)          # sorted, none before t0
+            r = Spikes(time_s=np.r_[t0, moved], cell=np.r_[r.cell[0], r.cell],
+                       cell_ids=r.cell_ids)
+        elif isinstance(r, Traces):
+            r = Traces(values=r.values, times_s=r.times_s + (t0 - r.times_s[0]))
+    return Session(responses=r, sparse_noise=sn, gratings=gr, name="prop")
 
 
 def _quiet_load(folder):

@@ -588,3 +588,15 @@ def test_cli_success_replaces_earlier_results_and_reruns_are_byte_identical(good
     code, err = _run_maps(capsys, good_folder, again, "--seed", "3")
     assert code == 0, err
     assert (again / "cells.csv").read_bytes() == first
+
+
+def test_spikes_on_another_clock_are_refused(copy):
+    z = dict(np.load(copy / "spikes.npz"))
+    np.savez(copy / "spikes.npz", time_s=z["time_s"] * 1000.0 + 5e4, cell=z["cell"])   # ms, another origin
+    _refused(copy, "spikes.npz", "field time_s", "no spike falls in any stimulus window", "time units")
+
+
+def test_trace_times_on_another_clock_are_refused(tcopy):
+    t = np.load(tcopy / "trace_times.npy")
+    np.save(tcopy / "trace_times.npy", t + 3600.0)
+    _refused(tcopy, "trace_times.npy", "field times", "overlap no stimulus window")
