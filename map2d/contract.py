@@ -361,7 +361,7 @@ def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
         shown = ", ".join(str(int(k)) for k in gaps[:5]) + (", ..." if gaps.size > 5 else "")
         what = ("those frames are excluded" if exclude_gaps else
                 "set sparse_noise.exclude_gaps to true in session.json to leave those frames out")
-        _note(notes, f"{tpath}: field times: {gaps.size} frame intervals are longer than {GAP_FACTOR:g} x the "
+        _note(notes, f"{tpath}: field times: {gaps.size} frame interval{'s are' if gaps.size > 1 else ' is'} longer than {GAP_FACTOR:g} x the "
                      f"median {med * 1e3:.4g} ms and look like dropped frames (after frame {shown}); {what}")
     valid = None
     if exclude_gaps:

@@ -445,7 +445,7 @@ def test_dropped_frames_can_be_excluded(copy):
     m = _manifest(copy)
     m["sparse_noise"]["exclude_gaps"] = True
     _set_manifest(copy, m)
-    s, msg = _warned(copy, "sparse_noise_times.npy", "1 frame intervals", "excluded")
+    s, msg = _warned(copy, "sparse_noise_times.npy", "1 frame interval is longer", "excluded")
     valid = s.sparse_noise.valid
     assert valid.dtype == bool and valid.shape == (t.size,)
     assert np.flatnonzero(~valid).tolist() == [119]
