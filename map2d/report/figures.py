@@ -59,6 +59,29 @@ def _float_or_nan(v) -> float:
         return float("nan")
 
 
+def _value(analysis, name, row):
+    vals = analysis.cells.get(name)
+    return None if vals is None or row >= len(vals) else vals[row]
+
+
+def _vfloat(analysis, name, row) -> float:
+    return _float_or_nan(_value(analysis, name, row))
+
+
+def _vtext(analysis, name, row) -> str:
+    v = _value(analysis, name, row)
+    return "" if v is None or isinstance(v, float) and math.isnan(v) else str(v)
+
+
+def _vbool(analysis, name, row):
+    v = _value(analysis, name, row)
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, str) and v.strip().lower() in ("true", "false"):
+        return v.strip().lower() == "true"
+    return None
+
+
 def column_float(analysis, name) -> np.ndarray:
     """Column ``name`` of ``analysis.cells`` as floats, NaN where empty or absent."""
     vals = analysis.cells.get(name)
@@ -69,32 +92,12 @@ def column_float(analysis, name) -> np.ndarray:
 
 def column_text(analysis, name) -> list:
     """Column ``name`` as strings ('' where empty or absent)."""
-    vals = analysis.cells.get(name)
-    if vals is None:
-        return [""] * len(analysis.cell_ids)
-    out = []
-    for v in vals:
-        if v is None or isinstance(v, float) and math.isnan(v):
-            out.append("")
-        else:
-            out.append(str(v))
-    return out
+    return [_vtext(analysis, name, r) for r in range(len(analysis.cell_ids))]
 
 
 def column_bool(analysis, name) -> list:
     """Column ``name`` as True / False / None (None where empty or absent)."""
-    vals = analysis.cells.get(name)
-    if vals is None:
-        return [None] * len(analysis.cell_ids)
-    out = []
-    for v in vals:
-        if isinstance(v, (bool, np.bool_)):
-            out.append(bool(v))
-        elif isinstance(v, str) and v.strip().lower() in ("true", "false"):
-            out.append(v.strip().lower() == "true")
-        else:
-            out.append(None)
-    return out
+    return [_vbool(analysis, name, r) for r in range(len(analysis.cell_ids))]
 
 
 # ----------------------------------------------------------------------------------------------
@@ -147,9 +150,9 @@ def outline_patch(analysis, row, **style):
 
     See the module notes for the contour drawn per model.
     """
-    model = column_text(analysis, "model")[row]
-    cx = column_float(analysis, "center_x_deg")[row]
-    cy = column_float(analysis, "center_y_deg")[row]
+    model = _vtext(analysis, "model", row)
+    cx = _vfloat(analysis, "center_x_deg", row)
+    cy = _vfloat(analysis, "center_y_deg", row)
     if not (np.isfinite(cx) and np.isfinite(cy)):
         return None
     return _outline(model, cx, cy, _shape_params(analysis, model, row), **style)
@@ -164,7 +167,7 @@ def _shape_params(analysis, model, row):
         names = ("rc_deg",)
     else:
         return ()
-    return tuple(column_float(analysis, n)[row] for n in names)
+    return tuple(_vfloat(analysis, n, row) for n in names)
 
 
 def _outline(model, cx, cy, params, **style):
@@ -397,7 +400,7 @@ def _tuning_curves(an, c):
     """
     from ..fit import tuning as tu
 
-    src = column_text(an, "tuning_source")[c]
+    src = _vtext(an, "tuning_source", c)
     cid = int(an.cell_ids[c])
     order = [src] if src else []
     order += [s for s in ("flashed", "drifting") if s not in order]
@@ -436,6 +439,15 @@ def _sf_fit_curve(f, y, fine):
         fn = cands[min(ssr, key=ssr.get)]
     with np.errstate(all="ignore"):
         return fn(fine, *sfit.params), sfit.pref_cpd
+
+
+def _measured_h(an):
+    """The measured flashed-grating surface that the agreement uses (``analysis.measured_h``), else the
+    flashed result's own (lags pooled when available, else at the peak lag)."""
+    if an.measured_h is not None:
+        return an.measured_h
+    h = getattr(an.flashed, "harmonic_combined", None)
+    return an.flashed.harmonic_at_peak if h is None else h
 
 
 def _finite_max_abs(*arrays):
@@ -550,8 +562,8 @@ class CellPanels:
                   np.asarray(m.linear[c, li], float)]
         vmax = _finite_max_abs(*planes)
         lag_ms = 1000.0 * float(m.lags_s[li])
-        model = column_text(an, "model")[c]
-        cx, cy = column_float(an, "center_x_deg")[c], column_float(an, "center_y_deg")[c]
+        model = _vtext(an, "model", c)
+        cx, cy = _vfloat(an, "center_x_deg", c), _vfloat(an, "center_y_deg", c)
         params = _shape_params(an, model, c)
         shape = None
         if np.isfinite(cx) and np.isfinite(cy) and params and all(np.isfinite(params)):
@@ -617,7 +629,7 @@ class CellPanels:
 
     def _draw_surfaces(self, c):
         an = self.an
-        meas = np.abs(np.asarray(an.flashed.harmonic_at_peak[c]))
+        meas = np.abs(np.asarray(_measured_h(an)[c]))
         vmax = _finite_max_abs(meas)
         ax, mesh, note = self.surf[0]
         mesh.set_array(meas.T.ravel())
@@ -708,7 +720,7 @@ class CellPanels:
 
         if self.has_tuning:
             got = _tuning_curves(an, c)
-            fitted = column_bool(an, "grating_responsive")[c] is True
+            fitted = _vbool(an, "grating_responsive", c) is True
             o_title, s_title = "orientation", "spatial frequency"
             nothing = [], []
             if got is None:

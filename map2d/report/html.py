@@ -168,10 +168,10 @@ def _cell_facts(an, r):
 
     rows = []
     if an.maps is not None:
-        rows += [("responsive (sparse noise)", f"{_yes_no(F.column_bool(an, 'responsive')[r])}, "
+        rows += [("responsive (sparse noise)", f"{_yes_no(F._vbool(an, 'responsive', r))}, "
                                                f"p = {_num(f('p_value'), '{:.2g}')}"),
-                 ("polarity", F.column_text(an, "polarity")[r] or "–"),
-                 ("fitted model", F.column_text(an, "model")[r] or "–"),
+                 ("polarity", F._vtext(an, "polarity", r) or "–"),
+                 ("fitted model", F._vtext(an, "model", r) or "–"),
                  ("centre (azimuth, elevation)", f"({_num(f('center_x_deg'), '{:.1f}')}, "
                                                  f"{_num(f('center_y_deg'), '{:.1f}')}) deg"),
                  ("size", _num(f("size_deg"), "{:.2g}", "deg")),
@@ -186,16 +186,16 @@ def _cell_facts(an, r):
         sf = _num(f("pref_sf_cpd"), "{:.3g}", "cycles/deg")
         if math.isfinite(lo) and math.isfinite(hi) and sf != "–":
             sf += f" ({lo:.3g}–{hi:.3g})"
-        rows += [("responsive (gratings)", _yes_no(F.column_bool(an, "grating_responsive")[r])),
-                 ("tuning from", F.column_text(an, "tuning_source")[r] or "–"),
+        rows += [("responsive (gratings)", _yes_no(F._vbool(an, "grating_responsive", r))),
+                 ("tuning from", F._vtext(an, "tuning_source", r) or "–"),
                  ("preferred orientation", ori), ("preferred SF", sf),
                  ("F1/F0", _num(f("f1_f0"), "{:.2f}")),
-                 ("drifting class", F.column_text(an, "grating_class")[r] or "–")]
+                 ("drifting class", F._vtext(an, "grating_class", r) or "–")]
     if an.forward is not None:
         rows += [("agreement", _num(f("agreement"), "{:.2f}")),
                  ("gratings -> map similarity", _num(f("inverse_similarity"), "{:.2f}"))]
-    reason = F.column_text(an, "linear_reason")[r]
-    rows.append(("linear", _yes_no(F.column_bool(an, "linear")[r]) + (f" ({reason})" if reason else "")))
+    reason = F._vtext(an, "linear_reason", r)
+    rows.append(("linear", _yes_no(F._vbool(an, "linear", r)) + (f" ({reason})" if reason else "")))
     return rows
 
 
