@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .contract import Session
+from .reconcile import OVERLAP_THRESHOLD
 
 __all__ = ["Analysis", "analyze_session", "CONTRACT_COLUMNS"]
 
@@ -33,6 +34,11 @@ class Analysis:
     maps : map2d.maps.MapResult or None  (None without sparse noise)
     fits : list of map2d.fit.spatial.SpatialFit or None, per cell (None for a cell not fitted)
     peak_maps : ndarray (C, ny, nx) or None  the linear map at each cell's peak lag (NaN when not responsive)
+    spatial_maps : ndarray (C, ny, nx) or None  spatial part of the separable fit (:func:`spatial_maps`);
+        what the models are fitted to
+    map_kind : ndarray of str (C,) or None  which map that is: 'linear', 'on+off', or '' (not responsive)
+    model_maps : ndarray (C, ny, nx) or None  the fitted model evaluated on the grid (NaN when not fitted);
+        what predicts the gratings
     flashed : map2d.gratings.FlashedResult or None
     drifting : map2d.gratings.DriftingResult or None
     predicted_h : ndarray complex (C, O, S) or None  forward prediction of the flashed surface from the map
@@ -51,6 +57,9 @@ class Analysis:
     maps: object | None = None
     fits: list | None = None
     peak_maps: np.ndarray | None = None
+    spatial_maps: np.ndarray | None = None
+    map_kind: np.ndarray | None = None
+    model_maps: np.ndarray | None = None
     flashed: object | None = None
     drifting: object | None = None
     predicted_h: np.ndarray | None = None
@@ -71,21 +80,54 @@ class Analysis:
         return int(np.searchsorted(self.cell_ids, cell_id))
 
 
-def _peak_maps(maps):
-    """Linear map at each cell's peak lag (NaN for cells without one) and its noise sd per cell."""
+def _separable(a, li):
+    """Spatial singular vector of ``a`` (L, P), scaled to the projection of lag ``li`` on it."""
+    _, _, vt = np.linalg.svd(a, full_matrices=False)
+    u = vt[0]
+    return u * float(a[li] @ u)
+
+
+def spatial_maps(maps):
+    """The spatial part of a rank-1 space-time separable fit of each responsive cell's map.
+
+    The map over lags, ``(L, ny * nx)``, is reduced to its first singular vectors ``m(l, p) ~ s_l u_p``;
+    the spatial map is ``u`` scaled to the cell's peak lag (the peak-lag map projected on ``u``), so it
+    keeps the peak-lag map's units and sign. Pooling the lags this way raises the signal-to-noise
+    ratio when a response spreads over two frames.
+
+    The linear map (ON - OFF) is used unless the cell's ON and OFF regions coincide (ON/OFF overlap
+    above :data:`map2d.reconcile.OVERLAP_THRESHOLD`, the segregation criterion of Hubel & Wiesel 1962):
+    a cell that answers bright and dark spots alike at the same places (a complex cell) has little
+    linear map, and its location then comes from the ON + OFF map, which is positive where either
+    polarity excites it.
+
+    Returns
+    -------
+    spatial : ndarray (C, ny, nx)  NaN for cells that are not responsive
+    linear_spatial : ndarray (C, ny, nx)  separable linear map (whether significant or not)
+    peak : ndarray (C, ny, nx)  the raw linear map at the peak lag
+    kind : ndarray of str (C,)  'linear', 'on+off' or '' (not responsive)
+    """
     C = maps.n_cells
     ny, nx = maps.grid.shape
-    peak = np.full((C, ny, nx), np.nan)
-    noise_sd = np.full(C, np.nan)
+    shape = (C, ny, nx)
+    spatial, linear_spatial, peak = np.full(shape, np.nan), np.full(shape, np.nan), np.full(shape, np.nan)
+    kind = np.full(C, "", dtype=object)
+    L = maps.linear.shape[1]
     for c in np.flatnonzero(maps.peak_lag_index >= 0):
         li = int(maps.peak_lag_index[c])
-        m = maps.linear[c, li].astype(float)
-        z = maps.linear_z[c, li].astype(float)
-        peak[c] = m
-        ok = np.isfinite(m) & np.isfinite(z) & (np.abs(z) > 1e-6)
-        if ok.any():
-            noise_sd[c] = float(np.median(np.abs(m[ok] / z[ok])))
-    return peak, noise_sd
+        lin = np.nan_to_num(maps.linear[c].reshape(L, -1).astype(float))
+        peak[c] = lin[li].reshape(ny, nx)
+        linear_spatial[c] = _separable(lin, li).reshape(ny, nx)
+        overlap = float(maps.onoff_overlap[c])
+        if not (overlap > OVERLAP_THRESHOLD) or not np.isfinite(maps.on[c]).any():
+            kind[c] = "linear"
+            spatial[c] = linear_spatial[c]
+        else:
+            both = np.nan_to_num((maps.on[c] + maps.off[c]).reshape(L, -1).astype(float))
+            kind[c] = "on+off"
+            spatial[c] = _separable(both, li).reshape(ny, nx)
+    return spatial, linear_spatial, peak, kind
 
 
 def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
@@ -133,11 +175,20 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         step("maps")
         an.maps = compute_maps(session.responses, session.sparse_noise, max_lag_s=max_lag_s,
                                n_shuffles=n_shuffles, alpha=alpha, rng=rng)
-        an.peak_maps, noise_sd = _peak_maps(an.maps)
+        an.spatial_maps, linear_spatial, an.peak_maps, an.map_kind = spatial_maps(an.maps)
         step("fits")
-        resp = np.asarray(an.maps.responsive, bool)
-        fit_cols = fit_maps(np.nan_to_num(an.peak_maps), an.maps.grid, resp,
-                            noise_sd=np.where(np.isfinite(noise_sd), noise_sd, 1.0), n_jobs=n_jobs)
+        is_linear = an.map_kind == "linear"
+        fit_cols, an.model_maps = fit_maps(np.nan_to_num(an.spatial_maps), an.maps.grid, is_linear,
+                                           n_jobs=n_jobs, return_predicted=True)
+        is_energy = an.map_kind == "on+off"
+        if is_energy.any():  # location and extent only: an envelope fitted to the ON + OFF map
+            e_cols = fit_maps(np.nan_to_num(an.spatial_maps), an.maps.grid, is_energy, n_jobs=n_jobs,
+                              models=("gaussian",))
+            for k, v in e_cols.items():
+                fit_cols[k] = np.where(is_energy, v, fit_cols[k])
+        # what predicts the gratings: the fitted model of a significant linear map; otherwise the
+        # separable linear map itself (for a complex cell mostly noise: it should predict little)
+        an.model_maps = np.where(is_linear[:, None, None], an.model_maps, linear_spatial)
     else:
         an.notes.append("no sparse noise: no maps, no fits, no reconciliation")
 
@@ -165,14 +216,16 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         fl = an.flashed
         grid = an.maps.grid
         origin = an.phase_origin_deg
-        an.predicted_h = reconcile.predict_gratings(np.nan_to_num(an.peak_maps), grid, fl.orientations_deg,
+        # the fitted model of the map predicts the gratings (the raw map's pixel noise would spread
+        # over every wave vector); the measured surface pools the lags like the map does
+        an.predicted_h = reconcile.predict_gratings(np.nan_to_num(an.model_maps), grid, fl.orientations_deg,
                                                     fl.sfs_cpd, origin)
-        an.measured_h = fl.harmonic_at_peak
+        an.measured_h = fl.harmonic_combined
         pred = np.where(an.maps.responsive[:, None, None], an.predicted_h, np.nan)
         an.forward = reconcile.forward_agreement(pred, an.measured_h)
         agreement = np.asarray(an.forward["agreement"], float)
         if len(fl.orientations_deg) > 1 and len(fl.sfs_cpd) > 1:
-            an.inverse = reconcile.inverse_comparison(an.measured_h, np.nan_to_num(an.peak_maps), grid,
+            an.inverse = reconcile.inverse_comparison(an.measured_h, np.nan_to_num(an.spatial_maps), grid,
                                                       fl.orientations_deg, fl.sfs_cpd, origin)
     elif an.maps is not None:
         an.notes.append("no flashed gratings: agreement left empty")
@@ -183,7 +236,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
             size_radii_deg = np.linspace(half / 8, half, 8)
         an.size_radii_deg = np.asarray(size_radii_deg, float)
         centres = np.column_stack([fit_cols["center_x_deg"], fit_cols["center_y_deg"]]).astype(float)
-        an.size_disk, an.size_annulus = reconcile.size_tuning(np.nan_to_num(an.peak_maps), grid, centres,
+        an.size_disk, an.size_annulus = reconcile.size_tuning(np.nan_to_num(an.spatial_maps), grid, centres,
                                                               an.size_radii_deg)
 
     # -- the table ---------------------------------------------------------------------------------------
@@ -214,6 +267,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         m = an.maps
         cells["p_value"] = list(m.p_value)
         cells["polarity"] = list(m.polarity)
+        cells["fitted_map"] = list(an.map_kind)
         cells["onoff_overlap"] = list(m.onoff_overlap)
         cells["snr"] = list(m.snr)
         for k, v in fit_cols.items():

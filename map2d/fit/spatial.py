@@ -791,17 +791,19 @@ def _row(fit: SpatialFit) -> dict:
 
 
 def _fit_chunk(maps, grid, noise_sd, models, criterion):
-    rows = []
+    rows, predicted = [], []
     for c in range(maps.shape[0]):
         sd = None if noise_sd is None else noise_sd[c]
         if sd is not None and not np.all(np.isfinite(sd) & (np.asarray(sd) > 0)):
             sd = None   # unusable noise estimate: fall back to the residuals
-        rows.append(_row(fit_map(maps[c], grid, sd, models=models, criterion=criterion)))
-    return rows
+        fit = fit_map(maps[c], grid, sd, models=models, criterion=criterion)
+        rows.append(_row(fit))
+        predicted.append(np.asarray(fit.predicted, dtype=float))
+    return rows, predicted
 
 
 def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
-             criterion="bic") -> dict:
+             criterion="bic", return_predicted=False):
     """Fit every responsive cell's map; columns for ``cells.csv``.
 
     Parameters
@@ -820,10 +822,12 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
         few large chunks so pickling stays cheap).
     models, criterion
         As :func:`fit_map`.
+    return_predicted : bool
+        Also return the fitted models evaluated on the grid, ``(C, ny, nx)`` (NaN when not fitted).
 
     Returns
     -------
-    dict of str to numpy.ndarray
+    dict of str to numpy.ndarray (and the predicted maps when ``return_predicted``)
         Every name in :data:`FIT_COLUMNS`, each of length ``C``: ``model`` (str; the chosen model),
         centre and its 95 % interval, ``size_deg`` (geometric-mean envelope sd; for the DoG the centre's
         sd ``rc / sqrt(2)``), ``fit_sign`` (+1 ON / -1 OFF for Gaussian and DoG, NaN for the Gabor),
@@ -853,22 +857,26 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
 
     out = {c: np.full(C, np.nan) for c in FIT_COLUMNS}
     out["model"] = np.full(C, "", dtype=object)
+    predicted = np.full(maps.shape, np.nan)
     if idx.size == 0:
-        return out
+        return (out, predicted) if return_predicted else out
     sub = maps[idx]
     subsd = None if sd is None else sd[idx]
     if n_jobs == 1:
-        rows = _fit_chunk(sub, grid, subsd, tuple(models), criterion)
+        rows, preds = _fit_chunk(sub, grid, subsd, tuple(models), criterion)
     else:
         chunks = np.array_split(np.arange(idx.size), n_jobs * 4)
         chunks = [ch for ch in chunks if ch.size]
-        rows = []
+        rows, preds = [], []
         with ProcessPoolExecutor(max_workers=n_jobs) as ex:
             futs = [ex.submit(_fit_chunk, sub[ch], grid, None if subsd is None else subsd[ch],
                               tuple(models), criterion) for ch in chunks]
             for fu in futs:
-                rows.extend(fu.result())
-    for k, row in zip(idx, rows):
+                r, p = fu.result()
+                rows.extend(r)
+                preds.extend(p)
+    for k, row, pred in zip(idx, rows, preds):
         for c in FIT_COLUMNS:
             out[c][k] = row[c]
-    return out
+        predicted[k] = pred
+    return (out, predicted) if return_predicted else out
