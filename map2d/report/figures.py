@@ -301,7 +301,7 @@ def tuning_summary_figure(analysis):
             sel = ok & np.array([v is call for v in lin])
             if sel.any():
                 ax1.scatter(ori[sel], sf[sel], s=14, color=LINEAR_COLOURS[call], label=name, alpha=0.85)
-        ax1.legend(fontsize=7, loc="upper right")
+        ax1.legend(fontsize=7, loc="best")
         ax1.set_yscale("log")
     else:
         _no_data(ax1, "no preferred orientation and SF\n(no cell tuned to gratings)")
@@ -346,9 +346,10 @@ def tuning_summary_figure(analysis):
     ax3.text(1.03, 0.97, "simple", transform=ax3.get_xaxis_transform(), fontsize=7, va="top", ha="left",
              color="#333333")
     ax3.set_xlim(0, top)
+    ax3.xaxis.set_major_locator(MaxNLocator(nbins=5, steps=[1, 2, 2.5, 5, 10]))
     ax3.set_xlabel("F1/F0 (ratio, dimensionless)")
     ax3.set_ylabel("cells (count)")
-    _style(ax3, f"modulation ratio, {f.size} cells")
+    _style(ax3, f"modulation ratio, {f.size} cells", nx=0)
     ax3.yaxis.set_major_locator(MaxNLocator(nbins=4, integer=True))
     fig.subplots_adjust(left=0.07, right=0.98, bottom=0.16, top=0.9, wspace=0.32)
     return fig
@@ -366,7 +367,7 @@ def summary_figures(analysis):
                 "preferred spatial frequency, coloured by the linearity call. Middle: agreement between the "
                 "sparse-noise map and the flashed-grating responses (fraction of the measured first-harmonic "
                 "surface explained by the map's prediction). Right: F1/F0 from drifting gratings; the dashed "
-                "line at 1 separates simple (above) from complex cells (Skottun et al. 1991).",
+                "line at 1 separates complex (below) from simple cells (above; Skottun et al. 1991).",
                 tuning_summary_figure(analysis)))
     return out
 
@@ -395,9 +396,13 @@ def _log_ticks(axis, values):
 def _tuning_curves(an, c):
     """``(source, orientations, orientation curve, SFs, SF curve)`` of one cell, or None.
 
-    The curves ``cells.csv`` uses (:mod:`map2d.fit.tuning`): from the flashed sequence, or from
-    drifting gratings when the table says so (or when there is no flashed sequence).
+    The curves ``cells.csv`` is fitted to (:func:`map2d.fit.tuning.grating_tuning_columns`): from the
+    flashed sequence, or from drifting gratings when the table says so (or without a flashed sequence).
+    For a flashed sequence with a fitted orientation preference, the SF curve is taken near that
+    preference, as the table's SF fit does.
     """
+    from types import SimpleNamespace
+
     from ..fit import tuning as tu
 
     src = _vtext(an, "tuning_source", c)
@@ -412,9 +417,23 @@ def _tuning_curves(an, c):
         if idx.size == 0:
             continue
         curves = tu._flashed_curves(res, int(idx[0])) if s == "flashed" else tu._drifting_curves(res, int(idx[0]))
-        if curves is not None:
-            return s, *(np.asarray(a, float) for a in curves[:4])
+        if curves is None:
+            continue
+        th, oc, sfs, sc = (np.asarray(a, float) for a in curves[:4])
+        surface = curves[4] if len(curves) > 4 else None
+        p = _ori_fit_params(an, c)
+        near = getattr(tu, "_sf_near", None)
+        if s == src and surface is not None and p is not None and near is not None:
+            sc = np.asarray(near(th, np.asarray(surface, float), SimpleNamespace(pref_deg=p[3], params=p)), float)
+        return s, th, oc, sfs, sc
     return None
+
+
+def _ori_fit_params(an, c):
+    """The von Mises parameters ``(b, a, kappa, theta0)`` of the table's orientation fit, or None."""
+    p = np.array([_vfloat(an, k, c) for k in ("ori_fit_baseline", "ori_fit_amplitude", "ori_fit_kappa",
+                                               "pref_orientation_deg")])
+    return p if np.all(np.isfinite(p)) else None
 
 
 def _sf_fit_curve(f, y, fine):
@@ -729,11 +748,11 @@ class CellPanels:
             else:
                 src, th, oc, sfs, sc = got
                 self.o_pts.set_data(th, oc)
-                of = tu.fit_orientation(th, oc) if fitted else None
-                if of is not None and of.ok:
+                p = _ori_fit_params(an, c) if fitted else None
+                if p is not None:           # the table's fit (not re-fitted: fits can be slow)
                     fine = np.linspace(0, 180, 91)
-                    self.o_fit.set_data(fine, tu.von_mises_orientation(fine, *of.params))
-                    o_title += f", pref {of.pref_deg:.0f} deg"
+                    self.o_fit.set_data(fine, tu.von_mises_orientation(fine, *p))
+                    o_title += f", pref {p[3]:.0f} deg"
                 else:
                     self.o_fit.set_data(*nothing)
                 self.s_pts.set_data(sfs, sc)
