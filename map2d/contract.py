@@ -172,6 +172,7 @@ class Session:
     gratings: GratingTable | None = None
     display: Display | None = None
     rois: np.ndarray | None = None
+    roi_label_offset: int = 0  # ROI label = cell id + offset (label 0 is background)
     path: Path | None = None
     name: str = "session"
     notes: list = field(default_factory=list)
@@ -645,12 +646,26 @@ def load_session(folder) -> Session:
         except (KeyError, TypeError, ValueError, IndexError, AttributeError, OverflowError) as exc:
             raise BadInput(mpath, "display", f"is incomplete or invalid ({exc})") from None
     rois = None
+    roi_offset = 0
     if manifest.get("rois") is not None:
-        if not isinstance(manifest["rois"], str) or not manifest["rois"].strip():
-            raise BadInput(mpath, "rois", f"must be a file name, got {manifest['rois']!r}")
-        rois = _load_rois(folder, manifest["rois"])
+        spec = manifest["rois"]
+        if isinstance(spec, dict):
+            for key in sorted(set(spec) - {"file", "label_offset"}):
+                _note(notes, f"{mpath}: unknown key 'rois.{key}' ignored")
+            rel = spec.get("file")
+            off = spec.get("label_offset", 0)
+            if isinstance(off, bool) or not isinstance(off, int):
+                raise BadInput(mpath, "rois.label_offset", f"must be an integer, got {off!r}")
+            roi_offset = int(off)
+        else:
+            rel = spec
+        if not isinstance(rel, str) or not rel.strip():
+            raise BadInput(mpath, "rois", f"must be a file name or {{\"file\": ..., \"label_offset\": n}}, "
+                                          f"got {spec!r}")
+        rois = _load_rois(folder, rel)
     session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
-                      rois=rois, path=folder, name=str(manifest.get("name", folder.name)), notes=notes)
+                      rois=rois, roi_label_offset=roi_offset, path=folder,
+                      name=str(manifest.get("name", folder.name)), notes=notes)
     _check_time_overlap(session, folder, manifest["responses"])
     n_out = count_spikes_outside(session)
     if n_out:
@@ -761,7 +776,8 @@ def write_session(folder, session: Session, overwrite: bool = False) -> Path:
     if session.rois is not None:
         import tifffile
         tifffile.imwrite(folder / "rois.tif", np.asarray(session.rois, dtype=np.int32))
-        manifest["rois"] = "rois.tif"
+        manifest["rois"] = ("rois.tif" if not session.roi_label_offset
+                            else {"file": "rois.tif", "label_offset": int(session.roi_label_offset)})
     tmp = folder / (MANIFEST + ".tmp")
     tmp.write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
     os.replace(tmp, folder / MANIFEST)

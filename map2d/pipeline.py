@@ -184,6 +184,10 @@ def run_simulate(args) -> int:
         raise BadInput(truth_path, None, "exists and is not a file")
     session, truth = simulate_session(n_cells=int(args.cells), minutes=float(args.minutes),
                                       responses=args.responses, seed=int(args.seed))
+    if args.responses == "traces":  # imaging: a field of view with one ROI per cell
+        from .simulate import roi_label_image
+        session.rois = roi_label_image(session.cell_ids, rng=int(args.seed))
+        session.roi_label_offset = 1
     text = json.dumps(truth, indent=2, allow_nan=False) + "\n"
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))

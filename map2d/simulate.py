@@ -985,3 +985,52 @@ def simulate_session(n_cells: int = 20, minutes: float = 20.0, responses: str = 
 def _round_ms(t):
     """Times rounded to 1 ms, so that the 7-significant-digit CSV holds them exactly (< 10000 s)."""
     return np.round(np.asarray(t, float), 3) if np.ndim(t) else float(np.round(float(t), 3))
+
+
+def roi_label_image(cell_ids, shape=(192, 192), radius_px: float = 6.0, label_offset: int = 1,
+                    rng=None) -> np.ndarray:
+    """A simulated imaging field of view: one disk-shaped ROI per cell, labelled ``cell id + offset``.
+
+    Disks are placed at random, without overlap (at least one pixel of background between them),
+    so that field-of-view maps (:func:`map2d.export.fov.write_fov`) have something to paint.
+
+    Parameters
+    ----------
+    cell_ids : array_like of int
+    shape : (int, int)
+        Image height and width in pixels.
+    radius_px : float
+        ROI radius.
+    label_offset : int
+        Label of cell ``k`` is ``k + label_offset`` (label 0 is background, so cell 0 needs an offset).
+    rng : numpy.random.Generator or int, optional
+
+    Returns
+    -------
+    numpy.ndarray of int32, ``shape``
+
+    Examples
+    --------
+    >>> lab = roi_label_image([0, 1, 2], shape=(64, 64), radius_px=4, rng=0)
+    >>> sorted(np.unique(lab).tolist())
+    [0, 1, 2, 3]
+    """
+    rng = np.random.default_rng(rng)
+    ids = np.asarray(cell_ids, dtype=np.int64)
+    h, w = int(shape[0]), int(shape[1])
+    r = float(radius_px)
+    if ids.size and (ids.min() + label_offset) < 1:
+        raise ValueError("label_offset must make every label >= 1 (0 is background)")
+    labels = np.zeros((h, w), dtype=np.int32)
+    rows, cols = np.mgrid[0:h, 0:w]
+    centres = []
+    for cid in ids:
+        for _ in range(2000):
+            cy, cx = rng.uniform(r + 1, h - r - 2), rng.uniform(r + 1, w - r - 2)
+            if all((cy - y) ** 2 + (cx - x) ** 2 >= (2 * r + 2) ** 2 for y, x in centres):
+                break
+        else:
+            raise ValueError(f"cannot fit {ids.size} ROIs of radius {r} px into {shape}")
+        centres.append((cy, cx))
+        labels[(rows - cy) ** 2 + (cols - cx) ** 2 <= r * r] = int(cid) + label_offset
+    return labels
