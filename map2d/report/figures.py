@@ -515,17 +515,18 @@ class CellPanels:
         if n_tun:
             self.rows.append(("tuning", n_tun))
         n = max(1, len(self.rows))
-        self.fig = Figure(figsize=(12.0, 2.75 * n), dpi=DPI)
-        self.gs = self.fig.add_gridspec(n, 4, wspace=0.66, hspace=0.62, left=0.055, right=0.925,
-                                        bottom=0.5 / (2.75 * n), top=1 - 0.3 / (2.75 * n))
-        self._cache = {}
+        self.fig = Figure(figsize=(12.5, 2.75 * n), dpi=DPI)
+        outer = self.fig.add_gridspec(n, 1, hspace=0.62, left=0.055, right=0.935,
+                                      bottom=0.5 / (2.75 * n), top=1 - 0.3 / (2.75 * n))
+        # rows with a colour bar in a gap get wider gaps (bar, its label and the next axis's label)
+        self.gs = [outer[k, 0].subgridspec(1, 4, wspace=0.95 if kind in ("maps", "surfaces") else 0.6)
+                   for k, (kind, _) in enumerate(self.rows)]
         for k, (kind, _) in enumerate(self.rows):
             getattr(self, f"_build_{kind}")(k)
-        self.axes_with_data = list(self.fig.axes)
 
     # -- helpers -----------------------------------------------------------------------------------
     def _ax(self, k, j):
-        return self.fig.add_subplot(self.gs[k, j])
+        return self.fig.add_subplot(self.gs[k][0, j])
 
     def _note(self, ax):
         return ax.text(0.5, 0.5, "", ha="center", va="center", transform=ax.transAxes, fontsize=8,
@@ -558,14 +559,14 @@ class CellPanels:
             ax.add_patch(outline)
             (centre,) = ax.plot([np.nan], [np.nan], marker="+", color="#111111", ms=6, zorder=4)
             self.map_axes.append((ax, im, note, outline, centre))
-        _colourbar(self.fig, self.map_axes[2][0], self.map_axes[2][1], f"response change ({self.unit})")
+        _colourbar(self.fig, self.map_axes[2][0], self.map_axes[2][1], f"change ({self.unit})")
         ax = self._ax(k, 3)
         self.tc_lines = [ax.plot([], [], marker="o", ms=3, lw=1.2, color=col, ls=ls, label=name)[0]
                          for name, col, ls in (("ON", "#d7812a", "-"), ("OFF", "#7a4e9f", "-"),
                                                ("linear", "#222222", "--"))]
         ax.axhline(0.0, color="#999999", lw=0.6)
         self.tc_mark = ax.axvline(0.0, color="#999999", lw=0.8, ls=":")
-        ax.legend(fontsize=6, loc="upper right")
+        ax.legend(fontsize=6, loc="best")
         ax.set_xlabel("lag (ms)")
         ax.set_ylabel(f"response change ({self.unit})")
         _style(ax, "time course")
@@ -638,13 +639,13 @@ class CellPanels:
             _style(ax, title)
             _log_ticks(ax.yaxis, sfs)
             self.surf.append((ax, mesh, self._note(ax)))
-        _colourbar(self.fig, self.surf[-1][0], self.surf[-1][1], f"|H| ({self.unit} per unit contrast)")
+        _colourbar(self.fig, self.surf[-1][0], self.surf[-1][1], f"|H| ({self.unit} / contrast)")
         if self.has_inv:
             self.inv = []
             for j, title in ((2, "map from gratings"), (3, "measured map, same band")):
                 ax, im, note = self._image_axes(k, j, SIGNED_CMAP, title)
                 self.inv.append((ax, im, note))
-            _colourbar(self.fig, self.inv[1][0], self.inv[1][1], "weight (fraction of max |weight|)")
+            _colourbar(self.fig, self.inv[1][0], self.inv[1][1], "weight (fraction of max)")
 
     def _draw_surfaces(self, c):
         an = self.an
