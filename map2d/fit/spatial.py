@@ -94,6 +94,7 @@ __all__ = [
     "fit_maps",
     "FIT_COLUMNS",
     "MODELS",
+    "remove_pixel_box",
 ]
 
 MODELS = ("gaussian", "dog", "gabor")
@@ -715,6 +716,164 @@ def fit_map(map_yx, grid, noise_sd=None, models=MODELS, criterion="bic") -> Spat
 
 
 # --------------------------------------------------------------------------------------------------
+# the pixel aperture
+# --------------------------------------------------------------------------------------------------
+
+def _box_cov(grid):
+    """Covariance of the uniform pixel box (``dx^2 / 12``, ``dy^2 / 12``): its Gaussian approximation."""
+    return np.diag([grid.dx_deg**2 / 12.0, grid.dy_deg**2 / 12.0])
+
+
+def _rot(theta_deg):
+    th = math.radians(theta_deg)
+    return np.array([[math.cos(th), -math.sin(th)], [math.sin(th), math.cos(th)]])
+
+
+def _narrowed(width, b):
+    """``sqrt(width^2 - b)``; NaN when the width does not exceed the box (not resolvable)."""
+    w2 = width * width - b
+    return math.sqrt(w2) if np.isfinite(w2) and w2 > 0 else np.nan
+
+
+def _narrowed_ci(ci, b):
+    lo, hi = ci
+    lo2, hi2 = lo * lo - b if lo > 0 else -1.0, hi * hi - b
+    if not (np.isfinite(lo2) and np.isfinite(hi2)) or hi2 <= 0:
+        return (np.nan, np.nan)
+    return (math.sqrt(lo2) if lo2 > 0 else 0.0, math.sqrt(hi2))
+
+
+def remove_pixel_box(fit: SpatialFit, grid: Grid) -> SpatialFit:
+    """The parameters of the kernel behind a map whose pixels average it over their area.
+
+    A sparse-noise spot fills its grid pixel, so a sparse-noise map is the kernel integrated over each
+    pixel: the kernel convolved with the pixel box, sampled at the pixel centres. A model fitted to the
+    map therefore describes the box-blurred kernel: widths come out larger (for a DoG centre of radius
+    ``rc`` on a grid of spacing ``d``, ``rc^2 + d^2 / 6``: +8 % at ``rc = d``) and a Gabor's frequency
+    lower. This function undoes the box for the reported parameters, with the box replaced by the
+    Gaussian of the same covariance, ``B = diag(dx^2, dy^2) / 12`` (its transform ``exp(-2 pi^2 f' B f)``
+    matches ``sinc(kx dx) sinc(ky dy)`` to within 1 % below 0.3 cycles per pixel). Gaussians convolved
+    with Gaussians stay Gaussian, so every model has a closed form (Bracewell, The Fourier Transform and
+    Its Applications, convolution theorem and Gaussian transform pairs):
+
+    - Gaussian: envelope covariance ``S = S' - B`` (``S'`` fitted), amplitude times
+      ``sqrt(det S' / det S)`` (the integral is kept);
+    - DoG: each component ``exp(-r^2 / r^2)`` has variance ``r^2 / 2`` per axis, so
+      ``r^2 = r'^2 - (dx^2 + dy^2) / 12`` (the box's mean variance; exact for square pixels), and its peak
+      ``k = k' r'^2 / r^2``;
+    - Gabor: the blurred Gabor has envelope ``S' = S + B``, wave vector ``k' = S'^-1 S k`` and the same
+      phase about the envelope centre, with amplitude ``A' = A sqrt(det S / det S')
+      exp(-2 pi^2 k^T S S'^-1 B k)``; inverted here (``k = S^-1 S' k'``). The reported widths are the
+      envelope's sds along and across the new wave vector (exact for square pixels).
+
+    The centre is unchanged (the box is symmetric). Confidence intervals of widths and SF are mapped
+    endpoint by endpoint with the other parameters held at their estimates; a lower width endpoint inside
+    the box becomes 0. A width not larger than the box's sd along it cannot be resolved: it becomes NaN
+    (and so do the parameters that depend on it). The fitted model map (``predicted``) is unchanged: it is
+    the model of the map, blurred.
+
+    Parameters
+    ----------
+    fit : SpatialFit
+        A fit to a map on ``grid`` (any model).
+    grid : Grid
+
+    Returns
+    -------
+    SpatialFit
+        A new fit with the kernel's parameters and intervals.
+
+    Examples
+    --------
+    >>> from map2d.geometry import Grid
+    >>> g = Grid(ny=9, nx=9, center_x_deg=0.0, center_y_deg=0.0, dx_deg=2.0, dy_deg=2.0)
+    >>> f = SpatialFit("dog", {"center_x_deg": 0.0, "center_y_deg": 0.0, "kc": 1.0,
+    ...                "rc_deg": 2.0, "ks": 0.1, "rs_deg": 5.0}, {}, {}, float("nan"), None)
+    >>> round(remove_pixel_box(f, g).params["rc_deg"] ** 2, 6)   # 4 - (4 + 4) / 12
+    3.333333
+    """
+    p = dict(fit.params)
+    ci = {k: tuple(v) for k, v in fit.ci.items()}
+    nan2 = (np.nan, np.nan)
+    B = _box_cov(grid)
+    if fit.model == "dog":
+        b = float(np.trace(B))          # r'^2 / 2 = r^2 / 2 + (mean box variance per axis)
+        for k_name, r_name in (("kc", "rc_deg"), ("ks", "rs_deg")):
+            r1 = p[r_name]
+            r0 = _narrowed(r1, b)
+            p[k_name] = p[k_name] * r1**2 / r0**2 if np.isfinite(r0) else np.nan
+            p[r_name] = r0
+            ci[r_name] = _narrowed_ci(ci.get(r_name, nan2), b)
+            ci[k_name] = nan2
+    elif fit.model == "gaussian":
+        a1, b1, th = p["sigma_major_deg"], p["sigma_minor_deg"], p["theta_deg"]
+        R = _rot(th)
+        S1 = R @ np.diag([a1**2, b1**2]) @ R.T
+        S0 = S1 - B
+        ev, evec = np.linalg.eigh(S0)
+        ok = bool(np.all(np.isfinite(ev)) and ev[0] > 0)
+        u, v = R[:, 0], R[:, 1]
+        if ok:
+            p["sigma_major_deg"], p["sigma_minor_deg"] = float(np.sqrt(ev[1])), float(np.sqrt(ev[0]))
+            p["theta_deg"] = float(math.degrees(math.atan2(evec[1, 1], evec[0, 1])) % 180.0)
+            p["amplitude"] = p["amplitude"] * math.sqrt(np.linalg.det(S1) / np.linalg.det(S0))
+        else:
+            p.update(sigma_major_deg=np.nan, sigma_minor_deg=np.nan, theta_deg=np.nan, amplitude=np.nan)
+        ci["sigma_major_deg"] = _narrowed_ci(ci.get("sigma_major_deg", nan2), float(u @ B @ u))
+        ci["sigma_minor_deg"] = _narrowed_ci(ci.get("sigma_minor_deg", nan2), float(v @ B @ v))
+        if ok:
+            shift = p["theta_deg"] - th
+            lo, hi = ci.get("theta_deg", nan2)
+            ci["theta_deg"] = (lo + shift, hi + shift)
+        else:
+            ci["theta_deg"] = nan2
+        ci["amplitude"] = nan2
+    elif fit.model == "gabor":
+        su1, sv1, th, f1 = p["sigma_u_deg"], p["sigma_v_deg"], p["orientation_deg"], p["sf_cpd"]
+        R = _rot(th)
+        S1 = R @ np.diag([su1**2, sv1**2]) @ R.T
+        S0 = S1 - B
+        ok = bool(np.all(np.isfinite(S0)) and np.all(np.linalg.eigvalsh(S0) > 0))
+        if ok:
+            k1 = f1 * R[:, 0]
+            k0 = np.linalg.solve(S0, S1 @ k1)
+            f0 = float(np.hypot(*k0))
+            n = k0 / f0
+            m = np.array([-n[1], n[0]])
+            ori = math.degrees(math.atan2(k0[1], k0[0]))
+            ph = p["phase_deg"]
+            if ori < 0 or ori >= 180:               # fold as the fit does: turning k by 180 negates phase
+                ori = ori % 360.0
+                if ori >= 180:
+                    ori -= 180.0
+                    ph = -ph
+            amp = p["amplitude"] * math.sqrt(np.linalg.det(S1) / np.linalg.det(S0)) * math.exp(
+                2 * math.pi**2 * float(k0 @ S0 @ np.linalg.solve(S1, B @ k0)))
+            scale = f0 / f1
+            lo, hi = ci.get("sf_cpd", nan2)
+            ci["sf_cpd"] = (lo * scale, hi * scale)
+            shift = ((ori - th + 90.0) % 180.0) - 90.0
+            lo, hi = ci.get("orientation_deg", nan2)
+            ci["orientation_deg"] = (lo + shift, hi + shift)
+            p.update(sigma_u_deg=float(np.sqrt(n @ S0 @ n)), sigma_v_deg=float(np.sqrt(m @ S0 @ m)),
+                     orientation_deg=ori % 180.0, sf_cpd=f0, phase_deg=ph % 360.0, amplitude=amp)
+        else:
+            p.update(sigma_u_deg=np.nan, sigma_v_deg=np.nan, orientation_deg=np.nan, sf_cpd=np.nan,
+                     phase_deg=np.nan, amplitude=np.nan)
+            for k in ("sf_cpd", "orientation_deg", "phase_deg"):
+                ci[k] = nan2
+        u, v = R[:, 0], R[:, 1]
+        ci["sigma_u_deg"] = _narrowed_ci(ci.get("sigma_u_deg", nan2), float(u @ B @ u))
+        ci["sigma_v_deg"] = _narrowed_ci(ci.get("sigma_v_deg", nan2), float(v @ B @ v))
+        ci["amplitude"] = nan2
+    else:
+        raise ValueError(f"unknown model {fit.model!r}")
+    return SpatialFit(model=fit.model, params=p, ci=ci, aic=dict(fit.aic), r2=fit.r2,
+                      predicted=fit.predicted, bic=dict(fit.bic), criterion=fit.criterion,
+                      n_pixels=fit.n_pixels)
+
+
+# --------------------------------------------------------------------------------------------------
 # many cells
 # --------------------------------------------------------------------------------------------------
 
@@ -790,20 +949,20 @@ def _row(fit: SpatialFit) -> dict:
     return row
 
 
-def _fit_chunk(maps, grid, noise_sd, models, criterion):
+def _fit_chunk(maps, grid, noise_sd, models, criterion, pixel_box=False):
     rows, predicted = [], []
     for c in range(maps.shape[0]):
         sd = None if noise_sd is None else noise_sd[c]
         if sd is not None and not np.all(np.isfinite(sd) & (np.asarray(sd) > 0)):
             sd = None   # unusable noise estimate: fall back to the residuals
         fit = fit_map(maps[c], grid, sd, models=models, criterion=criterion)
-        rows.append(_row(fit))
+        rows.append(_row(remove_pixel_box(fit, grid) if pixel_box else fit))
         predicted.append(np.asarray(fit.predicted, dtype=float))
     return rows, predicted
 
 
 def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
-             criterion="bic", return_predicted=False):
+             criterion="bic", return_predicted=False, pixel_box=False):
     """Fit every responsive cell's map; columns for ``cells.csv``.
 
     Parameters
@@ -824,6 +983,10 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
         As :func:`fit_map`.
     return_predicted : bool
         Also return the fitted models evaluated on the grid, ``(C, ny, nx)`` (NaN when not fitted).
+    pixel_box : bool
+        The maps average the kernel over each pixel (sparse-noise spots fill their pixel): report the
+        kernel's parameters with the box removed (:func:`remove_pixel_box`). The predicted maps are the
+        fits to the maps either way.
 
     Returns
     -------
@@ -863,14 +1026,14 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
     sub = maps[idx]
     subsd = None if sd is None else sd[idx]
     if n_jobs == 1:
-        rows, preds = _fit_chunk(sub, grid, subsd, tuple(models), criterion)
+        rows, preds = _fit_chunk(sub, grid, subsd, tuple(models), criterion, pixel_box)
     else:
         chunks = np.array_split(np.arange(idx.size), n_jobs * 4)
         chunks = [ch for ch in chunks if ch.size]
         rows, preds = [], []
         with ProcessPoolExecutor(max_workers=n_jobs) as ex:
             futs = [ex.submit(_fit_chunk, sub[ch], grid, None if subsd is None else subsd[ch],
-                              tuple(models), criterion) for ch in chunks]
+                              tuple(models), criterion, pixel_box) for ch in chunks]
             for fu in futs:
                 r, p = fu.result()
                 rows.extend(r)
