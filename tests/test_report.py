@@ -97,18 +97,20 @@ def _axes_problems(fig):
 # ----------------------------------------------------------------------------------------------
 # the whole report
 # ----------------------------------------------------------------------------------------------
-def test_report_is_written_self_contained_with_every_figure(full, tmp_path):
+def test_report_is_written_self_contained_with_every_figure(full, tmp_path, monkeypatch):
     from map2d.pipeline import write_analysis
+    from map2d.report import html as report_html
 
     an, session = full
+    monkeypatch.setattr(report_html, "DEFAULT_MAX_CELLS", 4)       # fewer panels: a faster test
     written = write_analysis(tmp_path, an, session)
     path = tmp_path / REPORT_FILE
     assert path in written and path.is_file()
     text = path.read_text(encoding="utf-8")
     _assert_self_contained(text)
-    rows, n_qual = F.select_cells(an)
+    rows, n_qual = F.select_cells(an, 4)
     resp = [v is True for v in an.cells["responsive"]]
-    assert n_qual >= sum(resp) >= 5                      # the small session has responsive cells
+    assert n_qual >= sum(resp) >= 5 and len(rows) == 4    # the small session has responsive cells
     expected = ["fig-field", "fig-tuning-summary"] + [f"fig-cell-{int(an.cell_ids[r])}" for r in rows]
     assert _figure_ids(text) == expected
     assert text.count("<img ") == len(expected)
@@ -169,13 +171,13 @@ def test_report_is_identical_when_rendered_again(full):
 def test_maps_only_report(maps_only, tmp_path):
     an, session = maps_only
     assert an.flashed is None and an.drifting is None
-    text = write_report(tmp_path, an, session).read_text(encoding="utf-8")
+    text = write_report(tmp_path, an, session, max_cells=3).read_text(encoding="utf-8")
     _assert_self_contained(text)
     ids = _figure_ids(text)
     assert ids[:2] == ["fig-field", "fig-tuning-summary"]
-    rows, _ = F.select_cells(an)
-    assert len(rows) == sum(v is True for v in an.cells["responsive"]) > 0
-    assert len(ids) == 2 + len(rows)
+    _, n_qual = F.select_cells(an)
+    assert n_qual == sum(v is True for v in an.cells["responsive"]) > 3
+    assert len(ids) == 2 + 3
     assert "No gratings" in text
     assert all(not bad for _, bad in _all_figures(an))
 
@@ -183,13 +185,13 @@ def test_maps_only_report(maps_only, tmp_path):
 def test_gratings_only_report(gratings_only, tmp_path):
     an, session = gratings_only
     assert an.maps is None
-    text = write_report(tmp_path, an, session).read_text(encoding="utf-8")
+    text = write_report(tmp_path, an, session, max_cells=3).read_text(encoding="utf-8")
     _assert_self_contained(text)
     ids = _figure_ids(text)
     assert "fig-field" not in ids and ids[0] == "fig-tuning-summary"
-    rows, _ = F.select_cells(an)
-    assert len(rows) == sum(v is True for v in an.cells["grating_responsive"]) > 0
-    assert len(ids) == 1 + len(rows)
+    _, n_qual = F.select_cells(an)
+    assert n_qual == sum(v is True for v in an.cells["grating_responsive"]) > 3
+    assert len(ids) == 1 + 3
     assert "No sparse noise" in text
     assert all(not bad for _, bad in _all_figures(an))
 
@@ -268,3 +270,23 @@ def test_summary_without_any_responsive_cell_still_draws_labelled_axes():
             assert UNIT.search(ax.get_xlabel()) and UNIT.search(ax.get_ylabel())
     text = render_report(an, None)
     assert "no cell panels" in text.lower() or "there are no cell panels" in text
+
+
+def test_drifting_gratings_without_a_flashed_sequence(full, tmp_path):
+    """No flashed sequence: no surfaces row, tuning curves from the drifting trials.
+
+    Built from the full analysis with the flashed results removed (cheaper than a new analysis; the
+    report only reads what is there).
+    """
+    an, session = full
+    an = dataclasses.replace(an, flashed=None, predicted_h=None, measured_h=None, forward=None, inverse=None)
+    panels = F.CellPanels(an)
+    assert [k for k, _ in panels.rows] == ["maps", "tuning"]
+    assert len(panels.fig.axes) == 4 + 3                 # maps row; orientation, SF and size tuning
+    text = write_report(tmp_path, an, session, max_cells=2).read_text(encoding="utf-8")
+    _assert_self_contained(text)
+    assert "No flashed gratings" in text
+    assert len(_figure_ids(text)) == 2 + 2
+    assert all(not bad for _, bad in _all_figures(an))
+    src = F._tuning_curves(an, F.select_cells(an, 1)[0][0])
+    assert src is not None and src[0] == "drifting"

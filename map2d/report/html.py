@@ -227,7 +227,7 @@ def _all_cells_table(an):
 # ----------------------------------------------------------------------------------------------
 # the page
 # ----------------------------------------------------------------------------------------------
-def render_report(analysis, session=None, max_cells=DEFAULT_MAX_CELLS) -> str:
+def render_report(analysis, session=None, max_cells="default") -> str:
     """The whole report as one HTML string.
 
     Parameters
@@ -236,7 +236,8 @@ def render_report(analysis, session=None, max_cells=DEFAULT_MAX_CELLS) -> str:
     session : map2d.contract.Session, optional
         Adds what only the session knows (recording kind, frame count, the loader's notes).
     max_cells : int or None
-        Most cell panels (:func:`map2d.report.figures.select_cells` chooses which); None for all.
+        Most cell panels (:func:`map2d.report.figures.select_cells` chooses which); None for all;
+        by default :data:`DEFAULT_MAX_CELLS`.
 
     Returns
     -------
@@ -244,6 +245,8 @@ def render_report(analysis, session=None, max_cells=DEFAULT_MAX_CELLS) -> str:
     """
     from .. import __version__
 
+    if isinstance(max_cells, str) and max_cells == "default":
+        max_cells = DEFAULT_MAX_CELLS
     an = analysis
     name = an.session_name or "session"
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
@@ -311,7 +314,7 @@ def render_report(analysis, session=None, max_cells=DEFAULT_MAX_CELLS) -> str:
     return "\n".join(parts)
 
 
-def write_report(folder, analysis, session=None, max_cells=DEFAULT_MAX_CELLS) -> Path:
+def write_report(folder, analysis, session=None, max_cells="default") -> Path:
     """Write ``report.html`` into ``folder`` and return its path (see :func:`render_report`)."""
     path = Path(folder) / REPORT_FILE
     path.write_text(render_report(analysis, session, max_cells=max_cells), encoding="utf-8")
