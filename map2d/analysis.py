@@ -15,7 +15,7 @@ import numpy as np
 from .contract import Session
 from .reconcile import OVERLAP_THRESHOLD
 
-__all__ = ["Analysis", "analyze_session", "CONTRACT_COLUMNS"]
+__all__ = ["Analysis", "analyze_session", "flashed_noise", "spatial_maps", "CONTRACT_COLUMNS"]
 
 #: The columns the results contract requires, first and in this order.
 CONTRACT_COLUMNS = ("cell", "responsive", "center_x_deg", "center_y_deg", "peak_lag_s",
@@ -42,7 +42,10 @@ class Analysis:
     flashed : map2d.gratings.FlashedResult or None
     drifting : map2d.gratings.DriftingResult or None
     predicted_h : ndarray complex (C, O, S) or None  forward prediction of the flashed surface from the map
-    measured_h : ndarray complex (C, O, S) or None  measured first harmonic at the grating peak lag
+    predicted_h : see above; divided by the pixel box's transfer (:func:`map2d.reconcile.pixel_box_transfer`)
+    measured_h : ndarray complex (C, O, S) or None  measured first harmonic, lags pooled
+        (``FlashedResult.harmonic_combined``)
+    measured_noise : ndarray (C, O, S) or None  noise variance of ``measured_h`` (:func:`flashed_noise`)
     forward : dict of arrays or None  :func:`map2d.reconcile.forward_agreement` output
     inverse : map2d.reconcile.InverseComparison or None
     size_radii_deg : ndarray (R,) or None ; size_disk, size_annulus : ndarray (C, R) or None
@@ -64,6 +67,7 @@ class Analysis:
     drifting: object | None = None
     predicted_h: np.ndarray | None = None
     measured_h: np.ndarray | None = None
+    measured_noise: np.ndarray | None = None
     forward: dict | None = None
     inverse: object | None = None
     size_radii_deg: np.ndarray | None = None
@@ -130,6 +134,103 @@ def spatial_maps(maps):
     return spatial, linear_spatial, peak, kind
 
 
+def flashed_noise(responses, table, flashed, max_lag_s=0.2):
+    """Noise variance of each cell's measured flashed-grating surface, from single presentations.
+
+    ``flashed.harmonic_combined`` is the first harmonic over phase of the condition means of the
+    lag-pooled response ``y_k = sum_l w_l r_{k+l}`` (``w`` = the cell's ``temporal_weights``, ``r`` the
+    response in each frame window). Here ``y_k`` is formed for every presentation whose lags all fall
+    in the sequence (same windows and lag pairing as :func:`map2d.gratings.analyze_flashed`), its
+    spread within each (orientation, SF, phase) condition gives the variance of that condition's mean,
+    ``s^2 / n`` (sample variance, ``ddof = 1``; NaN for fewer than 2 presentations), and the
+    least-squares fit over phase that defines ``H`` (on ``[1, cos, sin]``, the phases available) carries
+    it to ``E|H - E H|^2 = (var c1 + var c2) / contrast^2`` (error propagation through a linear
+    estimator). The spread of single presentations includes every source of trial-to-trial variability
+    (spiking noise, imaging noise, leftovers of neighbouring responses), with ``n - 1`` degrees of
+    freedom per condition (tens of them in a few minutes), so the summed noise power is precise; and it
+    is per condition, so strongly driven conditions (larger Poisson variance) count as they should.
+    Presentations of one condition are rarely neighbours in a random sequence, so they are taken as
+    independent.
+
+    Parameters
+    ----------
+    responses : Spikes or Traces
+    table : GratingTable
+    flashed : map2d.gratings.FlashedResult
+        The analysis of the same table.
+    max_lag_s : float
+        As for ``flashed``.
+
+    Returns
+    -------
+    numpy.ndarray (C, O, S) or None
+        NaN where it cannot be estimated; None when the sequence does not match ``flashed``.
+    """
+    from .align import interval_responses
+    from .gratings import _frame_windows, flashed_rows, fold_static
+
+    rows = np.flatnonzero(flashed_rows(table))
+    rows = rows[np.argsort(table.onset_s[rows], kind="stable")]
+    if rows.size < 2:
+        return None
+    onset = table.onset_s[rows].astype(float)
+    offset = table.offset_s[rows].astype(float)
+    contrast = table.contrast[rows].astype(float)
+    ori, ph = fold_static(table.orientation_deg[rows], table.phase_deg[rows])
+    sf = np.round(table.sf_cpd[rows].astype(float), 9)
+    axes = (flashed.orientations_deg, flashed.sfs_cpd, flashed.phases_deg)
+    idx = []
+    ok = contrast > 0
+    for vals, ax in zip((ori, sf, ph), axes):
+        i = np.clip(np.searchsorted(ax, vals), 0, ax.size - 1)
+        ok &= np.isclose(ax[i], vals)
+        idx.append(i)
+    n_o, n_s, n_p = (ax.size for ax in axes)
+    cond = (idx[0] * n_s + idx[1]) * n_p + idx[2]
+    frame, end = _frame_windows(onset, offset)
+    L = flashed.lags_s.size
+    if not np.isclose(frame, flashed.frame_s):
+        return None
+    r = interval_responses(responses, onset, end).astype(np.float64)      # (C, n)
+    C, n = r.shape
+    w = np.asarray(flashed.temporal_weights, float)                       # (C, L)
+    if w.shape != (C, L):
+        return None
+    k = np.arange(max(n - L + 1, 0))
+    valid = np.ones(k.size, bool)
+    y = np.zeros((C, k.size))
+    for lag in range(L):
+        j = k + lag
+        valid &= np.abs(onset[j] - onset[k] - lag * frame) < 0.5 * frame
+        y += w[:, lag:lag + 1] * np.where(w[:, lag:lag + 1] != 0, r[:, j], 0.0)
+    use = valid & ok[k]
+    y, labels = y[:, use], cond[k[use]]
+    fin = np.isfinite(y)
+    y0 = np.where(fin, y, 0.0)
+    n_c = n_o * n_s * n_p
+    cnt = np.stack([np.bincount(labels, weights=f.astype(float), minlength=n_c) for f in fin])
+    s1 = np.stack([np.bincount(labels, weights=v, minlength=n_c) for v in y0])
+    s2 = np.stack([np.bincount(labels, weights=v * v, minlength=n_c) for v in y0])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        var = np.maximum(s2 - s1**2 / cnt, 0.0) / (cnt - 1)
+        var_mean = np.where(cnt >= 2, var / cnt, np.nan).reshape(C, n_o, n_s, n_p)
+    avail = cnt.reshape(C, n_o, n_s, n_p) > 0
+    phi = np.deg2rad(flashed.phases_deg)
+    g = np.stack([np.ones_like(phi), np.cos(phi), np.sin(phi)], axis=1)    # (P, 3)
+    wa = avail.astype(float)
+    a = np.einsum("cosp,pa,pb->cosab", wa, g, g)
+    det = np.linalg.det(a)
+    good = np.abs(det) > 1e-9
+    a = np.where(good[..., None, None], a, np.eye(3))
+    m = np.linalg.solve(a, np.einsum("pa,cosp->cosap", g, wa))           # (C, O, S, 3, P)
+    gain = m[..., 1, :] ** 2 + m[..., 2, :] ** 2
+    with np.errstate(invalid="ignore"):
+        v = np.sum(np.where(avail, gain * var_mean, 0.0), axis=-1)
+        v = np.where(np.all(~avail | np.isfinite(var_mean), axis=-1) & good, v, np.nan)
+        v = v / np.asarray(flashed.condition_contrast, float)[None] ** 2
+    return v
+
+
 def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
                     n_shuffles: int = 200, alpha: float = 0.01, size_radii_deg=None,
                     progress=None) -> Analysis:
@@ -178,12 +279,14 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         an.spatial_maps, linear_spatial, an.peak_maps, an.map_kind = spatial_maps(an.maps)
         step("fits")
         is_linear = an.map_kind == "linear"
+        # reported parameters are the kernel's: the pixel box of the spots is removed (the maps
+        # average the kernel over each pixel; see map2d.fit.spatial.remove_pixel_box)
         fit_cols, an.model_maps = fit_maps(np.nan_to_num(an.spatial_maps), an.maps.grid, is_linear,
-                                           n_jobs=n_jobs, return_predicted=True)
+                                           n_jobs=n_jobs, return_predicted=True, pixel_box=True)
         is_energy = an.map_kind == "on+off"
         if is_energy.any():  # location and extent only: an envelope fitted to the ON + OFF map
             e_cols = fit_maps(np.nan_to_num(an.spatial_maps), an.maps.grid, is_energy, n_jobs=n_jobs,
-                              models=("gaussian",))
+                              models=("gaussian",), pixel_box=True)
             for k, v in e_cols.items():
                 fit_cols[k] = np.where(is_energy, v, fit_cols[k])
         # what predicts the gratings: the fitted model of a significant linear map; otherwise the
@@ -199,6 +302,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         if has_flashed(g):
             step("flashed gratings")
             an.flashed = analyze_flashed(session.responses, g, max_lag_s=max_lag_s, rng=rng, alpha=alpha)
+            an.measured_noise = flashed_noise(session.responses, g, an.flashed, max_lag_s)
         if has_drifting(g):
             step("drifting gratings")
             an.drifting = analyze_drifting(session.responses, g, alpha=alpha)
@@ -218,11 +322,15 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         origin = an.phase_origin_deg
         # the fitted model of the map predicts the gratings (the raw map's pixel noise would spread
         # over every wave vector); the measured surface pools the lags like the map does
+        # the maps see the kernel through the pixel box, the gratings see it bare: divide by the box's
+        # transfer (a 0-16 % factor on the default grid; it changes the agreement by < 1 % in
+        # practice, since the gain absorbs its mean, but it is the right prediction)
+        box = reconcile.pixel_box_transfer(grid, fl.orientations_deg[:, None], fl.sfs_cpd[None, :])
         an.predicted_h = reconcile.predict_gratings(np.nan_to_num(an.model_maps), grid, fl.orientations_deg,
-                                                    fl.sfs_cpd, origin)
+                                                    fl.sfs_cpd, origin) / box
         an.measured_h = fl.harmonic_combined
         pred = np.where(an.maps.responsive[:, None, None], an.predicted_h, np.nan)
-        an.forward = reconcile.forward_agreement(pred, an.measured_h)
+        an.forward = reconcile.forward_agreement(pred, an.measured_h, noise_var=an.measured_noise)
         agreement = np.asarray(an.forward["agreement"], float)
         if len(fl.orientations_deg) > 1 and len(fl.sfs_cpd) > 1:
             an.inverse = reconcile.inverse_comparison(an.measured_h, np.nan_to_num(an.spatial_maps), grid,
@@ -274,6 +382,11 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
             if k not in cells:
                 cells[k] = list(v)
     if an.forward is not None:
+        cells["agreement_raw"] = list(an.forward["agreement_raw"])
+        cells["agreement_noise_corrected"] = [bool(v) if np.isfinite(a) else None for v, a in
+                                              zip(an.forward["noise_corrected"], agreement)]
+        cells["grating_signal_fraction"] = list(an.forward["signal_fraction"])
+        cells["grating_signal_p"] = list(an.forward["signal_p"])
         cells["magnitude_agreement"] = list(an.forward["magnitude_agreement"])
         cells["phase_error_deg"] = list(an.forward["phase_error_deg"])
         cells["agreement_gain"] = list(an.forward["gain"])

@@ -8,7 +8,7 @@ responses is therefore ``H`` itself, up to one positive gain, and the map and th
 of one thing:
 
 - forward: the map predicts the complex grating surface (:func:`predict_gratings`,
-  :func:`forward_agreement`);
+  :func:`pixel_box_transfer`, :func:`forward_agreement`, corrected for the measurement's noise);
 - inverse: the grating surface predicts the map, band-limited to the frequencies the gratings covered
   (:func:`inverse_map`, :func:`band_limit`, :func:`inverse_comparison`);
 - area summation: the map predicts disk and annulus responses (:func:`size_tuning`);
@@ -25,6 +25,9 @@ cat's visual cortex. J Physiol 160:106-154.
 Skottun BC, De Valois RL, Grosof DH, Movshon JA, Albrecht DG, Bonds AB (1991) Classifying simple and
 complex cells on the basis of response modulation. Vision Res 31:1079-1086.
 Bracewell RN (2000) The Fourier Transform and Its Applications, 3rd ed. McGraw-Hill.
+Satterthwaite FE (1946) An approximate distribution of estimates of variance components.
+Biometrics Bull 2:110-114.
+Spearman C (1904) The proof and measurement of association between two things. Am J Psychol 15:72-101.
 """
 
 from __future__ import annotations
@@ -51,6 +54,8 @@ __all__ = [
     "F1_F0_THRESHOLD",
     "OVERLAP_THRESHOLD",
     "MIN_CONDITIONS",
+    "SIGNAL_ALPHA",
+    "pixel_box_transfer",
 ]
 
 #: Forward agreement at or above which the map and the gratings are called consistent (ours: halfway
@@ -63,6 +68,9 @@ F1_F0_THRESHOLD = 1.0
 OVERLAP_THRESHOLD = 0.5
 #: Fewest valid grating conditions for which an agreement is computed.
 MIN_CONDITIONS = 3
+#: Level of the test that a measured grating surface holds a first harmonic beyond its noise, below
+#: which the agreement is corrected for that noise (:func:`forward_agreement`).
+SIGNAL_ALPHA = 0.001
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -136,7 +144,8 @@ def _cells_last(a, name):
     return a2, single
 
 
-def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS):
+def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_var=None,
+                      alpha=SIGNAL_ALPHA):
     """How well the map's predicted grating surface matches the measured one.
 
     Parameters
@@ -149,6 +158,12 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS):
         NaN marks a condition that was not measured; it is left out.
     min_conditions : int
         Fewest valid conditions (finite in both) needed; otherwise every output is NaN.
+    noise_var : array_like, same shape as ``measured``, optional
+        Noise variance ``E|e|^2`` of each measured value (e.g. :func:`map2d.analysis.flashed_noise`).
+        Given, the ``agreement`` is corrected for the noise of the measured surface (below). A
+        condition whose variance is NaN takes the mean of the others.
+    alpha : float
+        Level of the test that the measured surface holds more than noise (below).
 
     Returns
     -------
@@ -160,12 +175,44 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS):
             forgive any phase error); non-negative because the map and the gratings come from the same
             cell with the same sign of response. No offset is fitted: the first harmonic over phase
             contains no constant term (the phase-invariant part goes to the mean response, not to ``H``).
-        ``agreement``
+        ``agreement_raw``
             Explained variance of the measured complex surface, ``1 - sum |meas - g pred|^2 /
             sum |meas|^2`` in [0, 1]. The reference is zero, not the surface mean: a cell with no linear
             component has a first harmonic of zero at every wave vector. With the least-squares gain this
             equals ``c^2``, ``c = sum Re(conj(pred) meas) / (||pred|| ||meas||)`` (0 when ``c <= 0``),
-            the squared cosine between the two surfaces as real vectors.
+            the squared cosine between the two surfaces as real vectors. Noise in the measured surface
+            lowers it even for a perfect prediction: its expectation is then ``P / (P + N)``, with
+            ``P`` the signal and ``N = sum noise_var`` the noise power of the surface.
+        ``agreement``
+            Without ``noise_var``: ``agreement_raw``. With it, the explained share of the *signal*
+            power of the measured surface, i.e. the agreement the same prediction would reach against
+            a noiseless measurement (the correction for attenuation of a squared correlation, Spearman
+            1904, with the noise measured rather than modelled)::
+
+                (pm^2 / pp - sum |pred|^2 noise_var / (2 pp)) / (mm - N),   clipped to [0, 1],
+
+            where ``pm^2 / pp`` is the power the fitted prediction explains, the subtracted term is its
+            expected share of the noise (circular complex noise: half of ``noise_var`` per real
+            direction) and ``mm - N`` the signal power. Applied only when the measured surface holds
+            significant power beyond its noise (``signal_p < alpha``); otherwise its signal power is
+            indistinguishable from zero, the ratio undefined, and ``agreement`` is the raw score (about
+            ``1 / (2 K)`` for a surface of pure noise over ``K`` conditions). A phase-invariant (complex)
+            cell has no first harmonic, so it keeps a near-zero raw score; a linear cell measured with
+            noise is no longer penalised for it.
+        ``signal_fraction``
+            ``1 - N / mm``: the share of the measured surface's power that is signal (NaN without
+            ``noise_var``).
+        ``signal_p``
+            P-value of the measured power ``mm`` against the noise alone. Under the null (no first
+            harmonic) with circular Gaussian noise, ``|e_k|^2`` is exponential with mean ``v_k``
+            (``noise_var``), so ``mm`` has mean ``N`` and variance ``sum v_k^2``; it is referred to the
+            scaled chi-square with the same two moments (Satterthwaite 1946): ``mm / c ~ chi2(nu)``,
+            ``c = sum v_k^2 / (2 N)``, ``nu = 2 N^2 / sum v_k^2`` (``nu = 2 K`` for equal variances; fewer
+            when a few strongly driven conditions carry most of the noise). The noise variances are taken
+            as known: estimate them with many degrees of freedom (e.g. from the spread of single
+            presentations, :func:`map2d.analysis.flashed_noise`). NaN without ``noise_var``.
+        ``noise_corrected``
+            bool: whether ``agreement`` is the corrected score.
         ``magnitude_agreement``
             Explained variance of ``|meas|`` by a gain and an offset on ``|pred|``: the squared Pearson
             correlation of the magnitudes, 0 when the correlation is negative. An offset is fitted here
@@ -217,11 +264,74 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS):
         dphi = np.abs(np.angle(m0 * np.conj(p0), deg=True))
         sw = w.sum(axis=1)
         phase_err = np.where(ok & (sw > 0), np.sum(w * dphi, axis=1) / sw, np.nan)
-    out = {"gain": gain, "agreement": agreement, "magnitude_agreement": magnitude,
+    raw = agreement
+    nan_c = np.full(raw.shape, np.nan)
+    signal_fraction, signal_p, corrected = nan_c.copy(), nan_c.copy(), np.zeros(raw.shape, bool)
+    if noise_var is not None:
+        from scipy.stats import chi2
+        v, _ = _cells_last(np.asarray(noise_var, float), "noise_var")
+        if np.shape(noise_var) != np.shape(measured):
+            raise ValueError(f"noise_var {np.shape(noise_var)} must have the shape of measured "
+                             f"{np.shape(measured)}")
+        nvalid = valid & np.isfinite(v) & (v >= 0)
+        v0 = np.where(nvalid, v, 0.0)
+        # conditions whose noise could not be estimated take the mean noise of the others
+        nn = nvalid.sum(axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            mean_v = np.where(nn > 0, v0.sum(axis=1) / np.maximum(nn, 1), np.nan)
+            v_use = np.where(nvalid, v0, np.where(valid, mean_v[:, None], 0.0))
+            big_n = v_use.sum(axis=1)
+            n_ok = ok & (nn >= max(1, int(min_conditions))) & (big_n > 0)
+            signal_fraction = np.where(n_ok, 1.0 - big_n / mm, np.nan)
+            v2 = np.sum(v_use**2, axis=1)
+            scale = np.where(n_ok & (v2 > 0), v2 / (2 * np.where(n_ok, big_n, 1.0)), 1.0)
+            nu = np.where(n_ok & (v2 > 0), 2 * big_n**2 / np.where(v2 > 0, v2, 1.0), 1.0)
+            signal_p = np.where(n_ok, chi2.sf(mm / scale, nu), np.nan)
+            explained = np.where(pm > 0, pm**2 / pp, 0.0) - np.sum(np.abs(p0) ** 2 * v_use, axis=1) / (2 * pp)
+            signal = mm - big_n
+            corrected = n_ok & (signal_p < alpha) & (signal > 0)
+            nc = np.clip(explained / np.where(corrected, signal, 1.0), 0.0, 1.0)
+        agreement = np.where(corrected, nc, raw)
+    out = {"gain": gain, "agreement": agreement, "agreement_raw": raw, "signal_fraction": signal_fraction,
+           "signal_p": signal_p, "noise_corrected": corrected, "magnitude_agreement": magnitude,
            "phase_error_deg": phase_err, "n_conditions": n.astype(int)}
     if single:
-        out = {k: v[0] if k == "n_conditions" else np.asarray(v[0]) for k, v in out.items()}
+        out = {k: v[0] if k in ("n_conditions", "noise_corrected") else np.asarray(v[0])
+               for k, v in out.items()}
     return out
+
+
+def pixel_box_transfer(grid: Grid, orientations_deg, sfs_cpd, min_value=0.5):
+    """Transfer function of the pixel box at grating wave vectors: ``sinc(kx dx) sinc(ky dy)``.
+
+    A sparse-noise map is the kernel averaged over each pixel, so its Fourier sum at a wave vector is
+    the kernel's ``H`` times this factor (numpy's normalised ``sinc``; the transform of a box of width
+    ``dx``, Bracewell 2000), while a grating drives the kernel itself. Dividing a prediction from the map
+    by it predicts what the gratings see. Where the factor falls below ``min_value`` (around 0.6 cycles
+    per pixel, beyond the grid's Nyquist limit, where the map cannot predict anyway) the factor is set to
+    1 (no correction) rather than amplify aliased noise.
+
+    Parameters
+    ----------
+    grid : Grid
+    orientations_deg, sfs_cpd : array_like
+        Broadcast together (e.g. ``ori[:, None]`` and ``sf[None, :]``).
+    min_value : float
+
+    Returns
+    -------
+    numpy.ndarray, float
+
+    Examples
+    --------
+    >>> g = Grid(ny=4, nx=4, center_x_deg=0.0, center_y_deg=0.0, dx_deg=2.0, dy_deg=2.0)
+    >>> round(float(pixel_box_transfer(g, 0.0, 0.25)), 4)   # half a cycle per pixel: sin(pi/2)/(pi/2)
+    0.6366
+    """
+    from .geometry import wave_vector
+    kx, ky = wave_vector(np.asarray(orientations_deg, float), np.asarray(sfs_cpd, float))
+    t = np.sinc(np.asarray(kx) * grid.dx_deg) * np.sinc(np.asarray(ky) * grid.dy_deg)
+    return np.where(t >= min_value, t, 1.0)
 
 
 # ----------------------------------------------------------------------------------------------------
