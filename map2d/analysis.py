@@ -15,7 +15,8 @@ import numpy as np
 from .contract import Session
 from .reconcile import OVERLAP_THRESHOLD
 
-__all__ = ["Analysis", "analyze_session", "flashed_noise", "spatial_maps", "CONTRACT_COLUMNS"]
+__all__ = ["Analysis", "analyze_session", "flashed_noise", "spatial_maps", "linear_share", "CONTRACT_COLUMNS",
+           "LINEAR_SHARE_THRESHOLD"]
 
 #: The columns the results contract requires, first and in this order.
 CONTRACT_COLUMNS = ("cell", "responsive", "center_x_deg", "center_y_deg", "peak_lag_s",
@@ -91,6 +92,49 @@ def _separable(a, li):
     return u * float(a[li] @ u)
 
 
+#: :func:`linear_share` below which ON and OFF regions are called coextensive: the value for ON and OFF
+#: maps of equal size with cosine similarity 0.5, the overlap threshold (``(1 - 0.5) / (1 + 0.5)``).
+LINEAR_SHARE_THRESHOLD = 1.0 / 3.0
+
+
+def linear_share(maps, c, z_min=3.0):
+    """Share of the ON + OFF map's power that the linear map keeps, over the cell's excitatory region.
+
+    ``sum_S (on - off)^2 / sum_S (on + off)^2`` at the cell's peak lag, over the pixels ``S`` where the
+    ON + OFF map exceeds ``z_min`` noise sds (the sd of ON + OFF equals that of the linear map,
+    ``linear / linear_z``; ON and OFF estimates come from different frames). A cell whose bright and dark
+    spots excite the same pixels (a complex cell) has ``on ~ off`` there: a share near 0 (the residual
+    is the linear map's noise, about ``1 / z^2``). A rectified linear cell (simple, DoG) has ``on = [k]_+``
+    and ``off = [-k]_+``, so ``|on - off| = |on + off|``: a share near 1. With ON and OFF maps of equal
+    norm and cosine similarity ``s`` it is ``(1 - s) / (1 + s)``. Selecting ``S`` on the ON + OFF map does
+    not bias the linear map's noise (the two noises are uncorrelated for equal ON and OFF variances).
+
+    Returns
+    -------
+    float
+        1.0 when no pixel reaches ``z_min`` (no excitation by both polarities to compare, e.g. a cell
+        that is linear without rectification, whose ON + OFF map is zero), NaN for dense noise.
+    """
+    li = int(maps.peak_lag_index[c])
+    if li < 0:
+        return np.nan
+    on, off = maps.on[c, li].astype(float), maps.off[c, li].astype(float)
+    lin, lz = maps.linear[c, li].astype(float), maps.linear_z[c, li].astype(float)
+    if not np.isfinite(on).any():
+        return np.nan
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sd = np.abs(lin / lz)
+    sd = np.where(np.isfinite(sd) & (sd > 0), sd, np.nan)
+    if not np.isfinite(sd).any():
+        return 1.0
+    sd = np.where(np.isfinite(sd), sd, np.nanmedian(sd))
+    both = on + off
+    sel = np.isfinite(both) & (both / sd >= z_min)
+    if not sel.any():
+        return 1.0
+    return float(np.sum((on - off)[sel] ** 2) / np.sum(both[sel] ** 2))
+
+
 def spatial_maps(maps):
     """The spatial part of a rank-1 space-time separable fit of each responsive cell's map.
 
@@ -100,7 +144,9 @@ def spatial_maps(maps):
     ratio when a response spreads over two frames.
 
     The linear map (ON - OFF) is used unless the cell's ON and OFF regions coincide (ON/OFF overlap
-    above :data:`map2d.reconcile.OVERLAP_THRESHOLD`, the segregation criterion of Hubel & Wiesel 1962):
+    above :data:`map2d.reconcile.OVERLAP_THRESHOLD`, the segregation criterion of Hubel & Wiesel 1962,
+    or :func:`linear_share` below :data:`LINEAR_SHARE_THRESHOLD`, the same criterion measured over the
+    whole excitatory region, which stays reliable at low signal-to-noise):
     a cell that answers bright and dark spots alike at the same places (a complex cell) has little
     linear map, and its location then comes from the ON + OFF map, which is positive where either
     polarity excites it.
@@ -124,7 +170,8 @@ def spatial_maps(maps):
         peak[c] = lin[li].reshape(ny, nx)
         linear_spatial[c] = _separable(lin, li).reshape(ny, nx)
         overlap = float(maps.onoff_overlap[c])
-        if not (overlap > OVERLAP_THRESHOLD) or not np.isfinite(maps.on[c]).any():
+        coextensive = overlap > OVERLAP_THRESHOLD or linear_share(maps, c) < LINEAR_SHARE_THRESHOLD
+        if not coextensive or not np.isfinite(maps.on[c]).any():
             kind[c] = "linear"
             spatial[c] = linear_spatial[c]
         else:
@@ -377,6 +424,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["polarity"] = list(m.polarity)
         cells["fitted_map"] = list(an.map_kind)
         cells["onoff_overlap"] = list(m.onoff_overlap)
+        cells["linear_share"] = [linear_share(m, c) if m.responsive[c] else np.nan for c in range(C)]
         cells["snr"] = list(m.snr)
         for k, v in fit_cols.items():
             if k not in cells:
