@@ -97,7 +97,33 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
                        help="longest lag in seconds (default 0.2)")
         p.add_argument("--seed", type=int, default=0, help="seed for shuffles and bootstraps (default 0)")
+        if name == "analyze":
+            p.add_argument("--config", type=Path, default=None,
+                           help="NWB mapping (JSON) when SESSION is an .nwb file (see README, NWB input)")
         _add_common(p)
+
+    # -- batch ------------------------------------------------------------------------------------
+    bat = sub.add_parser("batch", help="analyze many sessions, on a Dask cluster or in process",
+                         description="Run analyze on every SESSION (session folders, .nwb files, or folders "
+                                     "holding them) and write DIR/<session>/, DIR/sessions.csv (all cells, "
+                                     "with a session column), DIR/population.png and DIR/batch.csv. Exit code "
+                                     "0 if all succeeded, 2 if the failures were all bad input, else 1.")
+    bat.add_argument("sessions", nargs="+", type=Path, metavar="SESSION", help="session folders or .nwb files")
+    bat.add_argument("--out", required=True, type=Path, help="batch results folder")
+    bat.add_argument("--scheduler", default=None,
+                     help="tcp://HOST:PORT of a running dask scheduler, or sync to run here without Dask "
+                          "(default: an embedded local cluster)")
+    bat.add_argument("--workers", type=int, default=2, help="workers of the embedded local cluster (default 2)")
+    bat.add_argument("--memory-limit", default="10GB",
+                     help="memory limit per worker of the embedded local cluster (default 10GB)")
+    bat.add_argument("--config", type=Path, default=None, help="NWB mapping (JSON) for every .nwb SESSION")
+    bat.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
+                     help="longest lag in seconds (default 0.2)")
+    bat.add_argument("--seed", type=int, default=0, help="seed for shuffles and bootstraps (default 0)")
+    bat.add_argument("--no-report", action="store_true",
+                     help="leave report.html out of each session's folder (faster; tables, stacks and arrays "
+                          "are still written)")
+    _add_common(bat)
 
     demo = sub.add_parser("demo", help="run the whole job on the shipped demo session",
                           description="Analyse data_demo/ (simulated) and write a report.")
@@ -141,7 +167,12 @@ def _dispatch(args) -> int:
                                      quiet=args.quiet)
     if args.command == "analyze":
         return pipeline.run_analyze(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
-                                    quiet=args.quiet)
+                                    quiet=args.quiet, config=args.config)
+    if args.command == "batch":
+        return pipeline.run_batch(args.sessions, args.out, scheduler=args.scheduler, config=args.config,
+                                  max_lag_s=args.max_lag_s, seed=args.seed, workers=args.workers,
+                                  memory_limit=args.memory_limit, report=not args.no_report,
+                                  quiet=args.quiet)
     if args.command == "demo":
         return pipeline.run_demo(args.out, quiet=args.quiet)
     raise AssertionError(args.command)

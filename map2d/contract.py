@@ -30,7 +30,8 @@ __all__ = [
 
 MANIFEST = "session.json"
 GRATING_COLUMNS = ("onset_s", "offset_s", "orientation_deg", "sf_cpd", "phase_deg", "contrast", "tf_hz")
-KNOWN_TOP_KEYS = {"sparse_noise", "gratings", "responses", "display", "rois", "name", "notes", "generator"}
+KNOWN_TOP_KEYS = {"sparse_noise", "gratings", "responses", "display", "rois", "name", "notes", "generator",
+                  "nwb"}
 KNOWN_SUB_KEYS = {
     "sparse_noise": {"frames", "times", "grid", "exclude_gaps"},
     "sparse_noise.grid": {"center_deg", "spacing_deg"},

@@ -423,11 +423,15 @@ def write_analysis(folder, analysis, session, report=True) -> list:
     return written
 
 
-def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
-    """``map2d analyze``: everything, the results contract, written atomically into ``out``."""
+def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None) -> int:
+    """``map2d analyze``: everything, the results contract, written atomically into ``out``.
+
+    ``session_path`` is a session folder, a folder whose ``session.json`` points at an NWB file, or an
+    ``.nwb`` file with its mapping ``config`` (see :func:`map2d.nwb.load_source`).
+    """
     from .analysis import analyze_session
-    from .contract import load_session
-    session = load_session(session_path)
+    from .nwb import load_source
+    session = load_source(session_path, config)
     bar = _StageBar(quiet)
     try:
         analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, progress=bar)
@@ -442,6 +446,13 @@ def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
         for note in analysis.notes:
             print(f"map2d: note: {note}")
     return 0
+
+
+def run_batch(sources, out, **kwargs) -> int:
+    """``map2d batch``: :func:`map2d.batch.run_batch` (every session analysed on a Dask cluster or in
+    process, then ``sessions.csv``, ``population.png`` and ``batch.csv``)."""
+    from .batch import run_batch as _run_batch
+    return _run_batch(sources, out, **kwargs)
 
 
 DEMO_FOLDER = "data_demo"
