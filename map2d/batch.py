@@ -224,6 +224,9 @@ def population_figure(path, header, rows) -> None:
         axes[2].legend(fontsize=7, loc="best")
     axes[2].set(xlabel="azimuth (deg)", ylabel="elevation (deg)", aspect="equal",
                 title=f"RF centres, responsive cells ({int(keep.sum())})")
+    from matplotlib.ticker import MaxNLocator
+    for ax in axes[:2]:
+        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     fig.suptitle(f"{len(rows)} cells from {len(names)} sessions")
     fig.savefig(path, dpi=100, format="png")
     plt.close(fig)
