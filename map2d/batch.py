@@ -342,6 +342,10 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
                                             f"got {scheduler!r}")
     if int(workers) < 1:
         raise BadInput("--workers", None, f"must be at least 1, got {workers}")
+    nwb = [s for s in sources if s.suffix.lower() == ".nwb"]
+    if nwb and config is None:
+        raise BadInput(nwb[0], "--config", "an .nwb session needs a mapping: --config mapping.json (or a "
+                                           "session folder whose session.json has an nwb key)")
     if config is not None:
         from .nwb import load_mapping
         config = load_mapping(config)    # read once here; workers get the dict

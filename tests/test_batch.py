@@ -6,6 +6,7 @@ from __future__ import annotations
 import hashlib
 import json
 import re
+import warnings
 from pathlib import Path
 
 import pytest
@@ -95,15 +96,24 @@ def test_local_cluster_gives_identical_results(sessions, sync_run, tmp_path):
 
 
 def test_scheduler_on_loopback_runs_a_batch(sessions, sync_run, tmp_path, capsys):
+    """One folder session and one NWB file (converted from the third session, read with --config in
+    the worker) on a scheduler with one worker process, both started here on 127.0.0.1."""
     distributed = pytest.importorskip("distributed")
+    pytest.importorskip("pynwb")
+    from map2d.contract import load_session
+    from map2d.nwb import session_to_nwb
     _, sync_out = sync_run
+    nwb = tmp_path / "nwb" / f"{NAMES[2]}.nwb"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        session_to_nwb(load_session(sessions / NAMES[2]), nwb, mapping_path=tmp_path / "mapping.json")
     with distributed.LocalCluster(host="127.0.0.1", n_workers=1, threads_per_worker=1, processes=True,
                                   dashboard_address=None, memory_limit="4GB") as cluster:
         address = cluster.scheduler_address
         assert address.startswith("tcp://127.0.0.1:")
         out = tmp_path / "remote"
-        rc = map2d.cli.main(["batch", str(sessions / NAMES[0]), str(sessions / NAMES[2]), "--out", str(out),
-                             "--scheduler", address, "--no-report"])
+        rc = map2d.cli.main(["batch", str(sessions / NAMES[0]), str(nwb), "--config", str(tmp_path / "mapping.json"),
+                             "--out", str(out), "--scheduler", address, "--no-report"])
         assert rc == 0, capsys.readouterr().err
         with distributed.Client(address) as client:    # the work ran on that scheduler's worker
             assert len(client.scheduler_info()["workers"]) == 1
@@ -148,6 +158,9 @@ def test_bad_arguments_are_refused_before_anything_runs(sessions, tmp_path, caps
         batch.run_batch([sessions / NAMES[0], tmp_path / "x" / NAMES[0]], tmp_path / "o", scheduler="sync")
     with pytest.raises(BadInput, match="--scheduler"):
         batch.run_batch([sessions / NAMES[0]], tmp_path / "o", scheduler="localhost:8786")
+    (tmp_path / "rec.nwb").write_bytes(b"")
+    with pytest.raises(BadInput, match="--config"):
+        batch.run_batch([tmp_path / "rec.nwb"], tmp_path / "o", scheduler="sync")
     other = tmp_path / "mine"
     other.mkdir()
     (other / "notes.txt").write_text("keep me")
