@@ -32,16 +32,26 @@ def _check_intervals(starts_s, ends_s):
     return starts, ends
 
 
-def _spike_rates(spikes: Spikes, starts, ends) -> np.ndarray:
+def _spike_rates(spikes: Spikes, starts, ends, frame_major: bool = False) -> np.ndarray:
+    """Spike rate of every cell in every interval: (cells, n), or (n, cells) with ``frame_major``.
+
+    Each spike adds ``1 / duration`` of its interval to one element of a float32 array allocated
+    once (no full-size temporaries: on large sessions fresh memory costs more than the arithmetic).
+    """
     n_cells, n = spikes.cell_ids.size, starts.size
+    shape = (n, n_cells) if frame_major else (n_cells, n)
     if n == 0 or spikes.time_s.size == 0:
-        return np.zeros((n_cells, n), dtype=np.float32)
+        return np.zeros(shape, dtype=np.float32)
     k = np.searchsorted(starts, spikes.time_s, side="right") - 1
     ok = k >= 0
     ok[ok] &= spikes.time_s[ok] < ends[k[ok]]
     rows = cell_index(spikes)[ok]
-    counts = np.bincount(rows * n + k[ok], minlength=n_cells * n).reshape(n_cells, n)
-    return (counts / (ends - starts)).astype(np.float32)
+    k = k[ok]
+    rate = (1.0 / (ends - starts)).astype(np.float32)
+    out = np.zeros(shape, dtype=np.float32)
+    flat = k * n_cells + rows if frame_major else rows * n + k
+    np.add.at(out.reshape(-1), flat, rate[k])
+    return out
 
 
 def _cumulative_integral(times, values):

@@ -43,7 +43,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy import ndimage
 
-from .align import interval_responses
+from .align import _spike_rates, interval_responses
 from .contract import SparseNoise, Spikes, Traces
 from .geometry import Grid
 
@@ -55,7 +55,9 @@ KINDS = ("on", "off", "linear")
 
 _CHUNK_FRAMES = 8192
 _NULL_BYTES = 128 * 2**20      # bound on the side-by-side shifted responses of one shuffle product
-_SHUFFLE_BATCH = 10            # shuffles between sequential-stopping checks
+_BLOCK_PIXELS = 128            # pixels per block of the max-statistic tail fit
+_MIN_BLOCKS = 64               # block maxima per cell for the first tail fit (all cells)
+_GRAY_BLOCKS = 256             # block maxima per cell for cells whose first p is near alpha
 
 
 # ----------------------------------------------------------------------------------------------
@@ -209,17 +211,32 @@ class _SparseCorrelator:
         F = frames.shape[0]
         P = int(np.prod(frames.shape[1:]))
         flat = frames.reshape(F, P)
-        rows, cols, vals = [], [], []
+        per_row, cols = [], []
         for a in range(0, F, _CHUNK_FRAMES * 4):  # chunked so a huge int8 stack never widens at once
-            blk = np.asarray(flat[a:a + _CHUNK_FRAMES * 4])
-            r, c = np.nonzero(blk)
-            rows.append(r + a)
-            cols.append(np.where(blk[r, c] > 0, c, c + P))
-        rows = np.concatenate(rows) if rows else np.zeros(0, int)
-        cols = np.concatenate(cols) if cols else np.zeros(0, int)
-        self.B = sp.csr_matrix((np.ones(rows.size, np.float32), (rows, cols)), shape=(F, 2 * P))
+            blk = np.asarray(flat[a:a + _CHUNK_FRAMES * 4]).reshape(-1)
+            idx = np.flatnonzero(blk)                                # row-major: sorted by frame
+            r, c = np.divmod(idx, P)
+            per_row.append(np.bincount(r, minlength=min(F - a, _CHUNK_FRAMES * 4)))
+            cols.append(np.where(blk[idx] > 0, c, c + P).astype(np.int32))
+        indptr = np.zeros(F + 1, dtype=np.int64)
+        np.cumsum(np.concatenate(per_row), out=indptr[1:])
+        cols = np.concatenate(cols) if cols else np.zeros(0, np.int32)
+        self.B = sp.csr_matrix((np.ones(cols.size, np.float32), cols, indptr), shape=(F, 2 * P))
         self.F, self.P = F, P
         self._cum = None
+
+    def rolled_T(self, shift: int):
+        """``B`` with its rows moved down circularly by ``shift``, transposed (csc, no conversion)."""
+        F, B = self.F, self.B
+        sh = int(shift) % F
+        if sh == 0:
+            return B.T
+        cut = B.indptr[F - sh]
+        indices = np.concatenate([B.indices[cut:], B.indices[:cut]])
+        per_row = np.diff(B.indptr)
+        indptr = np.zeros(F + 1, dtype=B.indptr.dtype)
+        np.cumsum(np.concatenate([per_row[F - sh:], per_row[:F - sh]]), out=indptr[1:])
+        return sp.csr_matrix((B.data, indices, indptr), shape=B.shape).T
 
     def counts(self, lag: int) -> np.ndarray:
         """Events per column over frames ``t < F - lag``, (2P,)."""
@@ -238,6 +255,33 @@ class _SparseCorrelator:
 # ----------------------------------------------------------------------------------------------
 # sparse engine
 # ----------------------------------------------------------------------------------------------
+def _center_frames(Xf: np.ndarray, has_nan: bool | None = None):
+    """(F, C) float32 responses, centred IN PLACE -> the same outputs as :func:`_center`.
+
+    Streams over blocks of frames, so no full-size temporary is made (on a long session fresh
+    memory costs more than the arithmetic). ``valid`` is None when every response is finite.
+    """
+    F, C = Xf.shape
+    if has_nan is None:
+        has_nan = not all(np.isfinite(Xf[a:a + _CHUNK_FRAMES]).all() for a in range(0, F, _CHUNK_FRAMES))
+    if has_nan:
+        X, valid, mean, sd, n_valid = _center(Xf.T)
+        return X, valid, mean, sd, n_valid
+    s1 = np.zeros(C)
+    for a in range(0, F, _CHUNK_FRAMES):
+        s1 += Xf[a:a + _CHUNK_FRAMES].sum(axis=0, dtype=np.float64)
+    n_valid = np.full(C, F, dtype=np.int64)
+    mean = s1 / max(F, 1)
+    m32 = mean.astype(np.float32)
+    s2 = np.zeros(C)
+    for a in range(0, F, _CHUNK_FRAMES):
+        blk = Xf[a:a + _CHUNK_FRAMES]
+        blk -= m32
+        s2 += np.einsum("fc,fc->c", blk, blk, dtype=np.float64)
+    sd = np.sqrt(s2 / max(F, 1))
+    return Xf, None, mean, sd, n_valid
+
+
 def _center(R: np.ndarray):
     """(C, F) responses -> X (F, C) centred with NaN -> 0, valid mask, means, sds, valid counts."""
     R = np.asarray(R, dtype=np.float32)
@@ -281,6 +325,54 @@ def _sparse_maps_one(sums, n_on, n_off, P):
     return np.stack([on, off, on - off])
 
 
+def _gumbel_fit(x, w):
+    """Maximum-likelihood Gumbel (largest-value) location and scale per row of ``x`` (n, m).
+
+    ``w`` (n, m) are 0/1 weights (0 = no sample). Newton iterations on the scale equation
+    ``beta = mean(x) - sum(x e^(-x/beta)) / sum(e^(-x/beta))``, then
+    ``mu = -beta log(mean(e^(-x/beta)))`` (Coles 2001, section 3.3), vectorised over rows.
+    """
+    n = np.maximum(w.sum(axis=1), 1)
+    xs = np.where(w > 0, x, 0.0)
+    mean = xs.sum(axis=1) / n
+    var = (w * (xs - mean[:, None]) ** 2).sum(axis=1) / np.maximum(n - 1, 1)
+    beta = np.maximum(np.sqrt(6 * var) / np.pi, 1e-6)                  # moment start
+    top = np.where(w > 0, x, -np.inf).max(axis=1)
+    for _ in range(50):
+        e = w * np.exp(-(np.where(w > 0, x, top[:, None]) - top[:, None]) / beta[:, None])
+        se = e.sum(axis=1)
+        m1 = (e * xs).sum(axis=1) / se
+        v = (e * (xs - m1[:, None]) ** 2).sum(axis=1) / se               # weighted variance
+        f = beta - mean + m1
+        step = f / (1 + v / beta ** 2)
+        beta = np.maximum(beta - step, beta / 4)
+        if np.all(np.abs(step) <= 1e-9 * beta):
+            break
+    e = w * np.exp(-(np.where(w > 0, x, top[:, None]) - top[:, None]) / beta[:, None])
+    mu = top - beta * np.log(e.sum(axis=1) / n)
+    return mu, beta
+
+
+def _gumbel_max_test(M, T, n_shuffles, alpha):
+    """p-value of the max-statistic and its ``1 - alpha`` critical value from shuffle block maxima.
+
+    ``M`` (n, m): largest ``|z|`` of every pixel block, lag and shuffle (-inf: a block without any
+    pixel shown); ``T`` (n,) observed statistics. With ``G`` the Gumbel fitted to the block maxima and
+    ``N`` blocks per shuffle, ``P(T* >= t) = 1 - G(t)^N`` (blocks treated as independent, see
+    :func:`compute_maps`).
+    """
+    w = np.isfinite(M).astype(np.float64)
+    N = w.sum(axis=1) / n_shuffles
+    mu, beta = _gumbel_fit(np.where(w > 0, M, 0.0), w)
+    with np.errstate(over="ignore", invalid="ignore"):
+        p = -np.expm1(-N * np.exp(-(T - mu) / beta))
+        zcrit = mu - beta * np.log(-np.log1p(-alpha) / N)
+    bad = ~(N > 0) | ~np.isfinite(mu) | ~np.isfinite(beta)
+    p[bad] = np.nan
+    zcrit[bad] = np.nan
+    return p, zcrit
+
+
 def _shift_offsets(F: int, n: int, L: int, min_shift: int, rng) -> np.ndarray:
     lo = min(max(min_shift, L + 1), max(F // 4, L + 1))
     hi = F - lo - L
@@ -293,7 +385,7 @@ def _shift_offsets(F: int, n: int, L: int, min_shift: int, rng) -> np.ndarray:
 # public engine
 # ----------------------------------------------------------------------------------------------
 def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffles: int = 200,
-                 alpha: float = 0.01, rng=None, min_shift_s: float = 10.0, stop_after: int = 5,
+                 alpha: float = 0.01, rng=None, min_shift_s: float = 10.0,
                  dense_method: str = "auto", n_folds: int = 5) -> MapResult:
     """ON, OFF and linear maps at every lag for every cell, with z-scores and the responsive call.
 
@@ -383,35 +475,43 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     frame_s = noise.frame_interval_s
     lags = map_lags(frame_s, max_lag_s)
     L = lags.size
-    if isinstance(responses, (Spikes, Traces)):
-        R = frame_responses(responses, noise)
+    if isinstance(responses, Spikes):
+        # spike rates straight into the (frames, cells) layout of the engine, no transposed copy
+        Rf = _spike_rates(responses, noise.times_s, noise.frame_ends_s(), frame_major=True)
+        cell_ids = np.asarray(responses.cell_ids, dtype=np.int64)
+        unit = responses.unit
+    elif isinstance(responses, Traces):
+        Rf = np.ascontiguousarray(frame_responses(responses, noise).T)
         cell_ids = np.asarray(responses.cell_ids, dtype=np.int64)
         unit = responses.unit
     else:
         R = np.asarray(responses, dtype=np.float32)
         if R.ndim != 2 or R.shape[1] != noise.n_frames:
             raise ValueError(f"responses must be (cells, {noise.n_frames}), got {R.shape}")
+        Rf = np.ascontiguousarray(R.T)
         cell_ids = np.arange(R.shape[0], dtype=np.int64)
         unit = "response units"
+    R = Rf.T                                                          # (cells, frames) view
     if L >= noise.n_frames:
         raise ValueError(f"max_lag_s={max_lag_s} spans the whole stimulus ({noise.n_frames} frames)")
     dense = not np.issubdtype(noise.frames.dtype, np.integer)
     min_shift = int(round(min_shift_s / frame_s))
     if dense:
         return _compute_dense(R, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
-                              min_shift, stop_after, dense_method, n_folds)
-    return _compute_sparse(R, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
-                           min_shift, stop_after)
+                              min_shift, dense_method, n_folds)
+    return _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
+                           min_shift)
 
 
-def _compute_sparse(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift, stop_after):
+def _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift):
+    """``Rf`` (frames, cells) float32 responses, centred in place."""
     ny, nx = noise.grid.shape
-    C, F = R.shape
+    F, C = Rf.shape
     L = lags.size
     cor = _SparseCorrelator(noise.frames)
     P = cor.P
-    X, valid, mean, sd, n_valid = _center(R)
-    has_nan = not valid.all()
+    X, valid, mean, sd, n_valid = _center_frames(Rf)
+    has_nan = valid is not None
     W = np.ascontiguousarray(valid.T, dtype=np.float32) if has_nan else None
 
     maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
@@ -437,11 +537,7 @@ def _compute_sparse(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_
     asd_null = _analytic_sd(sd, n_valid, n_on_null, n_off_null)    # (3, C, P)
 
     # the stimulus matrix shifted down by each lag (wrapping), built once for all shuffles
-    coo = cor.B.tocoo()
-    ones = np.ones(coo.nnz, np.float32)
-    BLT = [sp.csr_matrix((ones, ((coo.row + int(lag)) % F, coo.col)), shape=(F, 2 * P)).T  # csc each
-           for lag in lags]
-    del coo
+    BLT = [cor.rolled_T(int(lag)) for lag in lags]                 # csc each
 
     def null_stats(active, offs, Xa):
         """Yield the (3, Ca, L, P) analytic-z maps of each shuffle offset, for the active cells.
@@ -452,55 +548,72 @@ def _compute_sparse(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_
         """
         Ca = active.size
         nb_max = max(1, int(_NULL_BYTES // max(F * Ca * 4, 1)))
-        n_on_a, n_off_a, asd_a = n_on_null[active], n_off_null[active], asd_null[:, active]
+        with np.errstate(divide="ignore", invalid="ignore"):             # float32 factors (Ca, P)
+            inv_on = (1.0 / n_on_null[active]).astype(np.float32)
+            inv_off = (1.0 / n_off_null[active]).astype(np.float32)
+            f_on = (1.0 / (n_on_null[active] * asd_null[0, active])).astype(np.float32)
+            f_off = (1.0 / (n_off_null[active] * asd_null[1, active])).astype(np.float32)
+            f_lin = (1.0 / asd_null[2, active]).astype(np.float32)
+        buf = np.empty(F * min(nb_max, max(len(offs), 1)) * Ca, dtype=np.float32)  # reused
         for start in range(0, len(offs), nb_max):
             ob = offs[start:start + nb_max]
-            Xs = np.empty((F, len(ob), Ca), dtype=np.float32)
+            Xs = buf[:F * len(ob) * Ca].reshape(F, len(ob), Ca)
             for bi, o in enumerate(ob):
                 sh = int(o) % F
                 Xs[:F - sh, bi] = Xa[sh:]
                 Xs[F - sh:, bi] = Xa[:sh]
             Xs = Xs.reshape(F, -1)
             # per lag: the (2P, columns) result stays small enough for the cache
-            Y = np.stack([np.asarray(BL @ Xs) for BL in BLT]).reshape(L, 2, P, len(ob), Ca)
-            del Xs
-            for bi in range(len(ob)):
-                with np.errstate(divide="ignore", invalid="ignore"):
-                    on = Y[:, 0, :, bi].transpose(2, 0, 1) / n_on_a[:, None, :]      # (Ca, L, P)
-                    off = Y[:, 1, :, bi].transpose(2, 0, 1) / n_off_a[:, None, :]
-                    out = np.stack([on, off, on - off]) / asd_a[:, :, None, :]
-                yield out.astype(np.float32, copy=False)
+            outs = np.empty((len(ob), 3, Ca, L, P), dtype=np.float32)
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                for li, BL in enumerate(BLT):
+                    Y = np.asarray(BL @ Xs).reshape(2, P, len(ob), Ca).transpose(0, 2, 3, 1)  # (2, nb, Ca, P)
+                    outs[:, 0, :, li] = Y[0] * f_on
+                    outs[:, 1, :, li] = Y[1] * f_off
+                    outs[:, 2, :, li] = (Y[0] * inv_on - Y[1] * inv_off) * f_lin
+            yield from outs
 
     offsets = _shift_offsets(F, K, L, min_shift, rng)
     return _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
-                   unit, alpha, stop_after, kinds_used=(0, 1, 2), stimulus="sparse", method="sparse",
+                   unit, alpha, kinds_used=(0, 1, 2), stimulus="sparse", method="sparse",
                    ridge=np.full(C, np.nan))
 
 
 def _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, grid, lags, frame_s, unit, alpha,
-            stop_after, kinds_used, stimulus, method, ridge):
-    """Shuffle calibration, max-statistic, peak lag, polarity, overlap, SNR -> MapResult."""
+            kinds_used, stimulus, method, ridge):
+    """Shuffle calibration, max-statistic tail fit, peak lag, polarity, overlap, SNR -> MapResult."""
     ny, nx = grid.shape
     C = cell_ids.size
     L = lags.size
     K = offsets.size
+    P = ny * nx
     ku = list(kinds_used)
     ok_cell = np.isfinite(sd) & (sd > 0) & (n_valid > lags[-1] + 2)
-    # calibration of the scale per cell and kind on the first shuffles (all cells)
-    n_cal = min(K, 10)
+    cells = np.flatnonzero(ok_cell)
+    # pixel blocks of the tail fit: contiguous runs of about _BLOCK_PIXELS pixels
+    n_sub = max(1, P // _BLOCK_PIXELS)
+    starts = (np.arange(n_sub) * P) // n_sub
+    per_shuffle = L * n_sub
+    n_a = int(min(K, max(2, -(-_MIN_BLOCKS // per_shuffle))))
+    n_b = int(min(K, max(n_a, -(-_GRAY_BLOCKS // per_shuffle))))
+
+    def block_max(zn):  # (3, Ca, L, P) -> (3, Ca, L, n_sub) largest |z| per kind and block (-inf: none)
+        a = np.abs(zn)
+        a[~np.isfinite(a)] = -np.inf
+        return np.maximum.reduceat(a, starts, axis=3)
+
+    # first shuffles, all cells: the scale g per cell and kind, and the block maxima
     sumsq = np.zeros((3, C))
     nsq = np.zeros((3, C))
-    null_max = np.full((K, C), np.nan)
-    cells = np.flatnonzero(ok_cell)
-    kind_max = np.full((n_cal, 3, C), -np.inf)                     # max |z_an| per shuffle and kind
+    kmax_a = np.full((n_a, 3, C, L, n_sub), -np.inf, dtype=np.float32)
     if cells.size:
-        Xc_cells = np.ascontiguousarray(X[:, cells])
-        for k, zn in enumerate(null_stats(cells, offsets[:n_cal], Xc_cells)):
+        Xc_cells = X if cells.size == C else np.ascontiguousarray(X[:, cells])
+        for k, zn in enumerate(null_stats(cells, offsets[:n_a], Xc_cells)):
             fin = np.isfinite(zn)
-            a = np.where(fin, np.abs(zn), 0).astype(np.float64)
-            sumsq[:, cells] += (a ** 2).sum(axis=(2, 3))
+            a = np.where(fin, zn, 0).astype(np.float64)
+            sumsq[:, cells] += np.einsum("kclp,kclp->kc", a, a)
             nsq[:, cells] += fin.sum(axis=(2, 3))
-            kind_max[k][:, cells] = np.where(fin, np.abs(zn), -np.inf).max(axis=(2, 3))
+            kmax_a[k][:, cells] = block_max(zn)
         del Xc_cells
     with np.errstate(invalid="ignore", divide="ignore"):
         g = np.sqrt(sumsq / nsq)                                    # (3, C)
@@ -512,47 +625,34 @@ def _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, grid, lag
         a = np.where(np.isfinite(a), a, -np.inf)
         return a.max(axis=(0, 2, 3))
 
+    def calibrated(kmax, idx):  # (n, 3, Ca, L, n_sub) -> (Ca, n * L * n_sub) block maxima of |z|
+        with np.errstate(invalid="ignore"):
+            m = (kmax[:, ku] / g[ku][:, idx][None, :, :, None, None].astype(np.float32)).max(axis=1)
+        return np.moveaxis(m, 1, 0).reshape(idx.size, -1).astype(np.float64)
+
     T = np.full(C, np.nan)
     if cells.size:
         T[cells] = stat(z[:, cells])
     T[~np.isfinite(T)] = np.nan
-    exceed = np.zeros(C, dtype=int)
+    p = np.full(C, np.nan)
+    zcrit = np.full(C, np.nan)
     drawn = np.zeros(C, dtype=int)
-    with np.errstate(invalid="ignore"):
-        cal_max = (kind_max[:, ku] / g[ku][None]).max(axis=1)     # (n_cal, C)
-    for k in range(n_cal if cells.size else 0):
-        m = cal_max[k, cells]
-        null_max[k, cells] = m
-        exceed[cells] += m >= T[cells]
-        drawn[cells] += 1
-    active = cells.copy()
-    if stop_after > 0:
-        active = active[exceed[active] < stop_after]
-    k = n_cal
-    while k < K and active.size:
-        batch = offsets[k:k + _SHUFFLE_BATCH]
-        Xa = np.ascontiguousarray(X[:, active])
-        g_a = g[:, active][:, :, None, None]
-        for j, zn in enumerate(null_stats(active, batch, Xa)):
-            m = stat(zn / g_a)
-            null_max[k + j, active] = m
-            exceed[active] += m >= T[active]
-            drawn[active] += 1
-        del Xa
-        k += batch.size
-        if stop_after > 0:
-            active = active[exceed[active] < stop_after]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        full = drawn == K
-        p = np.where(full, (1 + exceed) / (1 + K), exceed / np.maximum(drawn, 1))
+    if cells.size:
+        drawn[cells] = n_a
+        Ma = calibrated(kmax_a[:, :, cells], cells)
+        p[cells], zcrit[cells] = _gumbel_max_test(Ma, T[cells], n_a, alpha)
+        # cells near alpha: more shuffles, a tighter fit
+        gray = cells[(p[cells] >= alpha / 10) & (p[cells] <= 3 * alpha)] if n_b > n_a else cells[:0]
+        if gray.size:
+            Xg = np.ascontiguousarray(X[:, gray])
+            kmax_b = np.stack([block_max(zn) for zn in null_stats(gray, offsets[n_a:n_b], Xg)])
+            del Xg
+            pos = np.searchsorted(cells, gray)
+            Mb = np.concatenate([Ma[pos], calibrated(kmax_b, gray)], axis=1)
+            p[gray], zcrit[gray] = _gumbel_max_test(Mb, T[gray], n_b, alpha)
+            drawn[gray] = n_b
     p = np.where(ok_cell & np.isfinite(T), p, np.nan)
     responsive = np.isfinite(p) & (p <= alpha)
-    zcrit = np.full(C, np.nan)
-    for c in cells:
-        v = null_max[:, c]
-        v = v[np.isfinite(v)]
-        if v.size:
-            zcrit[c] = np.quantile(v, 1 - alpha)
 
     # peak lag, polarity, overlap, snr
     absz = np.where(np.isfinite(z[ku]), np.abs(z[ku]), -np.inf)     # (k, C, L, P)
@@ -805,7 +905,7 @@ def _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk):
     return k, lam
 
 
-def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift, stop_after,
+def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift,
                    dense_method, n_folds):
     frames = noise.frames
     F = frames.shape[0]
@@ -876,7 +976,7 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
 
     offsets = _shift_offsets(F, K, L, min_shift, rng)
     return _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
-                   unit, alpha, stop_after, kinds_used=(2,), stimulus="dense", method=method, ridge=ridge)
+                   unit, alpha, kinds_used=(2,), stimulus="dense", method=method, ridge=ridge)
 
 
 # ----------------------------------------------------------------------------------------------

@@ -1,0 +1,295 @@
+"""Speed of ``map2d maps`` against two peers, measured in the same run on the same machine.
+
+What is timed
+-------------
+- **map2d**: the whole ``map2d maps SESSION --out DIR --max-lag ...`` process (a subprocess: Python
+  start-up, imports, loading and validating the session folder, maps, significance, writing).
+- **per-cell peer**: the usual lab-script spike-triggered average, written here: for each cell, the
+  frame of each spike, and for each lag the stimulus frames ``spike frame - lag`` gathered by fancy
+  indexing, summed (weighted by 1/frame duration, i.e. in spikes/s) into ON and OFF sums.
+- **dense peer**: one dense float32 matrix product over all cells per lag,
+  ``(frames, 2 x pixels)^T x (frames, cells)``, i.e. ``(2P x F) @ (F x C*L)`` done lag by lag (same
+  multiply-adds, without the lag-stacked copy of the responses), BLAS on both cores.
+
+The peers run in this process on arrays already in memory (their loading is not timed, which favours
+them). Each is repeated and the median is reported. All three produce the same quantity, checked
+here to float32 tolerance: ``on[c, l, p]`` = mean rate of cell ``c`` in the frames ``l`` after a bright
+spot at pixel ``p`` minus the cell's mean rate (``off`` the same for dark spots, ``linear = on - off``),
+as written by ``map2d maps`` into ``maps.npz``.
+
+Options
+-------
+``--large`` the 1-hour, 500-cell, 32 x 32 session; ``--dense-gb G`` the peak resident memory of
+``map2d maps`` on a float32 dense-noise movie of ``G`` GB (memory-mapped); ``--analyze`` the whole
+``map2d analyze`` on a 1-hour, 500-cell session with both stimulus families, with stage timings.
+
+Run ``python benchmarks/bench_maps.py --help``. The machine may be shared: medians, same run.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import scipy.sparse as sp
+
+from map2d.contract import Session, SparseNoise, Spikes, write_session
+from map2d.geometry import Grid
+from map2d.stimuli.sparse_noise import make_sparse_noise
+
+KINDS = ("on", "off", "linear")
+
+
+# ----------------------------------------------------------------------------------------------
+# a light session generator (linear-nonlinear-Poisson cells)
+# ----------------------------------------------------------------------------------------------
+def make_session(minutes=30.0, rate_hz=60.0, ny=24, nx=32, n_cells=300, spots=4, responsive_fraction=2 / 3,
+                 rng=0) -> Session:
+    """Sparse noise and Poisson spikes of model cells; a fraction respond, the rest fire at random.
+
+    Responsive cells: Gaussian receptive field (ON, OFF or ON-OFF, sd 1-2.5 pixels), latency 1-4
+    frames, rate = baseline + gain * max(drive, 0) with baseline 1-10 spikes/s and gain lognormal
+    around 20 spikes/s (some cells weak, near the detection limit). Others: constant 1-10 spikes/s.
+    """
+    rng = np.random.default_rng(rng)
+    grid = Grid(ny=ny, nx=nx, center_x_deg=0.0, center_y_deg=0.0, dx_deg=2.0, dy_deg=2.0)
+    noise = make_sparse_noise(grid, duration_s=minutes * 60.0, rate_hz=rate_hz, spots_per_frame=spots,
+                              min_distance_deg=5.0, rng=rng)
+    F, P = noise.n_frames, ny * nx
+    flat = noise.frames.reshape(F, P)
+    r, c = np.nonzero(flat)
+    on = flat[r, c] > 0
+    B_on = sp.csr_matrix((np.ones(on.sum(), np.float32), (r[on], c[on])), shape=(F, P))
+    B_off = sp.csr_matrix((np.ones((~on).sum(), np.float32), (r[~on], c[~on])), shape=(F, P))
+    C = int(n_cells)
+    resp = rng.random(C) < responsive_fraction
+    rows, cols = np.indices((ny, nx))
+    cy, cx = rng.uniform(0, ny - 1, C), rng.uniform(0, nx - 1, C)
+    sd = rng.uniform(1.0, 2.5, C)
+    g = np.exp(-((rows.ravel()[None] - cy[:, None]) ** 2 + (cols.ravel()[None] - cx[:, None]) ** 2)
+               / (2 * sd[:, None] ** 2))                                   # (C, P)
+    kind = rng.integers(0, 3, C)                                           # 0 ON, 1 OFF, 2 ON-OFF
+    k_on = (g * (kind != 1)[:, None] * resp[:, None]).T.astype(np.float32)  # (P, C)
+    k_off = (g * (kind != 0)[:, None] * resp[:, None]).T.astype(np.float32)
+    drive = np.asarray(B_on @ k_on) + np.asarray(B_off @ k_off)            # (F, C)
+    latency = rng.integers(1, 5, C)
+    base = rng.uniform(1.0, 10.0, C).astype(np.float32)
+    gain = (20.0 * np.exp(0.6 * rng.standard_normal(C))).astype(np.float32)
+    rate = np.empty((F, C), np.float32)
+    rate[:] = base
+    for lat in np.unique(latency):
+        m = latency == lat
+        rate[lat:, m] += gain[m] * np.maximum(drive[:F - lat, m], 0)
+    starts, ends = noise.times_s, noise.frame_ends_s()
+    counts = rng.poisson(rate * (ends - starts)[:, None].astype(np.float32))
+    frame, cell = np.nonzero(counts)
+    reps = counts[frame, cell]
+    frame, cell = np.repeat(frame, reps), np.repeat(cell, reps)
+    t = starts[frame] + rng.random(frame.size) * (ends - starts)[frame]
+    order = np.argsort(t, kind="stable")
+    spikes = Spikes(time_s=t[order], cell=cell[order].astype(np.int64), cell_ids=np.arange(C))
+    return Session(responses=spikes, sparse_noise=noise, name="bench")
+
+
+# ----------------------------------------------------------------------------------------------
+# the two peers
+# ----------------------------------------------------------------------------------------------
+def _spike_frames(noise: SparseNoise, spikes: Spikes):
+    """Frame of each spike (-1 outside every frame) and the frame durations."""
+    starts, ends = noise.times_s, noise.frame_ends_s()
+    k = np.searchsorted(starts, spikes.time_s, side="right") - 1
+    ok = k >= 0
+    ok[ok] &= spikes.time_s[ok] < ends[k[ok]]
+    return np.where(ok, k, -1), ends - starts
+
+
+def peer_per_cell(noise: SparseNoise, spikes: Spikes, lags):
+    """Per-cell spike-triggered average by fancy indexing -> on, off, linear (C, L, P) float32."""
+    F = noise.n_frames
+    flat = noise.frames.reshape(F, -1)
+    P = flat.shape[1]
+    k_all, dur = _spike_frames(noise, spikes)
+    n_on = np.array([(flat[:F - lag] > 0).sum(0) for lag in lags], dtype=np.float64)   # (L, P)
+    n_off = np.array([(flat[:F - lag] < 0).sum(0) for lag in lags], dtype=np.float64)
+    C = spikes.cell_ids.size
+    row = np.searchsorted(spikes.cell_ids, spikes.cell)
+    on = np.empty((C, len(lags), P), np.float32)
+    off = np.empty_like(on)
+    for c in range(C):
+        k = k_all[(row == c) & (k_all >= 0)]
+        w = 1.0 / dur[k]
+        mean = w.sum() / F
+        for li, lag in enumerate(lags):
+            sel = k >= lag
+            S = flat[k[sel] - lag]                                    # (spikes, P) int8
+            with np.errstate(invalid="ignore", divide="ignore"):
+                on[c, li] = (w[sel] @ (S > 0)) / n_on[li] - mean
+                off[c, li] = (w[sel] @ (S < 0)) / n_off[li] - mean
+    return on, off, on - off
+
+
+def peer_dense(noise: SparseNoise, spikes: Spikes, lags):
+    """One dense float32 product over all cells per lag -> on, off, linear (C, L, P) float32."""
+    F = noise.n_frames
+    flat = noise.frames.reshape(F, -1)
+    P = flat.shape[1]
+    k, dur = _spike_frames(noise, spikes)
+    row = np.searchsorted(spikes.cell_ids, spikes.cell)
+    C = spikes.cell_ids.size
+    ok = k >= 0
+    R = np.bincount(k[ok] * C + row[ok], weights=1.0 / dur[k[ok]], minlength=F * C).reshape(F, C)
+    R = R.astype(np.float32)
+    mean = R.sum(0, dtype=np.float64) / F
+    S = np.concatenate([flat > 0, flat < 0], axis=1).astype(np.float32)          # (F, 2P)
+    on = np.empty((C, len(lags), P), np.float32)
+    off = np.empty_like(on)
+    for li, lag in enumerate(lags):
+        Y = S[:F - lag].T @ R[lag:]                                            # (2P, C) BLAS
+        n = S[:F - lag].sum(0, dtype=np.float64)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            on[:, li] = (Y[:P] / n[:P, None]).T - mean[:, None]
+            off[:, li] = (Y[P:] / n[P:, None]).T - mean[:, None]
+    return on, off, on - off
+
+
+# ----------------------------------------------------------------------------------------------
+# running map2d as a user does
+# ----------------------------------------------------------------------------------------------
+def _map2d(args, env=None):
+    """Run ``python -m map2d.cli ARGS`` (same as the ``map2d`` script); -> (seconds, peak RSS bytes or None)."""
+    cmd = [sys.executable, "-m", "map2d.cli", *map(str, args)]
+    t0 = time.perf_counter()
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
+    dt = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    if proc.returncode != 0:
+        raise RuntimeError(f"{' '.join(cmd)} failed ({proc.returncode}):\n{proc.stdout}\n{proc.stderr}")
+    # RUSAGE_CHILDREN holds the largest peak of any child so far: exact when it grew
+    rss = after * 1024 if after > before else None
+    return dt, rss, proc.stdout
+
+
+def _max_lag_s(noise: SparseNoise, n_lags: int) -> float:
+    """A --max-lag that gives exactly ``n_lags`` whole-frame lags (0 .. n_lags - 1)."""
+    return (n_lags - 0.5) * noise.frame_interval_s
+
+
+def compare_maps(npz_path, peer, label, rtol=1e-4):
+    """Largest difference between map2d's maps.npz and a peer's maps, relative to the maps' range."""
+    worst = 0.0
+    with np.load(npz_path) as z:
+        for kind, ref in zip(KINDS, peer):
+            got = z[kind].reshape(ref.shape)
+            if not np.array_equal(np.isnan(got), np.isnan(ref)):
+                raise AssertionError(f"{label} {kind}: NaN pixels differ from map2d")
+            scale = float(np.nanmax(np.abs(ref))) or 1.0
+            worst = max(worst, float(np.nanmax(np.abs(got - ref))) / scale)
+    if worst > rtol:
+        raise AssertionError(f"{label}: maps differ from map2d by {worst:.2e} of their range (> {rtol})")
+    return worst
+
+
+def _median_time(fn, repeats):
+    times, out = [], None
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        out = fn()
+        times.append(time.perf_counter() - t0)
+    return float(np.median(times)), times, out
+
+
+def bench_maps(workdir: Path, minutes, cells, ny, nx, n_lags, repeats, rate_hz=60.0, seed=0,
+               skip_per_cell=False, quiet=False):
+    """Generate, write, time map2d and the peers, check they agree. Returns a dict of results."""
+    say = (lambda *a: None) if quiet else (lambda *a: print(*a, flush=True))
+    t0 = time.perf_counter()
+    session = make_session(minutes=minutes, rate_hz=rate_hz, ny=ny, nx=nx, n_cells=cells, rng=seed)
+    folder = workdir / "session"
+    shutil.rmtree(folder, ignore_errors=True)
+    write_session(folder, session)
+    noise, spikes = session.sparse_noise, session.responses
+    lags = list(range(n_lags))
+    max_lag = _max_lag_s(noise, n_lags)
+    say(f"session: {minutes:g} min at {rate_hz:g} Hz ({noise.n_frames} frames), {ny} x {nx} grid, "
+        f"{cells} cells, {spikes.time_s.size} spikes, {n_lags} lags; generated and written in "
+        f"{time.perf_counter() - t0:.1f} s")
+    out = workdir / "maps_out"
+    res = {"config": dict(minutes=minutes, rate_hz=rate_hz, ny=ny, nx=nx, cells=cells, lags=n_lags,
+                          frames=int(noise.n_frames), spikes=int(spikes.time_s.size), repeats=repeats)}
+    m_times = []
+    stdout = ""
+    for _ in range(repeats):
+        dt, _, stdout = _map2d(["maps", folder, "--out", out, "--max-lag", f"{max_lag:.9g}", "--quiet"])
+        m_times.append(dt)
+    res["map2d"] = float(np.median(m_times))
+    say(f"map2d maps (whole process): median {res['map2d']:.2f} s of {['%.2f' % t for t in m_times]}")
+    d_med, d_times, dense = _median_time(lambda: peer_dense(noise, spikes, lags), repeats)
+    res["dense"] = d_med
+    say(f"dense float32 product peer: median {d_med:.2f} s of {['%.2f' % t for t in d_times]}")
+    res["dense_vs_map2d_max_rel_diff"] = compare_maps(out / "maps.npz", dense, "dense peer")
+    del dense
+    if not skip_per_cell:
+        p_med, p_times, per = _median_time(lambda: peer_per_cell(noise, spikes, lags), repeats)
+        res["per_cell"] = p_med
+        say(f"per-cell numpy peer:        median {p_med:.2f} s of {['%.2f' % t for t in p_times]}")
+        res["per_cell_vs_map2d_max_rel_diff"] = compare_maps(out / "maps.npz", per, "per-cell peer")
+    with open(out / "cells.csv") as fh:
+        res["responsive"] = sum(1 for line in fh.readlines()[1:] if line.split(",")[1] == "true")
+    return res
+
+
+def print_table(res):
+    rows = [("map2d maps (whole process)", res["map2d"], None)]
+    for key, label in (("dense", "dense float32 product"), ("per_cell", "per-cell numpy STA")):
+        if key in res:
+            rows.append((label, res[key], res[key] / res["map2d"]))
+    print()
+    print(f"{'method':32s} {'median s':>9s} {'peer / map2d':>13s}")
+    for label, t, ratio in rows:
+        print(f"{label:32s} {t:9.2f} {'' if ratio is None else f'{ratio:12.1f}x':>13s}")
+    print(f"(maps agree: largest difference {max(v for k, v in res.items() if k.endswith('rel_diff')):.1e} "
+          f"of the map range; {res.get('responsive', '?')} of {res['config']['cells']} cells responsive)")
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--minutes", type=float, default=30.0)
+    ap.add_argument("--rate-hz", type=float, default=60.0)
+    ap.add_argument("--cells", type=int, default=300)
+    ap.add_argument("--grid", type=int, nargs=2, default=(24, 32), metavar=("NY", "NX"))
+    ap.add_argument("--lags", type=int, default=8)
+    ap.add_argument("--large", action="store_true", help="the 1-hour, 500-cell, 32 x 32 session")
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--skip-per-cell", action="store_true", help="leave out the slow per-cell peer")
+    ap.add_argument("--workdir", type=Path, default=None, help="where to write sessions (default: a temp folder)")
+    ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--json", type=Path, default=None, help="also write the results here")
+    args = ap.parse_args(argv)
+    if args.large:
+        args.minutes, args.cells, args.grid = 60.0, 500, (32, 32)
+    workdir = args.workdir or Path(tempfile.mkdtemp(prefix="map2d-bench-"))
+    workdir.mkdir(parents=True, exist_ok=True)
+    try:
+        res = bench_maps(workdir, args.minutes, args.cells, args.grid[0], args.grid[1], args.lags, args.repeats,
+                         rate_hz=args.rate_hz, seed=args.seed, skip_per_cell=args.skip_per_cell)
+        print_table(res)
+        if args.json:
+            args.json.write_text(json.dumps(res, indent=2) + "\n")
+    finally:
+        if args.workdir is None:
+            shutil.rmtree(workdir, ignore_errors=True)
+    return res
+
+
+if __name__ == "__main__":
+    main()
