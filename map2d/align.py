@@ -17,7 +17,10 @@ __all__ = ["interval_responses", "cell_index"]
 
 def cell_index(spikes: Spikes) -> np.ndarray:
     """Row index (into ``spikes.cell_ids``) of each spike."""
-    return np.searchsorted(spikes.cell_ids, spikes.cell)
+    ids = spikes.cell_ids
+    if ids.size and ids[-1] - ids[0] == ids.size - 1:         # consecutive ids: no search needed
+        return spikes.cell - ids[0]
+    return np.searchsorted(ids, spikes.cell)
 
 
 def _check_intervals(starts_s, ends_s):
@@ -42,11 +45,19 @@ def _spike_rates(spikes: Spikes, starts, ends, frame_major: bool = False) -> np.
     shape = (n, n_cells) if frame_major else (n_cells, n)
     if n == 0 or spikes.time_s.size == 0:
         return np.zeros(shape, dtype=np.float32)
-    k = np.searchsorted(starts, spikes.time_s, side="right") - 1
-    ok = k >= 0
-    ok[ok] &= spikes.time_s[ok] < ends[k[ok]]
-    rows = cell_index(spikes)[ok]
-    k = k[ok]
+    t = spikes.time_s
+    if np.array_equal(ends[:-1], starts[1:]) and t.size > 1 and t[-1] >= t[0] and np.all(t[1:] >= t[:-1]):
+        # back-to-back intervals (stimulus frames) and sorted spikes: one slice holds every spike
+        # inside, and no per-spike check against the interval's end is needed
+        a, b = np.searchsorted(t, [starts[0], ends[-1]], side="left")
+        k = np.searchsorted(starts, t[a:b], side="right") - 1
+        rows = cell_index(spikes)[a:b]
+    else:
+        k = np.searchsorted(starts, t, side="right") - 1
+        ok = k >= 0
+        ok[ok] &= t[ok] < ends[k[ok]]
+        rows = cell_index(spikes)[ok]
+        k = k[ok]
     rate = (1.0 / (ends - starts)).astype(np.float32)
     out = np.zeros(shape, dtype=np.float32)
     flat = k * n_cells + rows if frame_major else rows * n + k

@@ -191,12 +191,12 @@ def _note(session_notes, message):
     warnings.warn(message, InputWarning, stacklevel=3)
 
 
-def _load_npy(folder: Path, rel: str, key: str):
+def _load_npy(folder: Path, rel: str, key: str, mmap: bool = False):
     path = folder / rel
     if not path.is_file():
         raise BadInput(path, key, "file not found")
     try:
-        arr = np.load(path, allow_pickle=False)
+        arr = np.load(path, mmap_mode="r" if mmap else None, allow_pickle=False)
     except Exception as exc:  # numpy raises several types for damaged files
         raise BadInput(path, key, f"not a readable .npy file ({type(exc).__name__})") from None
     if not isinstance(arr, np.ndarray):  # e.g. an .npz archive under an .npy name
@@ -334,7 +334,7 @@ def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
     exclude_gaps = spec.get("exclude_gaps", False)
     if not isinstance(exclude_gaps, bool):
         raise BadInput(mpath, "sparse_noise.exclude_gaps", f"must be true or false, got {exclude_gaps!r}")
-    frames = _load_npy(folder, frames_rel, "frames")
+    frames = _load_npy(folder, frames_rel, "frames", mmap=True)  # memory-mapped: read in chunks below
     fpath = folder / frames_rel
     if frames.ndim != 3:
         raise BadInput(fpath, "frames", f"must have shape (frames, ny, nx), got {frames.shape}")
@@ -342,16 +342,21 @@ def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
         raise BadInput(fpath, "frames", f"needs at least two frames, got {frames.shape[0]}")
     if frames.shape[1] < 1 or frames.shape[2] < 1:
         raise BadInput(fpath, "frames", f"the grid is empty: shape {frames.shape}")
+    chunk = max(1, 2**24 // max(1, frames.shape[1] * frames.shape[2]))   # frames per ~16 M values
     if frames.dtype.kind in "iu":
-        bad = np.flatnonzero(((frames < -1) | (frames > 1)).any(axis=(1, 2)))
-        if bad.size:
-            raise BadInput(fpath, "frames", "values must be -1, 0 or +1", row=int(bad[0]))
-        frames = frames.astype(np.int8, copy=False)
+        for a in range(0, frames.shape[0], chunk):
+            blk = frames[a:a + chunk]
+            if blk.min() < -1 or blk.max() > 1:
+                bad = np.flatnonzero(((blk < -1) | (blk > 1)).any(axis=(1, 2)))
+                raise BadInput(fpath, "frames", "values must be -1, 0 or +1", row=a + int(bad[0]))
+        frames = np.array(frames, dtype=np.int8)                  # small: read into memory
     elif frames.dtype.kind == "f":
-        # dense (real-valued) noise is accepted; NaN is not
-        finite = np.isfinite(frames).all(axis=(1, 2)) if frames.size < 2**28 else None
-        if finite is not None and not finite.all():
-            raise BadInput(fpath, "frames", "is not finite", row=int(np.flatnonzero(~finite)[0]))
+        # dense (real-valued) noise is accepted; NaN is not. The frames stay memory-mapped (a movie
+        # may be larger than memory) and are checked in chunks.
+        for a in range(0, frames.shape[0], chunk):
+            finite = np.isfinite(frames[a:a + chunk]).all(axis=(1, 2))
+            if not finite.all():
+                raise BadInput(fpath, "frames", "is not finite", row=a + int(np.flatnonzero(~finite)[0]))
     else:
         raise BadInput(fpath, "frames", f"must be int8 (or float for dense noise), got {frames.dtype}")
     tpath = folder / times_rel

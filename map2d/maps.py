@@ -41,7 +41,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
-from scipy import ndimage
 
 from .align import _spike_rates, interval_responses
 from .contract import SparseNoise, Spikes, Traces
@@ -54,7 +53,6 @@ __all__ = ["MapResult", "compute_maps", "frame_responses", "map_lags", "dense_st
 KINDS = ("on", "off", "linear")
 
 _CHUNK_FRAMES = 8192
-_NULL_BYTES = 128 * 2**20      # bound on the side-by-side shifted responses of one shuffle product
 _BLOCK_PIXELS = 128            # pixels per block of the max-statistic tail fit
 _MIN_BLOCKS = 64               # block maxima per cell for the first tail fit (all cells)
 _GRAY_BLOCKS = 256             # block maxima per cell for cells whose first p is near alpha
@@ -515,7 +513,7 @@ def _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min
     W = np.ascontiguousarray(valid.T, dtype=np.float32) if has_nan else None
 
     maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
-    asd = np.full((3, C, L, P), np.nan, dtype=np.float64)
+    asd = np.full((3, C, L, P), np.nan, dtype=np.float32)
     for li, lag in enumerate(lags):
         sums = cor.sums(X, int(lag), circular=False)
         if has_nan:
@@ -536,42 +534,30 @@ def _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min
     n_off_null = cnt_all[None, P:] * frac[:, None]
     asd_null = _analytic_sd(sd, n_valid, n_on_null, n_off_null)    # (3, C, P)
 
-    # the stimulus matrix shifted down by each lag (wrapping), built once for all shuffles
-    BLT = [cor.rolled_T(int(lag)) for lag in lags]                 # csc each
-
     def null_stats(active, offs, Xa):
         """Yield the (3, Ca, L, P) analytic-z maps of each shuffle offset, for the active cells.
 
-        The circularly shifted responses of several shuffles are laid side by side as columns
-        (bounded to ``_NULL_BYTES``) so one sparse product per lag serves them all; the lag is carried
-        by the stimulus matrix (shifted circularly once, up front), so responses are copied once.
+        The circular shift is carried by the stimulus matrix (its rows rolled, which costs one copy
+        of the event list), so the responses ``Xa`` are never copied.
         """
         Ca = active.size
-        nb_max = max(1, int(_NULL_BYTES // max(F * Ca * 4, 1)))
         with np.errstate(divide="ignore", invalid="ignore"):             # float32 factors (Ca, P)
             inv_on = (1.0 / n_on_null[active]).astype(np.float32)
             inv_off = (1.0 / n_off_null[active]).astype(np.float32)
             f_on = (1.0 / (n_on_null[active] * asd_null[0, active])).astype(np.float32)
             f_off = (1.0 / (n_off_null[active] * asd_null[1, active])).astype(np.float32)
             f_lin = (1.0 / asd_null[2, active]).astype(np.float32)
-        buf = np.empty(F * min(nb_max, max(len(offs), 1)) * Ca, dtype=np.float32)  # reused
-        for start in range(0, len(offs), nb_max):
-            ob = offs[start:start + nb_max]
-            Xs = buf[:F * len(ob) * Ca].reshape(F, len(ob), Ca)
-            for bi, o in enumerate(ob):
-                sh = int(o) % F
-                Xs[:F - sh, bi] = Xa[sh:]
-                Xs[F - sh:, bi] = Xa[:sh]
-            Xs = Xs.reshape(F, -1)
-            # per lag: the (2P, columns) result stays small enough for the cache
-            outs = np.empty((len(ob), 3, Ca, L, P), dtype=np.float32)
+        for o in offs:
+            out = np.empty((3, Ca, L, P), dtype=np.float32)
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                for li, BL in enumerate(BLT):
-                    Y = np.asarray(BL @ Xs).reshape(2, P, len(ob), Ca).transpose(0, 2, 3, 1)  # (2, nb, Ca, P)
-                    outs[:, 0, :, li] = Y[0] * f_on
-                    outs[:, 1, :, li] = Y[1] * f_off
-                    outs[:, 2, :, li] = (Y[0] * inv_on - Y[1] * inv_off) * f_lin
-            yield from outs
+                for li, lag in enumerate(lags):
+                    # sum_t B[t] X[t + lag + o] = (B moved down by lag + o)^T X: X is never copied
+                    Y = np.asarray(cor.rolled_T(int(lag) + int(o)) @ Xa)     # (2P, Ca)
+                    on, off = Y[:P].T, Y[P:].T
+                    out[0, :, li] = on * f_on
+                    out[1, :, li] = off * f_off
+                    out[2, :, li] = (on * inv_on - off * inv_off) * f_lin
+            yield out
 
     offsets = _shift_offsets(F, K, L, min_shift, rng)
     return _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
@@ -610,15 +596,15 @@ def _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, grid, lag
         Xc_cells = X if cells.size == C else np.ascontiguousarray(X[:, cells])
         for k, zn in enumerate(null_stats(cells, offsets[:n_a], Xc_cells)):
             fin = np.isfinite(zn)
-            a = np.where(fin, zn, 0).astype(np.float64)
-            sumsq[:, cells] += np.einsum("kclp,kclp->kc", a, a)
+            a = np.where(fin, zn, np.float32(0))
+            sumsq[:, cells] += np.einsum("kclp,kclp->kc", a, a, dtype=np.float64)
             nsq[:, cells] += fin.sum(axis=(2, 3))
             kmax_a[k][:, cells] = block_max(zn)
         del Xc_cells
     with np.errstate(invalid="ignore", divide="ignore"):
         g = np.sqrt(sumsq / nsq)                                    # (3, C)
     g[~np.isfinite(g) | (g <= 0)] = np.nan
-    z = (z_an / g[:, :, None, None]).astype(np.float32)            # (3, C, L, P)
+    z = (z_an / g[:, :, None, None].astype(np.float32)).astype(np.float32, copy=False)  # (3, C, L, P)
 
     def stat(zz):  # (3, Ca, L, P) -> (Ca,) max |z| over used kinds, lags, pixels
         a = np.abs(zz[ku])
@@ -982,6 +968,26 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
 # ----------------------------------------------------------------------------------------------
 # centre of the map (placeholder until a model fit gives the envelope centre)
 # ----------------------------------------------------------------------------------------------
+def _component(mask: np.ndarray, i: int, j: int) -> np.ndarray:
+    """The 8-connected component of ``mask`` holding pixel ``(i, j)`` (grown by repeated dilation;
+    the same set as ``scipy.ndimage.label`` with a 3 x 3 structure, without importing it)."""
+    region = np.zeros_like(mask, dtype=bool)
+    if not mask[i, j]:
+        return region
+    region[i, j] = True
+    ny, nx = mask.shape
+    while True:
+        p = np.pad(region, 1)
+        grown = np.zeros_like(region)
+        for di in (0, 1, 2):
+            for dj in (0, 1, 2):
+                grown |= p[di:di + ny, dj:dj + nx]
+        grown &= mask
+        if np.array_equal(grown, region):
+            return region
+        region = grown
+
+
 def map_centroid_deg(result: MapResult, cell_index: int, threshold_z: float | None = None):
     """Centre of the significant region around the peak pixel, in degrees ``(x, y)``.
 
@@ -1009,8 +1015,7 @@ def map_centroid_deg(result: MapResult, cell_index: int, threshold_z: float | No
     sign = np.sign(zz[i, j])
     thr = max(threshold_z, abs(zz[i, j]) / 2)
     mask = sign * zz >= thr
-    lab, _ = ndimage.label(mask, structure=np.ones((3, 3), bool))
-    region = lab == lab[i, j]
+    region = _component(mask, i, j)
     w = np.where(region, np.abs(np.nan_to_num(m)), 0.0)
     if w.sum() <= 0:
         w = region.astype(float)
