@@ -350,3 +350,82 @@ def test_linearity_call_reasons_and_empties():
     assert linear.tolist() == [False, False]
     with pytest.raises(ValueError, match="f1_f0"):
         linearity_call([0.5, 0.6], f1_f0=[1.0, 2.0, 3.0])
+
+
+# ---------------------------------------------------------------------------------------------------
+# noise-corrected agreement and the pixel box
+# ---------------------------------------------------------------------------------------------------
+
+def _noisy_surfaces(n_rep, signal, var, rng):
+    """``n_rep`` measurements of ``signal`` with circular complex Gaussian noise of variance ``var``."""
+    e = (rng.standard_normal((n_rep,) + signal.shape) + 1j * rng.standard_normal((n_rep,) + signal.shape))
+    return signal[None] + e * np.sqrt(var / 2)[None]
+
+
+def test_noise_corrected_agreement_of_a_perfect_prediction_is_one():
+    # Spearman's correction for attenuation (1904): with the noise power N known, a perfect
+    # prediction scores P / (P + N) raw and 1 corrected; heteroscedastic noise (strong conditions
+    # noisier, as for Poisson responses)
+    rng = np.random.default_rng(4)
+    pred = predict_gratings(gabor_map(), GRID, ORI, SFS, ORIGIN)
+    shape = 0.2 + np.abs(pred) / np.max(np.abs(pred))
+    var = 0.6 * np.sum(np.abs(3.0 * pred) ** 2) * shape / shape.sum()      # noise power 0.6 x signal
+    meas = _noisy_surfaces(200, 3.0 * pred, var, rng)
+    r = forward_agreement(np.broadcast_to(pred, meas.shape), meas,
+                          noise_var=np.broadcast_to(var, meas.shape))
+    p_pow, n_pow = np.sum(np.abs(3 * pred) ** 2), np.sum(var)
+    assert abs(np.mean(r["agreement_raw"]) - p_pow / (p_pow + n_pow)) < 0.01
+    assert np.mean(r["agreement_raw"]) < 0.85
+    # unbiased before the clip to [0, 1]: half the estimates reach 1, the rest lie just below
+    assert abs(np.median(r["agreement"]) - 1.0) < 0.02 and np.percentile(r["agreement"], 10) > 0.9
+    assert np.all(r["noise_corrected"])
+    assert np.all(r["signal_p"] < 1e-6)
+    # an imperfect prediction keeps its true score: agreement with the noiseless surface
+    other = predict_gratings(gabor_map(phase_deg=80.0), GRID, ORI, SFS, ORIGIN)
+    true_score = float(forward_agreement(other.ravel(), 3.0 * pred.ravel())["agreement"])
+    r = forward_agreement(np.broadcast_to(other, meas.shape), meas, noise_var=np.broadcast_to(var, meas.shape))
+    assert 0.2 < true_score < 0.9
+    assert abs(np.median(r["agreement"]) - true_score) < 0.03
+    assert np.mean(r["agreement_raw"]) < true_score - 0.05
+
+
+def test_surface_of_pure_noise_is_not_corrected_and_scores_near_zero():
+    # no first harmonic at all (a phase-invariant cell): the signal test holds its level
+    # (Satterthwaite's scaled chi-square, derived in forward_agreement), the score stays raw and small
+    rng = np.random.default_rng(5)
+    pred = predict_gratings(gabor_map(), GRID, ORI, SFS, ORIGIN)
+    var = 1e-3 * (0.2 + np.abs(pred) / np.max(np.abs(pred)))
+    meas = _noisy_surfaces(2000, np.zeros_like(pred), var, rng)
+    r = forward_agreement(np.broadcast_to(pred, meas.shape), meas, noise_var=np.broadcast_to(var, meas.shape),
+                          alpha=0.05)
+    frac = np.mean(r["signal_p"] < 0.05)
+    assert 0.03 < frac < 0.07                                  # the nominal 5 %
+    assert np.mean(r["noise_corrected"]) == pytest.approx(frac, abs=0.01)
+    assert np.all(r["agreement"][~r["noise_corrected"]] == r["agreement_raw"][~r["noise_corrected"]])
+    assert np.median(r["agreement_raw"]) < 0.03 and abs(np.mean(r["signal_fraction"])) < 0.05
+    # without noise_var nothing changes
+    r0 = forward_agreement(pred.ravel(), 2 * pred.ravel())
+    assert float(r0["agreement"]) == float(r0["agreement_raw"]) == pytest.approx(1.0)
+    assert np.isnan(r0["signal_p"]) and not bool(r0["noise_corrected"])
+    with pytest.raises(ValueError, match="noise_var"):
+        forward_agreement(pred[None], pred[None], noise_var=np.ones(3))
+
+
+def test_pixel_box_transfer_is_the_fourier_sum_ratio_of_a_pixel_averaged_map():
+    # the Fourier sum of a kernel averaged over each pixel is the kernel's H times sinc(kx dx) sinc(ky dy)
+    # (transform of a box; Bracewell 2000), up to sampling error, at wave vectors below Nyquist
+    from map2d.reconcile import pixel_box_transfer
+    x, y = _mesh()
+    n_sub = 9
+    off = (np.arange(n_sub) + 0.5) / n_sub - 0.5
+    fine = sum(gabor2d(x + a * GRID.dx_deg, y + b * GRID.dy_deg, 5.3, -3.2, 1.5, 1.2, 30.0, 0.4, 40.0)
+               for a in off for b in off) / n_sub**2
+    ori, sf = ORI[:, None], np.array([0.2, 0.4, 0.6])[None, :]
+    h_pix = predict_gratings(fine, GRID, ORI, sf[0], ORIGIN)
+    h_bare = predict_gratings(gabor_map(), GRID, ORI, sf[0], ORIGIN)
+    t = pixel_box_transfer(GRID, ori, sf)
+    strong = np.abs(h_bare) > 0.2 * np.max(np.abs(h_bare))
+    assert np.all(np.abs(h_pix / t - h_bare)[strong] < 0.01 * np.max(np.abs(h_bare)))
+    assert np.all(np.abs(h_pix - h_bare)[strong].max() > 0.02 * np.max(np.abs(h_bare)))
+    # beyond min_value (far past Nyquist) no correction
+    assert float(pixel_box_transfer(GRID, 0.0, 1.5 / GRID.dx_deg)) == 1.0
