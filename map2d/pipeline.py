@@ -392,7 +392,7 @@ def write_analysis(folder, analysis, session, report=True) -> list:
     if an.flashed is not None:
         fl = an.flashed
         arrays.update(orientations_deg=fl.orientations_deg, sfs_cpd=fl.sfs_cpd, phases_deg=fl.phases_deg,
-                      grating_lags_s=fl.lags_s, measured_h=fl.harmonic_at_peak,
+                      grating_lags_s=fl.lags_s, measured_h=an.measured_h,
                       phase_invariant=fl.phase_mean_at_peak, kx_cpd=fl.kx_cpd, ky_cpd=fl.ky_cpd)
     if an.predicted_h is not None:
         arrays["predicted_h"] = an.predicted_h

@@ -477,7 +477,9 @@ def fit_sf(sf_cpd, r) -> SFFit:
 
     mu, hw_mu = average("log2_pref", "log2_pref_ci95")
     pref = 2.0**mu if np.isfinite(mu) else nan
-    ci = (2.0 ** (mu - hw_mu), 2.0 ** (mu + hw_mu)) if np.isfinite(hw_mu) else (nan, nan)
+    # an interval wider than the float range (a flat, unidentifiable peak) is not an interval
+    ci = ((2.0 ** (mu - hw_mu), 2.0 ** (mu + hw_mu)) if np.isfinite(hw_mu) and abs(mu) + hw_mu < 1000
+          else (nan, nan))
     bw, bw_ci = average("bandwidth_oct", "bandwidth_ci95_oct")
     name = best["name"] if w.max() > 0.95 else "average"
     return SFFit(pref_cpd=float(pref), pref_ci_low_cpd=float(ci[0]), pref_ci_high_cpd=float(ci[1]),
