@@ -431,3 +431,25 @@ def test_simulated_session_tuning_and_class(kind, ori_tol):
             assert cols["grating_responsive"][i] is True
             assert np.isnan(cols["pref_orientation_deg"][i])
             assert cols["grating_class"][i] == "simple"
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_simulated_spikes_preferred_sf_within_ten_percent(seed):
+    """Issue 4 tolerance on the simulator (spikes): preferred SF within 10 %, orientation within 5 deg.
+
+    Design: 7 SFs half an octave apart (0.02-0.16 cycles/deg) and 5 minutes of flashed gratings at
+    gains of 150-250 spikes/s. Measured on seeds 1-3: worst SF error 8.4 %, orientation 2.6 deg.
+    """
+    simulate = pytest.importorskip("map2d.simulate")
+    s, truth = simulate.simulate_session(n_cells=12, minutes=0, flashed_minutes=5, repeats=3, seed=seed,
+                                         sfs_cpd=np.geomspace(0.02, 0.16, 7), peak_rate_hz=(150.0, 250.0))
+    fl = analyze_flashed(s.responses, s.gratings, rng=0)
+    dr = analyze_drifting(s.responses, s.gratings)
+    cols = grating_tuning_columns(fl, dr)
+    tuned = [i for i, tc in enumerate(truth["cells"]) if tc["kind"] in ("simple", "complex")]
+    assert tuned
+    for i in tuned:
+        tc = truth["cells"][i]
+        assert cols["pref_sf_cpd"][i] == pytest.approx(tc["pref_sf_cpd"], rel=0.10), i
+        d = abs((cols["pref_orientation_deg"][i] - tc["pref_orientation_deg"] + 90) % 180 - 90)
+        assert d < 5.0, i
