@@ -37,6 +37,7 @@ Hum Brain Mapp 15:1-25 (max-statistic correction for many tests).
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -53,7 +54,8 @@ __all__ = ["MapResult", "compute_maps", "frame_responses", "map_lags", "dense_st
 KINDS = ("on", "off", "linear")
 
 _CHUNK_FRAMES = 8192
-_BLOCK_PIXELS = 128            # pixels per block of the max-statistic tail fit
+_FORK_MIN_WORK = 20_000_000   # frames x cells x lags above which the null runs on a second core
+_BLOCK_VALUES = 288            # z values (pixels x lags x kinds) per block of the max-statistic tail fit
 _MIN_BLOCKS = 64               # block maxima per cell for the first tail fit (all cells)
 _GRAY_BLOCKS = 256             # block maxima per cell for cells whose first p is near alpha
 
@@ -202,6 +204,20 @@ def frame_responses(responses: Spikes | Traces, noise: SparseNoise) -> np.ndarra
 # ----------------------------------------------------------------------------------------------
 # correlators: sums of stimulus x shifted response for a set of offsets
 # ----------------------------------------------------------------------------------------------
+def _flatnonzero_int8(a: np.ndarray) -> np.ndarray:
+    """``np.flatnonzero`` of a contiguous 1-byte array, scanning 8 bytes at a time (a sparse stack
+    has few non-zero words, so this is several times faster than a byte-wise scan)."""
+    n8 = a.size // 8 * 8
+    if n8 == 0:
+        return np.flatnonzero(a)
+    words = np.flatnonzero(a[:n8].view(np.uint64))                 # words holding a non-zero byte
+    cand = (words[:, None] * 8 + np.arange(8)).reshape(-1)
+    idx = cand[a[cand] != 0]
+    if n8 < a.size:
+        idx = np.concatenate([idx, n8 + np.flatnonzero(a[n8:])])
+    return idx
+
+
 class _SparseCorrelator:
     """``B`` (frames, 2P) csr: column p = bright at pixel p, column P + p = dark at pixel p."""
 
@@ -211,8 +227,8 @@ class _SparseCorrelator:
         flat = frames.reshape(F, P)
         per_row, cols = [], []
         for a in range(0, F, _CHUNK_FRAMES * 4):  # chunked so a huge int8 stack never widens at once
-            blk = np.asarray(flat[a:a + _CHUNK_FRAMES * 4]).reshape(-1)
-            idx = np.flatnonzero(blk)                                # row-major: sorted by frame
+            blk = np.ascontiguousarray(flat[a:a + _CHUNK_FRAMES * 4]).reshape(-1)
+            idx = _flatnonzero_int8(blk)                             # row-major: sorted by frame
             r, c = np.divmod(idx, P)
             per_row.append(np.bincount(r, minlength=min(F - a, _CHUNK_FRAMES * 4)))
             cols.append(np.where(blk[idx] > 0, c, c + P).astype(np.int32))
@@ -383,7 +399,7 @@ def _shift_offsets(F: int, n: int, L: int, min_shift: int, rng) -> np.ndarray:
 # public engine
 # ----------------------------------------------------------------------------------------------
 def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffles: int = 200,
-                 alpha: float = 0.01, rng=None, min_shift_s: float = 10.0,
+                 alpha: float = 0.01, rng=None, min_shift_s: float = 10.0, n_jobs: int | None = None,
                  dense_method: str = "auto", n_folds: int = 5) -> MapResult:
     """ON, OFF and linear maps at every lag for every cell, with z-scores and the responsive call.
 
@@ -498,10 +514,10 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
         return _compute_dense(R, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
                               min_shift, dense_method, n_folds)
     return _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
-                           min_shift)
+                           min_shift, n_jobs=n_jobs)
 
 
-def _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift):
+def _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift, n_jobs=None):
     """``Rf`` (frames, cells) float32 responses, centred in place."""
     ny, nx = noise.grid.shape
     F, C = Rf.shape
@@ -511,21 +527,6 @@ def _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min
     X, valid, mean, sd, n_valid = _center_frames(Rf)
     has_nan = valid is not None
     W = np.ascontiguousarray(valid.T, dtype=np.float32) if has_nan else None
-
-    maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
-    asd = np.full((3, C, L, P), np.nan, dtype=np.float32)
-    for li, lag in enumerate(lags):
-        sums = cor.sums(X, int(lag), circular=False)
-        if has_nan:
-            cnt = cor.sums(W, int(lag), circular=False).T      # (C, 2P) valid events per cell
-            n_on, n_off = cnt[:, :P], cnt[:, P:]
-        else:
-            cnt = cor.counts(int(lag))
-            n_on = np.broadcast_to(cnt[:P], (C, P))
-            n_off = np.broadcast_to(cnt[P:], (C, P))
-        maps[:, :, li] = _sparse_maps_one(sums, n_on, n_off, P)
-        asd[:, :, li] = _analytic_sd(sd, n_valid, n_on, n_off)
-    z_an = maps / asd                                               # (3, C, L, P)
 
     # shuffle null: counts over the whole circle, valid events ~ fraction of valid frames per cell
     cnt_all = cor.counts(0)
@@ -559,48 +560,179 @@ def _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min
                     out[2, :, li] = (on * inv_on - off * inv_off) * f_lin
             yield out
 
+    # the first shuffles of every cell run in a child process (second core) while this one
+    # computes the observed maps: the two halves cost the same
     offsets = _shift_offsets(F, K, L, min_shift, rng)
+    ok = _ok_cells(sd, n_valid, lags)
+    cells = np.flatnonzero(ok)
+    plan = _null_plan(P, L, K, 3, _effective_lags(X, sd, L, ok))
+    n_sub, starts, n_a, _ = plan
+    if n_jobs is None:
+        n_jobs = 2 if F * C * L >= _FORK_MIN_WORK and (os.cpu_count() or 1) > 1 else 1
+    child = _Child(lambda: _first_stage(null_stats, cells, offsets[:n_a], X, C, L, starts), enabled=n_jobs > 1)
+
+    maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
+    asd = np.full((3, C, L, P), np.nan, dtype=np.float32)
+    for li, lag in enumerate(lags):
+        sums = cor.sums(X, int(lag), circular=False)
+        if has_nan:
+            cnt = cor.sums(W, int(lag), circular=False).T      # (C, 2P) valid events per cell
+            n_on, n_off = cnt[:, :P], cnt[:, P:]
+        else:
+            cnt = cor.counts(int(lag))
+            n_on = np.broadcast_to(cnt[:P], (C, P))
+            n_off = np.broadcast_to(cnt[P:], (C, P))
+        maps[:, :, li] = _sparse_maps_one(sums, n_on, n_off, P)
+        asd[:, :, li] = _analytic_sd(sd, n_valid, n_on, n_off)
+    z_an = maps / asd                                               # (3, C, L, P)
+
     return _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
                    unit, alpha, kinds_used=(0, 1, 2), stimulus="sparse", method="sparse",
-                   ridge=np.full(C, np.nan))
+                   ridge=np.full(C, np.nan), first=child.result(), plan=plan)
+
+
+def _ok_cells(sd, n_valid, lags):
+    """Cells whose responses vary and cover more than the lags: the ones that get statistics."""
+    return np.isfinite(sd) & (sd > 0) & (n_valid > lags[-1] + 2)
+
+
+def _effective_lags(X, sd, L, ok, max_frames=20000):
+    """Median over cells of ``L / (1 + 2 sum_d (1 - d/L) rho(d))``, ``rho`` the response
+    autocorrelation at ``d = 1 .. L-1`` frames (from the first ``max_frames`` frames).
+
+    Under the shuffle null the maps of one pixel at lags ``l`` and ``l + d`` correlate as the
+    response does at ``d`` frames, so this is roughly the number of independent lags (``L`` for
+    spikes, near 1 for slow calcium traces). It sizes the blocks of the tail fit.
+    """
+    if L <= 1 or not ok.any():
+        return float(L)
+    Xs = X[:max_frames]
+    n = Xs.shape[0]
+    var = np.maximum(sd[ok].astype(np.float64) ** 2, 1e-300)
+    acc = np.zeros(ok.sum())
+    for d in range(1, min(L, n - 1)):
+        prod = Xs[:n - d] * Xs[d:]                                    # float32, summed in float64
+        rho = prod.sum(axis=0, dtype=np.float64)[ok] / (n - d) / var
+        acc += (1 - d / L) * rho
+    l_eff = L / np.maximum(1 + 2 * acc, 1.0)
+    return float(np.clip(np.median(l_eff), 1.0, L))
+
+
+def _null_plan(P, L, K, n_kinds=3, l_eff=None):
+    """Pixel blocks of the tail fit and shuffle counts: (n_sub, block starts, n_first, n_gray).
+
+    A block is a contiguous run of pixels with all their lags and kinds (about ``_BLOCK_VALUES``
+    values), so the dependence between lags stays inside a block. All cells draw ``n_first`` shuffles:
+    enough for ``_MIN_BLOCKS`` block maxima and 4096 null values per kind for the scale; cells near
+    ``alpha`` draw up to ``n_gray`` (``_GRAY_BLOCKS`` block maxima). Never more than ``K``.
+    """
+    l_eff = L if l_eff is None else l_eff
+    n_sub = int(min(P, max(1, int(P * l_eff * n_kinds) // _BLOCK_VALUES)))
+    starts = (np.arange(n_sub) * P) // n_sub
+    per_shuffle = n_sub
+    n_a = max(-(-_MIN_BLOCKS // per_shuffle), -(-4096 // (P * L)))
+    n_a = int(min(K, max(1, n_a)))
+    n_b = int(min(K, max(n_a, -(-_GRAY_BLOCKS // per_shuffle))))
+    return n_sub, starts, n_a, n_b
+
+
+def _block_max(zn, starts):
+    """(3, Ca, L, P) z -> (3, Ca, n_sub) largest ``|z|`` per kind and pixel block, over all lags
+    (-inf: none)."""
+    a = np.abs(zn)
+    a[~np.isfinite(a)] = -np.inf
+    return np.maximum.reduceat(a, starts, axis=3).max(axis=2)
+
+
+def _first_stage(null_stats, cells, offs, X, C, L, starts):
+    """The first shuffles for every cell: sums of squared z and counts per kind (for the scale), and
+    the block maxima of ``|z|`` per shuffle, kind, cell, lag and block (-inf where none)."""
+    sumsq = np.zeros((3, C))
+    nsq = np.zeros((3, C))
+    kmax = np.full((len(offs), 3, C, starts.size), -np.inf, dtype=np.float32)
+    if cells.size:
+        Xc = X if cells.size == C else np.ascontiguousarray(X[:, cells])
+        for k, zn in enumerate(null_stats(cells, offs, Xc)):
+            fin = np.isfinite(zn)
+            a = np.where(fin, zn, np.float32(0))
+            sumsq[:, cells] += np.einsum("kclp,kclp->kc", a, a, dtype=np.float64)
+            nsq[:, cells] += fin.sum(axis=(2, 3))
+            kmax[k][:, cells] = _block_max(zn, starts)
+    return sumsq, nsq, kmax
+
+
+class _Child:
+    """Run ``fn()`` in a forked child process (the second core) while the caller keeps working.
+
+    The child inherits every array (copy-on-write, nothing is pickled on the way in) and sends its
+    result back through a pipe. Where fork is unavailable or anything fails, ``result()`` runs
+    ``fn()`` here instead, so the answer never depends on it.
+    """
+
+    def __init__(self, fn, enabled=True):
+        import os
+        self.fn, self.pid, self.fd = fn, None, None
+        if not enabled or not hasattr(os, "fork"):
+            return
+        import pickle
+        try:
+            r, w = os.pipe()
+            pid = os.fork()
+        except OSError:
+            return
+        if pid == 0:                                                   # child
+            code = 0
+            try:
+                os.close(r)
+                with os.fdopen(w, "wb") as fh:
+                    pickle.dump(fn(), fh, protocol=pickle.HIGHEST_PROTOCOL)
+            except BaseException:
+                code = 1
+            finally:
+                os._exit(code)
+        os.close(w)
+        self.pid, self.fd = pid, r
+
+    def result(self):
+        if self.pid is None:
+            return self.fn()
+        import os
+        import pickle
+        try:
+            with os.fdopen(self.fd, "rb") as fh:
+                out = pickle.load(fh)
+        except Exception:
+            out = None
+        _, status = os.waitpid(self.pid, 0)
+        if out is None or status != 0:
+            return self.fn()
+        return out
 
 
 def _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, grid, lags, frame_s, unit, alpha,
-            kinds_used, stimulus, method, ridge):
-    """Shuffle calibration, max-statistic tail fit, peak lag, polarity, overlap, SNR -> MapResult."""
+            kinds_used, stimulus, method, ridge, first=None, plan=None):
+    """Shuffle calibration, max-statistic tail fit, peak lag, polarity, overlap, SNR -> MapResult.
+
+    ``first``: the result of :func:`_first_stage` when already computed (e.g. in a child process).
+    """
     ny, nx = grid.shape
     C = cell_ids.size
     L = lags.size
     K = offsets.size
     P = ny * nx
     ku = list(kinds_used)
-    ok_cell = np.isfinite(sd) & (sd > 0) & (n_valid > lags[-1] + 2)
+    ok_cell = _ok_cells(sd, n_valid, lags)
     cells = np.flatnonzero(ok_cell)
-    # pixel blocks of the tail fit: contiguous runs of about _BLOCK_PIXELS pixels
-    n_sub = max(1, P // _BLOCK_PIXELS)
-    starts = (np.arange(n_sub) * P) // n_sub
-    per_shuffle = L * n_sub
-    n_a = int(min(K, max(2, -(-_MIN_BLOCKS // per_shuffle))))
-    n_b = int(min(K, max(n_a, -(-_GRAY_BLOCKS // per_shuffle))))
+    if plan is None:
+        plan = _null_plan(P, L, K, len(kinds_used), _effective_lags(X, sd, L, ok_cell))
+    n_sub, starts, n_a, n_b = plan
+    if first is None:
+        first = _first_stage(null_stats, cells, offsets[:n_a], X, C, L, starts)
+    sumsq, nsq, kmax_a = first
 
-    def block_max(zn):  # (3, Ca, L, P) -> (3, Ca, L, n_sub) largest |z| per kind and block (-inf: none)
-        a = np.abs(zn)
-        a[~np.isfinite(a)] = -np.inf
-        return np.maximum.reduceat(a, starts, axis=3)
+    def block_max(zn):
+        return _block_max(zn, starts)
 
-    # first shuffles, all cells: the scale g per cell and kind, and the block maxima
-    sumsq = np.zeros((3, C))
-    nsq = np.zeros((3, C))
-    kmax_a = np.full((n_a, 3, C, L, n_sub), -np.inf, dtype=np.float32)
-    if cells.size:
-        Xc_cells = X if cells.size == C else np.ascontiguousarray(X[:, cells])
-        for k, zn in enumerate(null_stats(cells, offsets[:n_a], Xc_cells)):
-            fin = np.isfinite(zn)
-            a = np.where(fin, zn, np.float32(0))
-            sumsq[:, cells] += np.einsum("kclp,kclp->kc", a, a, dtype=np.float64)
-            nsq[:, cells] += fin.sum(axis=(2, 3))
-            kmax_a[k][:, cells] = block_max(zn)
-        del Xc_cells
     with np.errstate(invalid="ignore", divide="ignore"):
         g = np.sqrt(sumsq / nsq)                                    # (3, C)
     g[~np.isfinite(g) | (g <= 0)] = np.nan
@@ -611,9 +743,9 @@ def _finish(maps, z_an, null_stats, offsets, X, sd, n_valid, cell_ids, grid, lag
         a = np.where(np.isfinite(a), a, -np.inf)
         return a.max(axis=(0, 2, 3))
 
-    def calibrated(kmax, idx):  # (n, 3, Ca, L, n_sub) -> (Ca, n * L * n_sub) block maxima of |z|
+    def calibrated(kmax, idx):  # (n, 3, Ca, n_sub) -> (Ca, n * n_sub) block maxima of |z|
         with np.errstate(invalid="ignore"):
-            m = (kmax[:, ku] / g[ku][:, idx][None, :, :, None, None].astype(np.float32)).max(axis=1)
+            m = (kmax[:, ku] / g[ku][:, idx][None, :, :, None].astype(np.float32)).max(axis=1)
         return np.moveaxis(m, 1, 0).reshape(idx.size, -1).astype(np.float64)
 
     T = np.full(C, np.nan)
