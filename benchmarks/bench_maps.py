@@ -124,16 +124,26 @@ def peer_per_cell(noise: SparseNoise, spikes: Spikes, lags):
     row = np.searchsorted(spikes.cell_ids, spikes.cell)
     on = np.empty((C, len(lags), P), np.float32)
     off = np.empty_like(on)
+    order = np.argsort(row, kind="stable")                           # spikes grouped by cell
+    bounds = np.searchsorted(row[order], np.arange(C + 1))
+    # a regular frame rate (the usual case) lets the script count spikes; else weight each by 1/duration
+    regular = np.ptp(dur) <= 1e-9 * dur.max()
     for c in range(C):
-        k = k_all[(row == c) & (k_all >= 0)]
+        k = k_all[order[bounds[c]:bounds[c + 1]]]
+        k = k[k >= 0]
         w = 1.0 / dur[k]
         mean = w.sum() / F
         for li, lag in enumerate(lags):
             sel = k >= lag
-            S = flat[k[sel] - lag]                                    # (spikes, P) int8
+            S = flat[k[sel] - lag]                                    # (spikes, P) int8, fancy indexing
+            if regular:
+                s_on = (S == 1).sum(axis=0) / dur[0]
+                s_off = (S == -1).sum(axis=0) / dur[0]
+            else:
+                s_on, s_off = w[sel] @ (S == 1), w[sel] @ (S == -1)
             with np.errstate(invalid="ignore", divide="ignore"):
-                on[c, li] = (w[sel] @ (S > 0)) / n_on[li] - mean
-                off[c, li] = (w[sel] @ (S < 0)) / n_off[li] - mean
+                on[c, li] = s_on / n_on[li] - mean
+                off[c, li] = s_off / n_off[li] - mean
     return on, off, on - off
 
 
@@ -261,6 +271,126 @@ def print_table(res):
           f"of the map range; {res.get('responsive', '?')} of {res['config']['cells']} cells responsive)")
 
 
+# ----------------------------------------------------------------------------------------------
+# dense noise larger than memory: peak resident memory of map2d maps
+# ----------------------------------------------------------------------------------------------
+def _peak_rss_of(args):
+    """Run ``map2d ARGS`` under a fresh Python whose only child it is -> (seconds, peak RSS bytes)."""
+    code = ("import resource, subprocess, sys, time; t = time.perf_counter(); "
+            "r = subprocess.run([sys.executable, '-m', 'map2d.cli'] + sys.argv[1:]); "
+            "print(time.perf_counter() - t, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024); "
+            "sys.exit(r.returncode)")
+    proc = subprocess.run([sys.executable, "-c", code, *map(str, args)], capture_output=True, text=True)
+    if proc.returncode != 0:
+        raise RuntimeError(f"map2d {' '.join(map(str, args))} failed:\n{proc.stdout}\n{proc.stderr}")
+    dt, rss = proc.stdout.strip().splitlines()[-1].split()
+    return float(dt), int(rss)
+
+
+def bench_dense_memory(workdir: Path, gb: float, cells=20, ny=32, nx=32, rate_hz=60.0, n_lags=8, seed=0,
+                       quiet=False):
+    """Write a float32 binary white-noise movie of ``gb`` GB (memory-mapped, chunk by chunk) with
+    linear-nonlinear-Poisson spikes, run ``map2d maps`` on it and measure its peak resident memory.
+    The movie is deleted afterwards. Refuses when the disk lacks room for it (plus 1 GB)."""
+    say = (lambda *a: None) if quiet else (lambda *a: print(*a, flush=True))
+    P = ny * nx
+    F = int(gb * 2**30 / (4 * P))
+    need = F * P * 4 + 2**30
+    free = shutil.disk_usage(workdir).free
+    if free < need:
+        raise SystemExit(f"--dense-gb {gb}: needs {need / 2**30:.1f} GB free in {workdir}, {free / 2**30:.1f} GB free")
+    folder = workdir / "dense_session"
+    shutil.rmtree(folder, ignore_errors=True)
+    folder.mkdir(parents=True)
+    rng = np.random.default_rng(seed)
+    t0 = time.perf_counter()
+    try:
+        movie = np.lib.format.open_memmap(folder / "sparse_noise.npy", mode="w+", dtype=np.float32, shape=(F, ny, nx))
+        rows, cols = np.indices((ny, nx))
+        cy, cx = rng.uniform(0, ny - 1, cells), rng.uniform(0, nx - 1, cells)
+        k = np.exp(-((rows.ravel()[None] - cy[:, None]) ** 2 + (cols.ravel()[None] - cx[:, None]) ** 2) / 4.0)
+        k = (k * rng.choice([-1.0, 1.0], cells)[:, None]).T.astype(np.float32)        # (P, cells)
+        drive = np.zeros((F, cells), np.float32)
+        chunk = 16384
+        for a in range(0, F, chunk):
+            b = min(F, a + chunk)
+            blk = np.where(rng.random((b - a, P), dtype=np.float32) < 0.5, np.float32(-1), np.float32(1))
+            movie[a:b] = blk.reshape(-1, ny, nx)
+            drive[a:b] = blk @ k
+        movie.flush()
+        del movie
+        latency = 2
+        rate = np.full((F, cells), 5.0, np.float32)
+        rate[latency:] += 3.0 * np.maximum(drive[:F - latency], 0)
+        counts = rng.poisson(rate / rate_hz)
+        frame, cell = np.nonzero(counts)
+        reps = counts[frame, cell]
+        frame, cell = np.repeat(frame, reps), np.repeat(cell, reps)
+        t = (frame + rng.random(frame.size)) / rate_hz
+        order = np.argsort(t)
+        np.save(folder / "sparse_noise_times.npy", np.arange(F) / rate_hz)
+        np.savez(folder / "spikes.npz", time_s=t[order], cell=cell[order].astype(np.int64))
+        manifest = {"sparse_noise": {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy",
+                                     "grid": {"center_deg": [0.0, 0.0], "spacing_deg": [2.0, 2.0]}},
+                    "responses": {"kind": "spikes", "file": "spikes.npz", "cell_ids": list(range(cells))}}
+        (folder / "session.json").write_text(json.dumps(manifest, indent=2) + "\n")
+        say(f"dense movie: {F} frames of {ny} x {nx} float32 = {F * P * 4 / 2**30:.2f} GB, {cells} cells, "
+            f"written in {time.perf_counter() - t0:.1f} s")
+        dt, rss = _peak_rss_of(["maps", folder, "--out", workdir / "dense_out",
+                                "--max-lag", f"{(n_lags - 0.5) / rate_hz:.9g}", "--quiet"])
+        say(f"map2d maps on the dense movie: {dt:.1f} s, peak resident memory {rss / 2**30:.2f} GB")
+        return {"dense_gb": F * P * 4 / 2**30, "dense_frames": F, "dense_seconds": dt, "dense_peak_rss_gb": rss / 2**30}
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+        shutil.rmtree(workdir / "dense_out", ignore_errors=True)
+
+
+# ----------------------------------------------------------------------------------------------
+# the whole analysis
+# ----------------------------------------------------------------------------------------------
+def bench_analyze(workdir: Path, minutes=60.0, cells=500, ny=32, nx=32, seed=0, quiet=False):
+    """Simulate a session with sparse noise and both grating families, time the whole ``map2d analyze``
+    process, then the stages in this process (analysis stages from its progress calls; writing, which
+    includes the TIFF stacks and the report, separately)."""
+    from map2d.pipeline import write_analysis
+    from map2d.simulate import simulate_session
+    from map2d.analysis import analyze_session
+    from map2d.contract import load_session
+
+    say = (lambda *a: None) if quiet else (lambda *a: print(*a, flush=True))
+    t0 = time.perf_counter()
+    grid = Grid(ny=ny, nx=nx, center_x_deg=0.0, center_y_deg=0.0, dx_deg=2.0, dy_deg=2.0)
+    session, _ = simulate_session(n_cells=cells, minutes=minutes, responses="spikes", seed=seed, grid=grid,
+                                  sparse_rate_hz=60.0)
+    folder = workdir / "analyze_session"
+    shutil.rmtree(folder, ignore_errors=True)
+    write_session(folder, session)
+    say(f"analyze session: {minutes:g} min sparse noise at 60 Hz on {ny} x {nx}, {cells} cells, flashed and "
+        f"drifting gratings; simulated in {time.perf_counter() - t0:.1f} s")
+    out = workdir / "analyze_out"
+    total, _, _ = _map2d(["analyze", folder, "--out", out, "--quiet"])
+    say(f"map2d analyze (whole process): {total:.1f} s")
+    stages = {}
+    marks = []
+    t_load = time.perf_counter()
+    s = load_session(folder)
+    stages["load"] = time.perf_counter() - t_load
+    an = analyze_session(s, rng=0, progress=lambda name: marks.append((name, time.perf_counter())))
+    t_end = time.perf_counter()
+    for (name, t), (_, t_next) in zip(marks, marks[1:] + [("", t_end)]):
+        stages[name] = t_next - t
+    tmp = workdir / "analyze_write"
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir()
+    t = time.perf_counter()
+    write_analysis(tmp, an, s)
+    stages["writing (TIFF, npz, report)"] = time.perf_counter() - t
+    shutil.rmtree(tmp, ignore_errors=True)
+    for name, dt in stages.items():
+        say(f"  {name:30s} {dt:7.2f} s")
+    return {"analyze_seconds": total, "analyze_stages": stages}
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--minutes", type=float, default=30.0)
@@ -274,15 +404,26 @@ def main(argv=None):
     ap.add_argument("--workdir", type=Path, default=None, help="where to write sessions (default: a temp folder)")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--json", type=Path, default=None, help="also write the results here")
+    ap.add_argument("--dense-gb", type=float, default=0.5,
+                    help="size of the dense float32 movie for the memory measurement (0: skip; default 0.5)")
+    ap.add_argument("--analyze", action="store_true",
+                    help="also time the whole map2d analyze on a 1-hour, 500-cell session with both stimulus families")
+    ap.add_argument("--only", choices=("maps", "dense", "analyze"), default=None, help="run one part only")
     args = ap.parse_args(argv)
     if args.large:
         args.minutes, args.cells, args.grid = 60.0, 500, (32, 32)
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="map2d-bench-"))
     workdir.mkdir(parents=True, exist_ok=True)
+    res = {}
     try:
-        res = bench_maps(workdir, args.minutes, args.cells, args.grid[0], args.grid[1], args.lags, args.repeats,
-                         rate_hz=args.rate_hz, seed=args.seed, skip_per_cell=args.skip_per_cell)
-        print_table(res)
+        if args.only in (None, "maps"):
+            res = bench_maps(workdir, args.minutes, args.cells, args.grid[0], args.grid[1], args.lags, args.repeats,
+                             rate_hz=args.rate_hz, seed=args.seed, skip_per_cell=args.skip_per_cell)
+            print_table(res)
+        if args.dense_gb > 0 and args.only in (None, "dense"):
+            res.update(bench_dense_memory(workdir, args.dense_gb, seed=args.seed))
+        if args.analyze or args.only == "analyze":
+            res.update(bench_analyze(workdir, seed=args.seed))
         if args.json:
             args.json.write_text(json.dumps(res, indent=2) + "\n")
     finally:

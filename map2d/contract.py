@@ -355,6 +355,10 @@ def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
         # may be larger than memory) and are checked in chunks.
         for a in range(0, frames.shape[0], chunk):
             finite = np.isfinite(frames[a:a + chunk]).all(axis=(1, 2))
+            mm = getattr(frames, "_mmap", None)        # keep resident memory at one chunk
+            if mm is not None and hasattr(mm, "madvise"):
+                import mmap
+                mm.madvise(getattr(mmap, "MADV_DONTNEED", 4))
             if not finite.all():
                 raise BadInput(fpath, "frames", "is not finite", row=a + int(np.flatnonzero(~finite)[0]))
     else:
@@ -499,7 +503,7 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
             raise BadInput(path, "cell", f"has {c.size} entries but time_s has {t.size}")
         if not _is_real(t):
             raise BadInput(path, "time_s", f"must be numeric, got {t.dtype}")
-        t = t.astype(np.float64)
+        t = t.astype(np.float64, copy=False)
         bad = np.flatnonzero(~np.isfinite(t))
         if bad.size:
             raise BadInput(path, "time_s", "is not finite", row=int(bad[0]))
@@ -511,7 +515,7 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
             raise BadInput(path, "cell", "holds an id too large for a 64-bit integer")
         elif c.dtype.kind not in "iu":
             raise BadInput(path, "cell", f"must hold integers, got {c.dtype}")
-        c = c.astype(np.int64)
+        c = c.astype(np.int64, copy=False)
         ids = None
         if "cell_ids" in spec:
             raw = spec["cell_ids"]
@@ -526,12 +530,14 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
             if unknown.size:
                 raise BadInput(path, "cell", f"cell {int(unknown[0])} is not in responses.cell_ids")
             ids = np.unique(ids)
-        order = np.argsort(t, kind="stable")
-        spikes = Spikes(time_s=t[order], cell=c[order], cell_ids=ids)
+        if t.size > 1 and not np.all(t[1:] >= t[:-1]):           # most files are already sorted
+            order = np.argsort(t, kind="stable")
+            t, c = t[order], c[order]
+        spikes = Spikes(time_s=t, cell=c, cell_ids=ids)
         if spikes.cell_ids.size == 0:
             raise BadInput(path, "time_s", "holds no spikes and responses.cell_ids names no cells: "
                                            "there is no cell to analyse")
-        silent = np.setdiff1d(spikes.cell_ids, spikes.cell)
+        silent = spikes.cell_ids[~np.isin(spikes.cell_ids, spikes.cell)]   # sorted, like setdiff1d
         if silent.size:
             shown = ", ".join(str(int(v)) for v in silent[:5]) + (", ..." if silent.size > 5 else "")
             _note(notes, f"{path}: field cell: {silent.size} of {spikes.cell_ids.size} cells have no spikes "
@@ -672,8 +678,8 @@ def load_session(folder) -> Session:
     session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
                       rois=rois, roi_label_offset=roi_offset, path=folder,
                       name=str(manifest.get("name", folder.name)), notes=notes)
-    _check_time_overlap(session, folder, manifest["responses"])
     n_out = count_spikes_outside(session)
+    _check_time_overlap(session, folder, manifest["responses"], n_out=n_out)
     if n_out:
         _note(notes, f"{folder / manifest['responses']['file']}: field time_s: {n_out} of "
                      f"{session.responses.time_s.size} spikes fall outside every stimulus window "
@@ -681,7 +687,7 @@ def load_session(folder) -> Session:
     return session
 
 
-def _check_time_overlap(session: Session, folder: Path, spec) -> None:
+def _check_time_overlap(session: Session, folder: Path, spec, n_out=None) -> None:
     """Refuse responses that share no time with the stimuli (wrong units or another clock): every
     analysis would silently come out empty."""
     starts, ends = _stimulus_windows(session)
@@ -690,7 +696,7 @@ def _check_time_overlap(session: Session, folder: Path, spec) -> None:
     lo, hi = float(starts.min()), float(ends.max())
     r = session.responses
     if isinstance(r, Spikes):
-        if r.time_s.size and count_spikes_outside(session) == r.time_s.size:
+        if r.time_s.size and (count_spikes_outside(session) if n_out is None else n_out) == r.time_s.size:
             raise BadInput(folder / spec["file"], "time_s",
                            f"no spike falls in any stimulus window (spikes {r.time_s[0]:.6g} to "
                            f"{r.time_s[-1]:.6g} s, stimuli {lo:.6g} to {hi:.6g} s): check time units and clock")

@@ -250,6 +250,8 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
                                           f"of {sn.frame_interval_s:.4g} s")
     res = compute_maps(session.responses, sn, max_lag_s=max_lag_s, rng=seed)
     order = np.argsort(res.cell_ids, kind="stable")
+    if np.array_equal(order, np.arange(order.size)):
+        order = slice(None)                          # already sorted: no copies of the maps
     centres = np.array([map_centroid_deg(res, int(c)) for c in range(res.n_cells)], dtype=float)
     g = res.grid
     with results_folder(out) as tmp:
