@@ -320,11 +320,17 @@ class _SpikeRows:
         else:
             starts, ends = noise.times_s, noise.frame_ends_s()
             F, t = starts.size, spikes.time_s
-            k = np.searchsorted(starts, t, side="right") - 1
-            ok = k >= 0
-            ok[ok] &= t[ok] < ends[k[ok]]
-            col = cell_index(spikes)[ok]
-            k = k[ok]
+            if F > 1 and np.array_equal(ends[:-1], starts[1:]) and np.all(t[1:] >= t[:-1]):
+                # back-to-back frames, sorted spikes: the spikes inside are one slice
+                a, b = np.searchsorted(t, [starts[0], ends[-1]], side="left")
+                k = np.searchsorted(starts, t[a:b], side="right") - 1
+                col = cell_index(spikes)[a:b]
+            else:
+                k = np.searchsorted(starts, t, side="right") - 1
+                ok = k >= 0
+                ok[ok] &= t[ok] < ends[k[ok]]
+                col = cell_index(spikes)[ok]
+                k = k[ok]
             if k.size > 1 and np.any(k[1:] < k[:-1]):
                 order = np.argsort(k, kind="stable")
                 k, col = k[order], col[order]
@@ -739,7 +745,7 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
             n_off = np.broadcast_to(cnt[P:], (C, P))
         maps[:, :, li] = _sparse_maps_one(sums, n_on, n_off, P)
         asd[:, :, li] = _analytic_sd(sd, n_valid, n_on, n_off)
-    z_an = maps / asd                                               # (3, C, L, P)
+    z_an = np.divide(maps, asd, out=asd)                            # (3, C, L, P), in place
 
     del Yobs
     return _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
@@ -889,7 +895,10 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
     with np.errstate(invalid="ignore", divide="ignore"):
         g = np.sqrt(sumsq / nsq)                                    # (3, C)
     g[~np.isfinite(g) | (g <= 0)] = np.nan
-    z = (z_an / g[:, :, None, None].astype(np.float32)).astype(np.float32, copy=False)  # (3, C, L, P)
+    if z_an.dtype == np.float32:                                   # (3, C, L, P), in place
+        z = np.divide(z_an, g[:, :, None, None].astype(np.float32), out=z_an)
+    else:
+        z = (z_an / g[:, :, None, None]).astype(np.float32)
 
     def calibrated(kmax, idx):  # (n, 3, Ca, n_sub) -> (Ca, n * n_sub) block maxima of |z|
         with np.errstate(invalid="ignore"):
@@ -897,7 +906,9 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
         return np.moveaxis(m, 1, 0).reshape(idx.size, -1).astype(np.float64)
 
     # largest |z| over used kinds and pixels per cell and lag (NaN pixels ignored; -inf: none)
-    per_lag = np.fmax.reduce(np.fmax.reduce(np.abs(z[ku]), axis=3), axis=0)    # (C, L)
+    zk = z[ku] if len(ku) < 3 else z
+    per_lag = np.fmax(np.fmax.reduce(np.fmax.reduce(zk, axis=3), axis=0),          # max |z| per (C, L)
+                      -np.fmin.reduce(np.fmin.reduce(zk, axis=3), axis=0))
     per_lag[np.isnan(per_lag)] = -np.inf
     T = np.where(ok_cell, per_lag.max(axis=1), np.nan)
     T[~np.isfinite(T)] = np.nan
