@@ -242,19 +242,6 @@ class _SparseCorrelator:
         self.F, self.P = F, P
         self._cum = None
 
-    def rolled_T(self, shift: int):
-        """``B`` with its rows moved down circularly by ``shift``, transposed (csc, no conversion)."""
-        F, B = self.F, self.B
-        sh = int(shift) % F
-        if sh == 0:
-            return B.T
-        cut = B.indptr[F - sh]
-        indices = np.concatenate([B.indices[cut:], B.indices[:cut]])
-        per_row = np.diff(B.indptr)
-        indptr = np.zeros(F + 1, dtype=B.indptr.dtype)
-        np.cumsum(np.concatenate([per_row[F - sh:], per_row[:F - sh]]), out=indptr[1:])
-        return sp.csr_matrix((B.data, indices, indptr), shape=B.shape).T
-
     def chunks(self, size: int = _CHUNK_FRAMES):
         """``(a, b, B[a:b]^T)`` for consecutive blocks of ``size`` frames (built once per size, kept)."""
         if not hasattr(self, "_chunks"):
@@ -879,8 +866,6 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
     ny, nx = grid.shape
     C = cell_ids.size
     L = lags.size
-    K = offsets.size
-    P = ny * nx
     ku = list(kinds_used)
     ok_cell = _ok_cells(sd, n_valid, lags)
     cells = np.flatnonzero(ok_cell)

@@ -2,8 +2,8 @@
 and the fast paths added for speed equal slow reference computations written here.
 
 Covered: map2d and both benchmark peers agree (spikes, several lags, odd grid, a cell without
-spikes); frame-major spike rates; the word-wise event scan; the rolled stimulus matrix used by the
-shuffles; the forked first shuffle stage equals the serial one; the Gumbel fit against scipy's; the
+spikes); frame-major spike rates; the word-wise event scan; the products streamed over blocks of
+frames (observed and circularly shifted); the forked first shuffle stage equals the serial one; the Gumbel fit against scipy's; the
 connected region against scipy.ndimage; chunked validation of memory-mapped dense frames.
 """
 
@@ -21,8 +21,8 @@ from map2d.align import _spike_rates, interval_responses
 from map2d.contract import Session, SparseNoise, Spikes, Traces, load_session, write_session
 from map2d.errors import BadInput
 from map2d.geometry import Grid
-from map2d.maps import (_component, _flatnonzero_int8, _gumbel_fit, _SparseCorrelator, compute_maps,
-                        map_lags)
+from map2d.maps import (_component, _correlate, _DenseRows, _flatnonzero_int8, _gumbel_fit, _SparseCorrelator,
+                        compute_maps)
 from map2d.stimuli.sparse_noise import make_sparse_noise
 
 BENCH = Path(__file__).resolve().parent.parent / "benchmarks" / "bench_maps.py"
@@ -103,15 +103,26 @@ def test_wordwise_event_scan_equals_flatnonzero(n):
     np.testing.assert_array_equal(_flatnonzero_int8(a), np.flatnonzero(a))
 
 
-def test_rolled_stimulus_matrix_equals_rolled_rows():
+def test_stimulus_matrix_and_streamed_products_equal_dense_products():
     grid = Grid(ny=3, nx=5, dx_deg=1.0, dy_deg=1.0)
     sn = make_sparse_noise(grid, duration_s=4.0, rate_hz=10.0, spots_per_frame=2, min_distance_deg=0.0, rng=2)
     cor = _SparseCorrelator(sn.frames)
     dense = cor.B.toarray()
     flat = sn.frames.reshape(40, -1)
     np.testing.assert_array_equal(dense, np.concatenate([flat > 0, flat < 0], axis=1).astype(np.float32))
-    for shift in (0, 1, 7, 39, 40, 93):
-        np.testing.assert_array_equal(cor.rolled_T(shift).toarray(), np.roll(dense, shift, axis=0).T)
+    X = np.random.default_rng(3).standard_normal((40, 4)).astype(np.float32)
+    prov = _DenseRows(X)
+    lags = np.array([0, 1, 3])
+    for size in (7, 40):                                            # blocks of frames, or one block
+        for shift in (0, 5, 39, 93):
+            Y = _correlate(cor.chunks(size), prov, shift, lags, circular=True)
+            for li, lag in enumerate(lags):
+                ref = dense.T.astype(np.float64) @ np.roll(X, -(lag + shift), axis=0)   # X[t + lag + shift]
+                np.testing.assert_allclose(Y[li], ref, rtol=1e-5, atol=1e-5)
+        Y = _correlate(cor.chunks(size), prov, 0, lags, circular=False)
+        for li, lag in enumerate(lags):
+            ref = dense[:40 - lag].T.astype(np.float64) @ X[lag:]
+            np.testing.assert_allclose(Y[li], ref, rtol=1e-5, atol=1e-5)
 
 
 @pytest.mark.parametrize("kind", ["spikes", "traces"])
