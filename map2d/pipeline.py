@@ -406,7 +406,7 @@ def write_analysis(folder, analysis, session, report=True) -> list:
         dr = an.drifting
         arrays.update(directions_deg=dr.directions_deg, drift_sfs_cpd=dr.sfs_cpd, drift_tfs_hz=dr.tfs_hz,
                       f0_mean=dr.f0_mean, f0_sem=dr.f0_sem, f1_mean=dr.f1_mean, f1_sem=dr.f1_sem)
-    np.savez_compressed(folder / "results.npz", **arrays)
+    np.savez(folder / "results.npz", **arrays)  # uncompressed: zlib cost seconds on big sessions
     written.append(folder / "results.npz")
     if session.rois is not None and an.maps is not None:
         from .export.fov import write_fov
