@@ -23,6 +23,11 @@ CONTRACT_COLUMNS = ("cell", "responsive", "center_x_deg", "center_y_deg", "peak_
                     "pref_orientation_deg", "pref_sf_cpd", "f1_f0", "agreement", "linear")
 
 
+#: Columns that only gratings fill (left out of ``map2d maps``'s table).
+GRATING_ONLY_COLUMNS = ("pref_orientation_deg", "pref_sf_cpd", "f1_f0", "agreement", "linear",
+                        "linear_reason")
+
+
 @dataclass
 class Analysis:
     """Everything :func:`analyze_session` computed for one session.

@@ -227,16 +227,19 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
     """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``.
 
     ``maps.npz`` holds ``on, off, linear`` and ``on_z, off_z, linear_z`` (float32, cells x lags x ny x nx,
-    row 0 at the top), ``lags_s``, ``cell_ids`` and the grid (``grid_shape``, ``grid_center_deg``,
-    ``grid_spacing_deg``). ``cells.csv`` has one row per cell sorted by id: ``cell, responsive,
-    center_x_deg, center_y_deg, peak_lag_s`` and the map statistics. Until model fits are joined in,
-    the centre is :func:`map2d.maps.map_centroid_deg` (centroid of the significant region around the
-    peak pixel); empty for cells that are not responsive.
+    row 0 at the top), ``lags_s``, ``cell_ids``, the grid (``grid_shape``, ``grid_center_deg``,
+    ``grid_spacing_deg``), and per cell the fitted spatial map and the model (``spatial_maps``,
+    ``model_maps``, NaN when not fitted). ``cells.csv`` has one row per cell sorted by id: ``cell,
+    responsive, center_x_deg, center_y_deg, peak_lag_s`` (the centre of the fitted model's envelope),
+    then the map statistics and the fit parameters (the columns of ``map2d analyze`` without the
+    grating ones). Cells that are not responsive have empty values.
     """
+    import dataclasses
+
     import numpy as np
 
+    from .analysis import GRATING_ONLY_COLUMNS, analyze_session
     from .contract import load_session, write_table
-    from .maps import compute_maps, map_centroid_deg
 
     session = load_session(session_path)
     if session.sparse_noise is None:
@@ -248,32 +251,18 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
     if max_lag_s / sn.frame_interval_s >= sn.n_frames / 4:
         raise BadInput("--max-lag", None, f"{max_lag_s} s is too long for {sn.n_frames} frames "
                                           f"of {sn.frame_interval_s:.4g} s")
-    res = compute_maps(session.responses, sn, max_lag_s=max_lag_s, rng=seed)
-    order = np.argsort(res.cell_ids, kind="stable")
-    if np.array_equal(order, np.arange(order.size)):
-        order = slice(None)                          # already sorted: no copies of the maps
-    centres = np.array([map_centroid_deg(res, int(c)) for c in range(res.n_cells)], dtype=float)
+    an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed)
+    res = an.maps
     g = res.grid
     with results_folder(out) as tmp:
         np.savez(  # not compressed: float maps shrink ~15 % for seconds of zlib on large sessions
-            tmp / "maps.npz", on=res.on[order], off=res.off[order], linear=res.linear[order],
-            on_z=res.on_z[order], off_z=res.off_z[order], linear_z=res.linear_z[order],
-            lags_s=res.lags_s, cell_ids=res.cell_ids[order], unit=np.array(res.unit),
+            tmp / "maps.npz", on=res.on, off=res.off, linear=res.linear,
+            on_z=res.on_z, off_z=res.off_z, linear_z=res.linear_z,
+            lags_s=res.lags_s, cell_ids=res.cell_ids, unit=np.array(res.unit),
             grid_shape=np.array(g.shape), grid_center_deg=np.array([g.center_x_deg, g.center_y_deg]),
-            grid_spacing_deg=np.array([g.dx_deg, g.dy_deg]))
-        write_table(tmp / "cells.csv", {
-            "cell": res.cell_ids[order],
-            "responsive": res.responsive[order],
-            "center_x_deg": centres[order, 0],
-            "center_y_deg": centres[order, 1],
-            "peak_lag_s": res.peak_lag_s[order],
-            "p_value": res.p_value[order],
-            "max_abs_z": res.max_abs_z[order],
-            "polarity": res.polarity[order],
-            "onoff_overlap": res.onoff_overlap[order],
-            "snr": res.snr[order],
-            "n_frames_used": res.n_frames_used[order],
-        })
+            grid_spacing_deg=np.array([g.dx_deg, g.dy_deg]),
+            spatial_maps=an.spatial_maps, model_maps=an.model_maps)
+        write_table(tmp / "cells.csv", {k: v for k, v in an.cells.items() if k not in GRATING_ONLY_COLUMNS})
     if not quiet:
         print(f"map2d maps: {int(res.responsive.sum())} of {res.n_cells} cells responsive; "
               f"wrote {Path(out) / 'maps.npz'} and cells.csv")
