@@ -17,6 +17,9 @@ Conventions
 - Lag ``l`` (whole frames, ``0 .. floor(max_lag_s / frame_interval)``) pairs the stimulus of frame
   ``t`` with the response in frame ``t + l``. Responses outside the stimulus are never used: at lag
   ``l`` the last ``l`` frames have no response and are left out.
+- Frames marked invalid (``SparseNoise.valid``: the frame spans dropped frames) split the session
+  into gap-free stretches; lag ``l`` pairs frames ``t`` and ``t + l`` only inside one stretch (see
+  :func:`compute_maps`, Notes).
 - Maps are ``(cells, lags, ny, nx)`` float32 with row 0 at the top (contract).
 - ``on``: mean response in the frames after a bright spot at the pixel minus the cell's mean
   response; ``off`` the same for dark spots; ``linear = on - off``. Units are those of the responses
@@ -107,7 +110,8 @@ class MapResult:
         Largest ``|linear_z|`` at the peak lag (the linear map's peak over the null sd); for a cell
         that is not responsive, at the lag of its largest ``|z|``.
     n_frames_used : ndarray int (C,)
-        Frames with a valid response (within the stimulus, not NaN).
+        Frames with a valid response (within the stimulus, not NaN, not marked invalid in
+        ``SparseNoise.valid``).
     frame_s : float
         Median frame interval.
     n_shuffles : ndarray int (C,)
@@ -200,8 +204,43 @@ def frame_responses(responses: Spikes | Traces, noise: SparseNoise) -> np.ndarra
 
     Spikes/s for spikes; the trace's time average over the frame for traces (NaN where a frame holds
     no valid sample). Uses :func:`map2d.align.interval_responses` with the frames of ``noise``.
+    Frames marked invalid (``noise.valid``, frames spanning dropped frames) are NaN.
     """
-    return interval_responses(responses, noise.times_s, noise.frame_ends_s())
+    out = interval_responses(responses, noise.times_s, noise.frame_ends_s())
+    valid = _valid_mask(noise)
+    if valid is not None:
+        out[:, ~valid] = np.nan
+    return out
+
+
+def _valid_mask(noise: SparseNoise) -> np.ndarray | None:
+    """``noise.valid`` checked as a bool mask ``(frames,)``, or None when every frame is valid."""
+    if noise.valid is None:
+        return None
+    valid = np.asarray(noise.valid)
+    if valid.shape != (noise.n_frames,) or valid.dtype != bool:
+        raise ValueError(f"noise.valid must be a bool mask of shape ({noise.n_frames},), got "
+                         f"{valid.dtype} {valid.shape}")
+    return None if valid.all() else valid
+
+
+def _gap_layout(valid: np.ndarray, lmax: int):
+    """Rows of the gap-padded timeline the sparse engine works on.
+
+    Every invalid frame becomes ``K = max(lmax, 1)`` empty rows (no stimulus event, no valid
+    response), so the rows of two valid frames on either side of it are more than ``lmax`` apart:
+    a whole-frame lag ``l <= lmax`` then pairs only frames ``t .. t + l`` that are all valid, with no
+    test per lag. Returns ``row`` (F,) int64 (the row of each frame; for an invalid frame the first
+    of its empty rows), ``n_rows`` and ``row_valid`` (n_rows,) bool (rows holding a valid frame).
+    """
+    K = max(int(lmax), 1)
+    bad = ~valid
+    before = np.cumsum(bad) - bad                                      # invalid frames before each frame
+    row = np.arange(valid.size, dtype=np.int64) + (K - 1) * before
+    n_rows = int(valid.size + (K - 1) * bad.sum())
+    row_valid = np.zeros(n_rows, dtype=bool)
+    row_valid[row[valid]] = True
+    return row, n_rows, row_valid
 
 
 # ----------------------------------------------------------------------------------------------
@@ -224,7 +263,7 @@ def _flatnonzero_int8(a: np.ndarray) -> np.ndarray:
 class _SparseCorrelator:
     """``B`` (frames, 2P) csr: column p = bright at pixel p, column P + p = dark at pixel p."""
 
-    def __init__(self, frames: np.ndarray):
+    def __init__(self, frames: np.ndarray, layout=None):
         F = frames.shape[0]
         P = int(np.prod(frames.shape[1:]))
         flat = frames.reshape(F, P)
@@ -238,6 +277,16 @@ class _SparseCorrelator:
         indptr = np.zeros(F + 1, dtype=np.int64)
         np.cumsum(np.concatenate(per_row), out=indptr[1:])
         cols = np.concatenate(cols) if cols else np.zeros(0, np.int32)
+        if layout is not None:
+            # gap-padded rows (see _gap_layout): valid frames at their rows, the rest empty
+            row, n_rows, _, valid = layout
+            per = np.diff(indptr)
+            cols = cols[np.repeat(valid, per)]
+            per_row = np.zeros(n_rows, dtype=np.int64)
+            per_row[row[valid]] = per[valid]
+            F = n_rows
+            indptr = np.zeros(F + 1, dtype=np.int64)
+            np.cumsum(per_row, out=indptr[1:])
         self.B = sp.csr_matrix((np.ones(cols.size, np.float32), cols, indptr), shape=(F, 2 * P))
         self.F, self.P = F, P
         self._cum = None
@@ -299,11 +348,15 @@ class _SpikeRows:
 
     Each spike adds ``1 / duration`` of its frame (the same values as
     :func:`map2d.align.interval_responses`); spikes outside every frame are left out.
+
+    With a ``layout`` (:func:`_gap_layout`) the rows are those of the gap-padded timeline: spikes in
+    invalid frames are left out, the mean and sd are over the valid frames only (``n_valid``), and
+    the centred value of an empty row is 0 (no response there).
     """
 
-    def __init__(self, spikes: Spikes, noise: SparseNoise, _parts=None):
+    def __init__(self, spikes: Spikes, noise: SparseNoise, _parts=None, layout=None):
         if _parts is not None:
-            self.k, self.col, self.w, self.F, self.C, self.mean32, self.sd = _parts
+            self.k, self.col, self.w, self.F, self.C, self.mean32, self.sd, self.empty, self.n_valid = _parts
         else:
             starts, ends = noise.times_s, noise.frame_ends_s()
             F, t = starts.size, spikes.time_s
@@ -321,15 +374,21 @@ class _SpikeRows:
             if k.size > 1 and np.any(k[1:] < k[:-1]):
                 order = np.argsort(k, kind="stable")
                 k, col = k[order], col[order]
-            self.k, self.col, self.F, self.C = k, col, F, spikes.cell_ids.size
-            self.w = (1.0 / (ends - starts)).astype(np.float32)[k]
+            w = (1.0 / (ends - starts)).astype(np.float32)[k]
+            self.empty, n = None, F
+            if layout is not None:
+                row, F, row_valid, valid = layout
+                keep = valid[k]
+                k, col, w = row[k[keep]], col[keep], w[keep]               # row is increasing: k stays sorted
+                self.empty, n = ~row_valid, int(valid.sum())
+            self.k, self.col, self.F, self.C, self.w, self.n_valid = k, col, F, spikes.cell_ids.size, w, n
             self.ptr = np.searchsorted(k, np.arange(F + 1))
             s1 = np.bincount(col, weights=self.w, minlength=self.C)       # one pass: sums and squares
             s2 = np.zeros(self.C)
             for a in range(0, F, _CHUNK_FRAMES):
                 blk = self._raw(a, min(F, a + _CHUNK_FRAMES))
                 s2 += np.einsum("fc,fc->c", blk, blk, dtype=np.float64)
-            n = max(F, 1)
+            n = max(n, 1)
             self.mean = s1 / n
             self.mean32 = self.mean.astype(np.float32)
             self.sd = np.sqrt(np.maximum(s2 / n - self.mean ** 2, 0.0))
@@ -343,7 +402,8 @@ class _SpikeRows:
         pos[cols] = np.arange(cols.size)
         keep = pos[self.col] >= 0
         return _SpikeRows(None, None, _parts=(self.k[keep], pos[self.col[keep]], self.w[keep], self.F,
-                                              cols.size, self.mean32[cols], self.sd[cols]))
+                                              cols.size, self.mean32[cols], self.sd[cols], self.empty,
+                                              self.n_valid))
 
     def _raw(self, a: int, b: int) -> np.ndarray:
         """Uncentred rates of frames ``a .. b-1`` (0 <= a <= b <= F), (b - a, C) float32."""
@@ -362,6 +422,8 @@ class _SpikeRows:
             if e > a:
                 out[:e - a] = self._raw(a, e)
                 out[:e - a] -= self.mean32
+                if self.empty is not None:
+                    out[:e - a][self.empty[a:e]] = 0                    # no response in an empty row
             return out
         pieces, pos = [], a
         while pos < b:
@@ -371,6 +433,8 @@ class _SpikeRows:
             pos += e0 - s0
         out = pieces[0] if len(pieces) == 1 else np.concatenate(pieces)
         out -= self.mean32
+        if self.empty is not None:
+            out[self.empty[np.arange(a, b) % F]] = 0
         return out
 
 
@@ -535,7 +599,9 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
         The responses; an array is taken as the response of every cell in every frame of ``noise``
         (NaN = no valid response), e.g. from :func:`frame_responses`.
     noise : SparseNoise
-        int8 frames (sparse noise) or real-valued frames (dense noise), their onsets and grid.
+        int8 frames (sparse noise) or real-valued frames (dense noise), their onsets and grid, and
+        ``valid`` (None, or a bool mask of the frames: False for a frame spanning dropped frames;
+        see Notes, "Dropped frames").
     max_lag_s : float
         Longest lag; lags are the whole frames ``0 .. floor(max_lag_s / frame_interval)``.
     n_shuffles : int
@@ -609,6 +675,22 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     one polarity absent; NaN when neither has an excitatory region). **SNR** = the largest
     ``|linear_z|`` at the peak lag.
 
+    **Dropped frames.** With ``noise.valid`` (set by the loader when the manifest has
+    ``sparse_noise.exclude_gaps: true``), a frame ``g`` with ``valid[g] == False`` stayed on screen
+    while frames were dropped (its interval to the next onset is longer than 1.5 median intervals).
+    At lag ``l`` the pair (stimulus of frame ``t``, response in frame ``t + l``) is used only when the
+    frames ``t .. t + l`` are all valid: the response of an invalid frame is never used (its window
+    spans the gap), the stimulus of an invalid frame is never used (at every lag its pair would reach
+    into or across the gap), and no pair spans a gap (its time span is not ``l`` frames). Nothing else
+    is lost: at lag ``l`` only the ``l`` stimulus frames just before each gap lose their pair. The
+    cell's mean and sd, the event counts of every pixel and lag (hence the analytic sd and the
+    z-scores) and ``n_frames_used`` count only the pairs and frames used. The sparse engine does this
+    on a padded timeline where every invalid frame is replaced by ``max(1, longest lag)`` empty rows
+    (no stimulus event, no response), so that frames on either side of a gap are more than the longest
+    lag apart; the products, counts and circular-shift shuffles then run unchanged on that timeline,
+    and the empty rows count as frames without a response (as NaN trace frames do), which keeps the
+    null calibrated. For dense (real-valued) noise only the responses of invalid frames are left out.
+
     **Dense noise** (real-valued frames): ``linear`` is the kernel in response units per unit of
     stimulus — the cross-covariance of the stimulus and the lagged response divided by the pixel's
     stimulus variance (plain STA, exact for spatially white noise) or the ridge-whitened estimate
@@ -631,11 +713,14 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
         raise ValueError(f"max_lag_s={max_lag_s} spans the whole stimulus ({noise.n_frames} frames)")
     dense = not np.issubdtype(noise.frames.dtype, np.integer)
     min_shift = int(round(min_shift_s / frame_s))
+    valid = _valid_mask(noise)
+    # frames spanning dropped frames: the sparse engine works on a gap-padded timeline (see Notes)
+    layout = None if valid is None or dense else (*_gap_layout(valid, int(lags[-1])), valid)
     if isinstance(responses, Spikes) and not dense:
         # spike rates are built block by block of frames from the spike list (no frames x cells matrix)
-        return _compute_sparse(_SpikeRows(responses, noise), noise, lags,
+        return _compute_sparse(_SpikeRows(responses, noise, layout=layout), noise, lags,
                                np.asarray(responses.cell_ids, dtype=np.int64), responses.unit, frame_s,
-                               int(n_shuffles), alpha, rng, min_shift, n_jobs=n_jobs)
+                               int(n_shuffles), alpha, rng, min_shift, n_jobs=n_jobs, layout=layout)
     if isinstance(responses, Spikes):
         Rf = np.ascontiguousarray(frame_responses(responses, noise).T)
         cell_ids = np.asarray(responses.cell_ids, dtype=np.int64)
@@ -651,24 +736,39 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
         Rf = np.ascontiguousarray(R.T)
         cell_ids = np.arange(R.shape[0], dtype=np.int64)
         unit = "response units"
+        if valid is not None and dense:         # invalid frames have no response (a new array: the
+            Rf = np.where(valid[:, None], Rf, np.float32(np.nan))    # caller's is never written)
+    if layout is not None:                                            # (rows, cells), NaN = no response
+        row, n_rows, _, _ = layout
+        Rv = np.full((n_rows, Rf.shape[1]), np.nan, dtype=np.float32)
+        for a in range(0, Rf.shape[0], _CHUNK_FRAMES):
+            sel = valid[a:a + _CHUNK_FRAMES]
+            Rv[row[a:a + _CHUNK_FRAMES][sel]] = Rf[a:a + _CHUNK_FRAMES][sel]
+        Rf = Rv
     R = Rf.T                                                          # (cells, frames) view
     if dense:
         return _compute_dense(R, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
                               min_shift, dense_method, n_folds)
     return _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
-                           min_shift, n_jobs=n_jobs)
+                           min_shift, n_jobs=n_jobs, layout=layout)
 
 
-def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift, n_jobs=None):
-    """``src``: a :class:`_SpikeRows`, or (frames, cells) float32 responses (centred in place)."""
+def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift, n_jobs=None,
+                    layout=None):
+    """``src``: a :class:`_SpikeRows`, or (rows, cells) float32 responses (centred in place).
+
+    ``layout``: the gap-padded timeline of :func:`_gap_layout` (``src`` is then in its rows), or None.
+    """
     ny, nx = noise.grid.shape
     L = lags.size
-    cor = _SparseCorrelator(noise.frames)
+    cor = _SparseCorrelator(noise.frames, layout)
     P = cor.P
     F = cor.F
     if isinstance(src, _SpikeRows):
         prov, C = src, src.C
-        sd, n_valid, has_nan, W = src.sd, np.full(src.C, F, dtype=np.int64), False, None
+        sd, n_valid, has_nan, W = src.sd, np.full(src.C, src.n_valid, dtype=np.int64), False, None
+        if src.empty is not None:                 # the same valid rows for every cell: one column
+            has_nan, W = True, np.ascontiguousarray((~src.empty)[:, None], dtype=np.float32)
     else:
         C = src.shape[1]
         X, valid, mean, sd, n_valid = _center_frames(src)
@@ -724,7 +824,7 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
     for li, lag in enumerate(lags):
         sums = Yobs[li]
         if has_nan:
-            cnt = cor.sums(W, int(lag), circular=False).T      # (C, 2P) valid events per cell
+            cnt = cor.sums(W, int(lag), circular=False).T      # (C or 1, 2P) valid events per cell
             n_on, n_off = cnt[:, :P], cnt[:, P:]
         else:
             cnt = cor.counts(int(lag))

@@ -1,0 +1,236 @@
+"""Dropped frames in the sparse noise (``SparseNoise.valid``, manifest ``sparse_noise.exclude_gaps``).
+
+A frame whose interval to the next onset is longer than 1.5 median intervals spans dropped frames.
+The maps engine pairs the stimulus of frame ``t`` with the response of frame ``t + l`` only when the
+frames ``t .. t + l`` are all valid, i.e. only within a gap-free stretch of frames: the response of an
+invalid frame is never used, and no pair spans a gap. Checked here against a slow reference written
+stretch by stretch, for spikes and traces and several lags; the rule changes the maps (so the check is
+not vacuous); a simulated cell's latency is still found; and the null z-scores keep sd 1 with gaps.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import signal, stats
+
+from map2d.align import interval_responses
+from map2d.contract import Session, SparseNoise, Spikes, Traces, find_frame_gaps, load_session, write_session
+from map2d.geometry import Grid
+from map2d.maps import compute_maps, frame_responses, map_lags
+from map2d.models import gaussian2d
+from map2d.stimuli.sparse_noise import make_sparse_noise
+
+
+# ----------------------------------------------------------------------------------------------
+# sessions with dropped frames
+# ----------------------------------------------------------------------------------------------
+def _drop(noise: SparseNoise, dropped) -> SparseNoise:
+    """The same sequence with the frames ``dropped`` never shown: their onsets are missing, so the
+    frame before each run of dropped frames stays on screen longer (a jump in the onsets)."""
+    keep = np.ones(noise.n_frames, bool)
+    keep[np.asarray(dropped, int)] = False
+    times = noise.times_s[keep]
+    valid = np.ones(keep.sum(), bool)
+    valid[find_frame_gaps(times)] = False
+    return SparseNoise(frames=np.ascontiguousarray(noise.frames[keep]), times_s=times, grid=noise.grid,
+                       valid=valid)
+
+
+def _without_valid(noise: SparseNoise) -> SparseNoise:
+    return SparseNoise(frames=noise.frames, times_s=noise.times_s, grid=noise.grid)
+
+
+def _rates(noise, kernels, latency_s, base=5.0, gain=40.0):
+    """Per-frame rates (cells, F): base + gain * drive, rectified; the drive of a frame comes from the
+    frame on screen ``latency_s`` before its onset (across a gap: the frame held on screen)."""
+    F = noise.n_frames
+    S = noise.frames.reshape(F, -1).astype(float)
+    K = np.array([k.ravel() for k in kernels])
+    src = np.searchsorted(noise.times_s, noise.times_s - latency_s + 1e-9, side="right") - 1
+    drive = np.where(src >= 0, (K @ S.T)[:, np.clip(src, 0, None)], 0.0)
+    return np.maximum(base + gain * drive, 0.0)
+
+
+def _spikes(noise, rates, rng):
+    """Poisson spike times: per-frame counts, times uniform within each frame."""
+    rng = np.random.default_rng(rng)
+    starts, ends = noise.times_s, noise.frame_ends_s()
+    counts = rng.poisson(rates * (ends - starts)[None])
+    cell, frame = np.nonzero(counts)
+    reps = counts[cell, frame]
+    cell, frame = np.repeat(cell, reps), np.repeat(frame, reps)
+    t = starts[frame] + rng.uniform(0, 1, frame.size) * (ends - starts)[frame]
+    order = np.argsort(t)
+    return Spikes(time_s=t[order], cell=cell[order], cell_ids=np.arange(rates.shape[0]))
+
+
+def _traces(noise, rates, rng, fs=40.0, tau_s=0.5, noise_sd=0.05, amp=0.02):
+    """Calcium-like traces: Poisson events at the imaging rate, exponential decay, Gaussian noise."""
+    rng = np.random.default_rng(rng)
+    t = np.arange(noise.times_s[0], noise.frame_ends_s()[-1], 1 / fs)
+    k = np.clip(np.searchsorted(noise.times_s, t, side="right") - 1, 0, noise.n_frames - 1)
+    events = rng.poisson(rates[:, k] / fs)
+    calcium = signal.lfilter([1.0], [1.0, -np.exp(-1 / (fs * tau_s))], events, axis=1) * amp
+    return Traces(values=(calcium + noise_sd * rng.standard_normal(calcium.shape)).astype(np.float32),
+                  times_s=t)
+
+
+def _kernel(grid, x0, y0, sigma, sign):
+    xg, yg = grid.mesh_deg()
+    return sign * gaussian2d(xg, yg, x0, y0, sigma, sigma)
+
+
+GRID = Grid(ny=5, nx=6, dx_deg=3.0, dy_deg=3.0)
+
+
+@pytest.fixture(scope="module")
+def gapped():
+    # 1220 frames at 20 Hz; dropped: 500-520 (a long gap), 800 (one frame), 1000 and 1002 (two
+    # invalid frames in a row, 998 and 999 after the removal of 1000)
+    base = make_sparse_noise(GRID, duration_s=61.0, rate_hz=20.0, spots_per_frame=2, min_distance_deg=0.0,
+                             rng=21)
+    sn = _drop(base, list(range(500, 521)) + [800, 1000, 1002])
+    assert np.flatnonzero(~sn.valid).tolist() == [499, 778, 977, 978]
+    return sn
+
+
+# ----------------------------------------------------------------------------------------------
+# slow reference: pairs within each gap-free stretch
+# ----------------------------------------------------------------------------------------------
+def _stretches(valid):
+    """(first, last + 1) of every maximal run of valid frames."""
+    v = np.r_[False, valid, False].astype(int)
+    d = np.diff(v)
+    return list(zip(np.flatnonzero(d == 1), np.flatnonzero(d == -1)))
+
+
+def _slow_gap_maps(R, frames, valid, lags):
+    """Mean response ``l`` frames after each bright/dark spot minus the cell's mean, pairing frames
+    only inside a stretch of valid frames; the mean is over the valid frames with a finite response."""
+    C, F = R.shape
+    ny, nx = frames.shape[1:]
+    out = np.full((3, C, len(lags), ny, nx), np.nan)
+    stretches = _stretches(valid)
+    for c in range(C):
+        use = valid & np.isfinite(R[c])
+        mean = R[c][use].mean()
+        for li, lag in enumerate(lags):
+            s = np.zeros((2, ny, nx))
+            n = np.zeros((2, ny, nx))
+            for a, b in stretches:
+                for t in range(a, b - lag):                # t and t + lag both in [a, b)
+                    r = R[c, t + lag]
+                    if not np.isfinite(r):
+                        continue
+                    for kind, val in ((0, 1), (1, -1)):
+                        hit = frames[t] == val
+                        s[kind][hit] += r
+                        n[kind][hit] += 1
+            with np.errstate(invalid="ignore", divide="ignore"):
+                m = np.where(n > 0, s / n - mean, np.nan)
+            out[0, c, li], out[1, c, li] = m
+            out[2, c, li] = m[0] - m[1]
+    return out
+
+
+@pytest.mark.parametrize("kind", ["spikes", "traces"])
+def test_maps_pair_frames_only_within_gap_free_stretches(gapped, kind):
+    sn = gapped
+    kernels = [_kernel(GRID, 3.0, 0.0, 3.0, 1), _kernel(GRID, -4.5, -3.0, 3.0, -1)]
+    rates = _rates(sn, kernels, latency_s=0.05)
+    if kind == "spikes":
+        resp = _spikes(sn, rates, 1)
+    else:
+        resp = _traces(sn, rates, 2)
+        resp.values[1, 400:460] = np.nan                   # NaN samples in one cell, away from the gaps
+    res = compute_maps(resp, sn, max_lag_s=0.2, n_shuffles=30, alpha=0.05, rng=0)
+    lags = map_lags(sn.frame_interval_s, 0.2)
+    assert lags.tolist() == [0, 1, 2, 3, 4]
+    R = interval_responses(resp, sn.times_s, sn.frame_ends_s()).astype(np.float64)  # invalid frames included
+    slow = _slow_gap_maps(R, sn.frames, sn.valid, lags)
+    plain = compute_maps(resp, _without_valid(sn), max_lag_s=0.2, n_shuffles=30, alpha=0.05, rng=0)
+    for k, name in enumerate(("on", "off", "linear")):
+        fast = res.maps(name)
+        scale = np.nanmax(np.abs(slow[k]))
+        np.testing.assert_array_equal(np.isnan(fast), np.isnan(slow[k]))
+        np.testing.assert_allclose(fast, slow[k], rtol=0, atol=2e-5 * scale)  # float32 tolerance
+        # without exclude_gaps the pairs across the gaps and the invalid frames' responses are used:
+        # the maps differ far beyond that tolerance (the check above is not vacuous)
+        assert np.nanmax(np.abs(plain.maps(name) - slow[k])) > 100 * 2e-5 * scale
+    # every valid frame with a response counts, no invalid one
+    n_ok = int(sn.valid.sum())
+    if kind == "spikes":
+        assert res.n_frames_used.tolist() == [n_ok, n_ok]
+    else:
+        assert res.n_frames_used[0] == n_ok and res.n_frames_used[1] < n_ok
+    assert plain.n_frames_used[0] == sn.n_frames
+
+
+def test_frame_responses_leave_invalid_frames_out(gapped):
+    spk = _spikes(gapped, np.full((2, gapped.n_frames), 20.0), 3)
+    R = frame_responses(spk, gapped)
+    assert np.all(np.isnan(R[:, ~gapped.valid])) and np.all(np.isfinite(R[:, gapped.valid]))
+    bad = SparseNoise(frames=gapped.frames, times_s=gapped.times_s, grid=GRID, valid=gapped.valid[:-1])
+    with pytest.raises(ValueError, match="valid"):
+        compute_maps(spk, bad, max_lag_s=0.1, n_shuffles=30, alpha=0.05)
+
+
+def test_gap_rule_through_the_session_folder(gapped, tmp_path):
+    """``exclude_gaps`` in the manifest reaches the engine: maps equal those of the mask set by hand."""
+    spk = _spikes(gapped, np.full((3, gapped.n_frames), 8.0), 4)
+    write_session(tmp_path / "s", Session(responses=spk, sparse_noise=gapped))
+    loaded = load_session(tmp_path / "s")
+    np.testing.assert_array_equal(loaded.sparse_noise.valid, gapped.valid)
+    a = compute_maps(loaded.responses, loaded.sparse_noise, max_lag_s=0.15, n_shuffles=30, alpha=0.05, rng=1)
+    b = compute_maps(spk, gapped, max_lag_s=0.15, n_shuffles=30, alpha=0.05, rng=1)
+    np.testing.assert_allclose(a.linear, b.linear, rtol=0, atol=1e-4 * np.nanmax(np.abs(b.linear)))
+
+
+# ----------------------------------------------------------------------------------------------
+# a cell's latency, and the null, with many gaps
+# ----------------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def many_gaps():
+    # 240 s at 20 Hz with 40 single dropped frames and one 2-s gap
+    grid = Grid(ny=8, nx=10, dx_deg=2.0, dy_deg=2.0)
+    base = make_sparse_noise(grid, duration_s=240.0, rate_hz=20.0, spots_per_frame=4, min_distance_deg=4.0,
+                             rng=31)
+    rng = np.random.default_rng(32)
+    singles = rng.choice(np.arange(50, base.n_frames - 50, 7), size=40, replace=False)
+    sn = _drop(base, np.r_[singles, np.arange(2000, 2040)])
+    assert (~sn.valid).sum() == 41
+    return sn
+
+
+def test_latency_recovered_with_gaps(many_gaps):
+    sn = many_gaps
+    x0, y0 = sn.grid.point_of(3, 6)
+    rates = _rates(sn, [_kernel(sn.grid, x0, y0, 2.0, 1)], latency_s=0.1)      # 2 frames
+    res = compute_maps(_spikes(sn, rates, 5), sn, max_lag_s=0.25, n_shuffles=100, rng=6)
+    assert res.responsive[0] and res.polarity[0] == "ON-centre"
+    assert res.peak_lag_index[0] == 2
+    assert res.peak_lag_s[0] == pytest.approx(0.1)
+    li = res.peak_lag_index[0]
+    assert np.unravel_index(np.nanargmax(res.linear[0, li]), sn.grid.shape) == (3, 6)
+
+
+def _null_check(res, alpha):
+    z = np.concatenate([res.on_z.ravel(), res.off_z.ravel(), res.linear_z.ravel()])
+    z = z[np.isfinite(z)]
+    assert abs(z.std() - 1) < 0.05                         # issue 3: null z sd 1 +- 0.05
+    assert abs(z.mean()) < 0.05
+    # false positives: at most alpha on average; allow binomial sampling error (99.9 % point)
+    assert res.responsive.sum() <= stats.binom.ppf(0.999, res.n_cells, alpha)
+
+
+def test_null_z_sd_one_with_gaps_spikes(many_gaps):
+    spk = _spikes(many_gaps, np.full((100, many_gaps.n_frames), 4.0), 7)
+    res = compute_maps(spk, many_gaps, max_lag_s=0.2, n_shuffles=100, alpha=0.05, rng=8)
+    _null_check(res, 0.05)
+
+
+def test_null_z_sd_one_with_gaps_traces(many_gaps):
+    tr = _traces(many_gaps, np.full((80, many_gaps.n_frames), 3.0), 9, fs=30.0, tau_s=1.0, noise_sd=0.02)
+    res = compute_maps(tr, many_gaps, max_lag_s=0.3, n_shuffles=100, alpha=0.05, rng=10)
+    _null_check(res, 0.05)
