@@ -25,7 +25,8 @@ __all__ = [
     "SparseNoise", "GratingTable", "Spikes", "Traces", "Session", "InputWarning",
     "load_session", "write_session", "write_table", "read_table", "GRATING_COLUMNS",
     "write_stimulus", "load_stimulus", "STIMULUS_MANIFEST", "count_spikes_outside", "find_frame_gaps",
-    "GAP_FACTOR",
+    "GAP_FACTOR", "check_times", "check_frames", "frame_gap_mask", "check_traces", "check_spikes",
+    "check_grating_columns", "check_overlap",
 ]
 
 MANIFEST = "session.json"
@@ -186,9 +187,9 @@ class Session:
 # ----------------------------------------------------------------------------------------------
 # loading
 # ----------------------------------------------------------------------------------------------
-def _note(session_notes, message):
+def _note(session_notes, message, stacklevel=3):
     session_notes.append(message)
-    warnings.warn(message, InputWarning, stacklevel=3)
+    warnings.warn(message, InputWarning, stacklevel=stacklevel)
 
 
 def _load_npy(folder: Path, rel: str, key: str, mmap: bool = False):
@@ -235,11 +236,13 @@ def _rel(spec, key, manifest_path, section) -> str:
     return value
 
 
-def _section(manifest_path, spec, name, notes, known_as=None):
-    """A manifest section: must be a JSON object; unknown keys are reported and ignored."""
+def _section(manifest_path, spec, name, notes, known_as=None, known=None):
+    """A manifest (or NWB mapping) section: must be a JSON object; unknown keys are reported and ignored.
+
+    ``known`` maps section names to their keys (default: the session manifest's ``KNOWN_SUB_KEYS``)."""
     if not isinstance(spec, dict):
         raise BadInput(manifest_path, name, f"must be a JSON object, got {type(spec).__name__}")
-    for key in sorted(set(spec) - KNOWN_SUB_KEYS[known_as or name]):
+    for key in sorted(set(spec) - (KNOWN_SUB_KEYS if known is None else known)[known_as or name]):
         _note(notes, f"{manifest_path}: unknown key '{name}.{key}' ignored")
     return spec
 
@@ -277,25 +280,257 @@ def _pair(value, where, key):
     return a, b
 
 
-def _check_times(times, path, key, expected=None):
+def _grid_place(grid_spec: dict, where) -> tuple[float, float, float, float]:
+    """Centre x, y and spacing x, y (deg) from a ``sparse_noise.grid`` object of a manifest or mapping."""
+    for key in ("center_deg", "spacing_deg"):
+        if key not in grid_spec:
+            raise BadInput(where, f"sparse_noise.grid.{key}", "is missing")
+    cx, cy = _pair(grid_spec["center_deg"], where, "sparse_noise.grid.center_deg")
+    dx, dy = _pair(grid_spec["spacing_deg"], where, "sparse_noise.grid.spacing_deg")
+    if not (dx > 0 and dy > 0):
+        raise BadInput(where, "sparse_noise.grid.spacing_deg", f"must be positive, got [{dx}, {dy}]")
+    return cx, cy, dx, dy
+
+
+# ----------------------------------------------------------------------------------------------
+# validators on arrays: one set for the session folder and the NWB loader (map2d.nwb)
+# ----------------------------------------------------------------------------------------------
+# ``file`` and ``field`` are what an error names, BadInput(file, field, ...): the file and the array
+# for a session folder, the .nwb file and the object's path inside it for NWB. ``where`` opens a note
+# ("<file>: field traces", "<file.nwb>: processing/ophys/..."). Notes are warned with stacklevel 4:
+# the loader's caller, as when the loaders warned themselves.
+def _refuse_first(bad, file, field, detail, first_row=0) -> None:
+    """Raise BadInput at the first True of the mask ``bad`` (its index + ``first_row`` is the row)."""
+    rows = np.flatnonzero(bad)
+    if rows.size:
+        raise BadInput(file, field, detail, row=int(rows[0]) + first_row)
+
+
+def _listed(values, most=5) -> str:
+    """The first ``most`` integers of ``values`` as ``"3, 7, ..."`` for a note."""
+    return ", ".join(str(int(v)) for v in values[:most]) + (", ..." if len(values) > most else "")
+
+
+def check_times(times, file, field, expected=None) -> np.ndarray:
+    """Validate onset or sample times: 1-D, numeric, non-empty, finite, strictly increasing.
+
+    Parameters
+    ----------
+    times : array_like
+        The times (s).
+    file, field : str or Path
+        What an error names.
+    expected : int, optional
+        Number of entries the times must have (one per frame or sample).
+
+    Returns
+    -------
+    numpy.ndarray
+        The times as float64.
+
+    Raises
+    ------
+    BadInput
+        Naming ``file``, ``field`` and the first bad entry (0-based row).
+
+    Examples
+    --------
+    >>> check_times([0, 0.5, 1.0], "t.npy", "times")
+    array([0. , 0.5, 1. ])
+    >>> check_times([0.0, 0.5, 0.5], "t.npy", "times")
+    Traceback (most recent call last):
+    ...
+    map2d.errors.BadInput: t.npy: field times, row 2: times are not strictly increasing
+    """
     times = np.asarray(times)
     if times.ndim != 1:
-        raise BadInput(path, key, f"must be one-dimensional, got shape {times.shape}")
+        raise BadInput(file, field, f"must be one-dimensional, got shape {times.shape}")
     if not _is_real(times):
-        raise BadInput(path, key, f"must be numeric, got {times.dtype}")
+        raise BadInput(file, field, f"must be numeric, got {times.dtype}")
     times = times.astype(np.float64)
     if times.size == 0:
-        raise BadInput(path, key, "is empty")
+        raise BadInput(file, field, "is empty")
     if expected is not None and times.size != expected:
-        raise BadInput(path, key, f"has {times.size} entries but {expected} were expected")
-    bad = np.flatnonzero(~np.isfinite(times))
-    if bad.size:
-        raise BadInput(path, key, "is not finite", row=int(bad[0]))
-    d = np.diff(times)
-    bad = np.flatnonzero(d <= 0)
-    if bad.size:
-        raise BadInput(path, key, "times are not strictly increasing", row=int(bad[0]) + 1)
+        raise BadInput(file, field, f"has {times.size} entries but {expected} were expected")
+    _refuse_first(~np.isfinite(times), file, field, "is not finite")
+    _refuse_first(np.diff(times) <= 0, file, field, "times are not strictly increasing", first_row=1)
     return times
+
+
+def check_frames(frames, file, field) -> np.ndarray:
+    """Validate noise frames ``(frames, ny, nx)``: two frames or more, a non-empty grid, and values
+    -1, 0, +1 (any integer type) or finite reals (dense noise).
+
+    Values are checked in chunks of about 16 M, so a memory-mapped dense movie larger than memory
+    stays on disk (its pages are released after each chunk).
+
+    Parameters
+    ----------
+    frames : numpy.ndarray
+        The frames, possibly memory-mapped.
+    file, field : str or Path
+        What an error names.
+
+    Returns
+    -------
+    numpy.ndarray
+        Integer frames as int8 in memory; real frames as given (still memory-mapped if they were).
+
+    Raises
+    ------
+    BadInput
+        Naming ``file``, ``field`` and the first bad frame (0-based row).
+    """
+    if frames.ndim != 3:
+        raise BadInput(file, field, f"must have shape (frames, ny, nx), got {frames.shape}")
+    if frames.shape[0] < 2:
+        raise BadInput(file, field, f"needs at least two frames, got {frames.shape[0]}")
+    if frames.shape[1] < 1 or frames.shape[2] < 1:
+        raise BadInput(file, field, f"the grid is empty: shape {frames.shape}")
+    chunk = max(1, 2**24 // max(1, frames.shape[1] * frames.shape[2]))   # frames per ~16 M values
+    if frames.dtype.kind in "iu":
+        for a in range(0, frames.shape[0], chunk):
+            blk = frames[a:a + chunk]
+            if blk.min() < -1 or blk.max() > 1:
+                _refuse_first(((blk < -1) | (blk > 1)).any(axis=(1, 2)), file, field,
+                              "values must be -1, 0 or +1", first_row=a)
+        if isinstance(frames, np.memmap):
+            return np.array(frames, dtype=np.int8)                # small: read into memory
+        return frames.astype(np.int8, copy=False)
+    if frames.dtype.kind == "f":
+        mm = getattr(frames, "_mmap", None)
+        for a in range(0, frames.shape[0], chunk):
+            finite = np.isfinite(frames[a:a + chunk]).all(axis=(1, 2))
+            if mm is not None and hasattr(mm, "madvise"):      # keep resident memory at one chunk
+                import mmap
+                mm.madvise(getattr(mmap, "MADV_DONTNEED", 4))
+            _refuse_first(~finite, file, field, "is not finite", first_row=a)
+        return frames
+    raise BadInput(file, field, f"must be int8 (or float for dense noise), got {frames.dtype}")
+
+
+def frame_gap_mask(times, exclude_gaps: bool, notes: list, where: str, setting: str = "in session.json"):
+    """Note frames that span dropped frames (:func:`find_frame_gaps`); return ``SparseNoise.valid``.
+
+    Parameters
+    ----------
+    times : numpy.ndarray
+        Checked frame onsets (s).
+    exclude_gaps : bool
+        Leave those frames out (``sparse_noise.exclude_gaps``).
+    notes : list
+        Session notes; a note (and an :class:`InputWarning`) is added when there are gaps.
+    where : str
+        Opens the note.
+    setting : str
+        Where ``sparse_noise.exclude_gaps`` is set, for the note ("in session.json", "in the mapping").
+
+    Returns
+    -------
+    numpy.ndarray or None
+        None without ``exclude_gaps``; else a boolean mask, False at the frames before a gap.
+    """
+    gaps = find_frame_gaps(times)
+    if gaps.size:
+        med = float(np.median(np.diff(times)))
+        what = ("those frames are excluded" if exclude_gaps else
+                f"set sparse_noise.exclude_gaps to true {setting} to leave those frames out")
+        _note(notes, f"{where}: {gaps.size} frame interval{'s are' if gaps.size > 1 else ' is'} longer than "
+                     f"{GAP_FACTOR:g} x the median {med * 1e3:.4g} ms and look like dropped frames "
+                     f"(after frame {_listed(gaps)}); {what}", stacklevel=4)
+    if not exclude_gaps:
+        return None
+    valid = np.ones(times.size, dtype=bool)
+    valid[gaps] = False
+    return valid
+
+
+def check_traces(values, times, notes: list, where: str, row_word: str = "row") -> Traces:
+    """Traces from shape-checked numeric values ``(cells, samples)`` and checked sample times.
+
+    NaN or infinite samples are kept (left out of every average); a note counts them and names the
+    first one and the first cell without any valid sample.
+
+    Parameters
+    ----------
+    values : numpy.ndarray
+        ``(cells, samples)``, any real dtype; converted to float32.
+    times : numpy.ndarray
+        Sample times from :func:`check_times`.
+    notes : list
+        Session notes.
+    where : str
+        Opens the note.
+    row_word : str
+        What a cell's index is called in the note ("row" for a file, "ROI" for an NWB series).
+    """
+    values = values.astype(np.float32, copy=False)
+    finite = np.isfinite(values)
+    n_nan = int(values.size - np.count_nonzero(finite))
+    if n_nan:
+        dead = np.flatnonzero(~finite.any(axis=1))
+        more = (f"; {dead.size} cells have no valid sample at all (first {row_word} {int(dead[0])}), their "
+                f"results are empty" if dead.size else "")
+        first = np.argwhere(~finite)[0]
+        _note(notes, f"{where}: {n_nan} samples are NaN or infinite (first at {row_word} {int(first[0])}, "
+                     f"sample {int(first[1])}); they are left out of every average{more}", stacklevel=4)
+    return Traces(values=values, times_s=times)
+
+
+def check_spikes(time_s, cell, cell_ids, notes: list, where: str, unit: str = "cell") -> Spikes:
+    """Spikes from checked float64 times and int64 cells: sorted by time (stable), silent cells noted.
+
+    Parameters
+    ----------
+    time_s, cell : numpy.ndarray
+        Finite spike times and the cell of each spike.
+    cell_ids : numpy.ndarray or None
+        Every cell, sorted and unique (cells without spikes included); None: the cells that spiked.
+    notes : list
+        Session notes; cells without spikes are noted (they are kept, with empty results).
+    where : str
+        Opens the note.
+    unit : str
+        What a cell is called in the note ("cell", or "unit" for an NWB units table).
+    """
+    if time_s.size > 1 and not np.all(time_s[1:] >= time_s[:-1]):     # most files are already sorted
+        order = np.argsort(time_s, kind="stable")
+        time_s, cell = time_s[order], cell[order]
+    spikes = Spikes(time_s=time_s, cell=cell, cell_ids=cell_ids)
+    silent = spikes.cell_ids[~np.isin(spikes.cell_ids, spikes.cell)]   # sorted, like setdiff1d
+    if silent.size:
+        _note(notes, f"{where}: {silent.size} of {spikes.cell_ids.size} {unit}s have no spikes "
+                     f"({unit} {_listed(silent)}); they are kept, with empty results", stacklevel=4)
+    return spikes
+
+
+def check_grating_columns(data: dict, file, fields: dict | None = None, onset_name: str = "onset_s") -> None:
+    """Refuse presentations that end before they start, negative SF or contrast, or a grating with
+    contrast but no spatial frequency.
+
+    Parameters
+    ----------
+    data : dict
+        Finite float arrays for every name in ``GRATING_COLUMNS``.
+    file : str or Path
+        What an error names.
+    fields : dict, optional
+        The field an error names for ``offset_s``, ``sf_cpd`` and ``contrast`` (default: those names).
+    onset_name : str
+        What the onset column is called in the file ("must be later than ...").
+
+    Raises
+    ------
+    BadInput
+        At the first bad presentation (1-based data row).
+    """
+    fields = {c: c for c in GRATING_COLUMNS} | (fields or {})
+    _refuse_first(data["offset_s"] <= data["onset_s"], file, fields["offset_s"],
+                  f"must be later than {onset_name}", first_row=1)
+    for c in ("sf_cpd", "contrast"):
+        _refuse_first(data[c] < 0, file, fields[c], "must not be negative", first_row=1)
+    _refuse_first((data["sf_cpd"] == 0) & (data["contrast"] != 0), file, fields["sf_cpd"],
+                  "must be positive for a grating with contrast", first_row=1)
 
 
 def find_frame_gaps(times_s, factor: float = GAP_FACTOR) -> np.ndarray:
@@ -323,61 +558,16 @@ def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
     times_rel = _rel(spec, "times", mpath, "sparse_noise")
     if "grid" not in spec:
         raise BadInput(mpath, "sparse_noise.grid", "is missing")
-    grid_spec = _section(mpath, spec["grid"], "sparse_noise.grid", notes)
-    for key in ("center_deg", "spacing_deg"):
-        if key not in grid_spec:
-            raise BadInput(mpath, f"sparse_noise.grid.{key}", "is missing")
-    cx, cy = _pair(grid_spec["center_deg"], mpath, "sparse_noise.grid.center_deg")
-    dx, dy = _pair(grid_spec["spacing_deg"], mpath, "sparse_noise.grid.spacing_deg")
-    if not (dx > 0 and dy > 0):
-        raise BadInput(mpath, "sparse_noise.grid.spacing_deg", f"must be positive, got [{dx}, {dy}]")
+    cx, cy, dx, dy = _grid_place(_section(mpath, spec["grid"], "sparse_noise.grid", notes), mpath)
     exclude_gaps = spec.get("exclude_gaps", False)
     if not isinstance(exclude_gaps, bool):
         raise BadInput(mpath, "sparse_noise.exclude_gaps", f"must be true or false, got {exclude_gaps!r}")
-    frames = _load_npy(folder, frames_rel, "frames", mmap=True)  # memory-mapped: read in chunks below
-    fpath = folder / frames_rel
-    if frames.ndim != 3:
-        raise BadInput(fpath, "frames", f"must have shape (frames, ny, nx), got {frames.shape}")
-    if frames.shape[0] < 2:
-        raise BadInput(fpath, "frames", f"needs at least two frames, got {frames.shape[0]}")
-    if frames.shape[1] < 1 or frames.shape[2] < 1:
-        raise BadInput(fpath, "frames", f"the grid is empty: shape {frames.shape}")
-    chunk = max(1, 2**24 // max(1, frames.shape[1] * frames.shape[2]))   # frames per ~16 M values
-    if frames.dtype.kind in "iu":
-        for a in range(0, frames.shape[0], chunk):
-            blk = frames[a:a + chunk]
-            if blk.min() < -1 or blk.max() > 1:
-                bad = np.flatnonzero(((blk < -1) | (blk > 1)).any(axis=(1, 2)))
-                raise BadInput(fpath, "frames", "values must be -1, 0 or +1", row=a + int(bad[0]))
-        frames = np.array(frames, dtype=np.int8)                  # small: read into memory
-    elif frames.dtype.kind == "f":
-        # dense (real-valued) noise is accepted; NaN is not. The frames stay memory-mapped (a movie
-        # may be larger than memory) and are checked in chunks.
-        for a in range(0, frames.shape[0], chunk):
-            finite = np.isfinite(frames[a:a + chunk]).all(axis=(1, 2))
-            mm = getattr(frames, "_mmap", None)        # keep resident memory at one chunk
-            if mm is not None and hasattr(mm, "madvise"):
-                import mmap
-                mm.madvise(getattr(mmap, "MADV_DONTNEED", 4))
-            if not finite.all():
-                raise BadInput(fpath, "frames", "is not finite", row=a + int(np.flatnonzero(~finite)[0]))
-    else:
-        raise BadInput(fpath, "frames", f"must be int8 (or float for dense noise), got {frames.dtype}")
+    frames = _load_npy(folder, frames_rel, "frames", mmap=True)  # memory-mapped: checked in chunks
+    frames = check_frames(frames, folder / frames_rel, "frames")
     tpath = folder / times_rel
-    times = _check_times(_load_npy(folder, times_rel, "times"), tpath, "times", expected=frames.shape[0])
+    times = check_times(_load_npy(folder, times_rel, "times"), tpath, "times", expected=frames.shape[0])
     grid = Grid(ny=frames.shape[1], nx=frames.shape[2], center_x_deg=cx, center_y_deg=cy, dx_deg=dx, dy_deg=dy)
-    gaps = find_frame_gaps(times)
-    if gaps.size:
-        med = float(np.median(np.diff(times)))
-        shown = ", ".join(str(int(k)) for k in gaps[:5]) + (", ..." if gaps.size > 5 else "")
-        what = ("those frames are excluded" if exclude_gaps else
-                "set sparse_noise.exclude_gaps to true in session.json to leave those frames out")
-        _note(notes, f"{tpath}: field times: {gaps.size} frame interval{'s are' if gaps.size > 1 else ' is'} longer than {GAP_FACTOR:g} x the "
-                     f"median {med * 1e3:.4g} ms and look like dropped frames (after frame {shown}); {what}")
-    valid = None
-    if exclude_gaps:
-        valid = np.ones(times.size, dtype=bool)
-        valid[gaps] = False
+    valid = frame_gap_mask(times, exclude_gaps, notes, f"{tpath}: field times", "in session.json")
     return SparseNoise(frames=frames, times_s=times, grid=grid, valid=valid)
 
 
@@ -433,16 +623,7 @@ def _load_gratings(folder: Path, spec, default_origin, notes) -> GratingTable:
             data[c][r - 1] = v
         for c in extra:
             extra[c].append(row[idx[c]])
-    bad = np.flatnonzero(data["offset_s"] <= data["onset_s"])
-    if bad.size:
-        raise BadInput(path, "offset_s", "must be later than onset_s", row=int(bad[0]) + 1)
-    for c in ("sf_cpd", "contrast"):
-        bad = np.flatnonzero(data[c] < 0)
-        if bad.size:
-            raise BadInput(path, c, "must not be negative", row=int(bad[0]) + 1)
-    bad = np.flatnonzero((data["sf_cpd"] == 0) & (data["contrast"] != 0))
-    if bad.size:
-        raise BadInput(path, "sf_cpd", "must be positive for a grating with contrast", row=int(bad[0]) + 1)
+    check_grating_columns(data, path)
     # exact duplicates (every value equal, extra columns included): keep the first
     keys = np.column_stack([data[c] for c in GRATING_COLUMNS])
     seen: dict = {}
@@ -504,13 +685,10 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
         if not _is_real(t):
             raise BadInput(path, "time_s", f"must be numeric, got {t.dtype}")
         t = t.astype(np.float64, copy=False)
-        bad = np.flatnonzero(~np.isfinite(t))
-        if bad.size:
-            raise BadInput(path, "time_s", "is not finite", row=int(bad[0]))
+        _refuse_first(~np.isfinite(t), path, "time_s", "is not finite")
         if c.dtype.kind == "f":
-            bad = np.flatnonzero(~np.isfinite(c) | (c != np.round(c)) | (np.abs(c) > 2.0**53))
-            if bad.size:
-                raise BadInput(path, "cell", "must hold integers", row=int(bad[0]))
+            _refuse_first(~np.isfinite(c) | (c != np.round(c)) | (np.abs(c) > 2.0**53), path, "cell",
+                          "must hold integers")
         elif c.dtype.kind == "u" and c.size and c.max() > np.iinfo(np.int64).max:
             raise BadInput(path, "cell", "holds an id too large for a 64-bit integer")
         elif c.dtype.kind not in "iu":
@@ -530,18 +708,10 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
             if unknown.size:
                 raise BadInput(path, "cell", f"cell {int(unknown[0])} is not in responses.cell_ids")
             ids = np.unique(ids)
-        if t.size > 1 and not np.all(t[1:] >= t[:-1]):           # most files are already sorted
-            order = np.argsort(t, kind="stable")
-            t, c = t[order], c[order]
-        spikes = Spikes(time_s=t, cell=c, cell_ids=ids)
+        spikes = check_spikes(t, c, ids, notes, f"{path}: field cell")
         if spikes.cell_ids.size == 0:
             raise BadInput(path, "time_s", "holds no spikes and responses.cell_ids names no cells: "
                                            "there is no cell to analyse")
-        silent = spikes.cell_ids[~np.isin(spikes.cell_ids, spikes.cell)]   # sorted, like setdiff1d
-        if silent.size:
-            shown = ", ".join(str(int(v)) for v in silent[:5]) + (", ..." if silent.size > 5 else "")
-            _note(notes, f"{path}: field cell: {silent.size} of {spikes.cell_ids.size} cells have no spikes "
-                         f"(cell {shown}); they are kept, with empty results")
         return spikes
     values = _load_npy(folder, rel, "file")
     if values.ndim != 2:
@@ -553,19 +723,9 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
     if values.shape[1] < 2:
         raise BadInput(path, "traces", f"needs at least two samples, got {values.shape[1]}")
     times_rel = _rel(spec, "times", mpath, "responses")
-    times = _check_times(_load_npy(folder, times_rel, "times"), folder / times_rel, "times",
-                         expected=values.shape[1])
-    values = values.astype(np.float32, copy=False)
-    finite = np.isfinite(values)
-    n_nan = int(values.size - np.count_nonzero(finite))
-    if n_nan:
-        dead = np.flatnonzero(~finite.any(axis=1))
-        more = (f"; {dead.size} cells have no valid sample at all (first row {int(dead[0])}), their results "
-                f"are empty" if dead.size else "")
-        first = np.argwhere(~finite)[0]
-        _note(notes, f"{path}: field traces: {n_nan} samples are NaN or infinite (first at row {int(first[0])}, "
-                     f"sample {int(first[1])}); they are left out of every average{more}")
-    return Traces(values=values, times_s=times)
+    times = check_times(_load_npy(folder, times_rel, "times"), folder / times_rel, "times",
+                        expected=values.shape[1])
+    return check_traces(values, times, notes, f"{path}: field traces")
 
 
 def _stimulus_windows(session: "Session") -> tuple[np.ndarray, np.ndarray]:
@@ -604,6 +764,34 @@ def count_spikes_outside(session: "Session") -> int:
     return int(r.time_s.size - np.count_nonzero(inside))
 
 
+def _read_json_object(path, missing: str = "file not found") -> dict:
+    """A JSON file holding an object (a manifest or a mapping); BadInput naming the file otherwise."""
+    path = Path(path)
+    if not path.is_file():
+        raise BadInput(path, None, missing)
+    try:
+        value = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise BadInput(path, None, f"is not valid JSON ({exc})") from None
+    if not isinstance(value, dict):
+        raise BadInput(path, None, "must hold a JSON object")
+    return value
+
+
+def _load_stimuli(folder: Path, manifest: dict, notes: list):
+    """The manifest's sparse noise and gratings (None where absent); the phase origin defaults to the
+    sparse-noise grid centre, else (0, 0)."""
+    sparse = None
+    if manifest.get("sparse_noise") is not None:
+        sparse = _load_sparse_noise(folder, manifest["sparse_noise"], notes)
+    gratings = None
+    if manifest.get("gratings") is not None:
+        default_origin = ((sparse.grid.center_x_deg, sparse.grid.center_y_deg) if sparse is not None
+                          else (0.0, 0.0))
+        gratings = _load_gratings(folder, manifest["gratings"], default_origin, notes)
+    return sparse, gratings
+
+
 def load_session(folder) -> Session:
     """Load and validate a session folder.
 
@@ -625,28 +813,14 @@ def load_session(folder) -> Session:
     if not folder.is_dir():
         raise BadInput(folder, None, "session folder not found")
     mpath = folder / MANIFEST
-    if not mpath.is_file():
-        raise BadInput(mpath, None, "file not found")
-    try:
-        manifest = json.loads(mpath.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise BadInput(mpath, None, f"is not valid JSON ({exc})") from None
-    if not isinstance(manifest, dict):
-        raise BadInput(mpath, None, "must hold a JSON object")
+    manifest = _read_json_object(mpath)
     notes: list = []
     for key in sorted(set(manifest) - KNOWN_TOP_KEYS):
         _note(notes, f"{mpath}: unknown key '{key}' ignored")
     if manifest.get("responses") is None:
         raise BadInput(mpath, "responses", "is missing (every session needs responses)")
     responses = _load_responses(folder, manifest["responses"], notes)
-    sparse = None
-    if manifest.get("sparse_noise") is not None:
-        sparse = _load_sparse_noise(folder, manifest["sparse_noise"], notes)
-    gratings = None
-    if manifest.get("gratings") is not None:
-        default_origin = ((sparse.grid.center_x_deg, sparse.grid.center_y_deg) if sparse is not None
-                          else (0.0, 0.0))
-        gratings = _load_gratings(folder, manifest["gratings"], default_origin, notes)
+    sparse, gratings = _load_stimuli(folder, manifest, notes)
     display = None
     if manifest.get("display") is not None:
         d = manifest["display"]
@@ -678,34 +852,46 @@ def load_session(folder) -> Session:
     session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
                       rois=rois, roi_label_offset=roi_offset, path=folder,
                       name=str(manifest.get("name", folder.name)), notes=notes)
-    n_out = count_spikes_outside(session)
-    _check_time_overlap(session, folder, manifest["responses"], n_out=n_out)
-    if n_out:
-        _note(notes, f"{folder / manifest['responses']['file']}: field time_s: {n_out} of "
-                     f"{session.responses.time_s.size} spikes fall outside every stimulus window "
-                     f"(sparse-noise frames, grating presentations); they are ignored")
+    spec = manifest["responses"]
+    spike_file = folder / spec["file"]
+    at = (spike_file, "time_s") if isinstance(responses, Spikes) else (folder / spec["times"], "times")
+    check_overlap(session, at, notes, f"{spike_file}: field time_s")
     return session
 
 
-def _check_time_overlap(session: Session, folder: Path, spec, n_out=None) -> None:
-    """Refuse responses that share no time with the stimuli (wrong units or another clock): every
-    analysis would silently come out empty."""
+def check_overlap(session: Session, at, notes: list, where: str) -> None:
+    """Refuse responses that share no time with the stimuli (wrong units or another clock: every
+    analysis would silently come out empty); note spikes that fall outside every stimulus window.
+
+    Parameters
+    ----------
+    session : Session
+        The loaded session.
+    at : (file, field)
+        What an error names: the spike times, or the traces' sample times.
+    notes : list
+        Session notes.
+    where : str
+        Opens the note on spikes outside every window.
+    """
+    n_out = count_spikes_outside(session)
     starts, ends = _stimulus_windows(session)
-    if starts.size == 0:
-        return
-    lo, hi = float(starts.min()), float(ends.max())
     r = session.responses
-    if isinstance(r, Spikes):
-        if r.time_s.size and (count_spikes_outside(session) if n_out is None else n_out) == r.time_s.size:
-            raise BadInput(folder / spec["file"], "time_s",
-                           f"no spike falls in any stimulus window (spikes {r.time_s[0]:.6g} to "
-                           f"{r.time_s[-1]:.6g} s, stimuli {lo:.6g} to {hi:.6g} s): check time units and clock")
-    else:
-        t = r.times_s
-        if not np.any((starts < t[-1]) & (ends > t[0])):
-            raise BadInput(folder / spec["times"], "times",
-                           f"the samples ({t[0]:.6g} to {t[-1]:.6g} s) overlap no stimulus window "
-                           f"({lo:.6g} to {hi:.6g} s): check time units and clock")
+    if starts.size:
+        lo, hi = float(starts.min()), float(ends.max())
+        if isinstance(r, Spikes):
+            if r.time_s.size and n_out == r.time_s.size:
+                raise BadInput(*at, f"no spike falls in any stimulus window (spikes {r.time_s[0]:.6g} to "
+                                    f"{r.time_s[-1]:.6g} s, stimuli {lo:.6g} to {hi:.6g} s): check time units "
+                                    f"and clock")
+        else:
+            t = r.times_s
+            if not np.any((starts < t[-1]) & (ends > t[0])):
+                raise BadInput(*at, f"the samples ({t[0]:.6g} to {t[-1]:.6g} s) overlap no stimulus window "
+                                    f"({lo:.6g} to {hi:.6g} s): check time units and clock")
+    if n_out:
+        _note(notes, f"{where}: {n_out} of {r.time_s.size} spikes fall outside every stimulus window "
+                     f"(sparse-noise frames, grating presentations); they are ignored", stacklevel=4)
 
 
 def _load_rois(folder: Path, rel) -> np.ndarray:
@@ -890,21 +1076,7 @@ def load_stimulus(folder) -> tuple[SparseNoise | None, GratingTable | None, dict
     """
     folder = Path(folder)
     mpath = folder / STIMULUS_MANIFEST
-    if not mpath.is_file():
-        raise BadInput(mpath, None, "file not found")
-    try:
-        manifest = json.loads(mpath.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise BadInput(mpath, None, f"is not valid JSON ({exc})") from None
-    if not isinstance(manifest, dict):
-        raise BadInput(mpath, None, "must hold a JSON object")
+    manifest = _read_json_object(mpath)
     notes: list = []
-    sparse = None
-    if manifest.get("sparse_noise") is not None:
-        sparse = _load_sparse_noise(folder, manifest["sparse_noise"], notes)
-    gratings = None
-    if manifest.get("gratings") is not None:
-        default_origin = ((sparse.grid.center_x_deg, sparse.grid.center_y_deg) if sparse is not None
-                          else (0.0, 0.0))
-        gratings = _load_gratings(folder, manifest["gratings"], default_origin, notes)
+    sparse, gratings = _load_stimuli(folder, manifest, notes)
     return sparse, gratings, manifest

@@ -57,8 +57,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .contract import (GAP_FACTOR, GRATING_COLUMNS, MANIFEST, GratingTable, InputWarning, Session, SparseNoise,
-                       Spikes, Traces, count_spikes_outside, find_frame_gaps)
+from .contract import (GRATING_COLUMNS, MANIFEST, GratingTable, Session, SparseNoise, Spikes, Traces, _load_npy,
+                       _grid_place, _note, _pair, _read_json_object, _refuse_first, _section, check_frames,
+                       check_grating_columns, check_overlap, check_spikes, check_times, check_traces,
+                       frame_gap_mask)
 from .errors import BadInput
 from .geometry import Grid
 
@@ -87,11 +89,6 @@ def _import_pynwb():
     return pynwb
 
 
-def _note(notes, message):
-    notes.append(message)
-    warnings.warn(message, InputWarning, stacklevel=3)
-
-
 # ----------------------------------------------------------------------------------------------
 # the mapping
 # ----------------------------------------------------------------------------------------------
@@ -102,24 +99,8 @@ def load_mapping(path) -> dict:
     files are looked for) and ``"_where"`` to the file path (named in error messages).
     """
     path = Path(path)
-    if not path.is_file():
-        raise BadInput(path, None, "mapping file not found")
-    try:
-        mapping = json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise BadInput(path, None, f"is not valid JSON ({exc})") from None
-    if not isinstance(mapping, dict):
-        raise BadInput(path, None, "must hold a JSON object")
+    mapping = _read_json_object(path, missing="mapping file not found")
     return {**mapping, "_base": str(path.parent), "_where": str(path)}
-
-
-def _section(mapping, key, where, notes, known_as=None):
-    spec = mapping[key]
-    if not isinstance(spec, dict):
-        raise BadInput(where, key, f"must be a JSON object, got {type(spec).__name__}")
-    for k in sorted(set(spec) - _SUB_KEYS[known_as or key]):
-        _note(notes, f"{where}: unknown key '{key}.{k}' ignored")
-    return spec
 
 
 def _name(spec, key, where, section, default=None) -> str:
@@ -131,16 +112,6 @@ def _name(spec, key, where, section, default=None) -> str:
     if not isinstance(value, str) or not value.strip():
         raise BadInput(where, f"{section}.{key}", f"must be a name, got {value!r}")
     return value.strip()
-
-
-def _pair(value, where, key):
-    try:
-        a, b = (float(v) for v in value)
-    except Exception:
-        raise BadInput(where, key, "must be a list of two numbers") from None
-    if not (math.isfinite(a) and math.isfinite(b)):
-        raise BadInput(where, key, "must be finite")
-    return a, b
 
 
 # ----------------------------------------------------------------------------------------------
@@ -195,7 +166,7 @@ def _series_times(series, n, nwb_path, ref):
     """Sample times of a TimeSeries: its timestamps, or starting_time + k / rate."""
     if series.timestamps is not None:
         times = np.asarray(series.timestamps[:])
-        return _check_times(times, nwb_path, f"{ref}.timestamps", expected=n)
+        return check_times(times, nwb_path, f"{ref}.timestamps", expected=n)
     rate = series.rate
     if rate is None or not (np.isfinite(rate) and rate > 0):
         raise BadInput(nwb_path, ref, f"has neither timestamps nor a positive rate (rate = {rate})")
@@ -203,26 +174,6 @@ def _series_times(series, n, nwb_path, ref):
     if not math.isfinite(start):
         raise BadInput(nwb_path, f"{ref}.starting_time", "is not finite")
     return start + np.arange(n, dtype=np.float64) / float(rate)
-
-
-def _check_times(times, where, key, expected=None):
-    times = np.asarray(times)
-    if times.ndim != 1:
-        raise BadInput(where, key, f"must be one-dimensional, got shape {times.shape}")
-    if times.dtype.kind not in "iuf":
-        raise BadInput(where, key, f"must be numeric, got {times.dtype}")
-    times = times.astype(np.float64)
-    if times.size == 0:
-        raise BadInput(where, key, "is empty")
-    if expected is not None and times.size != expected:
-        raise BadInput(where, key, f"has {times.size} entries but {expected} were expected")
-    bad = np.flatnonzero(~np.isfinite(times))
-    if bad.size:
-        raise BadInput(where, key, "is not finite", row=int(bad[0]))
-    bad = np.flatnonzero(np.diff(times) <= 0)
-    if bad.size:
-        raise BadInput(where, key, "times are not strictly increasing", row=int(bad[0]) + 1)
-    return times
 
 
 # ----------------------------------------------------------------------------------------------
@@ -254,19 +205,9 @@ def _read_spikes(nwbfile, spec, nwb_path, where, notes) -> Spikes:
     if t.ndim != 1 or t.dtype.kind not in "iuf":
         raise BadInput(nwb_path, f"{upath}.spike_times", f"must be numbers, got {t.dtype} {t.shape}")
     t = t.astype(np.float64)
-    bad = np.flatnonzero(~np.isfinite(t))
-    if bad.size:
-        raise BadInput(nwb_path, f"{upath}.spike_times", "is not finite", row=int(bad[0]))
-    counts = np.diff(np.concatenate([[0], ends]))
-    cell = np.repeat(ids, counts)
-    order = np.argsort(t, kind="stable")
-    spikes = Spikes(time_s=t[order], cell=cell[order], cell_ids=np.unique(ids))
-    silent = ids[counts == 0]
-    if silent.size:
-        shown = ", ".join(str(int(v)) for v in np.sort(silent)[:5]) + (", ..." if silent.size > 5 else "")
-        _note(notes, f"{nwb_path}: {upath}: {silent.size} of {ids.size} units have no spikes "
-                     f"(unit {shown}); they are kept, with empty results")
-    return spikes
+    _refuse_first(~np.isfinite(t), nwb_path, f"{upath}.spike_times", "is not finite")
+    cell = np.repeat(ids, np.diff(np.concatenate([[0], ends])))
+    return check_spikes(t, cell, np.unique(ids), notes, f"{nwb_path}: {upath}", unit="unit")
 
 
 def _read_traces(nwbfile, spec, nwb_path, where, notes) -> Traces:
@@ -286,17 +227,8 @@ def _read_traces(nwbfile, spec, nwb_path, where, notes) -> Traces:
     if data.shape[0] < 2:
         raise BadInput(nwb_path, f"{spath}.data", f"needs at least two samples, got {data.shape[0]}")
     times = _series_times(series, data.shape[0], nwb_path, spath)
-    values = np.ascontiguousarray(data.T, dtype=np.float32)
-    finite = np.isfinite(values)
-    n_nan = int(values.size - np.count_nonzero(finite))
-    if n_nan:
-        dead = np.flatnonzero(~finite.any(axis=1))
-        more = (f"; {dead.size} cells have no valid sample at all (first ROI {int(dead[0])}), their results "
-                f"are empty" if dead.size else "")
-        first = np.argwhere(~finite)[0]
-        _note(notes, f"{nwb_path}: {spath}: {n_nan} samples are NaN or infinite (first at ROI {int(first[0])}, "
-                     f"sample {int(first[1])}); they are left out of every average{more}")
-    return Traces(values=values, times_s=times)
+    values = np.ascontiguousarray(data.T, dtype=np.float32)           # (cells, samples)
+    return check_traces(values, times, notes, f"{nwb_path}: {spath}", row_word="ROI")
 
 
 def _column(table, tpath, spec, contract_name, nwb_path, n, where="mapping"):
@@ -329,9 +261,7 @@ def _column(table, tpath, spec, contract_name, nwb_path, n, where="mapping"):
     if values.ndim != 1 or values.dtype.kind not in "iuf":
         raise BadInput(nwb_path, f"{tpath}.{name}", f"must be one number per row, got {values.dtype} {values.shape}")
     values = values.astype(np.float64) * scale
-    bad = np.flatnonzero(~np.isfinite(values))
-    if bad.size:
-        raise BadInput(nwb_path, f"{tpath}.{name}", "is not finite", row=int(bad[0]) + 1)
+    _refuse_first(~np.isfinite(values), nwb_path, f"{tpath}.{name}", "is not finite", first_row=1)
     return values
 
 
@@ -357,17 +287,8 @@ def _read_gratings(nwbfile, spec, nwb_path, where, default_origin, notes) -> Gra
     data["offset_s"] = _column(table, tpath, "stop_time", "offset_s", nwb_path, n)
     for c in NWB_STIMULUS_COLUMNS:
         data[c] = _column(table, tpath, columns.get(c, c), c, nwb_path, n, where)
-    bad = np.flatnonzero(data["offset_s"] <= data["onset_s"])
-    if bad.size:
-        raise BadInput(nwb_path, f"{tpath}.stop_time", "must be later than start_time", row=int(bad[0]) + 1)
-    for c in ("sf_cpd", "contrast"):
-        bad = np.flatnonzero(data[c] < 0)
-        if bad.size:
-            raise BadInput(nwb_path, f"{tpath} ({c})", "must not be negative", row=int(bad[0]) + 1)
-    bad = np.flatnonzero((data["sf_cpd"] == 0) & (data["contrast"] != 0))
-    if bad.size:
-        raise BadInput(nwb_path, f"{tpath} (sf_cpd)", "must be positive for a grating with contrast",
-                       row=int(bad[0]) + 1)
+    check_grating_columns(data, nwb_path, {"offset_s": f"{tpath}.stop_time", "sf_cpd": f"{tpath} (sf_cpd)",
+                                           "contrast": f"{tpath} (contrast)"}, onset_name="start_time")
     keys = np.column_stack([data[c] for c in GRATING_COLUMNS])
     _, first = np.unique(keys, axis=0, return_index=True)
     if first.size < n:
@@ -395,13 +316,7 @@ def _read_sparse_noise(nwbfile, spec, nwb_path, where, base, notes) -> SparseNoi
     grid_spec = spec["grid"]
     if not isinstance(grid_spec, dict):
         raise BadInput(where, "sparse_noise.grid", "must be a JSON object")
-    for key in ("center_deg", "spacing_deg"):
-        if key not in grid_spec:
-            raise BadInput(where, f"sparse_noise.grid.{key}", "is missing")
-    cx, cy = _pair(grid_spec["center_deg"], where, "sparse_noise.grid.center_deg")
-    dx, dy = _pair(grid_spec["spacing_deg"], where, "sparse_noise.grid.spacing_deg")
-    if not (dx > 0 and dy > 0):
-        raise BadInput(where, "sparse_noise.grid.spacing_deg", f"must be positive, got [{dx}, {dy}]")
+    cx, cy, dx, dy = _grid_place(grid_spec, where)
     axes = spec.get("axes", "yx")
     if axes not in ("yx", "xy"):
         raise BadInput(where, "sparse_noise.axes", f"must be 'yx' or 'xy', got {axes!r}")
@@ -420,69 +335,22 @@ def _read_sparse_noise(nwbfile, spec, nwb_path, where, base, notes) -> SparseNoi
         if frames.ndim == 3:
             times = _series_times(series, frames.shape[0], nwb_path, spath)
     else:
-        from .contract import _load_npy
         base = Path(base)
         frames_rel = _name(spec, "frames", where, "sparse_noise")
         times_rel = _name(spec, "times", where, "sparse_noise")
         frames = _load_npy(base, frames_rel, "frames")
         fwhere, fkey = base / frames_rel, "frames"
         if frames.ndim == 3:
-            times = _check_times(_load_npy(base, times_rel, "times"), base / times_rel, "times",
-                                 expected=frames.shape[0])
+            times = check_times(_load_npy(base, times_rel, "times"), base / times_rel, "times",
+                                expected=frames.shape[0])
     if frames.ndim != 3:
         raise BadInput(fwhere, fkey, f"must have shape (frames, ny, nx), got {frames.shape}")
     if axes == "xy":
         frames = np.ascontiguousarray(frames.transpose(0, 2, 1))
-    if frames.shape[0] < 2:
-        raise BadInput(fwhere, fkey, f"needs at least two frames, got {frames.shape[0]}")
-    if frames.shape[1] < 1 or frames.shape[2] < 1:
-        raise BadInput(fwhere, fkey, f"the grid is empty: shape {frames.shape}")
-    if frames.dtype.kind in "iu":
-        bad = np.flatnonzero(((frames < -1) | (frames > 1)).any(axis=(1, 2)))
-        if bad.size:
-            raise BadInput(fwhere, fkey, "values must be -1, 0 or +1", row=int(bad[0]))
-        frames = frames.astype(np.int8, copy=False)
-    elif frames.dtype.kind == "f":
-        finite = np.isfinite(frames).all(axis=(1, 2))
-        if not finite.all():
-            raise BadInput(fwhere, fkey, "is not finite", row=int(np.flatnonzero(~finite)[0]))
-    else:
-        raise BadInput(fwhere, fkey, f"must be int8 (or float for dense noise), got {frames.dtype}")
+    frames = check_frames(frames, fwhere, fkey)
     grid = Grid(ny=frames.shape[1], nx=frames.shape[2], center_x_deg=cx, center_y_deg=cy, dx_deg=dx, dy_deg=dy)
-    gaps = find_frame_gaps(times)
-    if gaps.size:
-        med = float(np.median(np.diff(times)))
-        what = ("those frames are excluded" if exclude_gaps else
-                "set sparse_noise.exclude_gaps to true in the mapping to leave those frames out")
-        _note(notes, f"{fwhere}: sparse-noise times: {gaps.size} frame interval{'s are' if gaps.size > 1 else ' is'} "
-                     f"longer than {GAP_FACTOR:g} x the median {med * 1e3:.4g} ms and look like dropped frames "
-                     f"(after frame {int(gaps[0])}); {what}")
-    valid = None
-    if exclude_gaps:
-        valid = np.ones(times.size, dtype=bool)
-        valid[gaps] = False
+    valid = frame_gap_mask(times, exclude_gaps, notes, f"{fwhere}: sparse-noise times", "in the mapping")
     return SparseNoise(frames=frames, times_s=times, grid=grid, valid=valid)
-
-
-def _check_overlap(session: Session, nwb_path) -> None:
-    """Refuse responses that share no time with any stimulus window (wrong units or clock)."""
-    from .contract import _stimulus_windows
-    starts, ends = _stimulus_windows(session)
-    if starts.size == 0:
-        return
-    lo, hi = float(starts.min()), float(ends.max())
-    r = session.responses
-    if isinstance(r, Spikes):
-        if r.time_s.size and count_spikes_outside(session) == r.time_s.size:
-            raise BadInput(nwb_path, "spike_times", f"no spike falls in any stimulus window (spikes "
-                                                    f"{r.time_s[0]:.6g} to {r.time_s[-1]:.6g} s, stimuli {lo:.6g} "
-                                                    f"to {hi:.6g} s): check time units and clock")
-    else:
-        t = r.times_s
-        if not np.any((starts < t[-1]) & (ends > t[0])):
-            raise BadInput(nwb_path, "responses", f"the samples ({t[0]:.6g} to {t[-1]:.6g} s) overlap no "
-                                                  f"stimulus window ({lo:.6g} to {hi:.6g} s): check time units "
-                                                  f"and clock")
 
 
 # ----------------------------------------------------------------------------------------------
@@ -531,7 +399,7 @@ def load_nwb(nwb_path, mapping) -> Session:
     kind = resp.get("kind")
     if kind not in ("spikes", "traces"):
         raise BadInput(where, "responses.kind", f"must be 'spikes' or 'traces', got {kind!r}")
-    _section(mapping, "responses", where, notes, known_as=f"responses.{kind}")
+    _section(where, resp, "responses", notes, known_as=f"responses.{kind}", known=_SUB_KEYS)
     try:
         io = NWBHDF5IO(str(nwb_path), "r", load_namespaces=True)
     except Exception as exc:
@@ -549,21 +417,18 @@ def load_nwb(nwb_path, mapping) -> Session:
             responses = _read_traces(nwbfile, resp, nwb_path, where, notes)
         sparse = None
         if mapping.get("sparse_noise") is not None:
-            spec = _section(mapping, "sparse_noise", where, notes)
+            spec = _section(where, mapping["sparse_noise"], "sparse_noise", notes, known=_SUB_KEYS)
             sparse = _read_sparse_noise(nwbfile, spec, nwb_path, where, base, notes)
         gratings = None
         if mapping.get("gratings") is not None:
-            spec = _section(mapping, "gratings", where, notes)
+            spec = _section(where, mapping["gratings"], "gratings", notes, known=_SUB_KEYS)
             origin = (sparse.grid.center_x_deg, sparse.grid.center_y_deg) if sparse is not None else (0.0, 0.0)
             gratings = _read_gratings(nwbfile, spec, nwb_path, where, origin, notes)
         name = mapping.get("name") or nwbfile.session_id or nwb_path.stem
     session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, path=nwb_path,
                       name=str(name), notes=notes)
-    _check_overlap(session, nwb_path)
-    n_out = count_spikes_outside(session)
-    if n_out:
-        _note(notes, f"{nwb_path}: spike_times: {n_out} of {session.responses.time_s.size} spikes fall outside "
-                     f"every stimulus window (sparse-noise frames, grating presentations); they are ignored")
+    check_overlap(session, (nwb_path, "spike_times" if kind == "spikes" else "responses"), notes,
+                  f"{nwb_path}: spike_times")
     return session
 
 
