@@ -12,7 +12,7 @@ import numpy as np
 
 from .contract import Spikes, Traces
 
-__all__ = ["interval_responses", "cell_index"]
+__all__ = ["interval_responses", "cell_index", "spikes_in_intervals"]
 
 
 def cell_index(spikes: Spikes) -> np.ndarray:
@@ -21,6 +21,29 @@ def cell_index(spikes: Spikes) -> np.ndarray:
     if ids.size and ids[-1] - ids[0] == ids.size - 1:         # consecutive ids: no search needed
         return spikes.cell - ids[0]
     return np.searchsorted(ids, spikes.cell)
+
+
+def spikes_in_intervals(spikes: Spikes, starts, ends) -> tuple[np.ndarray, np.ndarray]:
+    """Interval and cell row (:func:`cell_index`) of every spike inside an interval.
+
+    A spike at ``t`` is in interval ``k``, the last one with ``starts[k] <= t``, when ``t < ends[k]``;
+    spikes outside every interval are left out. Intervals are sorted by start (checked float arrays).
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        Interval index and cell row per spike kept, in the spikes' order.
+    """
+    t = spikes.time_s
+    if starts.size and np.array_equal(ends[:-1], starts[1:]) and np.all(t[1:] >= t[:-1]):
+        # back-to-back intervals (stimulus frames) and sorted spikes: one slice holds every spike
+        # inside, and no per-spike check against the interval's end is needed
+        a, b = np.searchsorted(t, [starts[0], ends[-1]], side="left")
+        return np.searchsorted(starts, t[a:b], side="right") - 1, cell_index(spikes)[a:b]
+    k = np.searchsorted(starts, t, side="right") - 1
+    ok = k >= 0
+    ok[ok] &= t[ok] < ends[k[ok]]
+    return k[ok], cell_index(spikes)[ok]
 
 
 def _check_intervals(starts_s, ends_s):
@@ -45,19 +68,7 @@ def _spike_rates(spikes: Spikes, starts, ends, frame_major: bool = False) -> np.
     shape = (n, n_cells) if frame_major else (n_cells, n)
     if n == 0 or spikes.time_s.size == 0:
         return np.zeros(shape, dtype=np.float32)
-    t = spikes.time_s
-    if np.array_equal(ends[:-1], starts[1:]) and t.size > 1 and t[-1] >= t[0] and np.all(t[1:] >= t[:-1]):
-        # back-to-back intervals (stimulus frames) and sorted spikes: one slice holds every spike
-        # inside, and no per-spike check against the interval's end is needed
-        a, b = np.searchsorted(t, [starts[0], ends[-1]], side="left")
-        k = np.searchsorted(starts, t[a:b], side="right") - 1
-        rows = cell_index(spikes)[a:b]
-    else:
-        k = np.searchsorted(starts, t, side="right") - 1
-        ok = k >= 0
-        ok[ok] &= t[ok] < ends[k[ok]]
-        rows = cell_index(spikes)[ok]
-        k = k[ok]
+    k, rows = spikes_in_intervals(spikes, starts, ends)
     rate = (1.0 / (ends - starts)).astype(np.float32)
     out = np.zeros(shape, dtype=np.float32)
     flat = k * n_cells + rows if frame_major else rows * n + k

@@ -47,7 +47,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from .align import cell_index, interval_responses
+from .align import interval_responses, spikes_in_intervals
 from .contract import SparseNoise, Spikes, Traces
 from .geometry import Grid
 
@@ -359,18 +359,8 @@ class _SpikeRows:
             self.k, self.col, self.w, self.F, self.C, self.mean32, self.sd, self.empty, self.n_valid = _parts
         else:
             starts, ends = noise.times_s, noise.frame_ends_s()
-            F, t = starts.size, spikes.time_s
-            if F > 1 and np.array_equal(ends[:-1], starts[1:]) and np.all(t[1:] >= t[:-1]):
-                # back-to-back frames, sorted spikes: the spikes inside are one slice
-                a, b = np.searchsorted(t, [starts[0], ends[-1]], side="left")
-                k = np.searchsorted(starts, t[a:b], side="right") - 1
-                col = cell_index(spikes)[a:b]
-            else:
-                k = np.searchsorted(starts, t, side="right") - 1
-                ok = k >= 0
-                ok[ok] &= t[ok] < ends[k[ok]]
-                col = cell_index(spikes)[ok]
-                k = k[ok]
+            F = starts.size
+            k, col = spikes_in_intervals(spikes, starts, ends)
             if k.size > 1 and np.any(k[1:] < k[:-1]):
                 order = np.argsort(k, kind="stable")
                 k, col = k[order], col[order]
