@@ -33,6 +33,16 @@ def _values(name, values, lo=None, hi=None, positive=False):
     return a
 
 
+def _positive(name, value):
+    if not (np.isfinite(value) and value > 0):
+        raise ValueError(f"{name} must be positive, got {value}")
+
+
+def _finite(name, value):
+    if not np.isfinite(value):
+        raise ValueError(f"{name} must be finite, got {value}")
+
+
 def _origin(phase_origin_deg):
     try:
         xc, yc = (float(v) for v in phase_origin_deg)
@@ -104,14 +114,11 @@ def make_flashed_gratings(orientations_deg, sfs_cpd, phases_deg, duration_s, rat
     ori = _values("orientations_deg", orientations_deg, 0.0, 180.0)
     sf = _values("sfs_cpd", sfs_cpd, positive=True)
     ph = _values("phases_deg", phases_deg, 0.0, 360.0)
-    if not (np.isfinite(duration_s) and duration_s > 0):
-        raise ValueError(f"duration_s must be positive, got {duration_s}")
-    if not (np.isfinite(rate_hz) and rate_hz > 0):
-        raise ValueError(f"rate_hz must be positive, got {rate_hz}")
+    _positive("duration_s", duration_s)
+    _positive("rate_hz", rate_hz)
     if not (np.isfinite(blank_fraction) and 0 <= blank_fraction < 1):
         raise ValueError(f"blank_fraction must be in [0, 1), got {blank_fraction}")
-    if not np.isfinite(start_s):
-        raise ValueError(f"start_s must be finite, got {start_s}")
+    _finite("start_s", start_s)
     c = _contrast(contrast)
     origin = _origin(phase_origin_deg)
     rng = np.random.default_rng(rng)
@@ -180,16 +187,13 @@ def make_drifting_gratings(directions_deg, sfs_cpd, tf_hz, trial_s=2.0, gap_s=1.
     """
     dirs = _values("directions_deg", directions_deg, 0.0, 360.0)
     sf = _values("sfs_cpd", sfs_cpd, positive=True)
-    if not (np.isfinite(tf_hz) and tf_hz > 0):
-        raise ValueError(f"tf_hz must be positive, got {tf_hz}")
-    if not (np.isfinite(trial_s) and trial_s > 0):
-        raise ValueError(f"trial_s must be positive, got {trial_s}")
+    _positive("tf_hz", tf_hz)
+    _positive("trial_s", trial_s)
     if not (np.isfinite(gap_s) and gap_s >= 0):
         raise ValueError(f"gap_s must be >= 0, got {gap_s}")
     if int(repeats) != repeats or repeats < 1:
         raise ValueError(f"repeats must be a positive integer, got {repeats}")
-    if not np.isfinite(start_s):
-        raise ValueError(f"start_s must be finite, got {start_s}")
+    _finite("start_s", start_s)
     c = _contrast(contrast)
     origin = _origin(phase_origin_deg)
     rng = np.random.default_rng(rng)
