@@ -142,3 +142,107 @@ def test_f1_f0_helper():
     r = f1_f0([2.0, 0.0, -1.0], [3.0 + 4.0j, 1.0, 1.0])
     assert r[0] == pytest.approx(2.5)
     assert np.isnan(r[1]) and np.isnan(r[2])
+
+
+# ----------------------------------------------------------------------------------------------
+# fast fits: analytic Jacobians, screened starts, worker processes
+# ----------------------------------------------------------------------------------------------
+def test_analytic_jacobians_match_finite_differences():
+    from scipy.optimize._numdiff import approx_derivative   # scipy's own differencing as reference
+
+    from map2d.fit.tuning import _jac_direction, _jac_gauss, _jac_orientation
+    th = np.arange(0.0, 360.0, 30.0)
+    f = np.geomspace(0.02, 0.64, 6)
+    cases = [(von_mises_orientation, _jac_orientation, th, [0.3, 2.0, 3.3, 37.0]),
+             (von_mises_direction, _jac_direction, th, [0.3, 2.0, 1.2, 2.5, 200.0]),
+             (log_gaussian_sf, lambda x, *p: _jac_gauss(np.log2(x), *p), f, [0.3, 2.0, -3.0, 1.1]),
+             (gaussian_sf, _jac_gauss, f, [0.3, 2.0, 0.1, 0.07])]
+    for model, jac, x, p in cases:
+        num = approx_derivative(lambda q: model(x, *q), np.array(p, float), method="3-point")
+        np.testing.assert_allclose(jac(x, *p), num, rtol=1e-6, atol=1e-8 * np.abs(num).max())
+
+
+def _multistart_ssr(model, jac, x, y, starts, lower, upper):
+    """The smallest SSR of plain bounded fits from many hand-made starts."""
+    from scipy import optimize
+    best = np.inf
+    for p0 in starts:
+        p0 = np.clip(p0, np.array(lower) + 1e-9, np.array(upper) - 1e-9)
+        r = optimize.least_squares(lambda p: model(x, *p) - y, p0, jac=lambda p: jac(x, *p),
+                                   bounds=(lower, upper), max_nfev=2000)
+        best = min(best, 2 * r.cost)
+    return best
+
+
+def test_screened_fits_are_no_worse_than_many_starts():
+    # the screened start(s) + refinement must reach the best of a broad multi-start search
+    from map2d.fit.tuning import _jac_direction, _jac_orientation
+    rng = np.random.default_rng(7)
+    th_o = np.arange(0.0, 180.0, 15.0)
+    for _ in range(4):
+        y = von_mises_orientation(th_o, 1.0, 4.0, rng.uniform(0.5, 8), rng.uniform(0, 360))
+        y = y + 0.6 * rng.standard_normal(th_o.size)
+        fo = fit_orientation(th_o, y)
+        span = max(abs(y.max()), abs(y.min()), np.ptp(y))
+        lo, hi = [-10 * span, 0, 1e-3, -360], [10 * span, 20 * span, 50, 360]
+        ref = _multistart_ssr(von_mises_orientation, _jac_orientation, th_o, y,
+                              [[y.min(), np.ptp(y), kk, tt] for kk in (0.5, 3, 20) for tt in range(-150, 180, 30)],
+                              lo, hi)
+        assert np.sum((von_mises_orientation(th_o, *fo.params) - y) ** 2) <= ref * (1 + 1e-5)
+    # 8 directions, narrow peaks between samples: curves of a simulated 500-cell session on which
+    # refining only the best screened start stopped in a worse minimum (0.5 % and 1.6 % more SSR)
+    th_d = np.arange(0.0, 360.0, 45.0)
+    curves = [[4.09, 0.58, 1.01, 10.03, 2.83, 1.11, 0.84, 11.55],
+              [13.44, 14.17, 16.69, 14.07, 13.64, 16.05, 19.26, 13.41],
+              von_mises_direction(th_d, 1.0, 4.0, 2.5, 12.0, 100.0) + rng.standard_normal(8)]
+    for y in map(np.asarray, curves):
+        fd = fit_direction(th_d, y)
+        span = max(abs(y.max()), abs(y.min()), np.ptp(y))
+        lo, hi = [-10 * span, 0, 0, 1e-3, -360], [10 * span, 20 * span, 20 * span, 50, 360]
+        ref = _multistart_ssr(von_mises_direction, _jac_direction, th_d, y,
+                              [[y.min(), np.ptp(y), a2 * np.ptp(y), kk, tt] for a2 in (0.1, 0.8)
+                               for kk in (0.5, 3, 20) for tt in range(-135, 180, 45)], lo, hi)
+        assert np.sum((von_mises_direction(th_d, *fd.params) - y) ** 2) <= ref * (1 + 1e-5)
+
+
+def _fake_results(n_cells, rng):
+    """Duck-typed flashed and drifting results holding only what the tuning columns read."""
+    from types import SimpleNamespace
+    ori, sfs = np.arange(0.0, 180.0, 15.0), np.array([0.02, 0.04, 0.08, 0.16])
+    dirs, dsfs = np.arange(0.0, 360.0, 45.0), np.array([0.04, 0.08])
+    ids = np.arange(n_cells) * 3 + 5
+    surf = np.empty((n_cells, ori.size, sfs.size))
+    resp = np.empty((n_cells, dirs.size, dsfs.size, 1))
+    for c in range(n_cells):
+        t0, k, f0 = rng.uniform(0, 180), rng.uniform(0.3, 5), rng.uniform(0.03, 0.12)
+        o = von_mises_orientation(ori, 0.2, 3.0, k, t0)
+        surf[c] = np.outer(o, log_gaussian_sf(sfs, 0.0, 1.0, np.log2(f0), 1.0)) + 0.2 * rng.standard_normal((ori.size, 4))
+        d = von_mises_direction(dirs, 0.5, 3.0, rng.uniform(0, 3), k, t0)
+        resp[c] = (d[:, None] * np.array([1.0, 0.6]))[..., None] + 0.3 * rng.standard_normal((dirs.size, 2, 1))
+    responsive = rng.random(n_cells) < 0.85
+    fl = SimpleNamespace(cell_ids=ids, orientations_deg=ori, sfs_cpd=sfs, peak_response=surf,
+                         p_value=np.where(responsive, 1e-4, 0.5), responsive=responsive,
+                         peak_lag_s=np.full(n_cells, 0.05))
+    dresp = rng.random(n_cells) < 0.85
+    pref = np.array([np.unravel_index(int(np.argmax(r)), r.shape) for r in resp])
+    dr = SimpleNamespace(cell_ids=ids, directions_deg=dirs, sfs_cpd=dsfs, response=resp, pref_index=pref,
+                         p_value=np.where(dresp, 1e-3, 0.4), responsive=dresp, f1_f0=rng.random(n_cells) * 2,
+                         simple=rng.random(n_cells) < 0.5, dsi=rng.random(n_cells),
+                         pref_direction_deg=dirs[pref[:, 0]])
+    return fl, dr
+
+
+def test_worker_processes_give_the_serial_columns_exactly():
+    from map2d.fit.tuning import TUNING_COLUMNS, grating_tuning_columns
+    fl, dr = _fake_results(24, np.random.default_rng(11))
+    ids = np.concatenate([fl.cell_ids, [1000, 1001]])          # two cells without any grating result
+    serial = grating_tuning_columns(fl, dr, cell_ids=ids, n_jobs=1)
+    forked = grating_tuning_columns(fl, dr, cell_ids=ids, n_jobs=2)
+    assert list(serial) == list(TUNING_COLUMNS)
+    assert serial["cell"] == sorted(int(c) for c in ids)
+    for k in TUNING_COLUMNS:
+        a, b = np.array(serial[k], dtype=object), np.array(forked[k], dtype=object)
+        assert a.astype(str).tolist() == b.astype(str).tolist(), k
+    fitted = np.isfinite(np.array(serial["pref_orientation_deg"], float))
+    assert fitted.sum() >= 10                                    # the fits did run
+    assert np.isfinite(np.array(serial["pref_direction_deg"], float)).sum() >= 10

@@ -10,8 +10,14 @@ Models
   half height above ``b`` is ``2 sqrt(2 ln 2) sigma`` octaves), or a Gaussian in linear SF (the
   spectrum of a Gabor), whichever fits better; ``sf_fit_width`` is ``sigma`` in octaves or in cpd.
 
-Fits use :func:`scipy.optimize.least_squares` from several starts; 95 % confidence intervals come from
-the covariance ``s^2 (J^T J)^-1`` (``s^2`` the residual variance) with Student-t quantiles. A quantity
+Fits use :func:`scipy.optimize.least_squares` with analytic Jacobians. Starts are screened cheaply:
+every model is linear in its baseline and amplitude(s), so on a grid of the nonlinear parameters
+(preference x concentration, centre x width) those are solved exactly in closed form, and the best
+grid point is refined (for direction, the best point in each of three bands of concentration is
+probed for 10 evaluations and the lowest-cost one refined). This reaches the minimum of a broad
+multi-start search at a fraction of the cost; ``grating_tuning_columns`` fits cells in two worker
+processes when there are many. 95 % confidence intervals come from the covariance
+``s^2 (J^T J)^-1`` (``s^2`` the residual variance) with Student-t quantiles. A quantity
 that the data cannot give (too few points, a failed fit, a peak outside the tested range) is NaN.
 
 Selectivity: circular variance ``CV = 1 - |sum r exp(2 i theta)| / sum r`` and
@@ -28,7 +34,11 @@ Vision Res 31:1079-1086.
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
+from types import SimpleNamespace
 
 import numpy as np
 from scipy import optimize, stats
@@ -75,6 +85,37 @@ def log_gaussian_sf(sf_cpd, b, a, log2_f0, sigma_oct):
     """
     z = (np.log2(np.asarray(sf_cpd, float)) - log2_f0) / sigma_oct
     return b + a * np.exp(-0.5 * z * z)
+
+
+_RAD = np.pi / 180.0
+
+
+def _jac_orientation(theta_deg, b, a, kappa, theta0_deg):
+    """Analytic Jacobian of :func:`von_mises_orientation` over ``(b, a, kappa, theta0)``."""
+    d = np.deg2rad(np.asarray(theta_deg, float) - theta0_deg)
+    c2 = np.cos(2 * d) - 1.0
+    e = np.exp(kappa * c2)
+    ae = a * e
+    return np.column_stack([np.ones_like(d), e, ae * c2, ae * kappa * 2.0 * _RAD * np.sin(2 * d)])
+
+
+def _jac_direction(theta_deg, b, a1, a2, kappa, theta0_deg):
+    """Analytic Jacobian of :func:`von_mises_direction` over ``(b, a1, a2, kappa, theta0)``."""
+    d = np.deg2rad(np.asarray(theta_deg, float) - theta0_deg)
+    c1, c2 = np.cos(d) - 1.0, np.cos(d - np.pi) - 1.0
+    e1, e2 = np.exp(kappa * c1), np.exp(kappa * c2)
+    s = np.sin(d) * kappa * _RAD
+    return np.column_stack([np.ones_like(d), e1, e2, a1 * e1 * c1 + a2 * e2 * c2,
+                            a1 * e1 * s - a2 * e2 * s])
+
+
+def _jac_gauss(u, b, a, centre, width):
+    """Analytic Jacobian of ``b + a exp(-((u - centre) / width)^2 / 2)`` over ``(b, a, centre, width)``
+    (:func:`log_gaussian_sf` with ``u = log2 f``, :func:`gaussian_sf` with ``u = f``)."""
+    z = (u - centre) / width
+    g = np.exp(-0.5 * z * z)
+    agz = a * g * z / width
+    return np.column_stack([np.ones_like(z), g, agz, agz * z])
 
 
 # ----------------------------------------------------------------------------------------------
@@ -167,17 +208,31 @@ class _Fit:
     ok: bool = False
 
 
-def _least_squares(model, x, y, starts, lower, upper):
-    """Best of several bounded least-squares fits; covariance from the Jacobian."""
+def _least_squares(model, x, y, starts, lower, upper, jac=None, probe_nfev=None):
+    """Best of several bounded least-squares fits; covariance from the Jacobian.
+
+    ``jac(x, *p)`` is the model's analytic Jacobian (finite differences when None). With
+    ``probe_nfev``, every start first gets that many evaluations and only the lowest-cost one is
+    then run to convergence (starts that wander along a flat valley stop early)."""
     best = None
-    for p0 in starts:
+    jfun = "2-point" if jac is None else (lambda p: jac(x, *p))
+
+    def run(p0, nfev):
         p0 = np.clip(np.asarray(p0, float), np.asarray(lower) + 1e-9, np.asarray(upper) - 1e-9)
         try:
-            res = optimize.least_squares(lambda p: model(x, *p) - y, p0, bounds=(lower, upper),
-                                         method="trf", max_nfev=2000)
+            return optimize.least_squares(lambda p: model(x, *p) - y, p0, jac=jfun, bounds=(lower, upper),
+                                          method="trf", max_nfev=nfev)
         except (ValueError, np.linalg.LinAlgError):
-            continue
-        if best is None or res.cost < best.cost:
+            return None
+
+    probe = probe_nfev is not None and len(starts) > 1
+    for p0 in starts:
+        res = run(p0, probe_nfev if probe else 2000)
+        if res is not None and (best is None or res.cost < best.cost):
+            best = res
+    if probe and best is not None and best.status == 0:     # stopped by the probe budget: go on
+        res = run(best.x, 2000)
+        if res is not None and res.cost <= best.cost:
             best = res
     fit = _Fit(params=np.full(len(lower), np.nan), cov=np.full((len(lower),) * 2, np.nan))
     if best is None or not np.all(np.isfinite(best.x)):
@@ -197,6 +252,53 @@ def _least_squares(model, x, y, starts, lower, upper):
         except np.linalg.LinAlgError:
             pass
     return fit
+
+
+#: Concentrations screened for a start (von Mises fits); the fit's bounds are 1e-3 to 50.
+_KAPPA_GRID = np.geomspace(0.03, 50.0, 27)
+
+
+def _best_linear(e, y, free_b, a_hi, b_lo, b_hi):
+    """Screen nonlinear parameters: for each row of ``e`` (M, n) the least-squares ``b + a e`` with
+    ``0 <= a <= a_hi`` (``b`` free within ``[b_lo, b_hi]``, or 0 when not ``free_b``), in closed form.
+
+    Returns ``(row, b, a, ssr)`` of the best row whose solution lies inside the bounds, or None.
+    """
+    if free_b:
+        ym = y.mean()
+        yc = y - ym
+        em = e.mean(axis=1)
+        ec = e - em[:, None]
+        sxx = np.einsum("ij,ij->i", ec, ec)
+        sxy = ec @ yc
+        sst = float(yc @ yc)
+    else:
+        sxx = np.einsum("ij,ij->i", e, e)
+        sxy = e @ y
+        sst = float(y @ y)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        a = sxy / sxx
+        ssr = sst - sxy * a
+        b = ym - a * em if free_b else np.zeros_like(a)
+    good = (sxx > 1e-12 * max(sst, 1e-300)) & (a > 0) & (a <= a_hi) & (b >= b_lo) & (b <= b_hi)
+    if not good.any():
+        return None
+    ssr = np.where(good, ssr, np.inf)
+    i = int(np.argmin(ssr))
+    return i, float(b[i]), float(a[i]), float(ssr[i])
+
+
+def _screen_gauss(u, y, centres, widths, free_b, a_hi, b_lo, b_hi):
+    """Best ``[b, a, centre, width]`` of ``b + a exp(-((u - centre) / width)^2 / 2)`` on a grid of
+    centres and widths (amplitude and baseline solved exactly), or None."""
+    cc, ww = np.meshgrid(centres, widths, indexing="ij")
+    cc, ww = cc.ravel(), ww.ravel()
+    z = (u[None, :] - cc[:, None]) / ww[:, None]
+    got = _best_linear(np.exp(-0.5 * z * z), y, free_b, a_hi, b_lo, b_hi)
+    if got is None:
+        return None
+    i, b, a, _ = got
+    return [b, a, float(cc[i]), float(ww[i])]
 
 
 def _t95(dof):
@@ -235,6 +337,19 @@ def _hwhh_deg(kappa):
     return float(np.degrees(0.5 * np.arccos(c)))
 
 
+def _screen_orientation(th, y, centre, a_hi, b_lo, b_hi):
+    """Start of the orientation fit: the best ``[b, a, kappa, theta0]`` on a grid of preferences
+    (2.5 deg over 180 deg around ``centre``) and concentrations, ``b`` and ``a`` solved exactly."""
+    t_grid = centre + np.arange(-90.0, 90.0, 2.5)
+    c = np.cos(2.0 * np.deg2rad(th[None, :] - t_grid[:, None])) - 1.0            # (T, n)
+    e = np.exp(_KAPPA_GRID[:, None, None] * c[None, :, :]).reshape(-1, th.size)   # (K * T, n)
+    got = _best_linear(e, y, True, a_hi, b_lo, b_hi)
+    if got is None:
+        return None
+    i, b, a, _ = got
+    return [b, a, float(_KAPPA_GRID[i // t_grid.size]), float(t_grid[i % t_grid.size])]
+
+
 def fit_orientation(theta_deg, r) -> OrientationFit:
     """Fit :func:`von_mises_orientation` to responses at orientations ``theta_deg`` (any range).
 
@@ -262,8 +377,10 @@ def fit_orientation(theta_deg, r) -> OrientationFit:
     span = max(abs(float(y.max())), abs(float(y.min())), a0)
     lower = [-10 * span - 1e-9, 0.0, 1e-3, pref0 - 180.0]
     upper = [10 * span + 1e-9, 20 * span + 1e-9, 50.0, pref0 + 180.0]
-    starts = [[b0, a0, k, t] for k in (0.7, 2.0, 6.0) for t in (pref0, float(th[np.argmax(y)]))]
-    fit = _least_squares(von_mises_orientation, th, y, starts, lower, upper)
+    start = _screen_orientation(th, y, pref0, upper[1], lower[0], upper[0])
+    starts = ([start] if start is not None else
+              [[b0, a0, k, t] for k in (0.7, 2.0, 6.0) for t in (pref0, float(th[np.argmax(y)]))])
+    fit = _least_squares(von_mises_orientation, th, y, starts, lower, upper, jac=_jac_orientation)
     if not fit.ok or not fit.params[1] > 0:
         return empty
     b, a, kappa, t0 = fit.params
@@ -301,6 +418,56 @@ class DirectionFit:
     ok: bool
 
 
+def _screen_direction(th, y, centre, a_hi, b_lo, b_hi, n_bands=3):
+    """Starts of the direction fit: on a grid of preferences (5 deg over 360 deg around ``centre``)
+    and concentrations, with ``b``, ``a1 >= 0``, ``a2 >= 0`` solved exactly (both peaks, or one of
+    them alone), the best ``[b, a1, a2, kappa, theta0]`` in each of ``n_bands`` bands of
+    concentration (with 45-deg sampling, broad and narrow peaks are separate local minima)."""
+    t_grid = centre + np.arange(-180.0, 180.0, 5.0)
+    d = np.deg2rad(th[None, :] - t_grid[:, None])
+    c1, c2 = np.cos(d) - 1.0, np.cos(d - np.pi) - 1.0
+    k = _KAPPA_GRID[:, None, None]
+    e1 = np.exp(k * c1[None]).reshape(-1, th.size)
+    e2 = np.exp(k * c2[None]).reshape(-1, th.size)
+    ym = y.mean()
+    yc = y - ym
+    sst = float(yc @ yc)
+    m1, m2 = e1.mean(1), e2.mean(1)
+    e1c, e2c = e1 - m1[:, None], e2 - m2[:, None]
+    s11 = np.einsum("ij,ij->i", e1c, e1c)
+    s22 = np.einsum("ij,ij->i", e2c, e2c)
+    s12 = np.einsum("ij,ij->i", e1c, e2c)
+    s1y, s2y = e1c @ yc, e2c @ yc
+    tiny = 1e-12 * max(sst, 1e-300)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        det = s11 * s22 - s12 * s12
+        both = ((s22 * s1y - s12 * s2y) / det, (s11 * s2y - s12 * s1y) / det)
+        cands = (both, (s1y / s11, np.zeros_like(s11)), (np.zeros_like(s22), s2y / s22))
+        valid = (det > 1e-9 * s11 * s22, s11 > tiny, s22 > tiny)
+        ssr_all, par_all = [], []
+        for (a1, a2), ok in zip(cands, valid):
+            b = ym - a1 * m1 - a2 * m2
+            good = (ok & (a1 >= 0) & (a2 >= 0) & (a1 + a2 > 0) & (a1 <= a_hi) & (a2 <= a_hi)
+                    & (b >= b_lo) & (b <= b_hi))
+            ssr_all.append(np.where(good, sst - a1 * s1y - a2 * s2y, np.inf))
+            par_all.append((b, a1, a2))
+    ssr_all = np.stack(ssr_all)                                           # (3, K * T)
+    kappa_band = np.arange(e1.shape[0]) // t_grid.size * n_bands // _KAPPA_GRID.size
+    starts = []
+    for band in range(n_bands):
+        sub = np.where(kappa_band[None, :] == band, ssr_all, np.inf)
+        j, i = np.unravel_index(int(np.argmin(sub)), sub.shape)
+        if not np.isfinite(sub[j, i]):
+            continue
+        b, a1, a2 = (float(v[i]) for v in par_all[j])
+        t0 = float(t_grid[i % t_grid.size])
+        if abs(t0 - centre) > 90.0:
+            # the same curve with the peaks swapped, away from the bounds at centre +- 180
+            a1, a2, t0 = a2, a1, t0 - np.copysign(180.0, t0 - centre)
+        starts.append((sub[j, i], [b, a1, a2, float(_KAPPA_GRID[i // t_grid.size]), t0]))
+    return [p for _, p in sorted(starts, key=lambda x: x[0])]
+
+
 def fit_direction(theta_deg, r) -> DirectionFit:
     """Fit :func:`von_mises_direction` to responses at directions ``theta_deg`` (needs >= 6 points).
 
@@ -325,8 +492,9 @@ def fit_direction(theta_deg, r) -> DirectionFit:
     span = max(abs(float(y.max())), abs(float(y.min())), a0)
     lower = [-10 * span - 1e-9, 0.0, 0.0, 1e-3, t_start - 180.0]
     upper = [10 * span + 1e-9, 20 * span + 1e-9, 20 * span + 1e-9, 50.0, t_start + 180.0]
-    starts = [[b0, a0, a2, k, t_start] for k in (1.0, 3.0) for a2 in (0.1 * a0, 0.8 * a0)]
-    fit = _least_squares(von_mises_direction, th, y, starts, lower, upper)
+    starts = (_screen_direction(th, y, t_start, upper[1], lower[0], upper[0])
+              or [[b0, a0, a2, k, t_start] for k in (1.0, 3.0) for a2 in (0.1 * a0, 0.8 * a0)])
+    fit = _least_squares(von_mises_direction, th, y, starts, lower, upper, jac=_jac_direction, probe_nfev=10)
     if not fit.ok:
         return empty
     b, a1, a2, kappa, t0 = fit.params
@@ -434,16 +602,33 @@ def fit_sf(sf_cpd, r) -> SFFit:
         "gaussian": (gaussian_sf, [b_lo, 0.0, f.min() / 4, 0.02 * f.min()], [b_hi, a_hi, f.max() * 4, 4 * f.max()],
                      [[float(y.min()), float(np.ptp(y)), float(f[i_max]), w * float(f[i_max])] for w in (0.3, 1.0)]),
     }
+    # starts screened on grids of centres (quarter octaves) and widths, b and a solved exactly
+    f_lo, f_hi = float(f.min()), float(f.max())
+    screens = {
+        "log_gaussian": (lf, np.arange(lo - 2.0, hi + 2.0 + 1e-9, 0.25),
+                         np.geomspace(0.15, s_hi_oct, int(np.ceil(np.log2(s_hi_oct / 0.15) * 4)) + 1)),
+        "gaussian": (f, 2.0 ** np.arange(np.log2(f_lo / 4), np.log2(f_hi * 4) + 1e-9, 0.25),
+                     np.geomspace(0.02 * f_lo, 4 * f_hi, int(np.ceil(np.log2(200 * f_hi / f_lo) * 3)) + 1)),
+    }
+    jacs = {"log_gaussian": lambda x, *q: _jac_gauss(np.log2(x), *q), "gaussian": _jac_gauss}
     fits = []
     for name, (model, lower, upper, starts) in cands.items():
+        u, centres, widths = screens[name]
+        start = _screen_gauss(u, y, centres, widths, free_b, a_hi, b_lo, b_hi)
+        if start is not None:
+            starts = [start]
+        jac = jacs[name]
         if free_b:
-            fit = _least_squares(model, f, y, starts, lower, upper)
+            fit = _least_squares(model, f, y, starts, lower, upper, jac=jac)
             p = fit.params
             cov = fit.cov
         else:
             def m3(x, a, c, w, model=model):
                 return model(x, 0.0, a, c, w)
-            fit = _least_squares(m3, f, y, [s[1:] for s in starts], lower[1:], upper[1:])
+
+            def j3(x, a, c, w, jac=jac):
+                return jac(x, 0.0, a, c, w)[:, 1:]
+            fit = _least_squares(m3, f, y, [s[1:] for s in starts], lower[1:], upper[1:], jac=j3)
             p = np.concatenate([[0.0], fit.params])
             cov = np.full((4, 4), np.nan)
             cov[1:, 1:] = fit.cov
@@ -583,7 +768,7 @@ def _drifting_curves(dr, c):
     return uo, ori_curve, dr.sfs_cpd, resp[d_i, :, t_i], None, dr.directions_deg, dir_curve
 
 
-def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None) -> dict:
+def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=None) -> dict:
     """Tuning columns for ``cells.csv``, one row per cell (sorted by cell id).
 
     Parameters
@@ -592,6 +777,9 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None) -> dict:
     drifting : map2d.gratings.DriftingResult, optional
     cell_ids : array_like, optional
         All cells (defaults to those of the results).
+    n_jobs : int, optional
+        Worker processes for the fits (cells in chunks; the results do not depend on it). Default: 2
+        when at least 50 cells respond to gratings and the machine has two cores or more, else 1.
 
     Returns
     -------
@@ -620,6 +808,59 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None) -> dict:
     if cell_ids is None:
         cell_ids = ids[0]
     cell_ids = np.sort(np.asarray(cell_ids, dtype=np.int64))
+    # only the per-cell values the columns need, so that worker processes get small arrays
+    fl = _flashed_view(flashed) if flashed is not None else None
+    dr = _drifting_view(drifting) if drifting is not None else None
+    n_fit = int(sum(np.count_nonzero(r.responsive) for r in (fl, dr) if r is not None))
+    if n_jobs is None:
+        n_jobs = 2 if n_fit >= 50 else 1
+    n_jobs = max(1, min(int(n_jobs), os.cpu_count() or 1, cell_ids.size))
+    if n_jobs > 1:
+        chunks = [ch for ch in np.array_split(cell_ids, n_jobs * 4) if ch.size]
+        try:
+            with ProcessPoolExecutor(max_workers=n_jobs) as ex:
+                futs = [ex.submit(_tuning_chunk, _subset(fl, ch), _subset(dr, ch), ch) for ch in chunks]
+                parts = [fu.result() for fu in futs]
+        except (OSError, BrokenProcessPool):     # no processes here: the same fits in this one
+            parts = None
+        if parts is not None:
+            return {k: [v for part in parts for v in part[k]] for k in TUNING_COLUMNS}
+    return _tuning_chunk(fl, dr, cell_ids)
+
+
+_FLASHED_FIELDS = ("cell_ids", "p_value", "responsive", "peak_lag_s", "peak_response")
+_DRIFTING_FIELDS = ("cell_ids", "p_value", "responsive", "f1_f0", "simple", "dsi", "pref_direction_deg",
+                    "pref_index", "response")
+
+
+def _flashed_view(fl):
+    v = SimpleNamespace(**{k: np.asarray(getattr(fl, k)) for k in _FLASHED_FIELDS})
+    v.orientations_deg, v.sfs_cpd = np.asarray(fl.orientations_deg), np.asarray(fl.sfs_cpd)
+    return v
+
+
+def _drifting_view(dr):
+    v = SimpleNamespace(**{k: np.asarray(getattr(dr, k)) for k in _DRIFTING_FIELDS})
+    v.directions_deg, v.sfs_cpd = np.asarray(dr.directions_deg), np.asarray(dr.sfs_cpd)
+    return v
+
+
+def _subset(view, cells):
+    """The rows of ``view`` (from :func:`_flashed_view` / :func:`_drifting_view`) for ``cells``."""
+    if view is None:
+        return None
+    rows = np.flatnonzero(np.isin(view.cell_ids, cells))
+    fields = _FLASHED_FIELDS if hasattr(view, "peak_response") else _DRIFTING_FIELDS
+    out = SimpleNamespace(**{k: getattr(view, k)[rows] for k in fields})
+    for k in ("orientations_deg", "directions_deg", "sfs_cpd"):
+        if hasattr(view, k):
+            setattr(out, k, getattr(view, k))
+    return out
+
+
+def _tuning_chunk(flashed, drifting, cell_ids):
+    """The columns of :func:`grating_tuning_columns` for ``cell_ids`` (one process)."""
+    ids = [np.asarray(r.cell_ids) for r in (flashed, drifting) if r is not None]
     pos = [{int(c): i for i, c in enumerate(a)} for a in ids]
     fl_pos = pos[0] if flashed is not None else {}
     dr_pos = pos[-1] if drifting is not None else {}
