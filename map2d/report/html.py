@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import html
 import math
+import os
+import pickle
 from pathlib import Path
 
 import numpy as np
@@ -19,7 +21,8 @@ __all__ = ["write_report", "render_report", "REPORT_FILE", "DEFAULT_MAX_CELLS"]
 
 REPORT_FILE = "report.html"
 #: Most cell panels in one report. Measured on a 500-cell simulated session (2-core machine, shared):
-#: about 0.25 s of CPU per panel, so 30 panels plus the summary and table take about 8 s.
+#: about 0.25 s of CPU per panel, so 30 panels plus the summary and table take about 8 s of CPU (about
+#: 4 s on two cores: half of the panels are drawn in a forked child process).
 DEFAULT_MAX_CELLS = 30
 
 _CSS = """
@@ -267,6 +270,12 @@ def render_report(analysis, session=None, max_cells="default") -> str:
         parts += [f"<li>{_esc(n)}</li>" for n in notes]
         parts.append("</ul>")
 
+    rows, n_qual = F.select_cells(an, max_cells)
+    # the second half of the cell panels is drawn in a forked child while this process draws the
+    # summary and the first half (rendering is most of the report's time)
+    half = len(rows) // 2 if len(rows) >= _FORK_MIN_PANELS else len(rows)
+    child = _Forked(lambda: _cell_sections(an, rows[half:]), enabled=half < len(rows))
+
     parts.append("<h2>Summary</h2>")
     summary = F.summary_figures(an)
     if an.maps is None:
@@ -276,7 +285,6 @@ def render_report(analysis, session=None, max_cells="default") -> str:
         parts.append(_figure(fig_id, fig, caption, alt=fig_id.replace("fig-", "").replace("-", " ")))
     del summary
 
-    rows, n_qual = F.select_cells(an, max_cells)
     parts.append("<h2>Cells</h2>")
     if n_qual == 0:
         parts.append("<p>No cell responds significantly to sparse noise or gratings, so there are no cell "
@@ -299,19 +307,76 @@ def render_report(analysis, session=None, max_cells="default") -> str:
                      "the spread of flashed-grating responses over lag. (n.s.): not significant.</p>")
         parts.append("<nav class='cells'>" + "".join(
             f'<a href="#cell-{int(an.cell_ids[r])}">cell {int(an.cell_ids[r])}</a>' for r in rows) + "</nav>")
-        panels = F.CellPanels(an)
-        for r in rows:
-            cid = int(an.cell_ids[r])
-            fig = panels.draw(r)
-            parts.append(f'<section class="cell" id="cell-{cid}"><div><h3>Cell {cid}</h3>'
-                         + _table(_cell_facts(an, r)) + "</div>"
-                         + _figure(f"fig-cell-{cid}", fig, None, alt=f"panel of cell {cid}") + "</section>")
-        del panels
+        parts += _cell_sections(an, rows[:half])
+        parts += child.result() if half < len(rows) else []
 
     parts.append("<h2>All cells</h2><p>The contents of cells.csv (empty: not estimated).</p>")
     parts.append(_all_cells_table(an))
     parts.append("</main></body></html>")
     return "\n".join(parts)
+
+
+#: Fewest cell panels for which half of them are drawn in a second process.
+_FORK_MIN_PANELS = 6
+
+
+def _cell_sections(an, rows):
+    """The HTML sections (facts and panel) of the cells in ``rows``, drawn on one reused Figure."""
+    out = []
+    if len(rows) == 0:
+        return out
+    panels = F.CellPanels(an)
+    for r in rows:
+        cid = int(an.cell_ids[r])
+        fig = panels.draw(r)
+        out.append(f'<section class="cell" id="cell-{cid}"><div><h3>Cell {cid}</h3>'
+                   + _table(_cell_facts(an, r)) + "</div>"
+                   + _figure(f"fig-cell-{cid}", fig, None, alt=f"panel of cell {cid}") + "</section>")
+    return out
+
+
+class _Forked:
+    """``fn()`` run in a forked child process (the second core) while the caller keeps working.
+
+    The child inherits the analysis (copy-on-write, nothing is pickled on the way in) and sends its
+    result back through a pipe. Where fork is unavailable or anything fails, :meth:`result` runs
+    ``fn()`` here instead, so the output never depends on it.
+    """
+
+    def __init__(self, fn, enabled=True):
+        self.fn, self.pid, self.fd = fn, None, None
+        if not enabled or not hasattr(os, "fork") or (os.cpu_count() or 1) < 2:
+            return
+        try:
+            r, w = os.pipe()
+            pid = os.fork()
+        except OSError:
+            return
+        if pid == 0:                                                   # child
+            code = 0
+            try:
+                os.close(r)
+                with os.fdopen(w, "wb") as fh:
+                    pickle.dump(fn(), fh, protocol=pickle.HIGHEST_PROTOCOL)
+            except BaseException:
+                code = 1
+            finally:
+                os._exit(code)
+        os.close(w)
+        self.pid, self.fd = pid, r
+
+    def result(self):
+        if self.pid is None:
+            return self.fn()
+        try:
+            with os.fdopen(self.fd, "rb") as fh:
+                out = pickle.load(fh)
+        except Exception:
+            out = None
+        _, status = os.waitpid(self.pid, 0)
+        if out is None or status != 0:
+            return self.fn()
+        return out
 
 
 def write_report(folder, analysis, session=None, max_cells="default") -> Path:
