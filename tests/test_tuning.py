@@ -246,3 +246,18 @@ def test_worker_processes_give_the_serial_columns_exactly():
     fitted = np.isfinite(np.array(serial["pref_orientation_deg"], float))
     assert fitted.sum() >= 10                                    # the fits did run
     assert np.isfinite(np.array(serial["pref_direction_deg"], float)).sum() >= 10
+
+
+def test_no_worker_processes_by_default_beside_other_threads():
+    # a forked copy of a threaded process (e.g. a batch worker) can hang on a lock: stay serial there
+    import threading
+
+    from map2d.fit.tuning import _may_start_processes
+    stop = threading.Event()
+    t = threading.Thread(target=stop.wait)
+    t.start()
+    try:
+        assert not _may_start_processes()
+    finally:
+        stop.set()
+        t.join()

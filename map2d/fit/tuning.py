@@ -779,7 +779,8 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
         All cells (defaults to those of the results).
     n_jobs : int, optional
         Worker processes for the fits (cells in chunks; the results do not depend on it). Default: 2
-        when at least 50 cells respond to gratings and the machine has two cores or more, else 1.
+        when at least 50 cells respond to gratings, the machine has two cores or more and this is a
+        single-threaded, non-daemonic process (not e.g. a batch worker), else 1.
 
     Returns
     -------
@@ -813,7 +814,7 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
     dr = _drifting_view(drifting) if drifting is not None else None
     n_fit = int(sum(np.count_nonzero(r.responsive) for r in (fl, dr) if r is not None))
     if n_jobs is None:
-        n_jobs = 2 if n_fit >= 50 else 1
+        n_jobs = 2 if n_fit >= 50 and _may_start_processes() else 1
     n_jobs = max(1, min(int(n_jobs), os.cpu_count() or 1, cell_ids.size))
     if n_jobs > 1:
         chunks = [ch for ch in np.array_split(cell_ids, n_jobs * 4) if ch.size]
@@ -821,11 +822,21 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
             with ProcessPoolExecutor(max_workers=n_jobs) as ex:
                 futs = [ex.submit(_tuning_chunk, _subset(fl, ch), _subset(dr, ch), ch) for ch in chunks]
                 parts = [fu.result() for fu in futs]
-        except (OSError, BrokenProcessPool):     # no processes here: the same fits in this one
+        except (OSError, BrokenProcessPool, AssertionError):
+            # no worker processes here (e.g. inside a daemonic worker): the same fits in this one
             parts = None
         if parts is not None:
             return {k: [v for part in parts for v in part[k]] for k in TUNING_COLUMNS}
     return _tuning_chunk(fl, dr, cell_ids)
+
+
+def _may_start_processes():
+    """Whether worker processes are a safe default: a non-daemonic process with one Python thread
+    (inside e.g. a batch worker, which has its own threads and parallelism, stay in one process)."""
+    import multiprocessing
+    import threading
+    return (not multiprocessing.current_process().daemon and threading.active_count() == 1
+            and (os.cpu_count() or 1) > 1)
 
 
 _FLASHED_FIELDS = ("cell_ids", "p_value", "responsive", "peak_lag_s", "peak_response")

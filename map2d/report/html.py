@@ -345,7 +345,11 @@ class _Forked:
 
     def __init__(self, fn, enabled=True):
         self.fn, self.pid, self.fd = fn, None, None
-        if not enabled or not hasattr(os, "fork") or (os.cpu_count() or 1) < 2:
+        import threading
+        # fork only from a single-threaded process (a forked copy of a threaded one, e.g. a batch
+        # worker, can hang on a lock another thread held)
+        if (not enabled or not hasattr(os, "fork") or (os.cpu_count() or 1) < 2
+                or threading.active_count() > 1):
             return
         try:
             r, w = os.pipe()
