@@ -392,7 +392,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     tuning = None
     if an.flashed is not None or an.drifting is not None:
         step("tuning")
-        tuning = grating_tuning_columns(an.flashed, an.drifting, cell_ids=ids)
+        tuning = grating_tuning_columns(an.flashed, an.drifting, cell_ids=ids, n_jobs=n_jobs)
 
     # -- reconciliation --------------------------------------------------------------------------------
     agreement = nan.copy()

@@ -290,3 +290,26 @@ def test_drifting_gratings_without_a_flashed_sequence(full, tmp_path):
     assert all(not bad for _, bad in _all_figures(an))
     src = F._tuning_curves(an, F.select_cells(an, 1)[0][0])
     assert src is not None and src[0] == "drifting"
+
+
+def test_forked_panels_give_the_same_page_as_serial(full, monkeypatch):
+    """Half of the panels drawn in a forked child (speed) must not change a byte of the report."""
+    from map2d.report import html as H
+    an, session = full
+    monkeypatch.setattr(H, "_FORK_MIN_PANELS", 2)
+    made = []
+    real_init = H._Forked.__init__
+
+    def spy(self, fn, enabled=True):
+        real_init(self, fn, enabled)
+        made.append(self.pid)
+    monkeypatch.setattr(H._Forked, "__init__", spy)
+    forked = H.render_report(an, session, max_cells=6)
+    import threading
+    if hasattr(__import__("os"), "fork") and threading.active_count() == 1:
+        assert made and made[0] is not None          # the child really drew half of the panels
+    monkeypatch.setattr(H._Forked, "__init__", lambda self, fn, enabled=True: (
+        setattr(self, "fn", fn), setattr(self, "pid", None), setattr(self, "fd", None))[0])
+    serial = H.render_report(an, session, max_cells=6)
+    assert forked == serial
+    assert forked.count("<section class=\"cell\"") + forked.count("<section class='cell'") >= 2
