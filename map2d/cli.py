@@ -100,6 +100,10 @@ def build_parser() -> argparse.ArgumentParser:
         if name == "analyze":
             p.add_argument("--config", type=Path, default=None,
                            help="NWB mapping (JSON) when SESSION is an .nwb file (see README, NWB input)")
+        if name == "maps":
+            p.add_argument("--no-fits", action="store_true",
+                           help="maps and significance only: no model fits (centre = centroid of the "
+                                "significant region)")
         _add_common(p)
 
     # -- batch ------------------------------------------------------------------------------------
@@ -161,7 +165,8 @@ def _dispatch(args) -> int:
     if args.command == "simulate":
         return pipeline.run_simulate(args)
     if args.command == "maps":
-        return pipeline.run_maps(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed, quiet=args.quiet)
+        return pipeline.run_maps(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed, quiet=args.quiet,
+                                 fits=not args.no_fits)
     if args.command == "gratings":
         return pipeline.run_gratings(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
                                      quiet=args.quiet)

@@ -223,7 +223,7 @@ def run_simulate(args) -> int:
     return 0
 
 
-def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
+def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True) -> int:
     """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``.
 
     ``maps.npz`` holds ``on, off, linear`` and ``on_z, off_z, linear_z`` (float32, cells x lags x ny x nx,
@@ -233,6 +233,10 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
     responsive, center_x_deg, center_y_deg, peak_lag_s`` (the centre of the fitted model's envelope),
     then the map statistics and the fit parameters (the columns of ``map2d analyze`` without the
     grating ones). Cells that are not responsive have empty values.
+
+    With ``fits=False`` (``--no-fits``) only the maps and their statistics are computed: the centre
+    is then the model-free centroid of the significant region around the peak pixel
+    (:func:`map2d.maps.map_centroid_deg`) and there are no fit columns.
     """
     import dataclasses
 
@@ -251,8 +255,18 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
     if max_lag_s / sn.frame_interval_s >= sn.n_frames / 4:
         raise BadInput("--max-lag", None, f"{max_lag_s} s is too long for {sn.n_frames} frames "
                                           f"of {sn.frame_interval_s:.4g} s")
-    an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed)
-    res = an.maps
+    if fits:
+        an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed)
+        res, spatial, model = an.maps, an.spatial_maps, an.model_maps
+        table = {k: v for k, v in an.cells.items() if k not in GRATING_ONLY_COLUMNS}
+    else:
+        from .maps import compute_maps, map_centroid_deg
+        res = compute_maps(session.responses, sn, max_lag_s=max_lag_s, rng=seed)
+        spatial = model = np.full((res.n_cells,) + res.grid.shape, np.nan, dtype=np.float32)
+        centres = np.array([map_centroid_deg(res, c) for c in range(res.n_cells)], dtype=float)
+        table = {"cell": res.cell_ids, "responsive": res.responsive, "center_x_deg": centres[:, 0],
+                 "center_y_deg": centres[:, 1], "peak_lag_s": res.peak_lag_s, "p_value": res.p_value,
+                 "polarity": res.polarity, "onoff_overlap": res.onoff_overlap, "snr": res.snr}
     g = res.grid
     with results_folder(out) as tmp:
         np.savez(  # not compressed: float maps shrink ~15 % for seconds of zlib on large sessions
@@ -261,8 +275,8 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
             lags_s=res.lags_s, cell_ids=res.cell_ids, unit=np.array(res.unit),
             grid_shape=np.array(g.shape), grid_center_deg=np.array([g.center_x_deg, g.center_y_deg]),
             grid_spacing_deg=np.array([g.dx_deg, g.dy_deg]),
-            spatial_maps=an.spatial_maps, model_maps=an.model_maps)
-        write_table(tmp / "cells.csv", {k: v for k, v in an.cells.items() if k not in GRATING_ONLY_COLUMNS})
+            spatial_maps=spatial, model_maps=model)
+        write_table(tmp / "cells.csv", table)
     if not quiet:
         print(f"map2d maps: {int(res.responsive.sum())} of {res.n_cells} cells responsive; "
               f"wrote {Path(out) / 'maps.npz'} and cells.csv")

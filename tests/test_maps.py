@@ -389,3 +389,24 @@ def test_simulated_session_calls_polarity_and_lag(which, request):
             # the 2-deg pixel (the 0.5 deg of issue 3 is for the fitted centre)
             cx, cy = map_centroid_deg(res, i)
             assert np.hypot(cx - c["center_x_deg"], cy - c["center_y_deg"]) < 0.6
+
+
+def test_maps_command_without_fits_writes_centroid_centres(tmp_path):
+    """`map2d maps --no-fits`: maps and significance only; centres are the model-free centroid."""
+    import csv
+
+    from map2d.cli import main
+    from map2d.contract import write_session
+    from map2d.simulate import simulate_session
+    session, truth = simulate_session(n_cells=5, minutes=4.0, flashed_minutes=0, repeats=0, seed=4,
+                                      cell_types=["on_dog", "off_dog", "on_dog", "unresponsive", "off_dog"])
+    write_session(tmp_path / "s", session)
+    assert main(["maps", str(tmp_path / "s"), "--out", str(tmp_path / "o"), "--no-fits", "--quiet"]) == 0
+    rows = list(csv.DictReader(open(tmp_path / "o" / "cells.csv", encoding="utf-8")))
+    assert "model" not in rows[0]
+    for r, t in zip(rows, truth["cells"]):
+        if t["kind"] == "unresponsive":
+            assert r["responsive"] == "false" and r["center_x_deg"] == ""
+        elif r["responsive"] == "true":
+            err = np.hypot(float(r["center_x_deg"]) - t["center_x_deg"], float(r["center_y_deg"]) - t["center_y_deg"])
+            assert err < 1.0
