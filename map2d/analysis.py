@@ -446,7 +446,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     cells["agreement"] = list(agreement)
     f1f0 = np.asarray([np.nan if v is None else v for v in cells["f1_f0"]], float)
     overlap = None if an.maps is None else np.asarray(an.maps.onoff_overlap, float)
-    responsive = None if an.maps is None else np.asarray(an.maps.responsive, bool)
+    # no sparse noise: no map, so the call is empty with the reason "no map"
+    responsive = np.full(C, None, object) if an.maps is None else np.asarray(an.maps.responsive, bool)
     # criteria that are missing (no map, no gratings) are skipped or leave the call empty
     linear, reason = reconcile.linearity_call(agreement, f1f0, overlap, responsive)
     cells["linear"] = list(linear)

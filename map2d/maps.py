@@ -1041,7 +1041,8 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
 
     shape = (C, L, ny, nx)
     return MapResult(
-        grid=grid, lags_s=lags * frame_s, lag_frames=lags, cell_ids=cell_ids, unit=unit, stimulus=stimulus,
+        grid=grid, lags_s=np.round(lags * frame_s, 9),  # to the ns: no float noise in files
+        lag_frames=lags, cell_ids=cell_ids, unit=unit, stimulus=stimulus,
         on=maps[0].reshape(shape), off=maps[1].reshape(shape), linear=maps[2].reshape(shape),
         on_z=z[0].reshape(shape), off_z=z[1].reshape(shape), linear_z=z[2].reshape(shape),
         responsive=responsive, p_value=p, max_abs_z=T, z_critical=zcrit, peak_lag_index=peak_idx,

@@ -269,3 +269,14 @@ def test_maps_command_writes_fitted_centres(simulated, tmp_path):
             assert r["responsive"] == "false" and r["center_x_deg"] == "" and r["model"] == ""
     with np.load(out / "maps.npz") as z:
         assert z["model_maps"].shape == (12,) + session.sparse_noise.grid.shape
+
+
+def test_gratings_only_session_leaves_map_columns_and_linear_call_empty():
+    """Without sparse noise there is no map to compare: linear is empty with the reason 'no map'."""
+    import dataclasses
+    session, _ = simulate_session(n_cells=5, minutes=0.5, flashed_minutes=1.0, repeats=1, seed=1)
+    an = analyze_session(dataclasses.replace(session, sparse_noise=None), rng=0)
+    assert an.maps is None
+    assert all(v is None for v in an.cells["linear"])
+    assert set(map(str, an.cells["linear_reason"])) == {"no map"}
+    assert all(v is None for v in an.cells["responsive"])
