@@ -339,7 +339,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
       ``grating_signal_fraction`` and ``grating_signal_p`` say what was done.
     """
     from . import reconcile
-    from .fit.spatial import fit_map, fit_maps
+    from .fit.spatial import fit_maps
     from .fit.tuning import TUNING_COLUMNS, grating_tuning_columns
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
     from .maps import compute_maps

@@ -47,6 +47,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
+from ._forked import ForkedCall
 from .align import interval_responses, spikes_in_intervals
 from .contract import SparseNoise, Spikes, Traces
 from .geometry import Grid
@@ -806,7 +807,8 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
     n_sub, starts, n_a, _ = plan
     if n_jobs is None:
         n_jobs = 2 if F * C * L >= _FORK_MIN_WORK and (os.cpu_count() or 1) > 1 else 1
-    child = _Child(lambda: _first_stage(null_stats, cells, offsets[:n_a], C, L, starts), enabled=n_jobs > 1)
+    child = ForkedCall(lambda: _first_stage(null_stats, cells, offsets[:n_a], C, L, starts),
+                       enabled=n_jobs > 1)
 
     maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
     asd = np.full((3, C, L, P), np.nan, dtype=np.float32)
@@ -897,54 +899,6 @@ def _first_stage(null_stats, cells, offs, C, L, starts):
             nsq[:, cells] += fin.sum(axis=(2, 3))
             kmax[k][:, cells] = _block_max(zn, starts)
     return sumsq, nsq, kmax
-
-
-class _Child:
-    """Run ``fn()`` in a forked child process (the second core) while the caller keeps working.
-
-    The child inherits every array (copy-on-write, nothing is pickled on the way in) and sends its
-    result back through a pipe. Where fork is unavailable or anything fails, ``result()`` runs
-    ``fn()`` here instead, so the answer never depends on it.
-    """
-
-    def __init__(self, fn, enabled=True):
-        import os
-        self.fn, self.pid, self.fd = fn, None, None
-        if not enabled or not hasattr(os, "fork"):
-            return
-        import pickle
-        try:
-            r, w = os.pipe()
-            pid = os.fork()
-        except OSError:
-            return
-        if pid == 0:                                                   # child
-            code = 0
-            try:
-                os.close(r)
-                with os.fdopen(w, "wb") as fh:
-                    pickle.dump(fn(), fh, protocol=pickle.HIGHEST_PROTOCOL)
-            except BaseException:
-                code = 1
-            finally:
-                os._exit(code)
-        os.close(w)
-        self.pid, self.fd = pid, r
-
-    def result(self):
-        if self.pid is None:
-            return self.fn()
-        import os
-        import pickle
-        try:
-            with os.fdopen(self.fd, "rb") as fh:
-                out = pickle.load(fh)
-        except Exception:
-            out = None
-        _, status = os.waitpid(self.pid, 0)
-        if out is None or status != 0:
-            return self.fn()
-        return out
 
 
 def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, frame_s, unit, alpha,

@@ -9,12 +9,11 @@ from __future__ import annotations
 
 import html
 import math
-import os
-import pickle
 from pathlib import Path
 
 import numpy as np
 
+from .._forked import ForkedCall
 from . import figures as F
 
 __all__ = ["write_report", "render_report", "REPORT_FILE", "DEFAULT_MAX_CELLS"]
@@ -335,52 +334,7 @@ def _cell_sections(an, rows):
     return out
 
 
-class _Forked:
-    """``fn()`` run in a forked child process (the second core) while the caller keeps working.
-
-    The child inherits the analysis (copy-on-write, nothing is pickled on the way in) and sends its
-    result back through a pipe. Where fork is unavailable or anything fails, :meth:`result` runs
-    ``fn()`` here instead, so the output never depends on it.
-    """
-
-    def __init__(self, fn, enabled=True):
-        self.fn, self.pid, self.fd = fn, None, None
-        import threading
-        # fork only from a single-threaded process (a forked copy of a threaded one, e.g. a batch
-        # worker, can hang on a lock another thread held)
-        if (not enabled or not hasattr(os, "fork") or (os.cpu_count() or 1) < 2
-                or threading.active_count() > 1):
-            return
-        try:
-            r, w = os.pipe()
-            pid = os.fork()
-        except OSError:
-            return
-        if pid == 0:                                                   # child
-            code = 0
-            try:
-                os.close(r)
-                with os.fdopen(w, "wb") as fh:
-                    pickle.dump(fn(), fh, protocol=pickle.HIGHEST_PROTOCOL)
-            except BaseException:
-                code = 1
-            finally:
-                os._exit(code)
-        os.close(w)
-        self.pid, self.fd = pid, r
-
-    def result(self):
-        if self.pid is None:
-            return self.fn()
-        try:
-            with os.fdopen(self.fd, "rb") as fh:
-                out = pickle.load(fh)
-        except Exception:
-            out = None
-        _, status = os.waitpid(self.pid, 0)
-        if out is None or status != 0:
-            return self.fn()
-        return out
+_Forked = ForkedCall  # the shared helper (map2d._forked)
 
 
 def write_report(folder, analysis, session=None, max_cells="default") -> Path:
