@@ -12,14 +12,16 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy import signal, stats
+from scipy import stats
 
 from map2d.align import interval_responses
-from map2d.contract import Session, SparseNoise, Spikes, Traces, find_frame_gaps, load_session, write_session
+from map2d.contract import Session, SparseNoise, find_frame_gaps, load_session, write_session
 from map2d.geometry import Grid
 from map2d.maps import compute_maps, frame_responses, map_lags
 from map2d.models import gaussian2d
 from map2d.stimuli.sparse_noise import make_sparse_noise
+
+from _lnp import spikes_from_rates, traces_from_rates
 
 
 # ----------------------------------------------------------------------------------------------
@@ -52,28 +54,11 @@ def _rates(noise, kernels, latency_s, base=5.0, gain=40.0):
     return np.maximum(base + gain * drive, 0.0)
 
 
-def _spikes(noise, rates, rng):
-    """Poisson spike times: per-frame counts, times uniform within each frame."""
-    rng = np.random.default_rng(rng)
-    starts, ends = noise.times_s, noise.frame_ends_s()
-    counts = rng.poisson(rates * (ends - starts)[None])
-    cell, frame = np.nonzero(counts)
-    reps = counts[cell, frame]
-    cell, frame = np.repeat(cell, reps), np.repeat(frame, reps)
-    t = starts[frame] + rng.uniform(0, 1, frame.size) * (ends - starts)[frame]
-    order = np.argsort(t)
-    return Spikes(time_s=t[order], cell=cell[order], cell_ids=np.arange(rates.shape[0]))
+_spikes = spikes_from_rates
 
 
 def _traces(noise, rates, rng, fs=40.0, tau_s=0.5, noise_sd=0.05, amp=0.02):
-    """Calcium-like traces: Poisson events at the imaging rate, exponential decay, Gaussian noise."""
-    rng = np.random.default_rng(rng)
-    t = np.arange(noise.times_s[0], noise.frame_ends_s()[-1], 1 / fs)
-    k = np.clip(np.searchsorted(noise.times_s, t, side="right") - 1, 0, noise.n_frames - 1)
-    events = rng.poisson(rates[:, k] / fs)
-    calcium = signal.lfilter([1.0], [1.0, -np.exp(-1 / (fs * tau_s))], events, axis=1) * amp
-    return Traces(values=(calcium + noise_sd * rng.standard_normal(calcium.shape)).astype(np.float32),
-                  times_s=t)
+    return traces_from_rates(noise, rates, rng, fs, tau_s, noise_sd, amp)
 
 
 def _kernel(grid, x0, y0, sigma, sign):

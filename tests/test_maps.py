@@ -12,16 +12,17 @@ import csv
 
 import numpy as np
 import pytest
-from scipy import ndimage, signal, stats
+from scipy import ndimage, stats
 
-from map2d.align import interval_responses
 from map2d.cli import main
-from map2d.contract import Session, SparseNoise, Spikes, Traces, write_session
+from map2d.contract import Session, SparseNoise, Spikes, write_session
 from map2d.geometry import Grid
 from map2d.maps import (compute_maps, dense_sta, frame_responses, map_centroid_deg, map_lags,
                         whitened_sta)
 from map2d.models import gaussian2d
 from map2d.stimuli.sparse_noise import make_sparse_noise
+
+from _lnp import spikes_from_rates, traces_from_rates
 
 
 # ----------------------------------------------------------------------------------------------
@@ -43,29 +44,11 @@ def _rates(noise, kernels, latency, base=5.0, gain=40.0):
     return np.maximum(base + gain * lagged, 0.0)
 
 
-def _spikes_from_rates(noise, rates, rng):
-    """Poisson spike times: per-frame counts, times uniform within each frame."""
-    rng = np.random.default_rng(rng)
-    starts, ends = noise.times_s, noise.frame_ends_s()
-    counts = rng.poisson(rates * (ends - starts)[None])
-    cell, frame = np.nonzero(counts)
-    reps = counts[cell, frame]
-    cell, frame = np.repeat(cell, reps), np.repeat(frame, reps)
-    t = starts[frame] + rng.uniform(0, 1, frame.size) * (ends - starts)[frame]
-    order = np.argsort(t)
-    return Spikes(time_s=t[order], cell=cell[order], cell_ids=np.arange(rates.shape[0]))
+_spikes_from_rates = spikes_from_rates
 
 
 def _traces_from_rates(noise, rates, rng, fs=30.0, tau_s=1.0, noise_sd=0.05, amp=0.02):
-    """Calcium-like traces: Poisson events at the imaging rate, exponential decay, Gaussian noise."""
-    rng = np.random.default_rng(rng)
-    t = np.arange(noise.times_s[0], noise.frame_ends_s()[-1], 1 / fs)
-    k = np.clip(np.searchsorted(noise.times_s, t, side="right") - 1, 0, noise.n_frames - 1)
-    events = rng.poisson(rates[:, k] / fs)
-    a = np.exp(-1 / (fs * tau_s))
-    calcium = signal.lfilter([1.0], [1.0, -a], events, axis=1) * amp
-    values = calcium + noise_sd * rng.standard_normal(calcium.shape)
-    return Traces(values=values.astype(np.float32), times_s=t)
+    return traces_from_rates(noise, rates, rng, fs, tau_s, noise_sd, amp)
 
 
 GRID = Grid(ny=9, nx=11, center_x_deg=10.0, center_y_deg=-4.0, dx_deg=2.0, dy_deg=2.0)
