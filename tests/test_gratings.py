@@ -436,23 +436,35 @@ def test_simulated_session_tuning_and_class(kind, ori_tol):
             assert cols["grating_class"][i] == "simple"
 
 
-@pytest.mark.parametrize("seed", [1, 2])
-def test_simulated_spikes_preferred_sf_within_ten_percent(seed):
-    """Issue 4 tolerance on the simulator (spikes): preferred SF within 10 %, orientation within 5 deg.
+@pytest.mark.parametrize("kind,minutes,seed", [("spikes", 5, 1), ("spikes", 5, 2), ("traces", 12, 1),
+                                                ("traces", 12, 2)])
+def test_simulated_preferred_sf_within_ten_percent(kind, minutes, seed):
+    """Issue 4 tolerances on the simulator: preferred SF within 10 %, orientation within 5 deg, for spikes
+    and for calcium-like traces (indicator decay 0.4 s), and the 95 % intervals of the preferred SF cover
+    the truth about as often as they should.
 
-    Design: 7 SFs half an octave apart (0.02-0.16 cycles/deg) and 5 minutes of flashed gratings at
-    gains of 150-250 spikes/s. Measured on seeds 1-3: worst SF error 8.4 %, orientation 2.6 deg.
+    Design: 7 SFs half an octave apart (0.02-0.16 cycles/deg), 12 orientations, gains of 150-250 spikes/s;
+    5 minutes of flashed gratings for spikes, 12 for traces (the indicator's low-pass costs signal).
+    Measured on seeds 1-8 (traces) and 1-6 (spikes), 8 tuned cells each: worst SF error 7.5 % (both),
+    orientation 4.1 deg; the SF interval covered the truth for 59 of 64 (traces) and 46 of 48 (spikes)
+    cells. With 8 minutes of traces the worst SF error was 9.1 %, with 5 minutes 28 % (noise-limited).
     """
     simulate = pytest.importorskip("map2d.simulate")
-    s, truth = simulate.simulate_session(n_cells=12, minutes=0, flashed_minutes=5, repeats=3, seed=seed,
-                                         sfs_cpd=np.geomspace(0.02, 0.16, 7), peak_rate_hz=(150.0, 250.0))
+    s, truth = simulate.simulate_session(n_cells=12, minutes=0, flashed_minutes=minutes, repeats=3, seed=seed,
+                                         responses=kind, sfs_cpd=np.geomspace(0.02, 0.16, 7),
+                                         peak_rate_hz=(150.0, 250.0))
     fl = analyze_flashed(s.responses, s.gratings, rng=0)
     dr = analyze_drifting(s.responses, s.gratings)
     cols = grating_tuning_columns(fl, dr)
     tuned = [i for i, tc in enumerate(truth["cells"]) if tc["kind"] in ("simple", "complex")]
-    assert tuned
+    assert len(tuned) >= 6
+    covered = 0
     for i in tuned:
         tc = truth["cells"][i]
         assert cols["pref_sf_cpd"][i] == pytest.approx(tc["pref_sf_cpd"], rel=0.10), i
         d = abs((cols["pref_orientation_deg"][i] - tc["pref_orientation_deg"] + 90) % 180 - 90)
         assert d < 5.0, i
+        assert cols["grating_class"][i] == tc["kind"]      # F1/F0 > 1 simple (Skottun et al. 1991)
+        covered += cols["pref_sf_ci_low_cpd"][i] <= tc["pref_sf_cpd"] <= cols["pref_sf_ci_high_cpd"][i]
+    # nominal 95 %: at most 2 of 8 misses (binomial probability of 3 or more at 95 %: about 0.6 %)
+    assert covered >= len(tuned) - 2

@@ -313,3 +313,21 @@ def test_forked_panels_give_the_same_page_as_serial(full, monkeypatch):
     serial = H.render_report(an, session, max_cells=6)
     assert forked == serial
     assert forked.count("<section class=\"cell\"") + forked.count("<section class='cell'") >= 2
+
+
+def test_sf_panel_shows_the_tables_preferred_sf(full):
+    """The SF panel's fitted curve is the table's fit (surface fit for orientation-tuned cells): its
+    preferred SF is the one in cells.csv."""
+    an, _ = full
+    checked = 0
+    for c in range(len(an.cell_ids)):
+        pref = F._vfloat(an, "pref_sf_cpd", c)
+        got = F._tuning_curves(an, c)
+        if got is None or not np.isfinite(pref):
+            continue
+        src, th, oc, sfs, sc, surface, ofit = got
+        curve = F._sf_fit_curve(sfs, sc, np.geomspace(sfs.min(), sfs.max(), 20), th, surface, ofit)
+        assert curve is not None
+        assert curve[1] == pytest.approx(pref, rel=1e-6), c
+        checked += surface is not None
+    assert checked >= 1

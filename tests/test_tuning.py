@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 from scipy import special
 
-from map2d.fit.tuning import (circular_variance, f1_f0, fit_direction, fit_orientation, fit_sf, gaussian_sf,
+from map2d.fit.tuning import (circular_variance, f1_f0, fit_direction, fit_orientation, fit_sf, fit_sf_surface,
+                              gaussian_sf,
                               log_gaussian_sf, osi, von_mises_direction, von_mises_orientation)
 
 TH = np.arange(0.0, 180.0, 7.5)
@@ -261,3 +262,61 @@ def test_no_worker_processes_by_default_beside_other_threads():
     finally:
         stop.set()
         t.join()
+
+
+def _skimage_gabor_surface(theta_deg, sf_cpd, dx_deg=0.25):
+    """|H| of an even, elongated Gabor from ``skimage.filters.gabor_kernel`` by exact Fourier sums
+    ``sum k(x) exp(i 2 pi k.x) dA`` at the given orientations x SFs, and a function giving ``|H|`` anywhere."""
+    filters = pytest.importorskip("skimage.filters")
+    # carrier 0.1 cycles/pixel (0.4 cpd at 0.25 deg/pixel) at 37 deg, envelope 4 x 8 pixels (elongated
+    # along the bars); skimage's kernel is exp(-(x'^2/sx^2 + y'^2/sy^2)/2) cos(2 pi f x')
+    k = np.real(filters.gabor_kernel(0.1, theta=np.deg2rad(37.0), sigma_x=4.0, sigma_y=8.0, n_stds=4))
+    n_r, n_c = k.shape
+    yy, xx = np.mgrid[:n_r, :n_c]
+    x = (xx - (n_c - 1) / 2) * dx_deg
+    y = (yy - (n_r - 1) / 2) * dx_deg
+
+    def mag(th_deg, f):
+        th, f = np.broadcast_arrays(np.deg2rad(np.asarray(th_deg, float)), np.asarray(f, float))
+        kx, ky = f * np.cos(th), f * np.sin(th)
+        ph = np.exp(2j * np.pi * (kx[..., None] * x.ravel() + ky[..., None] * y.ravel()))
+        return np.abs(ph @ k.ravel()) * dx_deg**2
+
+    return mag(np.asarray(theta_deg)[:, None], np.asarray(sf_cpd)[None, :]), mag
+
+
+def test_sf_from_the_surface_finds_the_peak_of_an_elongated_gabor_spectrum():
+    """The preferred SF of a Gabor is where its spectrum peaks (Jones & Palmer 1987 model; the spectrum
+    is the Fourier pair of the Gaussian envelope, Bracewell). Rows off the preferred orientation peak at
+    lower SFs, so averaging the rows near the preference reads the SF low; the surface fit does not.
+    Reference spectrum: exact Fourier sums of skimage.filters.gabor_kernel."""
+    from scipy import optimize
+
+    th = np.arange(0.0, 180.0, 15.0)          # the preference (37 deg + rotation sign) lies between rows
+    f = np.geomspace(0.1, 0.8, 7)             # half an octave apart
+    surface, mag = _skimage_gabor_surface(th, f)
+    # the true peak, numerically, from the best grid point
+    i, j = np.unravel_index(np.argmax(surface), surface.shape)
+    res = optimize.minimize(lambda p: -mag(p[0], p[1]), [th[i], f[j]], method="Nelder-Mead",
+                            options={"xatol": 1e-7, "fatol": 1e-12})
+    true_theta, true_sf = res.x
+    ofit = fit_orientation(th, surface.max(axis=1))
+    off = abs((th - true_theta + 90) % 180 - 90).min()
+    assert off > 5.0                           # the test is about rows that miss the preference
+    s = fit_sf_surface(th, f, surface, ofit)
+    assert s.ok
+    assert s.pref_cpd == pytest.approx(true_sf, rel=0.01)
+    assert s.pref_ci_low_cpd <= s.pref_cpd <= s.pref_ci_high_cpd
+    # why: the three rows nearest the preference, pooled, give an SF curve that peaks low
+    near = np.argsort(abs((th - ofit.pref_deg + 90) % 180 - 90))[:3]
+    pooled = fit_sf(f, surface[near].mean(axis=0))
+    assert pooled.pref_cpd < true_sf * 0.98
+
+
+def test_sf_from_the_surface_needs_an_orientation_fit_and_three_sfs():
+    th = np.arange(0.0, 180.0, 15.0)
+    surface, _ = _skimage_gabor_surface(th, np.array([0.2, 0.4]))
+    ofit = fit_orientation(th, surface.max(axis=1))
+    assert not fit_sf_surface(th, [0.2, 0.4], surface, ofit).ok
+    surface, _ = _skimage_gabor_surface(th, np.array([0.2, 0.3, 0.4]))
+    assert not fit_sf_surface(th, [0.2, 0.3, 0.4], surface, fit_orientation(th, np.ones(th.size))).ok

@@ -46,7 +46,8 @@ from scipy import optimize, stats
 __all__ = [
     "von_mises_orientation", "von_mises_direction", "log_gaussian_sf", "gaussian_sf",
     "OrientationFit", "SFFit", "DirectionFit",
-    "fit_orientation", "fit_direction", "fit_sf",
+    "fit_orientation", "fit_direction", "fit_sf", "fit_sf_surface", "separable_surface",
+    "gabor_spectrum_surface",
     "circular_variance", "osi", "f1_f0", "grating_tuning_columns", "TUNING_COLUMNS",
 ]
 
@@ -636,11 +637,17 @@ def fit_sf(sf_cpd, r) -> SFFit:
             continue
         ssr = float(np.sum((model(f, *p) - y) ** 2))
         fits.append(_sf_summary(name, p, cov, fit.r2, ssr, lo, hi, _t95(f.size - (4 if free_b else 3))))
+    return _combine_sf_fits(fits, f.size, empty)
+
+
+def _combine_sf_fits(fits, n, empty):
+    """Akaike-weighted average of SF fits (:func:`_sf_summary` dicts) with equal parameter counts."""
+    nan = float("nan")
     if not fits:
         return empty
     # Akaike weights (equal parameter counts): w_i proportional to SSR_i^(-n/2)
     ssr = np.array([max(x["ssr"], 1e-300) for x in fits])
-    logw = -0.5 * f.size * np.log(ssr)
+    logw = -0.5 * n * np.log(ssr)
     w = np.exp(logw - logw.max())
     w /= w.sum()
     best = fits[int(np.argmax(w))]
@@ -702,6 +709,151 @@ def _sf_summary(name, p, cov, r2, ssr, lo, hi, t95):
             "bandwidth_ci95_oct": _delta_ci(bw_fun, p, cov, [2, 3], t95) if np.isfinite(bw) else nan}
 
 
+def separable_surface(theta_deg, sf_cpd, b, a, kappa, theta0_deg, log2_f0, sigma_oct):
+    """Orientation x SF surface separable in polar coordinates: von Mises on the doubled angle times a
+    log-Gaussian in SF, ``b + a exp(kappa (cos 2(theta - theta0) - 1)) exp(-(log2(f/f0))^2 / (2 sigma^2))``."""
+    th, f = np.asarray(theta_deg, float), np.asarray(sf_cpd, float)
+    z = (np.log2(f) - log2_f0) / sigma_oct
+    return b + a * np.exp(kappa * (np.cos(2.0 * np.deg2rad(th - theta0_deg)) - 1.0) - 0.5 * z * z)
+
+
+def _jac_separable(x, b, a, kappa, theta0_deg, log2_f0, sigma_oct):
+    th, f = x
+    d2 = 2.0 * np.deg2rad(th - theta0_deg)
+    c2 = np.cos(d2) - 1.0
+    z = (np.log2(f) - log2_f0) / sigma_oct
+    g = np.exp(kappa * c2 - 0.5 * z * z)
+    ag = a * g
+    return np.column_stack([np.ones_like(g), g, ag * c2, ag * kappa * 2.0 * _RAD * np.sin(d2),
+                            ag * z / sigma_oct, ag * z * z / sigma_oct])
+
+
+def _wave_coords(th, f, theta0_deg):
+    """Components of the wave vector ``(f, theta)`` along and across ``theta0`` (orientations mod 180,
+    so the along component is >= 0: ``|H(-k)| = |H(k)|`` for a real kernel)."""
+    d = np.deg2rad(np.mod(th - theta0_deg + 90.0, 180.0) - 90.0)
+    return f * np.cos(d), f * np.sin(d), d
+
+
+def gabor_spectrum_surface(theta_deg, sf_cpd, b, a, theta0_deg, f0_cpd, sigma_u_cpd, sigma_v_cpd):
+    """Orientation x SF surface of a Gabor's amplitude spectrum: a 2-D Gaussian in the wave-vector
+    plane around ``f0`` along ``theta0`` (the Fourier pair of the Gaussian envelope, Bracewell, The
+    Fourier Transform and Its Applications; the mirror lobe at ``-f0`` neglected),
+    ``b + a exp(-(k_u - f0)^2 / (2 sigma_u^2) - k_v^2 / (2 sigma_v^2))``."""
+    th, f = np.asarray(theta_deg, float), np.asarray(sf_cpd, float)
+    ku, kv, _ = _wave_coords(th, f, theta0_deg)
+    return b + a * np.exp(-0.5 * ((ku - f0_cpd) / sigma_u_cpd) ** 2 - 0.5 * (kv / sigma_v_cpd) ** 2)
+
+
+def _jac_gabor_surface(x, b, a, theta0_deg, f0_cpd, sigma_u_cpd, sigma_v_cpd):
+    th, f = x
+    ku, kv, d = _wave_coords(th, f, theta0_deg)
+    p = (ku - f0_cpd) / sigma_u_cpd
+    q = kv / sigma_v_cpd
+    g = np.exp(-0.5 * p * p - 0.5 * q * q)
+    ag = a * g
+    # d ku / d theta0 = f sin d, d kv / d theta0 = -f cos d (per radian)
+    dt0 = _RAD * (-ag * p / sigma_u_cpd * f * np.sin(d) + ag * q / sigma_v_cpd * f * np.cos(d))
+    return np.column_stack([np.ones_like(g), g, dt0, ag * p / sigma_u_cpd, ag * p * p / sigma_u_cpd,
+                            ag * q * q / sigma_v_cpd])
+
+
+def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
+    """Preferred SF and SF bandwidth from the whole orientation x SF surface of an orientation-tuned cell.
+
+    The SF tuning of a row of the surface depends on how far the row lies from the preferred
+    orientation: a Gabor's spectrum is a 2-D Gaussian around its wave vector, so a row ``d`` degrees
+    off peaks near ``cos d`` times the preferred SF, and lower still when the envelope is elongated
+    along the bars (Bracewell, The Fourier Transform and Its Applications). Averaging the rows near
+    the preference therefore reads the preferred SF low (about 3 % with 12 orientations on simulated
+    Gabor cells, 7 % for an envelope twice as long as wide), and a single row is noisy. Here two
+    surfaces with six parameters each are fitted to every point of the (orientation x SF) surface:
+    :func:`gabor_spectrum_surface` (a Gaussian blob in the wave-vector plane; linear cells with Gabor
+    receptive fields, Jones & Palmer 1987) and :func:`separable_surface` (von Mises times
+    log-Gaussian, separable in polar coordinates; the form often used for cortical cells). The
+    preferred SF, its 95 % interval and the bandwidth are those of each fit's profile along the
+    preferred orientation, averaged with Akaike weights as in :func:`fit_sf`; ``params`` are
+    ``(b, a, centre, width)`` of that profile (``model`` ``"gaussian"`` for the blob, whose profile is
+    Gaussian in linear SF, ``"log_gaussian"`` for the separable surface).
+
+    Parameters
+    ----------
+    theta_deg : (O,) orientations, sf_cpd : (S,) SFs, surface : (O, S) responses
+    ofit : OrientationFit
+        The cell's orientation fit (starts for preference and concentration).
+
+    Returns
+    -------
+    SFFit (``ok`` False when the surface cannot be fitted: fewer than 3 SFs or 8 points, no
+    orientation fit).
+    """
+    th = np.asarray(theta_deg, float)
+    f = np.asarray(sf_cpd, float)
+    y2 = np.asarray(surface, float)
+    nan = float("nan")
+    empty = SFFit(nan, nan, nan, nan, nan, np.full(4, nan), nan, False, "")
+    good_f = np.isfinite(f) & (f > 0)
+    if good_f.sum() < 3 or not ofit.ok or y2.shape != (th.size, f.size):
+        return empty
+    T, F = np.meshgrid(th, f, indexing="ij")
+    ok = np.isfinite(y2) & good_f[None, :] & np.isfinite(T)
+    T, F, y = T[ok], F[ok], y2[ok]
+    if y.size < 8 or np.ptp(y) <= 0 or not y.max() > 0:
+        return empty
+    lf = np.log2(f[good_f])
+    lo, hi = float(lf.min()), float(lf.max())
+    f_lo, f_hi = float(f[good_f].min()), float(f[good_f].max())
+    span = max(abs(float(y.max())), abs(float(y.min())), float(np.ptp(y)))
+    b_lo, b_hi, a_hi = -10 * span - 1e-9, 10 * span + 1e-9, 20 * span + 1e-9
+    kappa0 = float(np.clip(ofit.params[2], 1e-3, 50.0))
+    t0 = float(ofit.params[3])
+    s_hi_oct = max(4.0, 2 * (hi - lo))
+    # starts: the SF profile of the rows nearest the preference, screened as in fit_sf
+    near = _sf_near(th, y2, ofit)
+    fn = np.isfinite(near) & good_f
+    i_max = int(np.argmax(y))
+    fits = []
+    for name in ("log_gaussian", "gaussian"):
+        if name == "log_gaussian":
+            u, centres = np.log2(f), np.arange(lo - 2.0, hi + 2.0 + 1e-9, 0.25)
+            widths = np.geomspace(0.15, s_hi_oct, int(np.ceil(np.log2(s_hi_oct / 0.15) * 4)) + 1)
+            c_lim, w_lim = (lo - 2.0, hi + 2.0), (0.15, s_hi_oct)
+        else:
+            u, centres = f, 2.0 ** np.arange(np.log2(f_lo / 4), np.log2(f_hi * 4) + 1e-9, 0.25)
+            widths = np.geomspace(0.02 * f_lo, 4 * f_hi, int(np.ceil(np.log2(200 * f_hi / f_lo) * 3)) + 1)
+            c_lim, w_lim = (f_lo / 4, f_hi * 4), (0.02 * f_lo, 4 * f_hi)
+        start = _screen_gauss(u[fn], near[fn], centres, widths, True, a_hi, b_lo, b_hi) if fn.sum() >= 3 else None
+        if start is None:
+            start = [float(y.min()), float(np.ptp(y)), float(np.log2(F[i_max]) if name == "log_gaussian"
+                                                             else F[i_max]), float(widths[len(widths) // 2])]
+        b0, a0, c0, w0 = start
+        c0, w0 = float(np.clip(c0, *c_lim)), float(np.clip(w0, *w_lim))
+        if name == "log_gaussian":
+            model, jac = separable_surface, _jac_separable
+            p0s = [[b0, a0, kappa0, t0, c0, w0]]
+            lower = [b_lo, 0.0, 1e-3, t0 - 90.0, c_lim[0], w_lim[0]]
+            upper = [b_hi, a_hi, 50.0, t0 + 90.0, c_lim[1], w_lim[1]]
+            idx = [0, 1, 4, 5]
+        else:
+            model, jac = gabor_spectrum_surface, _jac_gabor_surface
+            # across-axis width: a row d off the preference falls as the von Mises fit does there
+            hw = ofit.hwhh_deg if np.isfinite(ofit.hwhh_deg) else 30.0
+            sv0 = float(np.clip(c0 * np.sin(np.deg2rad(hw)) / np.sqrt(2.0 * _LN2), *w_lim))
+            p0s = [[b0, a0, t0, c0, w0, sv0]]
+            lower = [b_lo, 0.0, t0 - 90.0, c_lim[0], w_lim[0], w_lim[0]]
+            upper = [b_hi, a_hi, t0 + 90.0, c_lim[1], w_lim[1], w_lim[1]]
+            idx = [0, 1, 3, 4]
+        fit = _least_squares(lambda x, *q, m=model: m(x[0], x[1], *q), (T, F), y, p0s, lower, upper,
+                             jac=jac)
+        if not fit.ok or not fit.params[1] > 0:
+            continue
+        p = fit.params
+        ssr = float(np.sum((model(T, F, *p) - y) ** 2))
+        fits.append(_sf_summary(name, p[idx], fit.cov[np.ix_(idx, idx)], fit.r2, ssr, lo, hi,
+                                _t95(y.size - len(p))))
+    return _combine_sf_fits(fits, y.size, empty)
+
+
 # ----------------------------------------------------------------------------------------------
 # cells.csv columns
 # ----------------------------------------------------------------------------------------------
@@ -748,6 +900,16 @@ def _sf_near(theta_deg, surface, ofit):
     ok = np.isfinite(rows)
     with np.errstate(invalid="ignore", divide="ignore"):
         return (np.where(ok, rows, 0.0) * w[:, None]).sum(0) / (ok * w[:, None]).sum(0)
+
+
+def table_sf_fit(theta_deg, sf_cpd, sf_curve, surface, ofit) -> SFFit:
+    """The SF fit behind ``cells.csv``: :func:`fit_sf_surface` for an orientation-tuned cell with an
+    (orientation x SF) surface, else (or when that fit fails) :func:`fit_sf` on ``sf_curve``."""
+    if surface is not None and ofit is not None and ofit.tuned:
+        sfit = fit_sf_surface(theta_deg, sf_cpd, surface, ofit)
+        if sfit.ok:
+            return sfit
+    return fit_sf(sf_cpd, sf_curve)
 
 
 def _drifting_curves(dr, c):
@@ -922,7 +1084,7 @@ def _tuning_chunk(flashed, drifting, cell_ids):
                            orientation_hwhh_deg=of.hwhh_deg, orientation_hwhh_ci95_deg=of.hwhh_ci95_deg,
                            ori_fit_baseline=of.params[0], ori_fit_amplitude=of.params[1],
                            ori_fit_kappa=of.params[2], ori_fit_r2=of.r2)
-            sfit = fit_sf(sfs, scurve)
+            sfit = table_sf_fit(th, sfs, scurve, surface, of)
             if sfit.ok:
                 row.update(pref_sf_cpd=sfit.pref_cpd, pref_sf_ci_low_cpd=sfit.pref_ci_low_cpd,
                            pref_sf_ci_high_cpd=sfit.pref_ci_high_cpd, sf_bandwidth_oct=sfit.bandwidth_oct,

@@ -394,7 +394,8 @@ def _log_ticks(axis, values):
 
 
 def _tuning_curves(an, c):
-    """``(source, orientations, orientation curve, SFs, SF curve)`` of one cell, or None.
+    """``(source, orientations, orientation curve, SFs, SF curve, surface, orientation fit)`` of one cell,
+    or None (surface and orientation fit are None unless the table fitted the SF on the surface).
 
     The curves ``cells.csv`` is fitted to (:func:`map2d.fit.tuning.grating_tuning_columns`): from the
     flashed sequence, or from drifting gratings when the table says so (or without a flashed sequence).
@@ -422,10 +423,14 @@ def _tuning_curves(an, c):
         th, oc, sfs, sc = (np.asarray(a, float) for a in curves[:4])
         surface = curves[4] if len(curves) > 4 else None
         p = _ori_fit_params(an, c)
-        near = getattr(tu, "_sf_near", None)
-        if s == src and surface is not None and p is not None and near is not None:
-            sc = np.asarray(near(th, np.asarray(surface, float), SimpleNamespace(pref_deg=p[3], params=p)), float)
-        return s, th, oc, sfs, sc
+        ofit = None
+        if s == src and surface is not None and p is not None:
+            surface = np.asarray(surface, float)
+            ofit = tu.OrientationFit(pref_deg=float(p[3]), pref_ci95_deg=np.nan,
+                                     hwhh_deg=_vfloat(an, "orientation_hwhh_deg", c), hwhh_ci95_deg=np.nan,
+                                     params=p, r2=np.nan, ok=True, p_tuned=0.0)
+            sc = np.asarray(tu._sf_near(th, surface, SimpleNamespace(pref_deg=p[3], params=p)), float)
+        return s, th, oc, sfs, sc, (surface if ofit is not None else None), ofit
     return None
 
 
@@ -436,15 +441,18 @@ def _ori_fit_params(an, c):
     return p if np.all(np.isfinite(p)) else None
 
 
-def _sf_fit_curve(f, y, fine):
-    """The fitted SF curve on ``fine`` (:func:`map2d.fit.tuning.fit_sf`) and its preferred SF, or None.
+def _sf_fit_curve(f, y, fine, th=None, surface=None, ofit=None):
+    """The fitted SF curve on ``fine`` and its preferred SF, or None: the fit ``cells.csv`` uses
+    (:func:`map2d.fit.tuning.table_sf_fit`; for an orientation-tuned cell, the profile along the
+    preferred orientation of the fit to the whole orientation x SF surface, which lies a little above
+    the rows nearest the preference, since those rows miss the peak).
 
     When the fit is a model average its ``params`` are the heavier model's; that model is the one
     whose function the parameters fit.
     """
     from ..fit import tuning as tu
 
-    sfit = tu.fit_sf(f, y)
+    sfit = tu.table_sf_fit(th, f, y, surface, ofit)
     if not sfit.ok:
         return None
     cands = {"log_gaussian": tu.log_gaussian_sf, "gaussian": getattr(tu, "gaussian_sf", None)}
@@ -747,7 +755,7 @@ class CellPanels:
                 for ln in (self.o_pts, self.o_fit, self.s_pts, self.s_fit):
                     ln.set_data(*nothing)
             else:
-                src, th, oc, sfs, sc = got
+                src, th, oc, sfs, sc, surface, ofit = got
                 self.o_pts.set_data(th, oc)
                 p = _ori_fit_params(an, c) if fitted else None
                 if p is not None:           # the table's fit (not re-fitted: fits can be slow)
@@ -761,7 +769,7 @@ class CellPanels:
                 curve = None
                 if fitted and pos.size:
                     fine = np.geomspace(pos.min() / 1.5, pos.max() * 1.5, 60)
-                    curve = _sf_fit_curve(sfs, sc, fine)
+                    curve = _sf_fit_curve(sfs, sc, fine, th, surface, ofit)
                 if curve is not None:
                     self.s_fit.set_data(fine, curve[0])
                     if np.isfinite(curve[1]):
