@@ -436,18 +436,20 @@ def test_simulated_session_tuning_and_class(kind, ori_tol):
             assert cols["grating_class"][i] == "simple"
 
 
-@pytest.mark.parametrize("kind,minutes,seed", [("spikes", 5, 1), ("spikes", 5, 2), ("traces", 12, 1),
-                                                ("traces", 12, 2)])
-def test_simulated_preferred_sf_within_ten_percent(kind, minutes, seed):
-    """Issue 4 tolerances on the simulator: preferred SF within 10 %, orientation within 5 deg, for spikes
-    and for calcium-like traces (indicator decay 0.4 s), and the 95 % intervals of the preferred SF cover
-    the truth about as often as they should.
+@pytest.mark.parametrize("kind,minutes,seed", [("spikes", 10, 1), ("spikes", 10, 2), ("traces", 8, 1),
+                                                ("traces", 8, 2)])
+def test_simulated_tuning_surfaces_within_issue_tolerances(kind, minutes, seed):
+    """Issue 4 tolerances on the project's simulator, for spikes and for calcium-like traces (indicator
+    decay 0.4 s): every simple cell's measured magnitude surface correlates > 0.95 with the magnitude of
+    its kernel's Fourier transform and its phase is within 20 deg where the magnitude is above half its
+    peak; every tuned cell's preferred SF is within 10 %, orientation within 5 deg, class right; and the
+    95 % intervals of the preferred SF cover the truth about as often as they should.
 
-    Design: 7 SFs half an octave apart (0.02-0.16 cycles/deg), 12 orientations, gains of 150-250 spikes/s;
-    5 minutes of flashed gratings for spikes, 12 for traces (the indicator's low-pass costs signal).
-    Measured on seeds 1-8 (traces) and 1-6 (spikes), 8 tuned cells each: worst SF error 7.5 % (both),
-    orientation 4.1 deg; the SF interval covered the truth for 59 of 64 (traces) and 46 of 48 (spikes)
-    cells. With 8 minutes of traces the worst SF error was 9.1 %, with 5 minutes 28 % (noise-limited).
+    Design: 7 SFs half an octave apart (0.02-0.16 cycles/deg), 12 orientations, 4 phases, gains of
+    150-250 spikes/s; 10 minutes of flashed gratings for spikes, 8 for traces. Measured on seeds 1-6 (or
+    1-8): lowest surface correlation 0.970 (spikes) and 0.960 (traces), largest phase error 17.8 and
+    12.1 deg; worst SF error 4.5 % and 4.2 %, orientation 1.7 and 2.2 deg. With 5 minutes the lowest
+    correlations were 0.939 (spikes) and 0.923 (traces): the tolerance is then noise-limited.
     """
     simulate = pytest.importorskip("map2d.simulate")
     s, truth = simulate.simulate_session(n_cells=12, minutes=0, flashed_minutes=minutes, repeats=3, seed=seed,
@@ -456,6 +458,8 @@ def test_simulated_preferred_sf_within_ten_percent(kind, minutes, seed):
     fl = analyze_flashed(s.responses, s.gratings, rng=0)
     dr = analyze_drifting(s.responses, s.gratings)
     cols = grating_tuning_columns(fl, dr)
+    cells = simulate.cells_from_truth(truth)
+    origin = truth["session"]["phase_origin_deg"]
     tuned = [i for i, tc in enumerate(truth["cells"]) if tc["kind"] in ("simple", "complex")]
     assert len(tuned) >= 6
     covered = 0
@@ -466,5 +470,44 @@ def test_simulated_preferred_sf_within_ten_percent(kind, minutes, seed):
         assert d < 5.0, i
         assert cols["grating_class"][i] == tc["kind"]      # F1/F0 > 1 simple (Skottun et al. 1991)
         covered += cols["pref_sf_ci_low_cpd"][i] <= tc["pref_sf_cpd"] <= cols["pref_sf_ci_high_cpd"][i]
+        if tc["kind"] == "simple":
+            hk = cells[i].spectra(fl.kx_cpd, fl.ky_cpd, origin)[0]       # analytic Gabor transform
+            h = fl.harmonic_combined[i]
+            assert np.corrcoef(np.abs(h).ravel(), np.abs(hk).ravel())[0, 1] > 0.95, i
+            big = np.abs(hk) > 0.5 * np.abs(hk).max()
+            assert np.all(np.abs(np.degrees(np.angle(h[big] * np.conj(hk[big])))) < 20.0), i
     # nominal 95 %: at most 2 of 8 misses (binomial probability of 3 or more at 95 %: about 0.6 %)
     assert covered >= len(tuned) - 2
+
+
+def test_lag_weights_are_the_least_squares_combination():
+    """Generalised least squares (Kay 1993, Estimation Theory, ch. 6): for a response only at lag 1 and
+    noise of correlation rho between the lags, the best combination is ``r_1 - rho r_0``; with
+    independent noise it is the profile over the variances."""
+    from map2d.gratings import _lag_weights
+    rho = 0.8
+    w = _lag_weights(np.array([[0.0, 1.0]]), np.array([[[1.0, rho], [rho, 1.0]]]))
+    np.testing.assert_allclose(w[0], [-rho, 1.0], atol=1e-5)
+    w = _lag_weights(np.array([[0.5, 1.0]]), np.array([[[4.0, 0.0], [0.0, 1.0]]]))
+    x = np.array([0.5 / 4.0, 1.0])
+    np.testing.assert_allclose(w[0], x * 1.25 / (x @ [0.5, 1.0]), atol=1e-5)
+    # a covariance that cannot be estimated leaves the profile
+    np.testing.assert_allclose(_lag_weights(np.array([[0.5, 1.0]]), np.full((1, 2, 2), np.nan))[0], [0.5, 1.0])
+
+
+def test_pooled_lags_of_traces_beat_the_peak_lag():
+    """Calcium traces: the level left by earlier responses is correlated across lags, so the pooled
+    surface is much closer to the kernel's transform than the surface at the peak lag."""
+    simulate = pytest.importorskip("map2d.simulate")
+    s, truth = simulate.simulate_session(n_cells=6, minutes=0, flashed_minutes=5, repeats=0, seed=3,
+                                         responses="traces", cell_types=["simple"] * 6,
+                                         sfs_cpd=np.geomspace(0.02, 0.16, 7), peak_rate_hz=(150.0, 250.0))
+    fl = analyze_flashed(s.responses, s.gratings, n_shuffles=0)
+    cells = simulate.cells_from_truth(truth)
+    origin = truth["session"]["phase_origin_deg"]
+    for i, cell in enumerate(cells):
+        hk = np.abs(cell.spectra(fl.kx_cpd, fl.ky_cpd, origin)[0]).ravel()
+        pooled = np.corrcoef(np.abs(fl.harmonic_combined[i]).ravel(), hk)[0, 1]
+        peak = np.corrcoef(np.abs(fl.harmonic_at_peak[i]).ravel(), hk)[0, 1]
+        assert pooled > peak, i
+        assert fl.temporal_weights[i].min() < 0                # the earlier level is subtracted
