@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy import special
 
-from map2d.fit.tuning import (circular_variance, f1_f0, fit_direction, fit_orientation, fit_sf, fit_sf_surface,
-                              gaussian_sf,
+from map2d.fit.tuning import (circular_variance, dog_sf, f1_f0, fit_direction, fit_orientation, fit_sf,
+                              fit_sf_surface, gaussian_sf, grating_tuning_columns,
                               log_gaussian_sf, osi, von_mises_direction, von_mises_orientation)
 
 TH = np.arange(0.0, 180.0, 7.5)
@@ -320,3 +320,122 @@ def test_sf_from_the_surface_needs_an_orientation_fit_and_three_sfs():
     assert not fit_sf_surface(th, [0.2, 0.4], surface, ofit).ok
     surface, _ = _skimage_gabor_surface(th, np.array([0.2, 0.3, 0.4]))
     assert not fit_sf_surface(th, [0.2, 0.3, 0.4], surface, fit_orientation(th, np.ones(th.size))).ok
+
+
+# ----------------------------------------------------------------------------------------------
+# DoG spectrum as an SF model (centre-surround cells)
+# ----------------------------------------------------------------------------------------------
+def _half_height_octaves(f, y):
+    """Octaves between the half-height points of a densely sampled single-peaked curve (by definition)."""
+    above = np.flatnonzero(y >= y.max() / 2)
+    return np.log2(f[above[-1]] / f[above[0]])
+
+
+def test_sf_fit_dog_spectrum_truth():
+    from map2d.models import dog_peak_sf, dog_spectrum
+    f = np.geomspace(0.01, 0.32, 7)
+    for kc, rc, ks, rs in ((1.0, 1.2, 0.3, 2.5), (1.0, 1.0, 0.2, 2.2)):
+        s = fit_sf(f, dog_spectrum(f, kc, rc, ks, rs))
+        assert s.model == "dog" and s.params_model == "dog"
+        # closed-form peak of the DoG spectrum (Enroth-Cugell & Robson 1966; map2d.models.dog_peak_sf)
+        assert s.pref_cpd == pytest.approx(dog_peak_sf(kc, rc, ks, rs), rel=0.01)
+        assert s.pref_ci_low_cpd <= s.pref_cpd <= s.pref_ci_high_cpd
+        fine = np.geomspace(0.001, 1.0, 200001)
+        # full bandwidth at half height, from the definition on a dense grid
+        assert s.bandwidth_oct == pytest.approx(_half_height_octaves(fine, dog_spectrum(fine, kc, rc, ks, rs)),
+                                                abs=1e-3)
+        assert dog_sf(f, *s.params) == pytest.approx(dog_spectrum(f, kc, rc, ks, rs), abs=1e-9)
+
+
+def test_sf_fit_low_pass_dog_has_no_preferred_sf():
+    from map2d.models import dog_peak_sf, dog_spectrum
+    f = np.geomspace(0.01, 0.32, 7)
+    kc, rc, ks, rs = 1.0, 1.0, 0.005, 3.0           # weak surround: the spectrum peaks at 0 SF
+    assert dog_peak_sf(kc, rc, ks, rs) == 0.0
+    s = fit_sf(f, dog_spectrum(f, kc, rc, ks, rs))
+    assert s.ok and s.params_model == "dog"
+    assert np.isnan(s.pref_cpd) and np.isnan(s.bandwidth_oct)      # no lower half-height point either
+
+
+def test_sf_fit_dog_ci_covers_truth_in_noise():
+    from map2d.models import dog_peak_sf, dog_spectrum
+    rng = np.random.default_rng(5)
+    f = np.geomspace(0.01, 0.32, 11)
+    kc, rc, ks, rs = 1.0, 1.2, 0.3, 2.5
+    y0 = dog_spectrum(f, kc, rc, ks, rs)
+    truth = dog_peak_sf(kc, rc, ks, rs)
+    hits = 0
+    for _ in range(20):
+        s = fit_sf(f, y0 + 0.05 * y0.max() * rng.standard_normal(f.size))
+        hits += s.pref_ci_low_cpd <= truth <= s.pref_ci_high_cpd
+    assert hits >= 15          # nominal 95 % (common practice: allow for 20 draws)
+
+
+def test_sf_fit_dog_needs_five_sfs():
+    from map2d.models import dog_spectrum
+    f = np.geomspace(0.02, 0.32, 4)                  # 4 SFs: baseline fixed, 3-parameter fits only
+    s = fit_sf(f, dog_spectrum(f, 1.0, 1.2, 0.3, 2.5))
+    assert s.ok and s.params_model in ("log_gaussian", "gaussian") and len(s.params) == 4
+
+
+def test_report_draws_the_dog_fit():
+    from map2d.models import dog_spectrum
+    from map2d.report.figures import _sf_fit_curve
+    f = np.geomspace(0.01, 0.32, 9)
+    fine = np.geomspace(0.01, 0.32, 40)
+    curve, pref = _sf_fit_curve(f, dog_spectrum(f, 1.0, 1.0, 0.2, 2.2), fine)
+    assert curve == pytest.approx(dog_spectrum(fine, 1.0, 1.0, 0.2, 2.2), abs=1e-6)
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_simulated_centre_surround_cells_preferred_sf(seed):
+    """Preferred SF of simulated centre-surround (DoG) cells within 10 % (issue 4), through the cells.csv
+    path (rank-1 SF profile of the flashed-grating surface, :func:`fit_sf`).
+
+    Design: 11 SFs half an octave apart (0.01-0.32 cycles/deg), 12 orientations, gains 150-250 spikes/s,
+    20 minutes of flashed gratings, 6 DoG cells per session. Measured on seeds 1-24 (144 cells): rms
+    error 2.5 %, worst 7.7 %, 95 % interval covering the truth for 129 of 144; without the DoG model
+    (log-Gaussian / Gaussian only) rms 5.9 %, worst 15 %, 70 of 144 covered. With 5 minutes (seeds
+    1-12) the error is noise-limited: rms 4.9 %, worst 12.4 % (the 4-parameter Gaussian in linear SF
+    fits some noisy DoG curves better and takes the Akaike weight), so the session here is longer.
+    """
+    simulate = pytest.importorskip("map2d.simulate")
+    from map2d.gratings import analyze_flashed
+    s, truth = simulate.simulate_session(n_cells=6, minutes=0, flashed_minutes=20, repeats=0, seed=seed,
+                                         cell_types=["on_dog", "off_dog"] * 3, sfs_cpd=np.geomspace(0.01, 0.32, 11),
+                                         peak_rate_hz=(150.0, 250.0))
+    cols = grating_tuning_columns(analyze_flashed(s.responses, s.gratings, rng=0), None)
+    covered = 0
+    for i, tc in enumerate(truth["cells"]):
+        assert np.isnan(cols["pref_orientation_deg"][i]), i
+        # truth: closed-form peak of the cell's DoG spectrum (map2d.models.dog_peak_sf)
+        assert cols["pref_sf_cpd"][i] == pytest.approx(tc["pref_sf_cpd"], rel=0.10), i
+        covered += cols["pref_sf_ci_low_cpd"][i] <= tc["pref_sf_cpd"] <= cols["pref_sf_ci_high_cpd"][i]
+    assert covered >= 4        # nominal 95 %: 2 misses of 6 has probability ~3 % (binomial)
+
+
+def test_screened_dog_fit_is_no_worse_than_many_starts():
+    # the screened (rc, rs / rc) start + refinement must reach the best of a broad multi-start search
+    from map2d.fit.tuning import _DOG_T_BOUNDS, _fit_dog, _jac_dog_internal
+    from map2d.models import dog_spectrum
+    rng = np.random.default_rng(11)
+    f = np.geomspace(0.01, 0.32, 11)
+    lf = np.log2(f)
+
+    def model(x, a_c, a_s, rc, t):
+        return dog_sf(x, 0.0, a_c, a_s, rc, rc * t)
+
+    def jac(x, *q):
+        return _jac_dog_internal(x, 0.0, *q)[:, 1:]
+    for _ in range(4):
+        rc = rng.uniform(0.8, 3.0)
+        y0 = dog_spectrum(f, 1.0, rc, rng.uniform(0.05, 0.2), rc * rng.uniform(1.5, 3.0))
+        y = y0 + 0.08 * y0.max() * rng.standard_normal(f.size)
+        span = max(abs(y.max()), abs(y.min()), np.ptp(y))
+        got = _fit_dog(f, y, lf.min(), lf.max(), span)
+        rc_lo, rc_hi = 1 / (np.pi * 8 * f.max()), 1 / (np.pi * f.min() / 4)
+        ref = _multistart_ssr(model, jac, f, y,
+                              [[a * np.ptp(y), b * a * np.ptp(y), r, t] for a in (1, 5) for b in (0.3, 0.9)
+                               for r in np.geomspace(rc_lo, rc_hi, 6) for t in (1.5, 3, 8)],
+                              [0, 0, rc_lo, _DOG_T_BOUNDS[0]], [50 * span, 50 * span, rc_hi, _DOG_T_BOUNDS[1]])
+        assert got["ssr"] <= ref * (1 + 1e-5)

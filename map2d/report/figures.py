@@ -447,23 +447,15 @@ def _sf_fit_curve(f, y, fine, th=None, surface=None, ofit=None):
     preferred orientation of the fit to the whole orientation x SF surface, which lies a little above
     the rows nearest the preference, since those rows miss the peak).
 
-    When the fit is a model average its ``params`` are the heavier model's; that model is the one
-    whose function the parameters fit.
+    When the fit is a model average its ``params`` are the heavier model's (``params_model``); that
+    model's function is drawn.
     """
     from ..fit import tuning as tu
 
     sfit = tu.table_sf_fit(th, f, y, surface, ofit)
     if not sfit.ok:
         return None
-    cands = {"log_gaussian": tu.log_gaussian_sf, "gaussian": getattr(tu, "gaussian_sf", None)}
-    cands = {k: v for k, v in cands.items() if v is not None}
-    if sfit.model in cands:
-        fn = cands[sfit.model]
-    else:
-        ok = np.isfinite(f) & np.isfinite(y) & (f > 0)
-        with np.errstate(all="ignore"):
-            ssr = {k: float(np.nansum((g(f[ok], *sfit.params) - y[ok]) ** 2)) for k, g in cands.items()}
-        fn = cands[min(ssr, key=ssr.get)]
+    fn = {"log_gaussian": tu.log_gaussian_sf, "gaussian": tu.gaussian_sf, "dog": tu.dog_sf}[sfit.params_model]
     with np.errstate(all="ignore"):
         return fn(fine, *sfit.params), sfit.pref_cpd
 
