@@ -29,7 +29,9 @@ from the onset (the full trial when it is shorter than one cycle). For spikes
 ``F1 = (2 / T) sum_spikes exp(-i 2 pi tf (t - onset))``; for traces ``F1 = a - i b`` from the
 least-squares fit of ``a0 + a cos(theta) + b sin(theta)``, ``theta = 2 pi tf (t - onset)``, to the
 samples inside the window (exact for any sampling). A rate ``r(t) = r0 + |F1| cos(theta + arg F1)``
-gives back ``F1``. A negative ``tf_hz`` is a grating moving toward ``ori + 180`` with the phase negated,
+gives back ``F1``. When the indicator's decay ``tau`` is known or estimated, the fit also carries the
+indicator's transient (its rise at the onset and the tail of earlier responses) and undoes its
+low-pass, so that F0 and F1 are those of the drive (see ``_trace_f1``); spontaneous windows likewise. A negative ``tf_hz`` is a grating moving toward ``ori + 180`` with the phase negated,
 and is folded so.
 
 References
@@ -562,11 +564,13 @@ class DriftingResult:
     pref_direction_deg : (cells,)  direction of the largest ``response`` at the preferred SF/TF
     dsi : (cells,)  ``(R_pref - R_opp) / (R_pref + R_opp)`` with ``R_opp`` (opposite direction,
         same SF/TF) clipped at 0; NaN if the opposite direction was not shown
-    p_value : (cells,)  ``min(1, 2 min(p_F0, p_F1))``: one-way ANOVA of the trial F0 across
-        conditions, and (Bonferroni over conditions) the F test of a non-zero vector-mean F1 against
-        the pooled within-condition scatter
+    p_value : (cells,)  ``min(1, 3 min(p_F0, p_F1, p_spont))`` (Bonferroni over the three tests):
+        one-way ANOVA of the trial F0 across conditions; (Bonferroni over conditions) the F test of a
+        non-zero vector-mean F1 against the pooled within-condition scatter; and Welch's t test of the
+        trials' mean response against the spontaneous windows (a cell driven equally by every
+        condition, with an unmodulated response, is found only by this one)
     responsive : (cells,) bool
-    trace_tau_s : float  traces: the indicator decay used to correct F1 (NaN: none; spikes: NaN)
+    trace_tau_s : float  traces: the indicator decay used for F0 and F1 (NaN: none; spikes: NaN)
     """
 
     cell_ids: np.ndarray
@@ -615,7 +619,19 @@ def _spike_f1(spikes: Spikes, onset, end, tf):
     return ((re + 1j * im).reshape(n_cells, n)) * (2.0 / (end - onset))[None, :]
 
 
-def _trace_f1(traces: Traces, onset, end, tf):
+def _trace_f1(traces: Traces, onset, end, tf, tau_s=float("nan"), harmonic=True):
+    """F0 and F1 of every window from a trace by least squares on the samples inside it.
+
+    Without an indicator decay (``tau_s`` NaN): ``a0 + a cos(theta) + b sin(theta)``,
+    ``theta = 2 pi tf (t - onset)``; ``F0 = a0``, ``F1 = a - i b``. With a first-order indicator of
+    decay ``tau`` (the trace is the drive low-passed by ``exp(-t / tau) / tau``), the drive
+    ``u(t) = F0 + Re(F1 exp(i theta))`` switched on at the onset over a trace starting at level ``r0``
+    gives exactly ``r(t) = F0 (1 - E) + r0 E + c (cos theta - E) + d sin theta`` with
+    ``E = exp(-(t - onset) / tau)`` and ``F1 = (c - i d)(1 + i 2 pi tf tau)``: fitting these four terms
+    returns the drive's F0 and F1, free of the rise at the onset and of the tail of earlier responses
+    (the steady state alone would give ``F1 / (1 + i 2 pi tf tau)``). ``harmonic=False`` fits the
+    mean (or ``F0 (1 - E) + r0 E``) only; F1 is then NaN.
+    """
     times = traces.times_s
     vals = np.asarray(traces.values, dtype=np.float64)
     n_cells, n = vals.shape[0], onset.size
@@ -626,23 +642,41 @@ def _trace_f1(traces: Traces, onset, end, tf):
     k = k[ok]
     if sidx.size == 0:
         return np.full((n_cells, n), np.nan), np.full((n_cells, n), np.nan, dtype=complex)
-    theta = 2 * np.pi * tf[k] * (times[sidx] - onset[k])
-    g = np.stack([np.ones_like(theta), np.cos(theta), np.sin(theta)])  # (3, m)
+    dt = times[sidx] - onset[k]
+    theta = 2 * np.pi * tf[k] * dt
+    decay = np.isfinite(tau_s) and tau_s > 0
+    if decay:
+        e = np.exp(-dt / tau_s)
+        cols = [1.0 - e, e] + ([np.cos(theta) - e, np.sin(theta)] if harmonic else [])
+    else:
+        cols = [np.ones_like(theta)] + ([np.cos(theta), np.sin(theta)] if harmonic else [])
+    g = np.stack(cols)                                                  # (m, samples)
+    m = g.shape[0]
     v = vals[:, sidx]
     fin = np.isfinite(v)
     v0 = np.where(fin, v, 0.0)
     w = fin.astype(float)
-    a = np.empty((n_cells, n, 3, 3))
-    for p in range(3):
-        for q in range(p, 3):
+    a = np.empty((n_cells, n, m, m))
+    for p in range(m):
+        for q in range(p, m):
             a[:, :, p, q] = a[:, :, q, p] = _group_sums(w * (g[p] * g[q])[None], k, n)
-    rhs = np.stack([_group_sums(v0 * g[p][None], k, n) for p in range(3)], axis=-1)
+    rhs = np.stack([_group_sums(v0 * g[p][None], k, n) for p in range(m)], axis=-1)
     det = np.linalg.det(a)
-    good = np.abs(det) > 1e-9 * np.maximum(a[..., 0, 0], 1.0) ** 3
-    coef = np.linalg.solve(np.where(good[..., None, None], a, np.eye(3)), rhs[..., None])[..., 0]
-    f1 = coef[..., 1] - 1j * coef[..., 2]
-    f1[~good] = np.nan
+    good = np.abs(det) > 1e-9 * np.maximum(np.abs(a[..., 0, 0]), 1.0) ** m
+    if decay:
+        # the scale of the (1 - E), E columns can be small in short windows: also require a
+        # well-conditioned system
+        cond = np.linalg.cond(np.where(good[..., None, None], a, np.eye(m)))
+        good &= cond < 1e10
+    coef = np.linalg.solve(np.where(good[..., None, None], a, np.eye(m)), rhs[..., None])[..., 0]
     f0 = np.where(good, coef[..., 0], np.nan)
+    if not harmonic:
+        return f0, np.full((n_cells, n), np.nan, dtype=complex)
+    i0 = 2 if decay else 1
+    f1 = coef[..., i0] - 1j * coef[..., i0 + 1]
+    if decay:
+        f1 = f1 * (1.0 + 2j * np.pi * tf * tau_s)[None, :]
+    f1[~good] = np.nan
     return f0, f1
 
 
@@ -652,8 +686,10 @@ def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: floa
 
     The trace of every cell is averaged over offsets (aligned by sample), its late level subtracted
     and its level just after the offset normalised to 1; these curves are pooled over cells, weighted
-    by the squared offset response, and ``A exp(-t / tau)`` is fitted from ``skip_s`` on (the response
-    outlasts the stimulus by the response latency). NaN when no cell has a clear offset response.
+    by the squared offset response, and ``A exp(-t / tau) + c`` is fitted from ``skip_s`` on (the
+    response outlasts the stimulus by the response latency; the free ``c`` because with gaps of a few
+    ``tau`` the late level still holds some of the decay, and subtracting it as if it were the
+    baseline reads ``tau`` short). NaN when no cell has a clear offset response.
     """
     from scipy import optimize
 
@@ -693,22 +729,62 @@ def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: floa
     use = t_rel >= skip_s
     t, y = t_rel[use] - skip_s, pooled[use]
     try:
-        res = optimize.least_squares(lambda q: q[0] * np.exp(-t / q[1]) - y, [1.0, max(win / 4, dt)],
-                                     bounds=([0.0, dt / 4], [10.0, 10 * win]))
+        res = optimize.least_squares(lambda q: q[0] * np.exp(-t / q[1]) + q[2] - y, [1.0, max(win / 4, dt), 0.0],
+                                     bounds=([0.0, dt / 4, -10.0], [10.0, 10 * win, 10.0]))
     except ValueError:
         return float("nan")
     tau = float(res.x[1])
     return tau if tau < 0.99 * 10 * win else float("nan")
 
 
-def _spontaneous(responses, table: GratingTable, drift_rows):
-    """Spontaneous level from blank rows outside flashed sequences, else from gaps between trials."""
+def _welch_p(a, b):
+    """Two-sided p of Welch's t test of the row means of ``a`` (cells, n) against ``b`` (cells, m),
+    NaN entries left out (Welch 1947, Biometrika 34:28); NaN with fewer than 2 values on a side or no
+    spread."""
+    def moments(x):
+        f = np.isfinite(x)
+        n = f.sum(axis=1).astype(float)
+        x0 = np.where(f, x, 0.0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            m = x0.sum(axis=1) / n
+            v = np.where(f, (x0 - m[:, None]) ** 2, 0.0).sum(axis=1) / (n - 1)
+        return m, v, n
+    if a.shape[1] == 0 or b.shape[1] == 0:
+        return np.full(a.shape[0], np.nan)
+    ma, va, na = moments(a)
+    mb, vb, nb = moments(b)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        qa, qb = va / na, vb / nb
+        se2 = qa + qb
+        t = (ma - mb) / np.sqrt(se2)
+        df = se2**2 / (qa**2 / (na - 1) + qb**2 / (nb - 1))
+        p = 2.0 * stats.t.sf(np.abs(t), df)
+    return np.where((na >= 2) & (nb >= 2) & (se2 > 0) & np.isfinite(p), p, np.nan)
+
+
+def _window_levels(responses, start, stop, tau_s):
+    """Mean response in each window; for traces with an indicator decay, the drive's level (the fit
+    of ``s (1 - E) + r0 E`` from the window start, see :func:`_trace_f1`), free of earlier tails."""
+    if isinstance(responses, Spikes) or not (np.isfinite(tau_s) and tau_s > 0):
+        return interval_responses(responses, start, stop).astype(float)
+    order = np.argsort(start, kind="stable")
+    lev, _ = _trace_f1(responses, start[order], stop[order], np.zeros(start.size), tau_s, harmonic=False)
+    out = np.empty_like(lev)
+    out[:, order] = lev
+    return out
+
+
+def _spontaneous(responses, table: GratingTable, drift_rows, tau_s=float("nan")):
+    """Spontaneous level from blank rows outside flashed sequences, else from gaps between trials.
+
+    Returns ``(mean level per cell, source, level of every window (cells, windows))``."""
     blanks = np.flatnonzero(table.is_blank & ~flashed_rows(table))
     if blanks.size:
         blanks = blanks[np.argsort(table.onset_s[blanks], kind="stable")]
-        r = interval_responses(responses, table.onset_s[blanks], table.offset_s[blanks]).astype(float)
+        r = _window_levels(responses, table.onset_s[blanks].astype(float), table.offset_s[blanks].astype(float),
+                           tau_s)
         with np.errstate(invalid="ignore"):
-            return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "blanks"
+            return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "blanks", r
     on = table.onset_s[drift_rows]
     off = table.offset_s[drift_rows]
     if on.size > 1:
@@ -720,10 +796,11 @@ def _spontaneous(responses, table: GratingTable, drift_rows):
         inside = np.searchsorted(all_on, stop, side="left") - np.searchsorted(all_on, off[:-1], side="right")
         use = (gap >= 0.2) & (inside == 0)
         if use.any():
-            r = interval_responses(responses, start[use], stop[use]).astype(float)
+            r = _window_levels(responses, start[use].astype(float), stop[use].astype(float), tau_s)
             with np.errstate(invalid="ignore"):
-                return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "gaps"
-    return np.full(responses.cell_ids.size, np.nan), "none"
+                return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "gaps", r
+    n = responses.cell_ids.size
+    return np.full(n, np.nan), "none", np.full((n, 0), np.nan)
 
 
 def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: float = 0.01,
@@ -740,10 +817,11 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     trace_tau_s : float, optional
         Traces only: decay time constant of the indicator. The trace is a low-passed copy of the
         firing rate, which divides the first harmonic by ``1 + i 2 pi tf tau`` (a first-order
-        low-pass) and leaves F0 alone, so F1/F0 of raw traces would call most simple cells complex.
-        F1 is multiplied back by ``1 + i 2 pi tf tau``. ``None`` estimates ``tau`` from the decay
-        after trial offsets (:func:`estimate_decay_tau`); ``0`` applies no correction. The value used
-        is ``DriftingResult.trace_tau_s``.
+        low-pass) and leaves F0 alone, so F1/F0 of raw traces would call most simple cells complex;
+        the rise at each onset also lowers F0 and the tail of the previous trial raises the
+        spontaneous level. With ``tau`` the fit models all three (see ``_trace_f1``). ``None``
+        estimates ``tau`` from the decay after trial offsets (:func:`estimate_decay_tau`); ``0``
+        applies no correction. The value used is ``DriftingResult.trace_tau_s``.
 
     Returns
     -------
@@ -755,8 +833,10 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     sequence; if there are none, from each gap of at least 0.2 s between consecutive trials in which
     nothing else was shown, from its middle to 90 % of its length (responses to the previous trial
     have decayed, and sampling or smoothing of the next onset does not reach in). For traces, the
-    trial F0 is the intercept of the same least-squares fit that gives F1 (the mean of the samples
-    over whole cycles); for spikes it is the spike count over the window divided by its length. F1/F0 uses the preferred condition (largest
+    trial F0 is the drive's level from the same least-squares fit that gives F1, with the indicator's
+    rise and tail modelled when its decay is known (``trace_tau_s``, else estimated from the offsets);
+    the spontaneous windows are fitted the same way. For spikes F0 is the spike count over the window
+    divided by its length. F1/F0 uses the preferred condition (largest
     ``F0 + |F1|``); a ratio above 1 marks a simple cell (Skottun et al. 1991).
     """
     if not 0 < alpha < 1:
@@ -783,20 +863,18 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     n_groups = n_d * n_s * n_t
     cond = (di * n_s + si) * n_t + ti
 
-    spont, source = _spontaneous(responses, table, rows)
     if isinstance(responses, Spikes):
+        tau = float("nan")
         raw = interval_responses(responses, onset, end).astype(float)
         trial_f1 = _spike_f1(responses, onset, end, tf)
-        tau = float("nan")
     else:
-        raw, trial_f1 = _trace_f1(responses, onset, end, tf)
         if trace_tau_s is None:
             nxt = np.append(onset[1:], np.inf)
             tau = estimate_decay_tau(responses, table.offset_s[rows], nxt)
         else:
             tau = float(trace_tau_s)
-        if np.isfinite(tau) and tau > 0:
-            trial_f1 = trial_f1 * (1.0 + 2j * np.pi * tf * tau)[None, :]
+        raw, trial_f1 = _trace_f1(responses, onset, end, tf, tau)
+    spont, source, spont_windows = _spontaneous(responses, table, rows, tau)
     # refer each trial's F1 to stimulus phase 0 at onset: a grating started at phase p shifts the
     # response by p (F1 ~ exp(-i p) for tf > 0, exp(+i p) for tf < 0), so that without this trials of
     # one condition shown at different start phases cancel in the vector mean
@@ -875,10 +953,11 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         n_tested = np.isfinite(p_each).sum(axis=1)
         p_f1 = np.where(n_tested > 0, np.minimum(1.0, np.nanmin(np.where(np.isfinite(p_each), p_each, np.inf),
                                                                  axis=1) * n_tested), np.nan)
-        both = np.stack([p_f0, p_f1])
+        p_sp = _welch_p(raw, spont_windows)
+        both = np.stack([p_f0, p_f1, p_sp])
         pmin = np.where(np.isfinite(both).any(axis=0), np.nanmin(np.where(np.isfinite(both), both, np.inf), axis=0),
                         np.nan)
-        p_value = np.minimum(1.0, 2.0 * pmin)
+        p_value = np.minimum(1.0, 3.0 * pmin)
     responsive = np.isfinite(p_value) & (p_value < alpha)
 
     return DriftingResult(

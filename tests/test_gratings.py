@@ -511,3 +511,83 @@ def test_pooled_lags_of_traces_beat_the_peak_lag():
         peak = np.corrcoef(np.abs(fl.harmonic_at_peak[i]).ravel(), hk)[0, 1]
         assert pooled > peak, i
         assert fl.temporal_weights[i].min() < 0                # the earlier level is subtracted
+
+
+# ----------------------------------------------------------------------------------------------
+# traces: the indicator's decay in drifting trials
+# ----------------------------------------------------------------------------------------------
+def _first_order(t, drive, tau, r0):
+    """Exact response of ``tau r' = u - r`` (a first-order low-pass, e.g. Oppenheim & Willsky, Signals
+    and Systems, ch. 6) to a drive that is constant within each step of ``t``."""
+    r = np.empty_like(drive)
+    a = np.exp(-(t[1] - t[0]) / tau)
+    prev = r0
+    for i, u in enumerate(drive):
+        prev = u + (prev - u) * a
+        r[i] = prev
+    return r
+
+
+def test_trace_f0_f1_undo_the_indicator_rise_and_tail():
+    """A drive ``F0 + |F1| cos(2 pi tf t + arg F1)`` switched on at the onset, seen through a first-order
+    indicator that starts at another level: the fit with the indicator's transient returns the drive's
+    F0 and F1; the plain fit reads F0 low (the rise) and F1 less than half (low-pass and transient)."""
+    from map2d.gratings import _trace_f1
+    tau, tf, f0, f1 = 0.4, 2.0, 3.0, 2.0 * np.exp(0.7j)
+    t = np.arange(0.0, 2.0, 1e-4)
+    u = f0 + np.real(f1 * np.exp(2j * np.pi * tf * t))
+    r = _first_order(t, u, tau, r0=1.2)
+    step = 333                                                  # ~30 Hz samples
+    tr = Traces(values=r[None, ::step], times_s=t[::step] + 10.0)
+    onset, end, tfs = np.array([10.0]), np.array([12.0]), np.array([tf])
+    got0, got1 = _trace_f1(tr, onset, end, tfs, tau)
+    assert got0[0, 0] == pytest.approx(f0, rel=2e-3)
+    assert got1[0, 0] == pytest.approx(f1, rel=2e-3)
+    plain0, plain1 = _trace_f1(tr, onset, end, tfs)
+    assert plain0[0, 0] < 0.95 * f0
+    assert abs(plain1[0, 0]) < 0.5 * abs(f1)
+
+
+def test_decay_estimate_with_gaps_of_a_few_time_constants():
+    """Trials 2 s on, 1.2 s off (3 decay constants): the late part of each gap still holds a few % of
+    the decay, which must not be taken for the baseline."""
+    from map2d.gratings import estimate_decay_tau
+    tau = 0.4
+    dt = 1e-3
+    on = np.arange(20) * 3.2 + 1.0
+    t = np.arange(0.0, on[-1] + 4.0, dt)
+    drive = 0.5 + 4.0 * ((t[:, None] >= on[None]) & (t[:, None] < on[None] + 2.0)).any(axis=1)
+    r = _first_order(t, drive, tau, r0=0.5)
+    step = 33
+    rng = np.random.default_rng(0)
+    tr = Traces(values=(r[None, ::step] + 0.01 * rng.standard_normal((1, t[::step].size))), times_s=t[::step])
+    est = estimate_decay_tau(tr, on + 2.0, np.append(on[1:], np.inf))
+    assert est == pytest.approx(tau, rel=0.05)
+
+
+def test_welch_test_matches_scipy():
+    from scipy import stats
+    from map2d.gratings import _welch_p
+    rng = np.random.default_rng(1)
+    a = rng.normal(1.0, 1.0, (4, 25))
+    b = rng.normal(0.0, 2.0, (4, 9))
+    a[0, :3] = np.nan
+    want = [stats.ttest_ind(x[np.isfinite(x)], y, equal_var=False).pvalue for x, y in zip(a, b)]
+    np.testing.assert_allclose(_welch_p(a, b), want, rtol=1e-10)      # scipy.stats as reference
+    assert np.isnan(_welch_p(a[:, :1], b)).all()
+
+
+def test_drifting_cell_driven_alike_by_every_condition_is_responsive(drifting_table):
+    """A cell whose rate rises by the same amount in every trial, unmodulated, differs from neither
+    condition to condition nor in F1: only the comparison with the spontaneous level finds it."""
+    rng = np.random.default_rng(4)
+    t = drifting_table
+    edges = np.arange(0.0, float(t.offset_s.max()) + 2.0, 0.002)
+    mid = edges[:-1] + 0.001
+    inside = ((mid[:, None] >= t.onset_s[None]) & (mid[:, None] < t.offset_s[None])).any(axis=1)
+    rate = np.where(inside, 40.0, 5.0)
+    n = rng.poisson(rate * 0.002)
+    times = np.repeat(mid, n) + rng.uniform(-0.001, 0.001, n.sum())
+    sp = Spikes(time_s=np.sort(times), cell=np.zeros(n.sum(), int), cell_ids=np.array([0]))
+    dr = analyze_drifting(sp, t)
+    assert dr.responsive[0] and dr.f1_f0[0] < 1.0
