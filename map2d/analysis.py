@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .contract import Session
+from .contract import Session, Traces
 from .reconcile import OVERLAP_THRESHOLD
 
 __all__ = ["Analysis", "analyze_session", "flashed_noise", "spatial_maps", "linear_share", "CONTRACT_COLUMNS",
@@ -62,6 +62,8 @@ class Analysis:
         ``grating_signal_p``, ``magnitude_agreement``, ``phase_error_deg``, ``agreement_gain``,
         ``inverse_similarity`` and the tuning columns
     notes : list of str  what was skipped and why
+    trace_decay : map2d.traces.TraceDecay or None  the indicator decay removed from traces before the maps
+        (None for spikes, which are never filtered)
     """
 
     session_name: str
@@ -86,6 +88,7 @@ class Analysis:
     size_annulus: np.ndarray | None = None
     cells: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)
+    trace_decay: object | None = None
 
     @property
     def grid(self):
@@ -290,7 +293,7 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2):
 
 def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
                     n_shuffles: int = 200, alpha: float = 0.01, size_radii_deg=None,
-                    progress=None) -> Analysis:
+                    progress=None, trace_decay="auto") -> Analysis:
     """Run every stage the session's data allow.
 
     Parameters
@@ -309,6 +312,10 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         Disk radii for the predicted size tuning (default: 8 radii up to half the grid's width).
     progress : callable, optional
         Called with a short stage name as each stage starts (for progress bars).
+    trace_decay : 'auto', 'off' or float
+        Traces only: the indicator's first-order decay removed before the maps
+        (:func:`map2d.traces.decay_corrected`; 'auto' estimates it per cell, a number is the time
+        constant in seconds, 'off' maps the traces as they are). Spikes are never filtered.
 
     Returns
     -------
@@ -343,6 +350,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     from .fit.tuning import TUNING_COLUMNS, grating_tuning_columns
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
     from .maps import compute_maps
+    from .traces import decay_corrected
 
     rng = np.random.default_rng(rng)
     step = progress or (lambda name: None)
@@ -355,7 +363,14 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     fit_cols = None
     if session.sparse_noise is not None:
         step("maps")
-        an.maps = compute_maps(session.responses, session.sparse_noise, max_lag_s=max_lag_s,
+        map_responses = session.responses
+        if isinstance(session.responses, Traces):   # remove the indicator's decay (map2d.traces)
+            sn = session.sparse_noise
+            map_responses, an.trace_decay = decay_corrected(
+                session.responses, trace_decay, skip_s=sn.frame_interval_s,
+                span_s=(sn.times_s[0], sn.frame_ends_s()[-1]))
+            an.notes.append(an.trace_decay.note())
+        an.maps = compute_maps(map_responses, session.sparse_noise, max_lag_s=max_lag_s,
                                n_shuffles=n_shuffles, alpha=alpha, rng=rng)
         an.spatial_maps, linear_spatial, an.peak_maps, an.map_kind = spatial_maps(an.maps)
         step("fits")
@@ -461,6 +476,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["onoff_overlap"] = list(m.onoff_overlap)
         cells["linear_share"] = [linear_share(m, c) if m.responsive[c] else np.nan for c in range(C)]
         cells["snr"] = list(m.snr)
+        if an.trace_decay is not None:
+            cells["trace_decay_tau_s"] = list(an.trace_decay.tau_s)
         for k, v in fit_cols.items():
             if k not in cells:
                 cells[k] = list(v)

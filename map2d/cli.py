@@ -97,6 +97,11 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
                        help="longest lag in seconds (default 0.2)")
         p.add_argument("--seed", type=int, default=0, help="seed for shuffles and bootstraps (default 0)")
+        if name in ("maps", "analyze"):
+            p.add_argument("--trace-decay", default="auto", dest="trace_decay", metavar="auto|off|SECONDS",
+                           help="imaging traces: remove the indicator's decay before the maps, with the "
+                                "time constant estimated per cell (auto, the default), given in seconds, "
+                                "or not at all (off); spikes are never filtered")
         if name == "analyze":
             p.add_argument("--config", type=Path, default=None,
                            help="NWB mapping (JSON) when SESSION is an .nwb file (see README, NWB input)")
@@ -166,13 +171,13 @@ def _dispatch(args) -> int:
         return pipeline.run_simulate(args)
     if args.command == "maps":
         return pipeline.run_maps(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed, quiet=args.quiet,
-                                 fits=not args.no_fits)
+                                 fits=not args.no_fits, trace_decay=args.trace_decay)
     if args.command == "gratings":
         return pipeline.run_gratings(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
                                      quiet=args.quiet)
     if args.command == "analyze":
         return pipeline.run_analyze(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
-                                    quiet=args.quiet, config=args.config)
+                                    quiet=args.quiet, config=args.config, trace_decay=args.trace_decay)
     if args.command == "batch":
         return pipeline.run_batch(args.sessions, args.out, scheduler=args.scheduler, config=args.config,
                                   max_lag_s=args.max_lag_s, seed=args.seed, workers=args.workers,

@@ -223,7 +223,16 @@ def run_simulate(args) -> int:
     return 0
 
 
-def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True) -> int:
+def _trace_decay_option(value):
+    """``--trace-decay`` checked: 'auto', 'off' or a positive number of seconds (else BadInput)."""
+    from .traces import parse_trace_decay
+    try:
+        return parse_trace_decay(value)
+    except ValueError as exc:
+        raise BadInput("--trace-decay", None, str(exc)) from None
+
+
+def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, trace_decay="auto") -> int:
     """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``.
 
     ``maps.npz`` holds ``on, off, linear`` and ``on_z, off_z, linear_z`` (float32, cells x lags x ny x nx,
@@ -237,6 +246,9 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True) -
     With ``fits=False`` (``--no-fits``) only the maps and their statistics are computed: the centre
     is then the model-free centroid of the significant region around the peak pixel
     (:func:`map2d.maps.map_centroid_deg`) and there are no fit columns.
+
+    ``trace_decay`` ('auto', 'off' or seconds; ``--trace-decay``): for traces, the indicator decay
+    removed before the maps (:func:`map2d.traces.decay_corrected`); spikes are never filtered.
     """
     import dataclasses
 
@@ -245,6 +257,7 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True) -
     from .analysis import GRATING_ONLY_COLUMNS, analyze_session
     from .contract import load_session, write_table
 
+    trace_decay = _trace_decay_option(trace_decay)
     session = load_session(session_path)
     if session.sparse_noise is None:
         raise BadInput(Path(session_path) / "session.json", "sparse_noise",
@@ -256,17 +269,26 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True) -
         raise BadInput("--max-lag", None, f"{max_lag_s} s is too long for {sn.n_frames} frames "
                                           f"of {sn.frame_interval_s:.4g} s")
     if fits:
-        an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed)
+        an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed,
+                             trace_decay=trace_decay)
         res, spatial, model = an.maps, an.spatial_maps, an.model_maps
         table = {k: v for k, v in an.cells.items() if k not in GRATING_ONLY_COLUMNS}
     else:
+        from .contract import Traces
         from .maps import compute_maps, map_centroid_deg
-        res = compute_maps(session.responses, sn, max_lag_s=max_lag_s, rng=seed)
+        from .traces import decay_corrected
+        responses, decay = session.responses, None
+        if isinstance(responses, Traces):
+            responses, decay = decay_corrected(responses, trace_decay, skip_s=sn.frame_interval_s,
+                                               span_s=(sn.times_s[0], sn.frame_ends_s()[-1]))
+        res = compute_maps(responses, sn, max_lag_s=max_lag_s, rng=seed)
         spatial = model = np.full((res.n_cells,) + res.grid.shape, np.nan, dtype=np.float32)
         centres = np.array([map_centroid_deg(res, c) for c in range(res.n_cells)], dtype=float)
         table = {"cell": res.cell_ids, "responsive": res.responsive, "center_x_deg": centres[:, 0],
                  "center_y_deg": centres[:, 1], "peak_lag_s": res.peak_lag_s, "p_value": res.p_value,
                  "polarity": res.polarity, "onoff_overlap": res.onoff_overlap, "snr": res.snr}
+        if decay is not None:
+            table["trace_decay_tau_s"] = decay.tau_s
     g = res.grid
     with results_folder(out) as tmp:
         np.savez(  # not compressed: float maps shrink ~15 % for seconds of zlib on large sessions
@@ -428,18 +450,21 @@ def write_analysis(folder, analysis, session, report=True) -> list:
     return written
 
 
-def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None) -> int:
+def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None, trace_decay="auto") -> int:
     """``map2d analyze``: everything, the results contract, written atomically into ``out``.
 
     ``session_path`` is a session folder, a folder whose ``session.json`` points at an NWB file, or an
-    ``.nwb`` file with its mapping ``config`` (see :func:`map2d.nwb.load_source`).
+    ``.nwb`` file with its mapping ``config`` (see :func:`map2d.nwb.load_source`). ``trace_decay``:
+    see :func:`run_maps`.
     """
     from .analysis import analyze_session
     from .nwb import load_source
+    trace_decay = _trace_decay_option(trace_decay)
     session = load_source(session_path, config)
     bar = _StageBar(quiet)
     try:
-        analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, progress=bar)
+        analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, progress=bar,
+                                   trace_decay=trace_decay)
         bar("writing")
         with results_folder(out) as tmp:
             write_analysis(tmp, analysis, session)
