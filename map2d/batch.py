@@ -44,7 +44,7 @@ DISTRIBUTED_HINT = "running on a cluster needs the optional package dask.distrib
 
 
 def analyze_one(source, out, config=None, max_lag_s: float = 0.2, seed: int = 0, n_jobs: int = 1,
-                report: bool = True) -> dict:
+                report: bool = True, trace_decay="auto") -> dict:
     """Analyse one session into the results folder ``out`` (what ``map2d analyze`` writes).
 
     Runs in a batch worker; never raises for a session's own failure.
@@ -64,6 +64,8 @@ def analyze_one(source, out, config=None, max_lag_s: float = 0.2, seed: int = 0,
         units).
     report : bool
         Write ``report.html`` (the slowest file: figures); False leaves it out.
+    trace_decay : "auto", "off" or float
+        As ``--trace-decay`` of ``map2d analyze`` (imaging traces only).
 
     Returns
     -------
@@ -82,7 +84,8 @@ def analyze_one(source, out, config=None, max_lag_s: float = 0.2, seed: int = 0,
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", InputWarning)   # kept in session.notes instead
             session = load_source(source, config)
-            analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, n_jobs=n_jobs)
+            analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, n_jobs=n_jobs,
+                                       trace_decay=trace_decay)
             with results_folder(out) as tmp:
                 write_analysis(tmp, analysis, session, report=report)
         result["cells"] = int(len(analysis.cell_ids))
@@ -304,7 +307,7 @@ def _run_distributed(jobs, scheduler, workers, memory_limit, bar) -> dict:
 
 def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0.2, seed: int = 0,
               workers: int = LOCAL_WORKERS, memory_limit: str = LOCAL_MEMORY_LIMIT, report: bool = True,
-              quiet: bool = False) -> int:
+              quiet: bool = False, trace_decay="auto") -> int:
     """``map2d batch``: analyse every session, then write ``sessions.csv``, ``population.png``, ``batch.csv``.
 
     Parameters
@@ -327,6 +330,8 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
         Write each session's ``report.html`` (default); False saves the time of its figures.
     quiet : bool
         No progress bar and no summary (failures are still reported on stderr).
+    trace_decay : "auto", "off" or float
+        As ``--trace-decay`` of ``map2d analyze``, for every session (checked before anything runs).
 
     Returns
     -------
@@ -334,6 +339,8 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
         0 if every session succeeded; 2 if some failed and every failure was bad input; 1 if any failed
         with an internal error (or its worker died).
     """
+    from .pipeline import _trace_decay_option
+    trace_decay = _trace_decay_option(trace_decay)
     sources = find_sessions(sources)
     names = _session_names(sources)
     if scheduler not in (None, "sync") and not str(scheduler).startswith(("tcp://", "tls://", "inproc://",
@@ -354,7 +361,7 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
     out = Path(out).absolute()
     _prepare_out(out)
     jobs = {name: (str(src.absolute()), str(out / name), config if src.suffix.lower() == ".nwb" else None,
-                   float(max_lag_s), int(seed), 1, bool(report))
+                   float(max_lag_s), int(seed), 1, bool(report), trace_decay)
             for name, src in zip(names, sources)}
     bar = _Bar(len(jobs), quiet)
     t0 = time.perf_counter()

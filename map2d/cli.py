@@ -129,6 +129,8 @@ def build_parser() -> argparse.ArgumentParser:
     bat.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
                      help="longest lag in seconds (default 0.2)")
     bat.add_argument("--seed", type=int, default=0, help="seed for shuffles and bootstraps (default 0)")
+    bat.add_argument("--trace-decay", default="auto", dest="trace_decay", metavar="auto|off|SECONDS",
+                     help="imaging traces: remove the indicator's decay before the maps (as for analyze)")
     bat.add_argument("--no-report", action="store_true",
                      help="leave report.html out of each session's folder (faster; tables, stacks and arrays "
                           "are still written)")
@@ -182,7 +184,7 @@ def _dispatch(args) -> int:
         return pipeline.run_batch(args.sessions, args.out, scheduler=args.scheduler, config=args.config,
                                   max_lag_s=args.max_lag_s, seed=args.seed, workers=args.workers,
                                   memory_limit=args.memory_limit, report=not args.no_report,
-                                  quiet=args.quiet)
+                                  quiet=args.quiet, trace_decay=args.trace_decay)
     if args.command == "demo":
         return pipeline.run_demo(args.out, quiet=args.quiet)
     raise AssertionError(args.command)

@@ -3,6 +3,7 @@ started here on 127.0.0.1; the same files either way; a failing session is named
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import json
 import re
@@ -174,3 +175,19 @@ def test_find_sessions_expands_a_folder_of_sessions(sessions):
     found = batch.find_sessions([sessions])
     assert [p.name for p in found] == NAMES + ["d_broken"]
     assert batch.find_sessions([sessions / NAMES[1]]) == [sessions / NAMES[1]]
+
+
+def test_trace_decay_option_reaches_every_session(tmp_path, capsys):
+    """``--trace-decay`` as for ``map2d analyze``: a given time constant is used for an imaging session
+    (the table says which), a bad value is refused before anything runs."""
+    src = tmp_path / "img"
+    write_session(src / "t1", simulate_session(seed=5, responses="traces", **TINY)[0])
+    with pytest.raises(BadInput, match="--trace-decay"):
+        batch.run_batch([src], tmp_path / "bad", scheduler="sync", trace_decay="soon", quiet=True)
+    assert not (tmp_path / "bad").exists()
+    out = tmp_path / "out"
+    assert map2d.cli.main(["batch", str(src), "--out", str(out), "--scheduler", "sync", "--no-report",
+                           "--trace-decay", "0.37", "--quiet"]) == 0
+    with open(out / "t1" / "cells.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert rows and all(float(r["trace_decay_tau_s"]) == pytest.approx(0.37) for r in rows)
