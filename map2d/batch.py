@@ -240,6 +240,8 @@ class _Bar:
 
     def __init__(self, total, quiet):
         from tqdm import tqdm
+        # no monitor thread: a second thread keeps the tuning fits from using worker processes
+        tqdm.monitor_interval = 0
         self.quiet = quiet
         self.bar = tqdm(total=total, disable=quiet or not sys.stderr.isatty(), unit="session",
                         desc="map2d batch", leave=False)

@@ -377,6 +377,8 @@ class _StageBar:
         import sys
 
         from tqdm import tqdm
+        # no monitor thread: a second thread keeps the tuning fits from using worker processes
+        tqdm.monitor_interval = 0
         self.bar = tqdm(total=len(self.STAGES), disable=quiet or not sys.stderr.isatty(),
                         unit="stage", leave=False, bar_format="{desc:<20} {bar} {n_fmt}/{total_fmt}")
 

@@ -280,3 +280,15 @@ def test_gratings_only_session_leaves_map_columns_and_linear_call_empty():
     assert all(v is None for v in an.cells["linear"])
     assert set(map(str, an.cells["linear_reason"])) == {"no map"}
     assert all(v is None for v in an.cells["responsive"])
+
+
+def test_progress_bars_start_no_monitor_thread():
+    """tqdm's monitor thread would make the process multi-threaded, and the tuning fits then stay in
+    one process (forking a multi-threaded process is unsafe): a 500-cell analysis took 46 s instead of 30."""
+    from tqdm import tqdm
+
+    from map2d.batch import _Bar
+    from map2d.pipeline import _StageBar
+    for bar in (_StageBar(True), _Bar(3, True)):
+        bar.bar.close()
+        assert tqdm.monitor_interval == 0
