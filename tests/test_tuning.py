@@ -439,3 +439,31 @@ def test_screened_dog_fit_is_no_worse_than_many_starts():
                                for r in np.geomspace(rc_lo, rc_hi, 6) for t in (1.5, 3, 8)],
                               [0, 0, rc_lo, _DOG_T_BOUNDS[0]], [50 * span, 50 * span, rc_hi, _DOG_T_BOUNDS[1]])
         assert got["ssr"] <= ref * (1 + 1e-5)
+
+
+def test_centre_surround_cell_with_aliased_orientation_modulation_gets_no_orientation():
+    """With 4 phases, a rectified centre-surround cell away from the phase origin can show a small but
+    significant orientation modulation (harmonics 3 and 5 alias onto the first; their share depends on
+    the response phase, which changes with orientation). Such a cell (simulator seed 4, cell 7: F test
+    p = 0.004, circular variance 0.97) must not get a preferred orientation; tuned Gabor cells keep theirs
+    (circular variance <= 0.70 on the simulator)."""
+    from map2d.fit.tuning import MAX_CIRCULAR_VARIANCE_ORIENTED, _flashed_curves, grating_tuning_columns
+    from map2d.gratings import analyze_flashed
+    simulate = pytest.importorskip("map2d.simulate")
+    s, truth = simulate.simulate_session(n_cells=30, minutes=0, flashed_minutes=10, repeats=0, seed=4,
+                                         sfs_cpd=np.geomspace(0.02, 0.16, 7), peak_rate_hz=(150.0, 250.0))
+    fl = analyze_flashed(s.responses, s.gratings, rng=0)
+    curves = _flashed_curves(fl, 7)
+    assert truth["cells"][7]["kind"] == "off_dog"
+    assert fit_orientation(curves[0], curves[1]).tuned                 # the F test alone is fooled
+    cols = grating_tuning_columns(fl, None)
+    for i, tc in enumerate(truth["cells"]):
+        if not cols["grating_responsive"][i]:
+            continue
+        if "dog" in tc["kind"]:
+            assert np.isnan(cols["pref_orientation_deg"][i]), i
+            assert cols["circular_variance"][i] > MAX_CIRCULAR_VARIANCE_ORIENTED
+            assert cols["pref_sf_cpd"][i] == pytest.approx(tc["pref_sf_cpd"], rel=0.15), i
+        elif tc["kind"] in ("simple", "complex"):
+            d = abs((cols["pref_orientation_deg"][i] - tc["pref_orientation_deg"] + 90) % 180 - 90)
+            assert d < 5.0, i

@@ -1038,6 +1038,15 @@ TUNING_COLUMNS = (
 )
 
 
+#: A preferred orientation is reported only when the von Mises fit beats a constant (F test) and the
+#: circular variance is at most this (ours). With 4 phases per grating the first harmonic of a rectified
+#: response aliases harmonics 3 and 5, by an amount that depends on the response phase, which for a
+#: cell away from the phase origin changes with orientation: at high signal-to-noise a centre-surround
+#: cell then shows a small but significant orientation modulation. On simulated sessions that
+#: modulation gave circular variances of 0.97 and above, Gabor cells 0.70 and below.
+MAX_CIRCULAR_VARIANCE_ORIENTED = 0.9
+
+
 def _rank1(surface):
     """Rank-1 (SVD) orientation and SF profiles of an (O, S) surface, in response units."""
     m = np.where(np.isfinite(surface), surface, 0.0)
@@ -1126,8 +1135,9 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
     from drifting gratings when it responds to those; ``tuning_source`` says which. F1/F0, the
     simple/complex class, direction preference and DSI come from drifting gratings only. A cell
     without a significant response to any grating gets empty values; a responsive cell whose
-    orientation fit does not beat a constant (F test, p >= 0.01, e.g. a centre-surround cell) gets an empty preferred orientation and width (its circular variance and
-    OSI are still reported). ``circular_variance`` is the
+    orientation fit does not beat a constant (F test, p >= 0.01, e.g. a centre-surround cell), or whose
+    circular variance is above :data:`MAX_CIRCULAR_VARIANCE_ORIENTED`, gets an empty preferred
+    orientation and width (its circular variance and OSI are still reported). ``circular_variance`` is the
     circular variance itself (0 = one orientation, 1 = untuned); ``osi`` and ``circular_variance``
     use the same orientation curve as the fit. For flashed gratings the orientation curve is the
     rank-1 (SVD) orientation profile of the lag-pooled (orientation x SF) surface
@@ -1248,14 +1258,15 @@ def _tuning_chunk(flashed, drifting, cell_ids):
             row["circular_variance"] = cv
             row["osi"] = osi(th, ocurve)
             of = fit_orientation(th, ocurve)
-            if surface is not None and of.tuned:
+            oriented = of.tuned and np.isfinite(cv) and cv <= MAX_CIRCULAR_VARIANCE_ORIENTED
+            if surface is not None and oriented:
                 scurve = _sf_near(th, surface, of)
-            if of.tuned:
+            if oriented:
                 row.update(pref_orientation_deg=of.pref_deg, pref_orientation_ci95_deg=of.pref_ci95_deg,
                            orientation_hwhh_deg=of.hwhh_deg, orientation_hwhh_ci95_deg=of.hwhh_ci95_deg,
                            ori_fit_baseline=of.params[0], ori_fit_amplitude=of.params[1],
                            ori_fit_kappa=of.params[2], ori_fit_r2=of.r2)
-            sfit = table_sf_fit(th, sfs, scurve, surface, of)
+            sfit = table_sf_fit(th, sfs, scurve, surface, of if oriented else None)
             if sfit.ok:
                 row.update(pref_sf_cpd=sfit.pref_cpd, pref_sf_ci_low_cpd=sfit.pref_ci_low_cpd,
                            pref_sf_ci_high_cpd=sfit.pref_ci_high_cpd, sf_bandwidth_oct=sfit.bandwidth_oct,
