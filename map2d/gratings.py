@@ -564,11 +564,12 @@ class DriftingResult:
     pref_direction_deg : (cells,)  direction of the largest ``response`` at the preferred SF/TF
     dsi : (cells,)  ``(R_pref - R_opp) / (R_pref + R_opp)`` with ``R_opp`` (opposite direction,
         same SF/TF) clipped at 0; NaN if the opposite direction was not shown
-    p_value : (cells,)  ``min(1, 3 min(p_F0, p_F1, p_spont))`` (Bonferroni over the three tests):
-        one-way ANOVA of the trial F0 across conditions; (Bonferroni over conditions) the F test of a
-        non-zero vector-mean F1 against the pooled within-condition scatter; and Welch's t test of the
-        trials' mean response against the spontaneous windows (a cell driven equally by every
-        condition, with an unmodulated response, is found only by this one)
+    p_value : (cells,)  ``min(1, k min(p_F0, p_F1, p_spont))`` (Bonferroni over the ``k`` tests that
+        could be done): one-way ANOVA of the trial F0 across conditions; (Bonferroni over conditions)
+        the F test of a non-zero vector-mean F1 against the pooled within-condition scatter; and the
+        trials' response against the spontaneous windows (a cell driven equally by every condition,
+        with an unmodulated response, is found only by this one): for spikes the pooled rates under a
+        quasi-Poisson model (``_rate_difference_p``), for traces Welch's t test of the window levels
     responsive : (cells,) bool
     trace_tau_s : float  traces: the indicator decay used for F0 and F1 (NaN: none; spikes: NaN)
     """
@@ -737,10 +738,45 @@ def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: floa
     return tau if tau < 0.99 * 10 * win else float("nan")
 
 
-def _welch_p(a, b):
+def _rate_difference_p(trial_rates, trial_len, spont_rates, spont_len, trial_var, min_expected=10.0):
+    """Two-sided p that the spike rate during trials differs from the spontaneous rate.
+
+    Rates are pooled over time (spikes / seconds) on each side; under the null hypothesis both are one
+    rate ``lam`` (estimated from both sides), and the counts are Poisson with the dispersion ``phi``
+    seen across the trials of a condition (``trial_var`` = pooled within-condition variance of the
+    trial rates, ``phi = trial_var * mean trial length / trial rate``, at least 1: a quasi-Poisson
+    model, McCullagh & Nelder 1989, Generalized Linear Models, sec. 6.2), so the difference of the two
+    rates has variance ``phi lam (1/T1 + 1/T2)``; normal approximation. NaN when fewer than
+    ``min_expected`` spontaneous spikes are expected (the approximation and the spontaneous estimate
+    are then poor; a sample variance of a few short windows of a slowly firing cell makes a t test
+    call too many cells responsive)."""
+    n_cells = trial_rates.shape[0]
+    out = np.full(n_cells, np.nan)
+    if spont_rates.shape[1] == 0 or trial_rates.shape[1] == 0:
+        return out
+    with np.errstate(invalid="ignore", divide="ignore"):
+        f1, f2 = np.isfinite(trial_rates), np.isfinite(spont_rates)
+        t1 = (f1 * trial_len[None, :]).sum(axis=1)
+        t2 = (f2 * spont_len[None, :]).sum(axis=1)
+        c1 = np.where(f1, trial_rates, 0.0) @ trial_len
+        c2 = np.where(f2, spont_rates, 0.0) @ spont_len
+        lam = (c1 + c2) / (t1 + t2)
+        r1 = c1 / t1
+        mean_len = t1 / f1.sum(axis=1)
+        phi = np.where(np.isfinite(trial_var) & (r1 > 0), trial_var * mean_len / r1, 1.0)
+        phi = np.maximum(np.where(np.isfinite(phi), phi, 1.0), 1.0)
+        var = phi * lam * (1.0 / t1 + 1.0 / t2)
+        z = (r1 - c2 / t2) / np.sqrt(var)
+        p = 2.0 * stats.norm.sf(np.abs(z))
+    ok = (t1 > 0) & (t2 > 0) & (lam * t2 >= min_expected) & (var > 0) & np.isfinite(p)
+    out[ok] = p[ok]
+    return out
+
+
+def _welch_p(a, b, min_n=5):
     """Two-sided p of Welch's t test of the row means of ``a`` (cells, n) against ``b`` (cells, m),
-    NaN entries left out (Welch 1947, Biometrika 34:28); NaN with fewer than 2 values on a side or no
-    spread."""
+    NaN entries left out (Welch 1947, Biometrika 34:28); NaN with fewer than ``min_n`` values or no
+    spread on a side."""
     def moments(x):
         f = np.isfinite(x)
         n = f.sum(axis=1).astype(float)
@@ -759,7 +795,7 @@ def _welch_p(a, b):
         t = (ma - mb) / np.sqrt(se2)
         df = se2**2 / (qa**2 / (na - 1) + qb**2 / (nb - 1))
         p = 2.0 * stats.t.sf(np.abs(t), df)
-    return np.where((na >= 2) & (nb >= 2) & (se2 > 0) & np.isfinite(p), p, np.nan)
+    return np.where((na >= min_n) & (nb >= min_n) & (va > 0) & (vb > 0) & np.isfinite(p), p, np.nan)
 
 
 def _window_levels(responses, start, stop, tau_s):
@@ -777,14 +813,14 @@ def _window_levels(responses, start, stop, tau_s):
 def _spontaneous(responses, table: GratingTable, drift_rows, tau_s=float("nan")):
     """Spontaneous level from blank rows outside flashed sequences, else from gaps between trials.
 
-    Returns ``(mean level per cell, source, level of every window (cells, windows))``."""
+    Returns ``(mean level per cell, source, level of every window (cells, windows), window lengths)``."""
     blanks = np.flatnonzero(table.is_blank & ~flashed_rows(table))
     if blanks.size:
         blanks = blanks[np.argsort(table.onset_s[blanks], kind="stable")]
-        r = _window_levels(responses, table.onset_s[blanks].astype(float), table.offset_s[blanks].astype(float),
-                           tau_s)
+        b_on, b_off = table.onset_s[blanks].astype(float), table.offset_s[blanks].astype(float)
+        r = _window_levels(responses, b_on, b_off, tau_s)
         with np.errstate(invalid="ignore"):
-            return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "blanks", r
+            return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "blanks", r, b_off - b_on
     on = table.onset_s[drift_rows]
     off = table.offset_s[drift_rows]
     if on.size > 1:
@@ -798,9 +834,10 @@ def _spontaneous(responses, table: GratingTable, drift_rows, tau_s=float("nan"))
         if use.any():
             r = _window_levels(responses, start[use].astype(float), stop[use].astype(float), tau_s)
             with np.errstate(invalid="ignore"):
-                return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "gaps", r
+                return (np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "gaps", r,
+                        (stop[use] - start[use]).astype(float))
     n = responses.cell_ids.size
-    return np.full(n, np.nan), "none", np.full((n, 0), np.nan)
+    return np.full(n, np.nan), "none", np.full((n, 0), np.nan), np.zeros(0)
 
 
 def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: float = 0.01,
@@ -874,7 +911,7 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         else:
             tau = float(trace_tau_s)
         raw, trial_f1 = _trace_f1(responses, onset, end, tf, tau)
-    spont, source, spont_windows = _spontaneous(responses, table, rows, tau)
+    spont, source, spont_windows, spont_len = _spontaneous(responses, table, rows, tau)
     # refer each trial's F1 to stimulus phase 0 at onset: a grating started at phase p shifts the
     # response by p (F1 ~ exp(-i p) for tf > 0, exp(+i p) for tf < 0), so that without this trials of
     # one condition shown at different start phases cancel in the vector mean
@@ -953,11 +990,17 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         n_tested = np.isfinite(p_each).sum(axis=1)
         p_f1 = np.where(n_tested > 0, np.minimum(1.0, np.nanmin(np.where(np.isfinite(p_each), p_each, np.inf),
                                                                  axis=1) * n_tested), np.nan)
-        p_sp = _welch_p(raw, spont_windows)
+        if isinstance(responses, Spikes):
+            var_w = ssw0 / np.maximum(df_w, 1)            # pooled within-condition variance of trial rates
+            p_sp = _rate_difference_p(raw, window, spont_windows, spont_len,
+                                      np.where(df_w > 0, var_w, np.nan))
+        else:
+            p_sp = _welch_p(raw, spont_windows)
         both = np.stack([p_f0, p_f1, p_sp])
-        pmin = np.where(np.isfinite(both).any(axis=0), np.nanmin(np.where(np.isfinite(both), both, np.inf), axis=0),
-                        np.nan)
-        p_value = np.minimum(1.0, 3.0 * pmin)
+        fin_p = np.isfinite(both)
+        n_tests = fin_p.sum(axis=0)
+        pmin = np.where(n_tests > 0, np.nanmin(np.where(fin_p, both, np.inf), axis=0), np.nan)
+        p_value = np.minimum(1.0, n_tests * pmin)
     responsive = np.isfinite(p_value) & (p_value < alpha)
 
     return DriftingResult(

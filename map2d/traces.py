@@ -408,5 +408,10 @@ def decay_corrected(traces: Traces, decay="auto", skip_s: float = 0.05, span_s=N
         tau = np.full(C, float(decay))
         source = np.full(C, "given", dtype=object)
         mode = "given"
+    # a cell without data (fewer than 2 finite samples) has nothing removed: no time constant shown
+    empty = np.isfinite(np.asarray(traces.values, float)).sum(axis=1) < 2
+    if empty.any():
+        tau = np.where(empty, np.nan, tau)
+        source = np.where(empty, "none", source).astype(object)
     keep = _residual_smoothing(tau, g, g0, lags, dt) if resmooth else np.zeros(C)
     return remove_decay(traces, tau, keep), TraceDecay(tau, est, source, mode, keep)

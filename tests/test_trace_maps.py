@@ -230,3 +230,20 @@ def test_cli_trace_decay_option(tmp_path):
     assert not (tmp_path / "bad").exists()
     assert main(["analyze", str(tmp_path / "s"), "--out", str(tmp_path / "bad2"), "--quiet",
                  "--trace-decay", "-3"]) == 2
+
+
+def test_a_cell_without_data_shows_no_decay_constant():
+    """An all-NaN trace row has nothing estimated or removed: its time constant is NaN (not the session
+    median), with auto and with a given value."""
+    from scipy.signal import lfilter
+
+    from map2d.traces import decay_corrected
+    rng = np.random.default_rng(0)
+    t = np.arange(0.0, 120.0, 1 / 30)
+    x = lfilter([1.0], [1.0, -np.exp(-1 / 30 / 0.4)], rng.poisson(0.5, (3, t.size)).astype(float), axis=1) * 0.1
+    x = x + rng.normal(0.0, 0.02, x.shape)
+    x[2] = np.nan
+    for mode in ("auto", 0.5):
+        tr, d = decay_corrected(Traces(values=x, times_s=t), mode)
+        assert np.all(np.isfinite(d.tau_s[:2])) and np.isnan(d.tau_s[2]) and d.source[2] == "none"
+        assert not np.isfinite(tr.values[2]).any()

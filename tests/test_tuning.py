@@ -467,3 +467,28 @@ def test_centre_surround_cell_with_aliased_orientation_modulation_gets_no_orient
         elif tc["kind"] in ("simple", "complex"):
             d = abs((cols["pref_orientation_deg"][i] - tc["pref_orientation_deg"] + 90) % 180 - 90)
             assert d < 5.0, i
+
+
+def test_weak_but_clean_drifting_orientation_tuning_is_kept():
+    """The circular-variance gate is for the phase aliasing of flashed sequences; a drifting-grating
+    curve with a weak but significant orientation preference (circular variance 0.975) keeps it.
+    ``sf_fit_params_model`` names the model of the SF parameter columns."""
+    from types import SimpleNamespace
+
+    from map2d.fit.tuning import MAX_CIRCULAR_VARIANCE_ORIENTED, grating_tuning_columns
+    dirs = np.arange(16) * 22.5
+    sfs = np.array([0.02, 0.04, 0.08, 0.16, 0.32])
+    ori = 1.0 + 0.05 * np.cos(2 * np.deg2rad(dirs - 60.0))                # 1 - CV = 0.025
+    sf = np.exp(-0.5 * (np.log2(sfs / 0.07) / 0.8) ** 2)
+    resp = (ori[:, None] * sf[None, :])[None, :, :, None]                # (cells, D, S, T)
+    dr = SimpleNamespace(cell_ids=np.array([5]), p_value=np.array([1e-6]), responsive=np.array([True]),
+                         f1_f0=np.array([0.3]), simple=np.array([False]), dsi=np.array([0.0]),
+                         pref_direction_deg=np.array([60.0]), pref_index=np.array([[2, 2, 0]]),
+                         response=resp, directions_deg=dirs, sfs_cpd=sfs)
+    cols = grating_tuning_columns(drifting=dr)
+    assert cols["tuning_source"] == ["drifting"]
+    assert cols["circular_variance"][0] > MAX_CIRCULAR_VARIANCE_ORIENTED
+    assert cols["pref_orientation_deg"][0] == pytest.approx(60.0, abs=0.5)
+    assert cols["pref_sf_cpd"][0] == pytest.approx(0.07, rel=0.01)
+    assert cols["sf_fit_params_model"][0] in ("log_gaussian", "gaussian", "dog")
+    assert cols["sf_fit_model"][0] in (cols["sf_fit_params_model"][0], "average")

@@ -1034,7 +1034,7 @@ TUNING_COLUMNS = (
     "pref_sf_ci_high_cpd", "sf_bandwidth_oct", "sf_bandwidth_ci95_oct", "circular_variance", "osi",
     "pref_direction_deg", "dsi", "f1_f0", "grating_class", "flashed_peak_lag_s", "flashed_p_value",
     "drifting_p_value", "ori_fit_baseline", "ori_fit_amplitude", "ori_fit_kappa", "ori_fit_r2",
-    "sf_fit_model", "sf_fit_baseline", "sf_fit_amplitude", "sf_fit_width", "sf_fit_r2",
+    "sf_fit_model", "sf_fit_params_model", "sf_fit_baseline", "sf_fit_amplitude", "sf_fit_width", "sf_fit_r2",
 )
 
 
@@ -1136,8 +1136,11 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
     simple/complex class, direction preference and DSI come from drifting gratings only. A cell
     without a significant response to any grating gets empty values; a responsive cell whose
     orientation fit does not beat a constant (F test, p >= 0.01, e.g. a centre-surround cell), or whose
-    circular variance is above :data:`MAX_CIRCULAR_VARIANCE_ORIENTED`, gets an empty preferred
-    orientation and width (its circular variance and OSI are still reported). ``circular_variance`` is the
+    flashed-grating circular variance is above :data:`MAX_CIRCULAR_VARIANCE_ORIENTED`, gets an empty
+    preferred orientation and width (its circular variance and OSI are still reported).
+    ``sf_fit_model`` names the SF model (or ``"average"``), ``sf_fit_params_model`` the model whose
+    parameters ``sf_fit_baseline``, ``sf_fit_amplitude`` and ``sf_fit_width`` are (width in octaves
+    for ``log_gaussian``, cycles/deg for ``gaussian``, the centre radius in degrees for ``dog``). ``circular_variance`` is the
     circular variance itself (0 = one orientation, 1 = untuned); ``osi`` and ``circular_variance``
     use the same orientation curve as the fit. For flashed gratings the orientation curve is the
     rank-1 (SVD) orientation profile of the lag-pooled (orientation x SF) surface
@@ -1227,6 +1230,7 @@ def _tuning_chunk(flashed, drifting, cell_ids):
         row["tuning_source"] = ""
         row["grating_class"] = ""
         row["sf_fit_model"] = ""
+        row["sf_fit_params_model"] = ""
         fi = fl_pos.get(cid)
         di = dr_pos.get(cid)
         fl_resp = fi is not None and bool(flashed.responsive[fi])
@@ -1258,7 +1262,9 @@ def _tuning_chunk(flashed, drifting, cell_ids):
             row["circular_variance"] = cv
             row["osi"] = osi(th, ocurve)
             of = fit_orientation(th, ocurve)
-            oriented = of.tuned and np.isfinite(cv) and cv <= MAX_CIRCULAR_VARIANCE_ORIENTED
+            # the circular-variance gate is for the 4-phase aliasing of flashed sequences only
+            oriented = of.tuned and (row["tuning_source"] != "flashed"
+                                     or (np.isfinite(cv) and cv <= MAX_CIRCULAR_VARIANCE_ORIENTED))
             if surface is not None and oriented:
                 scurve = _sf_near(th, surface, of)
             if oriented:
@@ -1272,7 +1278,7 @@ def _tuning_chunk(flashed, drifting, cell_ids):
                            pref_sf_ci_high_cpd=sfit.pref_ci_high_cpd, sf_bandwidth_oct=sfit.bandwidth_oct,
                            sf_bandwidth_ci95_oct=sfit.bandwidth_ci95_oct, sf_fit_baseline=sfit.params[0],
                            sf_fit_amplitude=sfit.params[1], sf_fit_width=sfit.params[3], sf_fit_r2=sfit.r2,
-                           sf_fit_model=sfit.model)
+                           sf_fit_model=sfit.model, sf_fit_params_model=sfit.params_model)
         for k in TUNING_COLUMNS:
             out[k].append(row[k])
     return out
