@@ -681,6 +681,20 @@ def _trace_f1(traces: Traces, onset, end, tf, tau_s=float("nan"), harmonic=True)
     return f0, f1
 
 
+def _nanmean(a, axis):
+    """Mean over ``axis`` leaving NaN out; NaN (without a warning) where nothing is finite."""
+    f = np.isfinite(a)
+    n = f.sum(axis=axis)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n > 0, np.where(f, a, 0.0).sum(axis=axis) / np.maximum(n, 1), np.nan)
+
+
+def _nanstd(a, axis):
+    """Population standard deviation over ``axis`` leaving NaN out; NaN where nothing is finite."""
+    m = np.expand_dims(_nanmean(a, axis), axis)
+    return np.sqrt(_nanmean((a - m) ** 2, axis))
+
+
 def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: float = 3.0,
                        skip_s: float = 0.1) -> float:
     """Decay time constant of the traces after stimulus offsets (e.g. a calcium indicator), seconds.
@@ -712,15 +726,15 @@ def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: floa
     idx = i0[keep, None] + np.arange(nb)[None, :]
     t_rel = np.mean(times[idx] - ends[keep, None], axis=0)
     with np.errstate(invalid="ignore"):
-        mean = np.nanmean(vals[:, idx], axis=1)                       # (cells, nb)
-        sem = np.nanstd(vals[:, idx], axis=1) / np.sqrt(keep.sum())
+        mean = _nanmean(vals[:, idx], axis=1)                         # (cells, nb)
+        sem = _nanstd(vals[:, idx], axis=1) / np.sqrt(keep.sum())
     late = t_rel >= 0.8 * t_rel[-1]
     first = (t_rel >= skip_s) & (t_rel < skip_s + 2 * dt + 1e-12)
     if not late.any() or not first.any():
         return float("nan")
-    base = np.nanmean(mean[:, late], axis=1)
-    amp = np.nanmean(mean[:, first], axis=1) - base
-    noise = np.nanmean(sem[:, first], axis=1)
+    base = _nanmean(mean[:, late], axis=1)
+    amp = _nanmean(mean[:, first], axis=1) - base
+    noise = _nanmean(sem[:, first], axis=1)
     good = np.isfinite(amp) & (np.abs(amp) > 4 * noise)
     if not good.any():
         return float("nan")
@@ -820,7 +834,7 @@ def _spontaneous(responses, table: GratingTable, drift_rows, tau_s=float("nan"))
         b_on, b_off = table.onset_s[blanks].astype(float), table.offset_s[blanks].astype(float)
         r = _window_levels(responses, b_on, b_off, tau_s)
         with np.errstate(invalid="ignore"):
-            return np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "blanks", r, b_off - b_on
+            return _nanmean(r, axis=1), "blanks", r, b_off - b_on
     on = table.onset_s[drift_rows]
     off = table.offset_s[drift_rows]
     if on.size > 1:
@@ -834,7 +848,7 @@ def _spontaneous(responses, table: GratingTable, drift_rows, tau_s=float("nan"))
         if use.any():
             r = _window_levels(responses, start[use].astype(float), stop[use].astype(float), tau_s)
             with np.errstate(invalid="ignore"):
-                return (np.nanmean(np.where(np.isfinite(r), r, np.nan), axis=1), "gaps", r,
+                return (_nanmean(r, axis=1), "gaps", r,
                         (stop[use] - start[use]).astype(float))
     n = responses.cell_ids.size
     return np.full(n, np.nan), "none", np.full((n, 0), np.nan), np.zeros(0)
