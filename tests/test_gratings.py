@@ -622,3 +622,26 @@ def test_drifting_responsive_call_is_calibrated_on_cells_that_ignore_the_stimulu
     assert dr.spontaneous_source == ("blanks" if blanks else "gaps")
     assert dr.responsive.mean() <= 0.02
     assert (dr.p_value < 0.05).mean() <= 0.08                     # nominal 5 %
+
+
+def test_a_trace_without_data_gives_nan_quietly():
+    """A cell whose trace is all NaN gets NaN spontaneous level and p value, and no RuntimeWarning
+    reaches the user."""
+    import warnings
+    rows, t = [], 1.0
+    for _ in range(3):
+        for d in range(0, 360, 45):
+            rows.append((t, t + 2.0, d, 0.04, 0.0, 1.0, 2.0))
+            t += 3.0
+    a = np.array(rows)
+    table = GratingTable.from_columns(onset_s=a[:, 0], offset_s=a[:, 1], orientation_deg=a[:, 2], sf_cpd=a[:, 3],
+                                      phase_deg=a[:, 4], contrast=a[:, 5], tf_hz=a[:, 6])
+    tt = np.arange(0.0, t + 1.0, 1 / 30)
+    rng = np.random.default_rng(3)
+    x = rng.normal(0.0, 0.1, (2, tt.size))
+    x[1] = np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        dr = analyze_drifting(Traces(values=x, times_s=tt), table)
+    assert np.isfinite(dr.spontaneous[0]) and np.isnan(dr.spontaneous[1]) and np.isnan(dr.p_value[1])
+    assert not dr.responsive[1]
