@@ -680,7 +680,13 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     (no stimulus event, no response), so that frames on either side of a gap are more than the longest
     lag apart; the products, counts and circular-shift shuffles then run unchanged on that timeline,
     and the empty rows count as frames without a response (as NaN trace frames do), which keeps the
-    null calibrated. For dense (real-valued) noise only the responses of invalid frames are left out.
+    null calibrated. Dense (real-valued) noise follows the same rule on the same timeline, without
+    copying the movie: the stimulus of an invalid frame is skipped as it is streamed, the response of
+    a valid frame ``t`` is paired with the row ``row(t) + l`` of the padded responses, the stimulus
+    mean and variance are over the valid frames, and the plain STA divides by the number of pairs
+    used at each lag (``sum over stretches of max(length - l, 0)``). Its analytic null sd, and that of
+    each circular shift (whose count of pairs with a response is exact for the offset), use those
+    counts, so the shuffle calibration stays a single factor per cell.
 
     **Dense noise** (real-valued frames): ``linear`` is the kernel in response units per unit of
     stimulus — the cross-covariance of the stimulus and the lagged response divided by the pixel's
@@ -705,8 +711,8 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     dense = not np.issubdtype(noise.frames.dtype, np.integer)
     min_shift = int(round(min_shift_s / frame_s))
     valid = _valid_mask(noise)
-    # frames spanning dropped frames: the sparse engine works on a gap-padded timeline (see Notes)
-    layout = None if valid is None or dense else (*_gap_layout(valid, int(lags[-1])), valid)
+    # frames spanning dropped frames: both engines work on a gap-padded timeline (see Notes)
+    layout = None if valid is None else (*_gap_layout(valid, int(lags[-1])), valid)
     if isinstance(responses, Spikes) and not dense:
         # spike rates are built block by block of frames from the spike list (no frames x cells matrix)
         return _compute_sparse(_SpikeRows(responses, noise, layout=layout), noise, lags,
@@ -739,7 +745,7 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     R = Rf.T                                                          # (cells, frames) view
     if dense:
         return _compute_dense(R, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
-                              min_shift, dense_method, n_folds)
+                              min_shift, dense_method, n_folds, layout=layout)
     return _compute_sparse(Rf, noise, lags, cell_ids, unit, frame_s, int(n_shuffles), alpha, rng,
                            min_shift, n_jobs=n_jobs, layout=layout)
 
@@ -1037,30 +1043,70 @@ def release_pages(arr) -> None:
             pass
 
 
-def _stimulus_moments(frames, chunk=_CHUNK_FRAMES):
-    """Per-pixel mean and variance of real frames (F, ...), streamed over chunks."""
+def _stimulus_moments(frames, chunk=_CHUNK_FRAMES, valid=None):
+    """Per-pixel mean and variance of real frames (F, ...), streamed over chunks (over the frames
+    with ``valid`` True only, when a mask is given)."""
     F = frames.shape[0]
     P = int(np.prod(frames.shape[1:]))
     s1 = np.zeros(P)
     s2 = np.zeros(P)
     for a in range(0, F, chunk):
         blk = _read_frames(frames, a, a + chunk).astype(np.float64).reshape(-1, P)
+        if valid is not None:
+            blk = blk[valid[a:a + chunk]]
         s1 += blk.sum(axis=0)
         s2 += (blk ** 2).sum(axis=0)
-    mu = s1 / F
-    return mu, np.maximum(s2 / F - mu ** 2, 0.0)
+    n = F if valid is None else max(int(valid.sum()), 1)
+    mu = s1 / n
+    return mu, np.maximum(s2 / n - mu ** 2, 0.0)
 
 
-def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks=1, gram=False):
+def _check_valid(valid, F):
+    """A user's ``valid`` mask (frames,) as bool, or None when absent or all True."""
+    if valid is None:
+        return None
+    valid = np.asarray(valid)
+    if valid.shape != (F,) or valid.dtype != bool:
+        raise ValueError(f"valid must be a bool mask of shape ({F},), got {valid.dtype} {valid.shape}")
+    return None if valid.all() else valid
+
+
+def _pad_rows(R, layout):
+    """(cells, F) responses -> (cells, n_rows) on the gap-padded timeline (NaN in the empty rows)."""
+    row, n_rows, _, valid = layout
+    out = np.full((R.shape[0], n_rows), np.nan, dtype=np.float32)
+    out[:, row[valid]] = R[:, valid]
+    return out
+
+
+def _pairs_per_lag(row_valid, lags):
+    """Pairs (valid row ``r``, valid row ``r + l``) at each lag: frames ``t .. t + l`` all valid."""
+    n = row_valid.size
+    return np.array([float(np.count_nonzero(row_valid[:n - lag] & row_valid[lag:])) for lag in lags])
+
+
+def _circular_pairs(row_valid):
+    """``a[s]`` = number of valid rows ``r`` with row ``(r + s) mod n`` valid, for every shift ``s``
+    (the circular autocorrelation of the mask, by FFT)."""
+    v = row_valid.astype(np.float64)
+    return np.rint(np.fft.irfft(np.abs(np.fft.rfft(v)) ** 2, n=v.size))
+
+
+def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks=1, gram=False,
+                 layout=None):
     """Sums ``sum_t (s_t - mu) X[t + o]`` for every offset, streamed over chunks of frames.
 
     Returns ``cross`` (n_blocks, O, P, C) summed within each contiguous time block (the frame of
     the stimulus decides the block) and, if ``gram``, the per-block Gram matrices (n_blocks, P, P).
-    Non-circular offsets leave out frames with ``t + o >= F``.
+    Non-circular offsets leave out frames with ``t + o >= F``. With a ``layout``
+    (:func:`_gap_layout`) ``X`` holds the rows of the gap-padded timeline, the stimulus of an
+    invalid frame is skipped and a valid frame ``t`` pairs with row ``row[t] + o`` (modulo the rows
+    when ``circular``).
     """
     F = frames.shape[0]
     P = int(np.prod(frames.shape[1:]))
     C = X.shape[1]
+    N = X.shape[0]                                                     # F, or the padded rows
     offsets = np.asarray(offsets, dtype=int)
     O = offsets.size
     edges = np.linspace(0, F, n_blocks + 1).astype(int)
@@ -1076,6 +1122,9 @@ def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks
             S = (raw.astype(np.float64).reshape(-1, P) - mu).astype(np.float32)
         t = np.arange(a, b)
         blk = np.searchsorted(edges, t, side="right") - 1
+        if layout is not None:                                         # valid frames at their rows
+            keep = layout[3][a:b]
+            S, t, blk = S[keep], layout[0][a:b][keep], blk[keep]
         for bi in np.unique(blk):
             if n_blocks == 1:
                 Sb, tb = S, t
@@ -1085,13 +1134,13 @@ def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks
             if gram:
                 G[bi] += Sb.T.astype(np.float64) @ Sb.astype(np.float64)
             idx = tb[:, None] + offsets[None, :]                     # (n, O): one product for all offsets
-            idx = idx % F if circular else np.where(idx < F, idx, F)  # row F of Xp is zeros
+            idx = idx % N if circular else np.where(idx < N, idx, N)  # row N of Xp is zeros
             prod = Sb.T @ Xp[idx].reshape(idx.shape[0], O * C)
             cross[bi] += prod.reshape(P, O, C).transpose(1, 0, 2)
     return cross, G
 
 
-def dense_sta(responses, frames, lags, chunk: int = _CHUNK_FRAMES) -> np.ndarray:
+def dense_sta(responses, frames, lags, chunk: int = _CHUNK_FRAMES, valid=None) -> np.ndarray:
     """Plain spike-triggered average of real-valued noise, as a stimulus-response cross-covariance.
 
     Parameters
@@ -1104,11 +1153,15 @@ def dense_sta(responses, frames, lags, chunk: int = _CHUNK_FRAMES) -> np.ndarray
         Lags in frames (response in frame ``t + l`` after the stimulus in frame ``t``).
     chunk : int
         Frames read at a time.
+    valid : ndarray bool (F,), optional
+        False for a frame spanning dropped frames: the pair (frame ``t``, frame ``t + l``) is used
+        only when the frames ``t .. t + l`` are all valid, and the stimulus mean is over the valid
+        frames (see :func:`compute_maps`, Notes, "Dropped frames").
 
     Returns
     -------
     ndarray float32 (cells, L, ny, nx)
-        ``c_l(p) = (1/N_l) sum_t (s_t(p) - mean_p) (r_{t+l} - mean_r)``. For a linear cell
+        ``c_l(p) = (1/N_l) sum_t (s_t(p) - mean_p) (r_{t+l} - mean_r)`` over the ``N_l`` pairs used. For a linear cell
         ``r = k . s + noise`` this is ``Sigma k`` with ``Sigma`` the stimulus covariance (derived:
         ``E[s r] = E[s s^T] k``); the classical spike-triggered average (Chichilnisky 2001) is
         ``c_l / mean_r`` added to the stimulus mean.
@@ -1124,12 +1177,18 @@ def dense_sta(responses, frames, lags, chunk: int = _CHUNK_FRAMES) -> np.ndarray
     """
     F = frames.shape[0]
     R = _as_frame_matrix(responses, F)
-    X, valid, _, _, _ = _center(R)
-    mu, _ = _stimulus_moments(frames, chunk)
     lags = np.asarray(lags, dtype=int)
-    cross, _ = _dense_cross(frames, X, lags, mu, circular=False, chunk=chunk)
+    fv = _check_valid(valid, F)
+    layout = None if fv is None else (*_gap_layout(fv, int(lags.max())), fv)
+    X, valid, _, _, _ = _center(R if layout is None else _pad_rows(R, layout))
+    mu, _ = _stimulus_moments(frames, chunk, fv)
+    cross, _ = _dense_cross(frames, X, lags, mu, circular=False, chunk=chunk, layout=layout)
     W = np.ascontiguousarray(valid.T, dtype=np.float32)
-    n = np.array([W[lag:].sum(axis=0) for lag in lags])              # (L, C) valid pairs
+    if layout is None:
+        n = np.array([W[lag:].sum(axis=0) for lag in lags])          # (L, C) valid pairs
+    else:                                                            # stimulus row valid too
+        rv = layout[2].astype(np.float32)[:, None]
+        n = np.array([(W[lag:] * rv[:W.shape[0] - lag]).sum(axis=0) for lag in lags])
     with np.errstate(invalid="ignore", divide="ignore"):
         out = cross[0] / n[:, None, :]                                # (L, P, C)
     return out.transpose(2, 0, 1).reshape((R.shape[0], lags.size) + tuple(frames.shape[1:])).astype(np.float32)
@@ -1162,7 +1221,7 @@ def _ridge_cv(G_blocks, c_blocks, rr_blocks, lambdas):
 
 
 def whitened_sta(responses, frames, lags, n_folds: int = 5, lambdas=None, chunk: int = _CHUNK_FRAMES,
-                 return_lambda: bool = False):
+                 return_lambda: bool = False, valid=None):
     """Ridge-regularised whitened kernel estimate for correlated real-valued noise.
 
     Solves ``(S^T S + lambda I) k_l = S^T r_l`` for every cell and lag, ``S`` the mean-subtracted
@@ -1182,6 +1241,10 @@ def whitened_sta(responses, frames, lags, n_folds: int = 5, lambdas=None, chunk:
     chunk : int
     return_lambda : bool
         Also return the chosen penalty per cell.
+    valid : ndarray bool (F,), optional
+        False for a frame spanning dropped frames: its stimulus is left out of ``S``, and a lag-``l``
+        pair of frames ``t`` and ``t + l`` is used only when the frames ``t .. t + l`` are all valid
+        (as :func:`dense_sta`).
 
     Returns
     -------
@@ -1197,24 +1260,34 @@ def whitened_sta(responses, frames, lags, n_folds: int = 5, lambdas=None, chunk:
     F = frames.shape[0]
     R = _as_frame_matrix(responses, F)
     lags = np.asarray(lags, dtype=int)
-    X, _, _, _, _ = _center(R)
-    mu, _ = _stimulus_moments(frames, chunk)
-    k, lam = _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk)
+    fv = _check_valid(valid, F)
+    layout = None if fv is None else (*_gap_layout(fv, int(lags.max())), fv)
+    X, _, _, _, _ = _center(R if layout is None else _pad_rows(R, layout))
+    mu, _ = _stimulus_moments(frames, chunk, fv)
+    k, lam = _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk, layout=layout)
     out = k.transpose(2, 0, 1).reshape((R.shape[0], lags.size) + tuple(frames.shape[1:])).astype(np.float32)
     return (out, lam) if return_lambda else out
 
 
-def _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk):
-    """-> kernel (L, P, C) and chosen lambda (C,); also stashes the operator pieces on the function."""
+def _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk, layout=None):
+    """-> kernel (L, P, C) and chosen lambda (C,). ``X`` in the rows of ``layout`` when given.
+
+    A fold is a block of stimulus frames; its responses are the rows ``row(t) + l`` of its frames
+    (with gaps, the padded rows in between hold no stimulus and no response, so they add nothing).
+    """
     F = frames.shape[0]
     n_folds = int(max(2, min(n_folds, F // 20 if F >= 40 else 2)))
-    cross, G = _dense_cross(frames, X, lags, mu, circular=False, chunk=chunk, n_blocks=n_folds, gram=True)
+    cross, G = _dense_cross(frames, X, lags, mu, circular=False, chunk=chunk, n_blocks=n_folds, gram=True,
+                            layout=layout)
     edges = np.linspace(0, F, n_folds + 1).astype(int)
+    N = X.shape[0]
+    if layout is not None:                                           # fold edges as padded rows
+        edges = np.r_[layout[0], N][edges]
     X64 = X.astype(np.float64)
     rr = np.zeros((n_folds, lags.size, X.shape[1]))
     for b in range(n_folds):
         for li, lag in enumerate(lags):
-            a, e = edges[b] + lag, min(edges[b + 1] + lag, F)
+            a, e = edges[b] + lag, min(edges[b + 1] + lag, N)
             rr[b, li] = (X64[a:e] ** 2).sum(0)
     Gt = G.sum(0)
     P = Gt.shape[0]
@@ -1230,7 +1303,9 @@ def _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk):
 
 
 def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_shift,
-                   dense_method, n_folds):
+                   dense_method, n_folds, layout=None):
+    """Dense-noise maps. ``layout``: the gap-padded timeline of :func:`_gap_layout` (``R`` is then
+    (cells, padded rows), NaN in the rows of no valid frame), or None."""
     frames = noise.frames
     F = frames.shape[0]
     C = R.shape[0]
@@ -1238,26 +1313,31 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
     ny, nx = noise.grid.shape
     P = ny * nx
     X, valid, mean, sd, n_valid = _center(R)
-    mu, var = _stimulus_moments(frames)
+    fv = None if layout is None else layout[3]
+    Fv = F if fv is None else int(fv.sum())                           # stimulus frames used
+    mu, var = _stimulus_moments(frames, valid=fv)
     if F * P <= 50_000_000:           # fits in memory: centre once, the shuffles reuse it
         frames = (np.asarray(frames, dtype=np.float32).reshape(F, P) - mu.astype(np.float32))
         mu = np.zeros(P)
     if dense_method not in ("auto", "sta", "whitened"):
         raise ValueError(f"dense_method must be 'auto', 'sta' or 'whitened', got {dense_method!r}")
-    cross0, G = _dense_cross(frames, X, [0], mu, circular=True, n_blocks=1, gram=True)
+    cross0, G = _dense_cross(frames, X, [0], mu, circular=True, n_blocks=1, gram=True, layout=layout)
     G = G[0]
     if dense_method == "auto":
         with np.errstate(invalid="ignore", divide="ignore"):
             d = np.sqrt(np.diag(G))
             corr = G / np.outer(d, d)
         off = np.abs(corr[~np.eye(P, dtype=bool)])
-        method = "whitened" if off.size and np.nanmax(off) > 0.05 + 5 / np.sqrt(F) else "sta"
+        method = "whitened" if off.size and np.nanmax(off) > 0.05 + 5 / np.sqrt(Fv) else "sta"
     else:
         method = dense_method
+    # with gaps: pairs used at each lag, and pairs with a response in a circular shift by s rows
+    npair_gap = None if layout is None else _pairs_per_lag(layout[2], lags)
+    shift_pairs = None if layout is None else _circular_pairs(layout[2])
     with np.errstate(invalid="ignore", divide="ignore"):
         if method == "sta":
-            cross, _ = _dense_cross(frames, X, lags, mu, circular=False)
-            npair = np.array([float(F - lag) for lag in lags])
+            cross, _ = _dense_cross(frames, X, lags, mu, circular=False, layout=layout)
+            npair = np.array([float(F - lag) for lag in lags]) if layout is None else npair_gap
             lin = cross[0] / npair[:, None, None] / var[None, :, None]     # (L, P, C)
             op_sd = 1.0 / np.sqrt(var)                                      # per unit s / sqrt(N)
             ridge = np.full(C, np.nan)
@@ -1265,7 +1345,7 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
             def apply(c_sums, active):                                      # (P, Ca) -> (P, Ca)
                 return c_sums / F / var[:, None]
         else:
-            k, lam = _whitened_core(frames, X, lags, mu, n_folds, None, _CHUNK_FRAMES)
+            k, lam = _whitened_core(frames, X, lags, mu, n_folds, None, _CHUNK_FRAMES, layout=layout)
             lin = k
             ridge = lam
             evals, V = np.linalg.eigh(G)
@@ -1282,7 +1362,18 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
         else:
             a_sd = sd[None, :] * op_sd
         a_sd = np.where(a_sd > 0, a_sd, np.nan)
-        z_lin = lin / a_sd[None]                                            # (L, P, C)
+        if layout is None:
+            z_lin = lin / a_sd[None]                                        # (L, P, C)
+        else:
+            # null sd for n pairs: the STA's sd / sqrt(n); the whitened operator's (built from the
+            # Gram of all Fv valid frames) times sqrt(n / Fv), as only n of them carry a response
+            base = sd[None, :] * (op_sd[:, None] if method == "sta" else op_sd)  # (P, C)
+            base = np.where(base > 0, base, np.nan)
+
+            def sd_for(n, cols=slice(None)):
+                return base[:, cols] / np.sqrt(n) if method == "sta" else base[:, cols] * np.sqrt(n / Fv)
+
+            z_lin = lin / np.stack([sd_for(n) for n in npair_gap])           # (L, P, C)
     maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
     z_an = np.full((3, C, L, P), np.nan)
     maps[2] = lin.transpose(2, 0, 1)
@@ -1291,15 +1382,21 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
     def null_stats(active, offs):
         Xa = X if active.size == C and np.array_equal(active, np.arange(C)) else np.ascontiguousarray(X[:, active])
         for offset in offs:
-            crs, _ = _dense_cross(frames, Xa, offset + lags, mu, circular=True)
+            crs, _ = _dense_cross(frames, Xa, offset + lags, mu, circular=True, layout=layout)
             out = np.full((3, active.size, L, P), np.nan, dtype=np.float32)
             for li in range(L):
-                kk = apply(crs[0, li], active)                                  # (P, Ca)
                 with np.errstate(invalid="ignore", divide="ignore"):
-                    out[2, :, li] = (kk / a_sd[:, active]).T
+                    if layout is None:
+                        kk = apply(crs[0, li], active)                          # (P, Ca)
+                        out[2, :, li] = (kk / a_sd[:, active]).T
+                    else:                                                       # pairs of this shift
+                        n = shift_pairs[(int(offset) + int(lags[li])) % shift_pairs.size]
+                        kk = (crs[0, li] / n / var[:, None] if method == "sta"
+                              else apply(crs[0, li], active))
+                        out[2, :, li] = (kk / sd_for(n, active)).T
             yield out
 
-    offsets = _shift_offsets(F, K, L, min_shift, rng)
+    offsets = _shift_offsets(X.shape[0], K, L, min_shift, rng)
     plan = _null_plan(P, L, K, 1, _effective_lags(X, sd, L, _ok_cells(sd, n_valid, lags)))
     return _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
                    unit, alpha, kinds_used=(2,), stimulus="dense", method=method, ridge=ridge, plan=plan)
