@@ -463,7 +463,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     overlap = None if an.maps is None else np.asarray(an.maps.onoff_overlap, float)
     # no sparse noise: no map, so the call is empty with the reason "no map"
     responsive = np.full(C, None, object) if an.maps is None else np.asarray(an.maps.responsive, bool)
-    # criteria that are missing (no map, no gratings) are skipped or leave the call empty
+    # criteria that are missing (no map, no flashed gratings) are skipped or leave the call empty
     linear, reason = reconcile.linearity_call(agreement, f1f0, overlap, responsive)
     cells["linear"] = list(linear)
     cells["linear_reason"] = list(reason)

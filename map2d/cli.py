@@ -92,7 +92,9 @@ def build_parser() -> argparse.ArgumentParser:
                            ("gratings", "grating response surfaces and tuning"),
                            ("analyze", "maps, gratings, reconciliation, TIFF stacks and report")):
         p = sub.add_parser(name, help=helptext, description=f"Compute {helptext} for every cell of a session.")
-        p.add_argument("session", type=Path, help="session folder (holding session.json)")
+        p.add_argument("session", type=Path,
+                       help="session folder (holding session.json)" + (", or an .nwb file with --config"
+                                                                        if name == "analyze" else ""))
         p.add_argument("--out", required=True, type=Path, help="results folder (replaced only after success)")
         p.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
                        help="longest lag in seconds (default 0.2)")
@@ -104,7 +106,7 @@ def build_parser() -> argparse.ArgumentParser:
                                 "or not at all (off); spikes are never filtered")
         if name == "analyze":
             p.add_argument("--config", type=Path, default=None,
-                           help="NWB mapping (JSON) when SESSION is an .nwb file (see README, NWB input)")
+                           help="NWB mapping (JSON) when SESSION is an .nwb file (README, NWB files and many sessions; docs/batch.md)")
         if name == "maps":
             p.add_argument("--no-fits", action="store_true",
                            help="maps and significance only: no model fits (centre = centroid of the "

@@ -390,6 +390,17 @@ class _StageBar:
         self.bar.close()
 
 
+def _model_maps(an) -> dict:
+    """``{"model_maps": (C, ny, nx)}``: the fitted spatial model of each cell with a fitted linear map,
+    NaN for the others (no model was fitted to their linear map); empty without maps."""
+    import numpy as np
+
+    if an.model_maps is None or an.map_kind is None:
+        return {}
+    fitted = (np.asarray(an.map_kind) == "linear")[:, None, None]
+    return {"model_maps": np.where(fitted, an.model_maps, np.nan).astype(np.float32)}
+
+
 def write_analysis(folder, analysis, session, report=True) -> list:
     """Write every result file of :func:`map2d.analysis.analyze_session` into ``folder``.
 
@@ -416,6 +427,7 @@ def write_analysis(folder, analysis, session, report=True) -> list:
         written += [folder / "maps.tif", folder / "maps.ome.tif"]
         arrays.update(lags_s=m.lags_s, on=m.on, off=m.off, linear=m.linear, on_z=m.on_z, off_z=m.off_z,
                       linear_z=m.linear_z, peak_maps=an.peak_maps,
+                      **_model_maps(an),
                       grid_center_deg=np.array([m.grid.center_x_deg, m.grid.center_y_deg]),
                       grid_spacing_deg=np.array([m.grid.dx_deg, m.grid.dy_deg]))
     if an.flashed is not None:

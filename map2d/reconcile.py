@@ -616,7 +616,7 @@ def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
     linear : numpy.ndarray of object, shape (C,)
         True, False, or None (empty: cannot be called).
     reason : numpy.ndarray of str, shape (C,)
-        ``"not responsive"``, ``"no map"``, ``"no gratings"``, or the criteria that decided, e.g.
+        ``"not responsive"``, ``"no map"``, ``"no flashed gratings"`` (no agreement to judge), or the criteria that decided, e.g.
         ``"agreement 0.12 < 0.50"``, ``"f1/f0 0.60 <= 1.00"``, ``"ON/OFF overlap 0.80 > 0.50"`` (all
         failing criteria, joined by "; "), or for a linear cell all criteria that were tested, joined
         by ", ".
@@ -629,7 +629,7 @@ def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
     [True, False, None, None]
     >>> why.tolist()
     ['agreement 0.90 >= 0.50, f1/f0 1.50 > 1.00', 'agreement 0.10 < 0.50; f1/f0 0.40 <= 1.00', \
-'no gratings', 'not responsive']
+'no flashed gratings', 'not responsive']
     """
     agr = np.asarray(agreement, float).ravel()
     n = agr.size
@@ -655,7 +655,7 @@ def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
                 reason[c] = "not responsive"
                 continue
         if np.isnan(agr[c]):
-            reason[c] = "no gratings"
+            reason[c] = "no flashed gratings"
             continue
         passed, failed = [], []
         if agr[c] >= agreement_threshold:

@@ -292,3 +292,24 @@ def test_progress_bars_start_no_monitor_thread():
     for bar in (_StageBar(True), _Bar(3, True)):
         bar.bar.close()
         assert tqdm.monitor_interval == 0
+
+
+def test_results_npz_holds_the_fitted_model_maps(tmp_path, small_spikes_session):
+    """``results.npz`` has ``model_maps``: the fitted model on the grid for cells with a fitted linear
+    map, NaN for the others."""
+    import csv
+
+    from map2d.contract import write_session
+    from map2d.pipeline import run_analyze
+    session, _ = small_spikes_session
+    write_session(tmp_path / "s", session)
+    assert run_analyze(tmp_path / "s", tmp_path / "o", quiet=True) == 0
+    z = np.load(tmp_path / "o" / "results.npz")
+    with open(tmp_path / "o" / "cells.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    mm = z["model_maps"]
+    assert mm.shape == (len(rows),) + z["on"].shape[2:]
+    fitted = [i for i, r in enumerate(rows) if r["fitted_map"] == "linear" and r["model"]]
+    assert fitted
+    for i, r in enumerate(rows):
+        assert np.all(np.isfinite(mm[i])) == (i in fitted), i

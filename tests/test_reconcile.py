@@ -340,7 +340,7 @@ def test_linearity_call_reasons_and_empties():
     assert reason[2] == "agreement 0.10 < 0.50; f1/f0 0.30 <= 1.00; ON/OFF overlap 0.90 > 0.50"
     assert "f1/f0" not in reason[3]                              # no drifting gratings: skipped
     assert reason[4] == "ON/OFF overlap 0.80 > 0.50"             # Hubel & Wiesel 1962 criterion
-    assert reason[5] == "no gratings"
+    assert reason[5] == "no flashed gratings"
     assert reason[6] == "not responsive"
     assert reason[7] == "no map"
     # optional inputs absent: the agreement alone decides; thresholds are parameters
