@@ -1281,8 +1281,13 @@ def _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk, layout=None):
                             layout=layout)
     edges = np.linspace(0, F, n_folds + 1).astype(int)
     N = X.shape[0]
-    if layout is not None:                                           # fold edges as padded rows
-        edges = np.r_[layout[0], N][edges]
+    if layout is not None:
+        # at lag l only n_l of the Fv valid frames have a pair: taking their Gram as (n_l / Fv) G
+        # (the frames losing their pair are those just before a gap, any noise frames), the lag-l
+        # normal equations are (G + lam I) k = (Fv / n_l) c_l, so the kernel is not shrunk by gaps
+        npair = _pairs_per_lag(layout[2], lags)
+        cross *= (int(layout[3].sum()) / np.maximum(npair, 1))[None, :, None, None]
+        edges = np.r_[layout[0], N][edges]                           # fold edges as padded rows
     X64 = X.astype(np.float64)
     rr = np.zeros((n_folds, lags.size, X.shape[1]))
     for b in range(n_folds):
@@ -1366,12 +1371,13 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
             z_lin = lin / a_sd[None]                                        # (L, P, C)
         else:
             # null sd for n pairs: the STA's sd / sqrt(n); the whitened operator's (built from the
-            # Gram of all Fv valid frames) times sqrt(n / Fv), as only n of them carry a response
+            # Gram of all Fv valid frames, applied to Fv / n times the sums of n pairs, see
+            # _whitened_core) times sqrt(Fv / n)
             base = sd[None, :] * (op_sd[:, None] if method == "sta" else op_sd)  # (P, C)
             base = np.where(base > 0, base, np.nan)
 
             def sd_for(n, cols=slice(None)):
-                return base[:, cols] / np.sqrt(n) if method == "sta" else base[:, cols] * np.sqrt(n / Fv)
+                return base[:, cols] / np.sqrt(n) if method == "sta" else base[:, cols] * np.sqrt(Fv / n)
 
             z_lin = lin / np.stack([sd_for(n) for n in npair_gap])           # (L, P, C)
     maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
@@ -1392,7 +1398,7 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
                     else:                                                       # pairs of this shift
                         n = shift_pairs[(int(offset) + int(lags[li])) % shift_pairs.size]
                         kk = (crs[0, li] / n / var[:, None] if method == "sta"
-                              else apply(crs[0, li], active))
+                              else apply(crs[0, li], active) * (Fv / n))
                         out[2, :, li] = (kk / sd_for(n, active)).T
             yield out
 

@@ -255,8 +255,9 @@ def _slow_dense(R, frames, valid, lags, lam=None):
     """Dense maps pairing frames only inside a stretch of valid frames: the plain STA
     ``sum (s_t - mu)(r_{t+l} - mean_r) / n_pairs / var`` (``mu``, ``var`` over the valid frames,
     ``mean_r`` over the valid frames' responses), or with ``lam`` per cell the ridge solution
-    ``(G + lam I)^-1 c_l``, ``G`` the Gram of the valid frames' centred stimulus (derived: ridge
-    normal equations, Hastie et al. 2009 section 3.4.1)."""
+    ``(G + lam I)^-1 (Fv / n_l) c_l``, ``G`` the Gram of the ``Fv`` valid frames' centred stimulus and
+    ``c_l`` the sums of the ``n_l`` pairs (derived: ridge normal equations, Hastie et al. 2009
+    section 3.4.1, with the Gram of the paired frames taken as ``(n_l / Fv) G``)."""
     C, F = R.shape
     S = frames.reshape(F, -1).astype(np.float64)
     mu, var = S[valid].mean(0), S[valid].var(0)
@@ -274,7 +275,7 @@ def _slow_dense(R, frames, valid, lags, lam=None):
                 out[c, li] = num / n / var
             else:
                 G = Sc[valid].T @ Sc[valid]
-                out[c, li] = np.linalg.solve(G + lam[c] * np.eye(G.shape[0]), num)
+                out[c, li] = np.linalg.solve(G + lam[c] * np.eye(G.shape[0]), num * valid.sum() / n)
     return out.reshape((C, len(lags)) + frames.shape[1:])
 
 
@@ -387,3 +388,47 @@ def test_dense_null_z_sd_one_with_gaps(method):
     assert res.method == method and res.stimulus == "dense"
     assert res.n_frames_used[0] == sn.valid.sum()
     _dense_null_check(res, 0.05, 0.08 if method == "sta" else 0.1)
+
+
+@pytest.mark.parametrize("method", ["sta", "whitened"])
+def test_dense_kernel_amplitude_kept_with_frequent_gaps(method):
+    """A cell responding 3 frames after one pixel, in a session with a dropped frame about every 8
+    frames (at lag 3 about 3 frames in 7 have no pair): the map at lag 3 is the kernel, not shrunk by
+    the lost pairs (without the count of pairs per lag both maps read about half of it)."""
+    sn = _dense_gapped(4000, 8, 71)
+    rng = np.random.default_rng(72)
+    F = sn.n_frames
+    S = sn.frames.reshape(F, -1).astype(np.float64)
+    r = 1.0 + rng.standard_normal(F) * 0.5
+    r[3:] += 0.8 * S[:-3, 11]                             # within a stretch: lag 3, gain 0.8
+    res = compute_maps(r[None], sn, max_lag_s=0.2, n_shuffles=100, alpha=0.01, rng=73, dense_method=method)
+    assert res.responsive[0] and res.peak_lag_index[0] == 3
+    m = res.linear[0, 3].ravel()
+    assert m[11] == pytest.approx(0.8, rel=0.06)           # the kernel's gain (derived: r = k . s)
+    assert np.abs(np.delete(m, 11)).max() < 0.1 * 0.8
+
+
+@pytest.mark.parametrize("method, recorded", [
+    ("sta", (3.891149755952938, 0.9933592081069946, [33.48617935180664, 3.284834384918213],
+             [9.888984721553113e-43, 0.11893972329305354], [np.nan, np.nan])),
+    ("whitened", (2.4664155826437693, 0.9365432262420654, [33.28250503540039, 3.283477306365967],
+                  [3.7413514820269064e-42, 0.11939178989758999], [134.92704713041167, 239937.9897693624])),
+])
+def test_dense_maps_without_gaps_unchanged(method, recorded):
+    """Without gaps the dense path is the one before the gap rule: values recorded from this engine
+    at commit 80dac3c (before the rule; the arrays were byte-identical when recorded)."""
+    rng = np.random.default_rng(80)
+    F = 2400
+    fr = rng.choice(np.array([-1.0, 1.0], np.float32), size=(F,) + DGRID.shape)
+    S = fr.reshape(F, -1)
+    r = np.vstack([2.0 + np.r_[0.0, S[:-1, 7]] + rng.standard_normal(F), 2.0 + rng.standard_normal(F)])
+    r[1, 50:80] = np.nan
+    sn = SparseNoise(frames=fr, times_s=np.arange(F) * 0.05, grid=DGRID)
+    res = compute_maps(r, sn, max_lag_s=0.15, n_shuffles=100, alpha=0.01, rng=81, dense_method=method)
+    total, one, tmax, p, lam = recorded
+    assert float(np.abs(res.linear).sum(dtype=np.float64)) == pytest.approx(total, rel=1e-6)
+    assert float(res.linear[0, 1, 1, 2]) == pytest.approx(one, rel=1e-6)
+    np.testing.assert_allclose(res.max_abs_z, tmax, rtol=1e-5)
+    np.testing.assert_allclose(res.p_value[1], p[1], rtol=1e-4)
+    assert res.p_value[0] < 1e-30
+    np.testing.assert_allclose(res.ridge_lambda, lam, rtol=1e-6)
