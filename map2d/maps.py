@@ -1052,8 +1052,11 @@ def _stimulus_moments(frames, chunk=_CHUNK_FRAMES, valid=None):
     s2 = np.zeros(P)
     for a in range(0, F, chunk):
         blk = _read_frames(frames, a, a + chunk).astype(np.float64).reshape(-1, P)
-        if valid is not None:
-            blk = blk[valid[a:a + chunk]]
+        if valid is not None:            # weights, not a selection: blocks of one size (heap reuse)
+            w = valid[a:a + chunk].astype(np.float64)
+            s1 += w @ blk
+            s2 += w @ blk ** 2
+            continue
         s1 += blk.sum(axis=0)
         s2 += (blk ** 2).sum(axis=0)
     n = F if valid is None else max(int(valid.sum()), 1)
@@ -1122,19 +1125,24 @@ def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks
             S = (raw.astype(np.float64).reshape(-1, P) - mu).astype(np.float32)
         t = np.arange(a, b)
         blk = np.searchsorted(edges, t, side="right") - 1
-        if layout is not None:                                         # valid frames at their rows
-            keep = layout[3][a:b]
-            S, t, blk = S[keep], layout[0][a:b][keep], blk[keep]
+        if layout is not None:         # frames at their rows; an invalid one pairs with the zero row
+            keep = layout[3][a:b]      # (no selection: blocks keep one size, so the heap is reused)
+            t = layout[0][a:b]
         for bi in np.unique(blk):
             if n_blocks == 1:
                 Sb, tb = S, t
+                kb = None if layout is None else keep
             else:
                 sel = blk == bi
                 Sb, tb = S[sel], t[sel]
+                kb = None if layout is None else keep[sel]
             if gram:
-                G[bi] += Sb.T.astype(np.float64) @ Sb.astype(np.float64)
+                Sg = Sb if kb is None else Sb * kb[:, None]
+                G[bi] += Sb.T.astype(np.float64) @ Sg.astype(np.float64)
             idx = tb[:, None] + offsets[None, :]                     # (n, O): one product for all offsets
             idx = idx % N if circular else np.where(idx < N, idx, N)  # row N of Xp is zeros
+            if kb is not None:
+                idx[~kb] = N
             prod = Sb.T @ Xp[idx].reshape(idx.shape[0], O * C)
             cross[bi] += prod.reshape(P, O, C).transpose(1, 0, 2)
     return cross, G
