@@ -681,12 +681,14 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     lag apart; the products, counts and circular-shift shuffles then run unchanged on that timeline,
     and the empty rows count as frames without a response (as NaN trace frames do), which keeps the
     null calibrated. Dense (real-valued) noise follows the same rule on the same timeline, without
-    copying the movie: the stimulus of an invalid frame is skipped as it is streamed, the response of
-    a valid frame ``t`` is paired with the row ``row(t) + l`` of the padded responses, the stimulus
-    mean and variance are over the valid frames, and the plain STA divides by the number of pairs
-    used at each lag (``sum over stretches of max(length - l, 0)``). Its analytic null sd, and that of
-    each circular shift (whose count of pairs with a response is exact for the offset), use those
-    counts, so the shuffle calibration stays a single factor per cell.
+    copying the movie: as the frames are streamed, the stimulus of a valid frame ``t`` is paired with
+    the row ``row(t) + l`` of the padded responses and that of an invalid frame with nothing; the
+    stimulus mean, variance and Gram matrix are over the valid frames; the plain STA divides by the
+    number ``n_l`` of pairs used at lag ``l`` (``sum over stretches of max(length - l, 0)``), and the
+    whitened estimate solves ``(G + lam I) k = (Fv / n_l) c_l`` (the Gram of the paired frames taken as
+    ``n_l / Fv`` of that of all ``Fv`` valid frames). The analytic null sd of each lag, and of each
+    circular shift (whose count of pairs with a response is exact for the offset), use those counts,
+    so the shuffle calibration stays a single factor per cell.
 
     **Dense noise** (real-valued frames): ``linear`` is the kernel in response units per unit of
     stimulus — the cross-covariance of the stimulus and the lagged response divided by the pixel's
