@@ -54,6 +54,7 @@ from scipy import sparse, stats
 from .align import cell_index, interval_responses
 from .contract import GratingTable, Spikes, Traces
 from .geometry import wave_vector
+from .maps import map_lags
 
 __all__ = [
     "FlashedResult", "DriftingResult", "analyze_flashed", "analyze_drifting",
@@ -278,7 +279,8 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
     table : GratingTable
         Its flashed rows (see :func:`flashed_rows`) are used; other rows are ignored.
     max_lag_s : float
-        Longest lag; lags are ``0, 1, ..., floor(max_lag_s / frame)`` frames.
+        Longest lag; lags are ``0, 1, ..., floor(max_lag_s / frame + 0.01)`` frames (see
+        :func:`map2d.maps.map_lags`).
     rng : numpy.random.Generator or int, optional
         Seed for the shuffle test.
     n_shuffles : int
@@ -332,7 +334,7 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
     has_blank = bool(blank.any())
 
     frame, end = _frame_windows(onset, offset)
-    n_lags = int(np.floor(max_lag_s / frame + 1e-9)) + 1
+    n_lags = map_lags(frame, max_lag_s).size        # 1 % of a frame to spare (timing jitter)
     r = interval_responses(responses, onset, end).astype(np.float64)  # (cells, n)
     n_cells, n = r.shape
     finite = np.isfinite(r)

@@ -185,19 +185,28 @@ class MapResult:
 # ----------------------------------------------------------------------------------------------
 # alignment
 # ----------------------------------------------------------------------------------------------
+#: Share of a frame by which ``max_lag_s`` may fall short of a whole number of frames (timing jitter).
+LAG_SLACK_FRAMES = 0.01
+
+
 def map_lags(frame_s: float, max_lag_s: float) -> np.ndarray:
-    """Whole-frame lags ``0 .. floor(max_lag_s / frame_s)``.
+    """Whole-frame lags ``0 .. floor(max_lag_s / frame_s)``, with 1 % of a frame to spare: a measured
+    frame interval a few microseconds longer than nominal (photodiode-timed onsets) must not drop the
+    last lag (``--max-lag 0.2`` at 10 Hz gives lags 0, 1, 2 whether the median interval is 0.1 s or
+    0.100003 s).
 
     Examples
     --------
     >>> map_lags(0.05, 0.2)
     array([0, 1, 2, 3, 4])
+    >>> map_lags(0.100003, 0.2)
+    array([0, 1, 2])
     """
     if not np.isfinite(frame_s) or frame_s <= 0:
         raise ValueError(f"frame interval must be positive, got {frame_s}")
     if not np.isfinite(max_lag_s) or max_lag_s < 0:
         raise ValueError(f"max_lag_s must be >= 0, got {max_lag_s}")
-    return np.arange(int(np.floor(max_lag_s / frame_s + 1e-9)) + 1)
+    return np.arange(int(np.floor(max_lag_s / frame_s + LAG_SLACK_FRAMES)) + 1)
 
 
 def frame_responses(responses: Spikes | Traces, noise: SparseNoise) -> np.ndarray:
