@@ -584,6 +584,22 @@ def _delta_ci(fun, p, cov, idx, t95):
     return float(np.sqrt(var) * t95) if var >= 0 and np.isfinite(var) else float("nan")
 
 
+def _sf_shapes(f_lo, f_hi):
+    """For each SF shape (``log_gaussian``: centre and width in octaves; ``gaussian``: in cpd), the
+    variable ``u(f)``, the screening grids of centres (quarter octaves) and widths, and the bounds of
+    centre and width, for SFs tested from ``f_lo`` to ``f_hi``."""
+    lo, hi = float(np.log2(f_lo)), float(np.log2(f_hi))
+    s_hi_oct = max(4.0, 2 * (hi - lo))
+    return {
+        "log_gaussian": (np.log2, np.arange(lo - 2.0, hi + 2.0 + 1e-9, 0.25),
+                         np.geomspace(0.15, s_hi_oct, int(np.ceil(np.log2(s_hi_oct / 0.15) * 4)) + 1),
+                         (lo - 2.0, hi + 2.0), (0.15, s_hi_oct)),
+        "gaussian": (lambda x: x, 2.0 ** np.arange(np.log2(f_lo / 4), np.log2(f_hi * 4) + 1e-9, 0.25),
+                     np.geomspace(0.02 * f_lo, 4 * f_hi, int(np.ceil(np.log2(200 * f_hi / f_lo) * 3)) + 1),
+                     (f_lo / 4, f_hi * 4), (0.02 * f_lo, 4 * f_hi)),
+    }
+
+
 def fit_sf(sf_cpd, r) -> SFFit:
     """Fit spatial-frequency tuning: log-Gaussian, Gaussian in linear SF and (5 SFs or more) the DoG
     spectrum, averaged with Akaike weights.
@@ -640,21 +656,16 @@ def fit_sf(sf_cpd, r) -> SFFit:
     b_lo, b_hi = -10 * span - 1e-9, 10 * span + 1e-9
     a_hi = 20 * span + 1e-9
     # (model, lower, upper, starts) over (b, a, centre, width)
-    s_hi_oct = max(4.0, 2 * (hi - lo))
+    shapes = _sf_shapes(float(f.min()), float(f.max()))
+    (lc, lw), (gc, gw) = (shapes[k][3:5] for k in ("log_gaussian", "gaussian"))
     cands = {
-        "log_gaussian": (log_gaussian_sf, [b_lo, 0.0, lo - 2.0, 0.15], [b_hi, a_hi, hi + 2.0, s_hi_oct],
+        "log_gaussian": (log_gaussian_sf, [b_lo, 0.0, lc[0], lw[0]], [b_hi, a_hi, lc[1], lw[1]],
                          [[float(y.min()), float(np.ptp(y)), float(lf[i_max]), s] for s in (0.7, 1.5)]),
-        "gaussian": (gaussian_sf, [b_lo, 0.0, f.min() / 4, 0.02 * f.min()], [b_hi, a_hi, f.max() * 4, 4 * f.max()],
+        "gaussian": (gaussian_sf, [b_lo, 0.0, gc[0], gw[0]], [b_hi, a_hi, gc[1], gw[1]],
                      [[float(y.min()), float(np.ptp(y)), float(f[i_max]), w * float(f[i_max])] for w in (0.3, 1.0)]),
     }
     # starts screened on grids of centres (quarter octaves) and widths, b and a solved exactly
-    f_lo, f_hi = float(f.min()), float(f.max())
-    screens = {
-        "log_gaussian": (lf, np.arange(lo - 2.0, hi + 2.0 + 1e-9, 0.25),
-                         np.geomspace(0.15, s_hi_oct, int(np.ceil(np.log2(s_hi_oct / 0.15) * 4)) + 1)),
-        "gaussian": (f, 2.0 ** np.arange(np.log2(f_lo / 4), np.log2(f_hi * 4) + 1e-9, 0.25),
-                     np.geomspace(0.02 * f_lo, 4 * f_hi, int(np.ceil(np.log2(200 * f_hi / f_lo) * 3)) + 1)),
-    }
+    screens = {k: (v[0](f), v[1], v[2]) for k, v in shapes.items()}
     jacs = {"log_gaussian": lambda x, *q: _jac_gauss(np.log2(x), *q), "gaussian": _jac_gauss}
     fits = []
     for name, (model, lower, upper, starts) in cands.items():
@@ -978,21 +989,14 @@ def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
     b_lo, b_hi, a_hi = -10 * span - 1e-9, 10 * span + 1e-9, 20 * span + 1e-9
     kappa0 = float(np.clip(ofit.params[2], 1e-3, 50.0))
     t0 = float(ofit.params[3])
-    s_hi_oct = max(4.0, 2 * (hi - lo))
     # starts: the SF profile of the rows nearest the preference, screened as in fit_sf
     near = _sf_near(th, y2, ofit)
     fn = np.isfinite(near) & good_f
     i_max = int(np.argmax(y))
     fits = []
-    for name in ("log_gaussian", "gaussian"):
-        if name == "log_gaussian":
-            u, centres = np.log2(f), np.arange(lo - 2.0, hi + 2.0 + 1e-9, 0.25)
-            widths = np.geomspace(0.15, s_hi_oct, int(np.ceil(np.log2(s_hi_oct / 0.15) * 4)) + 1)
-            c_lim, w_lim = (lo - 2.0, hi + 2.0), (0.15, s_hi_oct)
-        else:
-            u, centres = f, 2.0 ** np.arange(np.log2(f_lo / 4), np.log2(f_hi * 4) + 1e-9, 0.25)
-            widths = np.geomspace(0.02 * f_lo, 4 * f_hi, int(np.ceil(np.log2(200 * f_hi / f_lo) * 3)) + 1)
-            c_lim, w_lim = (f_lo / 4, f_hi * 4), (0.02 * f_lo, 4 * f_hi)
+    for name, (to_u, centres, widths, c_lim, w_lim) in _sf_shapes(f_lo, f_hi).items():
+        with np.errstate(invalid="ignore", divide="ignore"):
+            u = to_u(f)
         start = _screen_gauss(u[fn], near[fn], centres, widths, True, a_hi, b_lo, b_hi) if fn.sum() >= 3 else None
         if start is None:
             start = [float(y.min()), float(np.ptp(y)), float(np.log2(F[i_max]) if name == "log_gaussian"
