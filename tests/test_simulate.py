@@ -16,7 +16,7 @@ from map2d.align import interval_responses
 from map2d.cli import main as cli_main
 from map2d.contract import GratingTable, SparseNoise, Spikes, Traces, load_session
 from map2d.errors import BadInput
-from map2d.geometry import Grid, grating_image, wave_vector
+from map2d.geometry import grating_image, wave_vector
 from map2d.models import dog2d, dog_peak_sf, dog_spectrum, gabor2d
 from map2d.simulate import (CELL_TYPES, ModelCell, calcium_traces, cells_from_truth, default_grid,
                             grating_drive, lag_weights, make_cells, pixel_kernels, simulate_session,

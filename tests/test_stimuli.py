@@ -5,8 +5,6 @@ from __future__ import annotations
 import collections
 import json
 import math
-import re
-import shutil
 import time
 
 import numpy as np
