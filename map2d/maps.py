@@ -1159,6 +1159,20 @@ def _dense_cross(frames, X, offsets, mu, circular, chunk=_CHUNK_FRAMES, n_blocks
     return cross, G
 
 
+def _dense_inputs(responses, frames, lags, valid, chunk):
+    """What :func:`dense_sta` and :func:`whitened_sta` start from: the responses as a (cells, frames)
+    matrix, the lags, the gap layout (None without ``valid``), the centred (gap-padded) responses and
+    their finite mask, and the stimulus mean over the valid frames."""
+    F = frames.shape[0]
+    R = _as_frame_matrix(responses, F)
+    lags = np.asarray(lags, dtype=int)
+    fv = _check_valid(valid, F)
+    layout = None if fv is None else (*_gap_layout(fv, int(lags.max())), fv)
+    X, finite, _, _, _ = _center(R if layout is None else _pad_rows(R, layout))
+    mu, _ = _stimulus_moments(frames, chunk, fv)
+    return R, lags, layout, X, finite, mu
+
+
 def dense_sta(responses, frames, lags, chunk: int = _CHUNK_FRAMES, valid=None) -> np.ndarray:
     """Plain spike-triggered average of real-valued noise, as a stimulus-response cross-covariance.
 
@@ -1194,13 +1208,7 @@ def dense_sta(responses, frames, lags, chunk: int = _CHUNK_FRAMES, valid=None) -
     >>> bool(abs(c[0, 0, 0, 1] - 2.0) < 0.2 and abs(c[0, 1, 0, 1]) < 0.2)
     True
     """
-    F = frames.shape[0]
-    R = _as_frame_matrix(responses, F)
-    lags = np.asarray(lags, dtype=int)
-    fv = _check_valid(valid, F)
-    layout = None if fv is None else (*_gap_layout(fv, int(lags.max())), fv)
-    X, valid, _, _, _ = _center(R if layout is None else _pad_rows(R, layout))
-    mu, _ = _stimulus_moments(frames, chunk, fv)
+    R, lags, layout, X, valid, mu = _dense_inputs(responses, frames, lags, valid, chunk)
     cross, _ = _dense_cross(frames, X, lags, mu, circular=False, chunk=chunk, layout=layout)
     W = np.ascontiguousarray(valid.T, dtype=np.float32)
     if layout is None:
@@ -1276,13 +1284,7 @@ def whitened_sta(responses, frames, lags, n_folds: int = 5, lambdas=None, chunk:
     Theunissen FE et al. (2001) Network 12:289-316; Hastie T, Tibshirani R, Friedman J (2009) The
     Elements of Statistical Learning, 2nd ed., sections 3.4.1 (ridge) and 7.10 (cross-validation).
     """
-    F = frames.shape[0]
-    R = _as_frame_matrix(responses, F)
-    lags = np.asarray(lags, dtype=int)
-    fv = _check_valid(valid, F)
-    layout = None if fv is None else (*_gap_layout(fv, int(lags.max())), fv)
-    X, _, _, _, _ = _center(R if layout is None else _pad_rows(R, layout))
-    mu, _ = _stimulus_moments(frames, chunk, fv)
+    R, lags, layout, X, _, mu = _dense_inputs(responses, frames, lags, valid, chunk)
     k, lam = _whitened_core(frames, X, lags, mu, n_folds, lambdas, chunk, layout=layout)
     out = k.transpose(2, 0, 1).reshape((R.shape[0], lags.size) + tuple(frames.shape[1:])).astype(np.float32)
     return (out, lam) if return_lambda else out
