@@ -59,7 +59,7 @@ class Analysis:
         ``linear_reason``, map statistics (``polarity``, ``onoff_overlap``, ``linear_share``, ``snr`` ...),
         the fit columns of :func:`map2d.fit.spatial.fit_maps` (kernel parameters, pixel box removed),
         ``agreement_raw``, ``agreement_noise_corrected``, ``grating_signal_fraction``,
-        ``grating_signal_p``, ``magnitude_agreement``, ``phase_error_deg``, ``agreement_gain``,
+        ``grating_signal_p_value``, ``magnitude_agreement``, ``phase_error_deg``, ``agreement_gain``,
         ``inverse_similarity`` and the tuning columns
     notes : list of str  what was skipped and why
     trace_decay : map2d.traces.TraceDecay or None  the indicator decay removed from traces before the maps
@@ -343,7 +343,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
       cells score what their prediction scores against the noiseless truth (0.8-1.0), and complex cells
       (no first harmonic, the surface indistinguishable from noise, no correction) stay at 0-0.03.
       The raw score is kept as ``agreement_raw``; ``agreement_noise_corrected``,
-      ``grating_signal_fraction`` and ``grating_signal_p`` say what was done.
+      ``grating_signal_fraction`` and ``grating_signal_p_value`` say what was done.
     """
     from . import reconcile
     from .fit.spatial import fit_maps
@@ -486,7 +486,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["agreement_noise_corrected"] = [bool(v) if np.isfinite(a) else None for v, a in
                                               zip(an.forward["noise_corrected"], agreement)]
         cells["grating_signal_fraction"] = list(an.forward["signal_fraction"])
-        cells["grating_signal_p"] = list(an.forward["signal_p"])
+        cells["grating_signal_p_value"] = list(an.forward["signal_p"])
         cells["magnitude_agreement"] = list(an.forward["magnitude_agreement"])
         cells["phase_error_deg"] = list(an.forward["phase_error_deg"])
         cells["agreement_gain"] = list(an.forward["gain"])

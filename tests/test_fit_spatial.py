@@ -287,7 +287,7 @@ def test_fit_maps_columns_and_nonresponsive_cells_empty():
     assert np.isnan(cols["rc_deg"][1]) and np.isnan(cols["fit_sign"][1])
     assert cols["model"][0] != "gabor" and abs(cols["center_x_deg"][0] - 9.0) < 0.5
     assert cols["fit_sign"][3] == -1.0
-    assert cols["center_x_ci_low"][0] < cols["center_x_deg"][0] < cols["center_x_ci_high"][0]
+    assert cols["center_x_ci_low_deg"][0] < cols["center_x_deg"][0] < cols["center_x_ci_high_deg"][0]
     # a worker pool gives the same numbers as the serial path
     par = fit_maps(maps, GRID, resp, noise_sd=np.full(4, SD), n_jobs=2)
     for c in FIT_COLUMNS:

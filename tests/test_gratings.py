@@ -231,7 +231,7 @@ def test_flashed_tuning_columns_recover_gabor_and_complex_cells(flashed_spikes):
         assert d < 5.0                                              # issue 4 tolerance
     assert cols["pref_sf_cpd"][0] == pytest.approx(GABOR["sf_cpd"], rel=0.10)  # issue 4 tolerance
     assert 0 < cols["circular_variance"][0] < 1 and 0 < cols["osi"][0] <= 1
-    assert cols["pref_orientation_ci95_deg"][0] < 10
+    assert cols["pref_orientation_ci_halfwidth_deg"][0] < 10
     # the unresponsive cell gets empty values, never invented ones
     assert cols["grating_responsive"][2] is False
     for k in ("pref_orientation_deg", "pref_sf_cpd", "circular_variance", "osi", "flashed_peak_lag_s"):

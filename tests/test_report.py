@@ -120,7 +120,7 @@ def test_report_is_written_self_contained_with_every_figure(full, tmp_path, monk
     table = text[text.index("<h2>All cells</h2>"):]
     assert table.count("<tr>") == len(an.cell_ids) + 1
     for col in ("cell", "responsive", "center_x_deg", "pref_sf_cpd", "f1_f0", "agreement", "linear"):
-        assert f"<th>{col}</th>" in table
+        assert f'">{col}</th>' in table                      # with its meaning as hover text
 
 
 def test_every_axis_names_its_unit(full):

@@ -472,7 +472,8 @@ def test_centre_surround_cell_with_aliased_orientation_modulation_gets_no_orient
 def test_weak_but_clean_drifting_orientation_tuning_is_kept():
     """The circular-variance gate is for the phase aliasing of flashed sequences; a drifting-grating
     curve with a weak but significant orientation preference (circular variance 0.975) keeps it.
-    ``sf_fit_params_model`` names the model of the SF parameter columns."""
+    ``sf_fit_curve`` names the model of the SF parameter columns, whose width sits in the column of
+    its unit (the other two empty)."""
     from types import SimpleNamespace
 
     from map2d.fit.tuning import MAX_CIRCULAR_VARIANCE_ORIENTED, grating_tuning_columns
@@ -490,5 +491,9 @@ def test_weak_but_clean_drifting_orientation_tuning_is_kept():
     assert cols["circular_variance"][0] > MAX_CIRCULAR_VARIANCE_ORIENTED
     assert cols["pref_orientation_deg"][0] == pytest.approx(60.0, abs=0.5)
     assert cols["pref_sf_cpd"][0] == pytest.approx(0.07, rel=0.01)
-    assert cols["sf_fit_params_model"][0] in ("log_gaussian", "gaussian", "dog")
-    assert cols["sf_fit_model"][0] in (cols["sf_fit_params_model"][0], "average")
+    curve = cols["sf_fit_curve"][0]
+    assert curve in ("log_gaussian", "gaussian", "dog")
+    assert cols["sf_model"][0] in (curve, "average")
+    width = {"log_gaussian": "sf_fit_sigma_oct", "gaussian": "sf_fit_sigma_cpd", "dog": "sf_fit_rc_deg"}
+    assert cols[width[curve]][0] > 0
+    assert all(np.isnan(cols[w][0]) for k, w in width.items() if k != curve)

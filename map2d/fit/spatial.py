@@ -879,17 +879,17 @@ def remove_pixel_box(fit: SpatialFit, grid: Grid) -> SpatialFit:
 
 FIT_COLUMNS = (
     "model", "center_x_deg", "center_y_deg",
-    "center_x_ci_low", "center_x_ci_high", "center_y_ci_low", "center_y_ci_high",
+    "center_x_ci_low_deg", "center_x_ci_high_deg", "center_y_ci_low_deg", "center_y_ci_high_deg",
     "size_deg", "fit_sign", "amplitude",
     "sigma_major_deg", "sigma_minor_deg", "theta_deg",
-    "sigma_major_ci_low", "sigma_major_ci_high", "sigma_minor_ci_low", "sigma_minor_ci_high",
-    "theta_ci_low", "theta_ci_high",
+    "sigma_major_ci_low_deg", "sigma_major_ci_high_deg", "sigma_minor_ci_low_deg", "sigma_minor_ci_high_deg",
+    "theta_ci_low_deg", "theta_ci_high_deg",
     "rc_deg", "rs_deg", "dog_kc", "dog_ks",
-    "rc_ci_low", "rc_ci_high", "rs_ci_low", "rs_ci_high",
+    "rc_ci_low_deg", "rc_ci_high_deg", "rs_ci_low_deg", "rs_ci_high_deg",
     "gabor_orientation_deg", "gabor_sf_cpd", "gabor_phase_deg", "gabor_sigma_u_deg",
     "gabor_sigma_v_deg",
-    "gabor_orientation_ci_low", "gabor_orientation_ci_high", "gabor_sf_ci_low", "gabor_sf_ci_high",
-    "gabor_phase_ci_low", "gabor_phase_ci_high",
+    "gabor_orientation_ci_low_deg", "gabor_orientation_ci_high_deg", "gabor_sf_ci_low_cpd", "gabor_sf_ci_high_cpd",
+    "gabor_phase_ci_low_deg", "gabor_phase_ci_high_deg",
     "r2", "aic_gaussian", "aic_dog", "aic_gabor", "bic_gaussian", "bic_dog", "bic_gabor",
 )
 """Columns returned by :func:`fit_maps`, in order (for ``cells.csv``)."""
@@ -903,8 +903,9 @@ def _row(fit: SpatialFit) -> dict:
 
     def put(col, name, ci_col=None):
         row[col] = p[name]
-        if ci_col is not None:
-            row[ci_col + "_ci_low"], row[ci_col + "_ci_high"] = ci[name]
+        if ci_col is not None:   # "<quantity>_ci_low_<unit>", the unit of col's suffix
+            unit = col.rsplit("_", 1)[1]
+            row[f"{ci_col}_ci_low_{unit}"], row[f"{ci_col}_ci_high_{unit}"] = ci[name]
 
     put("center_x_deg", "center_x_deg", "center_x")
     put("center_y_deg", "center_y_deg", "center_y")
@@ -932,7 +933,7 @@ def _row(fit: SpatialFit) -> dict:
             put("sigma_major_deg", "sigma_v_deg", "sigma_major")
             put("sigma_minor_deg", "sigma_u_deg", "sigma_minor")
             row["theta_deg"] = (p["orientation_deg"] + 90.0) % 180.0
-        row["theta_ci_low"], row["theta_ci_high"] = (
+        row["theta_ci_low_deg"], row["theta_ci_high_deg"] = (
             ci["orientation_deg"][0] + (row["theta_deg"] - p["orientation_deg"]),
             ci["orientation_deg"][1] + (row["theta_deg"] - p["orientation_deg"]))
         put("amplitude", "amplitude")
@@ -998,7 +999,8 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
         (Gaussian, or the Gabor's envelope; major-axis angle in [0, 180)), ``rc_deg``, ``rs_deg``,
         ``dog_kc``, ``dog_ks`` (DoG), ``gabor_*`` (Gabor), ``r2`` and the AIC and BIC of each model
         tried (NaN for a model not tried).
-        Interval columns ``<name>_ci_low`` / ``<name>_ci_high`` share the unit of their parameter.
+        Interval columns ``<quantity>_ci_low_<unit>`` / ``<quantity>_ci_high_<unit>`` (e.g.
+        ``center_x_ci_low_deg``) share the unit of their parameter.
         NaN where the chosen model has no such parameter.
     """
     maps = np.asarray(maps, dtype=float)

@@ -10,8 +10,9 @@ Models
   half height above ``b`` is ``2 sqrt(2 ln 2) sigma`` octaves), a Gaussian in linear SF (the
   spectrum of a Gabor), or, for curves of 5 SFs or more, the spectrum of a difference of Gaussians
   ``a_c exp(-(pi rc f)^2) - a_s exp(-(pi rs f)^2)`` (centre-surround cells, Enroth-Cugell & Robson
-  1966), averaged with Akaike weights; ``sf_fit_width`` is ``sigma`` in octaves or in cpd, or the
-  centre radius ``rc`` in degrees.
+  1966), averaged with Akaike weights; the width of the SF curve reported in ``cells.csv`` is
+  ``sigma`` in octaves (``sf_fit_sigma_oct``) or in cpd (``sf_fit_sigma_cpd``), or the centre radius
+  ``rc`` in degrees (``sf_fit_rc_deg``).
 
 Fits use :func:`scipy.optimize.least_squares` with analytic Jacobians. Starts are screened cheaply:
 every model is linear in its baseline and amplitude(s), so on a grid of the nonlinear parameters
@@ -550,7 +551,7 @@ class SFFit:
     95 % interval; ``model`` is ``"log_gaussian"`` (``params`` = ``(b, a, log2_f0, sigma_oct)``),
     ``"gaussian"`` (``params`` = ``(b, a, f0_cpd, sigma_cpd)``), ``"dog"`` (``params`` =
     ``(b, a_c, a_s, rc_deg, rs_deg)`` of :func:`dog_sf`, ``b`` = 0: so ``cells.csv``'s
-    ``sf_fit_baseline``, ``sf_fit_amplitude`` and ``sf_fit_width`` hold 0, the centre strength
+    ``sf_fit_baseline``, ``sf_fit_amplitude`` and ``sf_fit_rc_deg`` hold 0, the centre strength
     ``a_c`` and the centre radius ``rc`` in degrees) or ``"average"`` when no model's Akaike weight
     exceeds 0.95; ``params_model`` names the model whose ``params`` these are (the heavier one)."""
 
@@ -1033,12 +1034,13 @@ def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
 # cells.csv columns
 # ----------------------------------------------------------------------------------------------
 TUNING_COLUMNS = (
-    "cell", "grating_responsive", "tuning_source", "pref_orientation_deg", "pref_orientation_ci95_deg",
-    "orientation_hwhh_deg", "orientation_hwhh_ci95_deg", "pref_sf_cpd", "pref_sf_ci_low_cpd",
-    "pref_sf_ci_high_cpd", "sf_bandwidth_oct", "sf_bandwidth_ci95_oct", "circular_variance", "osi",
+    "cell", "grating_responsive", "tuning_source", "pref_orientation_deg", "pref_orientation_ci_halfwidth_deg",
+    "orientation_hwhh_deg", "orientation_hwhh_ci_halfwidth_deg", "pref_sf_cpd", "pref_sf_ci_low_cpd",
+    "pref_sf_ci_high_cpd", "sf_bandwidth_oct", "sf_bandwidth_ci_halfwidth_oct", "circular_variance", "osi",
     "pref_direction_deg", "dsi", "f1_f0", "grating_class", "flashed_peak_lag_s", "flashed_p_value",
     "drifting_p_value", "ori_fit_baseline", "ori_fit_amplitude", "ori_fit_kappa", "ori_fit_r2",
-    "sf_fit_model", "sf_fit_params_model", "sf_fit_baseline", "sf_fit_amplitude", "sf_fit_width", "sf_fit_r2",
+    "sf_model", "sf_fit_curve", "sf_fit_baseline", "sf_fit_amplitude", "sf_fit_sigma_oct", "sf_fit_sigma_cpd",
+    "sf_fit_rc_deg", "sf_fit_r2",
 )
 
 
@@ -1142,9 +1144,11 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
     orientation fit does not beat a constant (F test, p >= 0.01, e.g. a centre-surround cell), or whose
     flashed-grating circular variance is above :data:`MAX_CIRCULAR_VARIANCE_ORIENTED`, gets an empty
     preferred orientation and width (its circular variance and OSI are still reported).
-    ``sf_fit_model`` names the SF model (or ``"average"``), ``sf_fit_params_model`` the model whose
-    parameters ``sf_fit_baseline``, ``sf_fit_amplitude`` and ``sf_fit_width`` are (width in octaves
-    for ``log_gaussian``, cycles/deg for ``gaussian``, the centre radius in degrees for ``dog``). ``circular_variance`` is the
+    ``sf_model`` names the SF model behind ``pref_sf_cpd`` and ``sf_bandwidth_oct`` (or ``"average"``),
+    ``sf_fit_curve`` the one SF curve whose parameters ``sf_fit_baseline``, ``sf_fit_amplitude`` and
+    ``sf_fit_r2`` are, with its width in the column of its unit: ``sf_fit_sigma_oct`` for
+    ``log_gaussian``, ``sf_fit_sigma_cpd`` for ``gaussian``, ``sf_fit_rc_deg`` (the centre radius) for
+    ``dog``; the other two are empty. ``circular_variance`` is the
     circular variance itself (0 = one orientation, 1 = untuned); ``osi`` and ``circular_variance``
     use the same orientation curve as the fit. For flashed gratings the orientation curve is the
     rank-1 (SVD) orientation profile of the lag-pooled (orientation x SF) surface
@@ -1233,8 +1237,8 @@ def _tuning_chunk(flashed, drifting, cell_ids):
         row["cell"] = cid
         row["tuning_source"] = ""
         row["grating_class"] = ""
-        row["sf_fit_model"] = ""
-        row["sf_fit_params_model"] = ""
+        row["sf_model"] = ""
+        row["sf_fit_curve"] = ""
         fi = fl_pos.get(cid)
         di = dr_pos.get(cid)
         fl_resp = fi is not None and bool(flashed.responsive[fi])
@@ -1272,17 +1276,19 @@ def _tuning_chunk(flashed, drifting, cell_ids):
             if surface is not None and oriented:
                 scurve = _sf_near(th, surface, of)
             if oriented:
-                row.update(pref_orientation_deg=of.pref_deg, pref_orientation_ci95_deg=of.pref_ci95_deg,
-                           orientation_hwhh_deg=of.hwhh_deg, orientation_hwhh_ci95_deg=of.hwhh_ci95_deg,
+                row.update(pref_orientation_deg=of.pref_deg, pref_orientation_ci_halfwidth_deg=of.pref_ci95_deg,
+                           orientation_hwhh_deg=of.hwhh_deg, orientation_hwhh_ci_halfwidth_deg=of.hwhh_ci95_deg,
                            ori_fit_baseline=of.params[0], ori_fit_amplitude=of.params[1],
                            ori_fit_kappa=of.params[2], ori_fit_r2=of.r2)
             sfit = table_sf_fit(th, sfs, scurve, surface, of if oriented else None)
             if sfit.ok:
                 row.update(pref_sf_cpd=sfit.pref_cpd, pref_sf_ci_low_cpd=sfit.pref_ci_low_cpd,
                            pref_sf_ci_high_cpd=sfit.pref_ci_high_cpd, sf_bandwidth_oct=sfit.bandwidth_oct,
-                           sf_bandwidth_ci95_oct=sfit.bandwidth_ci95_oct, sf_fit_baseline=sfit.params[0],
-                           sf_fit_amplitude=sfit.params[1], sf_fit_width=sfit.params[3], sf_fit_r2=sfit.r2,
-                           sf_fit_model=sfit.model, sf_fit_params_model=sfit.params_model)
+                           sf_bandwidth_ci_halfwidth_oct=sfit.bandwidth_ci95_oct, sf_fit_baseline=sfit.params[0],
+                           sf_fit_amplitude=sfit.params[1], sf_fit_r2=sfit.r2,
+                           sf_model=sfit.model, sf_fit_curve=sfit.params_model)
+                width = {"log_gaussian": "sf_fit_sigma_oct", "gaussian": "sf_fit_sigma_cpd", "dog": "sf_fit_rc_deg"}
+                row[width[sfit.params_model]] = sfit.params[3]
         for k in TUNING_COLUMNS:
             out[k].append(row[k])
     return out

@@ -187,7 +187,7 @@ def _cell_facts(an, r):
                  ("peak lag", _num(F._float_or_nan(f("peak_lag_s")) * 1000.0, "{:.0f}", "ms")),
                  ("map SNR", _num(f("snr"), "{:.3g}"))]
     if an.flashed is not None or an.drifting is not None:
-        ci = F._float_or_nan(f("pref_orientation_ci95_deg"))
+        ci = F._float_or_nan(f("pref_orientation_ci_halfwidth_deg"))
         ori = _num(f("pref_orientation_deg"), "{:.0f}", "deg")
         if math.isfinite(ci) and ori != "–":
             ori += f" ± {ci:.0f}"
@@ -209,10 +209,12 @@ def _cell_facts(an, r):
 
 
 def _all_cells_table(an):
+    from ..columns import meaning   # hover text: each column's meaning and unit (docs/columns.md)
+
     cols = list(an.cells.keys())
     n = len(an.cell_ids)
     out = ['<div class="scroll"><table>',
-           "<tr>" + "".join(f"<th>{_esc(c)}</th>" for c in cols) + "</tr>"]
+           "<tr>" + "".join(f'<th title="{_esc(meaning(c))}">{_esc(c)}</th>' for c in cols) + "</tr>"]
     columns = [an.cells[c] for c in cols]
     for r in range(n):
         cells = []

@@ -1,0 +1,317 @@
+"""The column dictionary: every column of ``cells.csv`` with its unit, meaning and source.
+
+One table, many uses: :data:`COLUMNS` is the only place a column is described. ``docs/columns.md``
+is generated from it, the report shows :func:`meaning` when the pointer rests on a column, and
+``tests/test_columns.py`` fails when ``cells.csv`` holds a column the table lacks or the page is stale.
+
+To add a column: add a :class:`Column` to :data:`COLUMNS` (in the group where it belongs), then
+regenerate the page from the repository root::
+
+    python -m map2d.columns            # rewrites docs/columns.md
+    python -m map2d.columns --check    # exit 1 if docs/columns.md is stale
+
+Naming rules (tested): every quantity ends in its unit (``_deg``, ``_s``, ``_cpd``, ``_oct``, ``_hz``);
+the ends of a 95 % interval are ``<quantity>_ci_low_<unit>`` and ``<quantity>_ci_high_<unit>``; the
+half-width of a symmetric interval is ``<quantity>_ci_halfwidth_<unit>``. Numbers without a unit
+(p-values, indices, ratios, scores) and values in the response's own unit (spikes/s, or the traces'
+unit, e.g. dF/F) carry no suffix; the table says which.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+from typing import NamedTuple
+
+__all__ = ["Column", "COLUMNS", "RENAMED", "UNITS", "meaning", "unit", "describe", "markdown",
+           "doc_path", "write_doc"]
+
+
+class Column(NamedTuple):
+    """One column of ``cells.csv``.
+
+    ``unit`` is a key of :data:`UNITS`; ``source`` names the paper a method comes from, "common
+    practice", or "ours" (a choice made by this project)."""
+
+    name: str
+    unit: str
+    meaning: str
+    source: str = "ours"
+
+
+#: What the ``unit`` field means.
+UNITS = {
+    "deg": "degrees (of visual angle, or of angle for orientations and phases)",
+    "s": "seconds",
+    "cpd": "cycles per degree",
+    "oct": "octaves",
+    "1": "a number without unit (p-value, index, ratio, score)",
+    "response": "the response's own unit: spikes/s for spikes, the traces' unit (e.g. dF/F) for traces",
+    "id": "an integer cell id",
+    "bool": "true / false (empty: cannot be called)",
+    "text": "a word or short phrase",
+}
+
+_MAP = "Map statistics (sparse noise)"
+_FIT = "Spatial fit"
+_AGR = "Agreement between map and gratings"
+_TUN = "Grating tuning"
+_BATCH = "Population table only"
+
+#: Every column, grouped; the first group is the results contract's, in its order.
+COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
+    ("Contract columns (always first, in this order)", (
+        Column("cell", "id", "Cell id: the integers of the spike file's `cell` array, or the row of the traces.",
+               "session format"),
+        Column("responsive", "bool", "The sparse-noise map is significant: a max-statistic test over pixels x lags x "
+               "map kinds, family-wise alpha 0.01, null from circular-shift shuffles (Gumbel fit to block maxima).",
+               "Nichols & Holmes 2002; Coles 2001"),
+        Column("center_x_deg", "deg", "Azimuth of the centre of the fitted model's envelope (positive right; "
+               "`map2d maps --no-fits`: the centroid of the significant region).",
+               "common practice"),
+        Column("center_y_deg", "deg", "Elevation of the centre of the fitted model's envelope (positive up).",
+               "common practice"),
+        Column("peak_lag_s", "s", "Lag between stimulus and response at which the map's largest |z| lies.",
+               "common practice"),
+        Column("pref_orientation_deg", "deg", "Preferred orientation, wave-vector angle counter-clockwise from +x, "
+               "modulo 180 (0 = vertical stripes); from a von Mises fit on the doubled angle, reported when it beats "
+               "a constant (F test p < 0.01) and, for flashed gratings, circular variance <= 0.9.", "common practice"),
+        Column("pref_sf_cpd", "cpd", "Preferred spatial frequency, read along the preferred orientation "
+               "(model named in `sf_model`).", "common practice"),
+        Column("f1_f0", "1", "F1/F0 of drifting-grating responses at the preferred condition; > 1 = simple.",
+               "Skottun et al. 1991"),
+        Column("agreement", "1", "How well the map's fitted model predicts the measured flashed-grating first "
+               "harmonics, 0-1, corrected for the noise of the measured surface when it holds signal "
+               "(`agreement_noise_corrected`).", "ours; correction: Spearman 1904"),
+        Column("linear", "bool", "The cell is linear: agreement >= 0.5, F1/F0 > 1 when drifting gratings exist, "
+               "ON/OFF overlap <= 0.5.", "ours; Skottun et al. 1991; Hubel & Wiesel 1962"),
+    )),
+    (_MAP, (
+        Column("linear_reason", "text", "Which criteria decided `linear`, or why it is empty (no map, not "
+               "responsive, no flashed gratings)."),
+        Column("p_value", "1", "P-value of the sparse-noise `responsive` test.", "Nichols & Holmes 2002"),
+        Column("polarity", "text", "`ON-centre`, `OFF-centre` or `mixed` (ON and OFF both significant, the weaker "
+               "at least half the stronger); empty when not responsive."),
+        Column("fitted_map", "text", "Which map the spatial model was fitted to: `linear` (ON - OFF) or `on+off` "
+               "(coextensive ON and OFF regions)."),
+        Column("onoff_overlap", "1", "Cosine similarity of the excitatory parts of the ON and OFF z-maps at the "
+               "peak lag (0 segregated, 1 coextensive).", "ours; after Hubel & Wiesel 1962"),
+        Column("linear_share", "1", "Share of the ON + OFF map's power the linear map keeps over the excitatory "
+               "pixels (near 1 for linear cells, near 0 for complex-like cells)."),
+        Column("snr", "1", "Largest |z| of the linear map at the peak lag."),
+        Column("trace_decay_tau_s", "s", "Imaging only: the indicator decay time constant removed from the trace "
+               "before the maps.", "Vogelstein et al. 2010"),
+    )),
+    (_FIT, (
+        Column("model", "text", "The spatial model chosen by BIC: `gaussian`, `dog` or `gabor`; empty when not "
+               "fitted.", "Enroth-Cugell & Robson 1966 (DoG); Jones & Palmer 1987 (Gabor)"),
+        Column("center_x_ci_low_deg", "deg", "Lower end of the 95 % interval of `center_x_deg` (from the fit's "
+               "Jacobian).", "common practice"),
+        Column("center_x_ci_high_deg", "deg", "Upper end of the 95 % interval of `center_x_deg`.", "common practice"),
+        Column("center_y_ci_low_deg", "deg", "Lower end of the 95 % interval of `center_y_deg`.", "common practice"),
+        Column("center_y_ci_high_deg", "deg", "Upper end of the 95 % interval of `center_y_deg`.", "common practice"),
+        Column("size_deg", "deg", "Size of the fitted envelope: geometric mean of its sds (DoG: centre radius / "
+               "sqrt 2), with the pixel box removed."),
+        Column("fit_sign", "1", "+1 ON, -1 OFF for Gaussian and DoG fits; empty for a Gabor."),
+        Column("amplitude", "response", "Amplitude of the Gaussian or Gabor fit (signed for the Gaussian)."),
+        Column("sigma_major_deg", "deg", "Envelope sd along its major axis (Gaussian, or the Gabor's envelope)."),
+        Column("sigma_minor_deg", "deg", "Envelope sd along its minor axis."),
+        Column("theta_deg", "deg", "Angle of the envelope's major axis, counter-clockwise from +x, in [0, 180)."),
+        Column("sigma_major_ci_low_deg", "deg", "Lower end of the 95 % interval of `sigma_major_deg`."),
+        Column("sigma_major_ci_high_deg", "deg", "Upper end of the 95 % interval of `sigma_major_deg`."),
+        Column("sigma_minor_ci_low_deg", "deg", "Lower end of the 95 % interval of `sigma_minor_deg`."),
+        Column("sigma_minor_ci_high_deg", "deg", "Upper end of the 95 % interval of `sigma_minor_deg`."),
+        Column("theta_ci_low_deg", "deg", "Lower end of the 95 % interval of `theta_deg`."),
+        Column("theta_ci_high_deg", "deg", "Upper end of the 95 % interval of `theta_deg`."),
+        Column("rc_deg", "deg", "DoG centre radius (1/e).", "Enroth-Cugell & Robson 1966"),
+        Column("rs_deg", "deg", "DoG surround radius (1/e).", "Enroth-Cugell & Robson 1966"),
+        Column("dog_kc", "response", "DoG centre strength (>= 0 ON centre, <= 0 OFF centre).",
+               "Enroth-Cugell & Robson 1966"),
+        Column("dog_ks", "response", "DoG surround strength (same sign as `dog_kc`).", "Enroth-Cugell & Robson 1966"),
+        Column("rc_ci_low_deg", "deg", "Lower end of the 95 % interval of `rc_deg`."),
+        Column("rc_ci_high_deg", "deg", "Upper end of the 95 % interval of `rc_deg`."),
+        Column("rs_ci_low_deg", "deg", "Lower end of the 95 % interval of `rs_deg`."),
+        Column("rs_ci_high_deg", "deg", "Upper end of the 95 % interval of `rs_deg`."),
+        Column("gabor_orientation_deg", "deg", "Gabor wave-vector angle in [0, 180).", "Jones & Palmer 1987"),
+        Column("gabor_sf_cpd", "cpd", "Gabor carrier spatial frequency.", "Jones & Palmer 1987"),
+        Column("gabor_phase_deg", "deg", "Gabor carrier phase relative to the envelope centre, in [0, 360).",
+               "Jones & Palmer 1987"),
+        Column("gabor_sigma_u_deg", "deg", "Gabor envelope sd along the wave vector.", "Jones & Palmer 1987"),
+        Column("gabor_sigma_v_deg", "deg", "Gabor envelope sd across the wave vector.", "Jones & Palmer 1987"),
+        Column("gabor_orientation_ci_low_deg", "deg", "Lower end of the 95 % interval of `gabor_orientation_deg`."),
+        Column("gabor_orientation_ci_high_deg", "deg", "Upper end of the 95 % interval of `gabor_orientation_deg`."),
+        Column("gabor_sf_ci_low_cpd", "cpd", "Lower end of the 95 % interval of `gabor_sf_cpd`."),
+        Column("gabor_sf_ci_high_cpd", "cpd", "Upper end of the 95 % interval of `gabor_sf_cpd`."),
+        Column("gabor_phase_ci_low_deg", "deg", "Lower end of the 95 % interval of `gabor_phase_deg`."),
+        Column("gabor_phase_ci_high_deg", "deg", "Upper end of the 95 % interval of `gabor_phase_deg`."),
+        Column("r2", "1", "Variance of the fitted map explained by the chosen spatial model."),
+        Column("aic_gaussian", "1", "Akaike information criterion of the Gaussian fit (empty if not tried).",
+               "common practice"),
+        Column("aic_dog", "1", "AIC of the DoG fit.", "common practice"),
+        Column("aic_gabor", "1", "AIC of the Gabor fit.", "common practice"),
+        Column("bic_gaussian", "1", "Bayesian information criterion of the Gaussian fit (lowest BIC chooses "
+               "`model`).", "common practice"),
+        Column("bic_dog", "1", "BIC of the DoG fit.", "common practice"),
+        Column("bic_gabor", "1", "BIC of the Gabor fit.", "common practice"),
+    )),
+    (_AGR, (
+        Column("agreement_raw", "1", "1 - sum|measured - gain x predicted|^2 / sum|measured|^2 over the flashed "
+               "orientation x SF conditions, before the noise correction."),
+        Column("agreement_noise_corrected", "bool", "`agreement` was corrected for the noise of the measured "
+               "surface (it holds power beyond its noise, p < 0.001).", "Spearman 1904"),
+        Column("grating_signal_fraction", "1", "Share of the measured grating surface's power that is signal, "
+               "1 - noise / total."),
+        Column("grating_signal_p_value", "1", "P-value of the measured surface's power against its noise alone."),
+        Column("magnitude_agreement", "1", "Squared correlation of measured and predicted magnitudes |H| "
+               "(phases ignored; 0 when the correlation is negative)."),
+        Column("phase_error_deg", "deg", "Mean absolute phase difference (0-180) between measured and predicted "
+               "first harmonics, weighted by |measured| x |predicted|."),
+        Column("agreement_gain", "1", "The real, non-negative gain fitted between predicted and measured surfaces "
+               "(grating response per unit of map prediction)."),
+        Column("inverse_similarity", "1", "Pearson correlation of the map rebuilt from the gratings (inverse Fourier sum) "
+               "with the measured map limited to the same band."),
+    )),
+    (_TUN, (
+        Column("grating_responsive", "bool", "The cell responds significantly to flashed or drifting gratings."),
+        Column("tuning_source", "text", "Which gratings the orientation and SF tuning come from: `flashed` or "
+               "`drifting`."),
+        Column("pref_orientation_ci_halfwidth_deg", "deg", "Half-width of the 95 % interval of "
+               "`pref_orientation_deg`."),
+        Column("orientation_hwhh_deg", "deg", "Orientation tuning half-width at half height (von Mises fit).",
+               "common practice"),
+        Column("orientation_hwhh_ci_halfwidth_deg", "deg", "Half-width of the 95 % interval of "
+               "`orientation_hwhh_deg`."),
+        Column("pref_sf_ci_low_cpd", "cpd", "Lower end of the 95 % interval of `pref_sf_cpd`."),
+        Column("pref_sf_ci_high_cpd", "cpd", "Upper end of the 95 % interval of `pref_sf_cpd`."),
+        Column("sf_bandwidth_oct", "oct", "Full SF bandwidth at half height above the baseline.", "common practice"),
+        Column("sf_bandwidth_ci_halfwidth_oct", "oct", "Half-width of the 95 % interval of `sf_bandwidth_oct`."),
+        Column("circular_variance", "1", "Circular variance of the orientation curve (0 one orientation, 1 untuned).",
+               "Ringach, Shapley & Hawken 2002"),
+        Column("osi", "1", "Orientation selectivity index (R_pref - R_orth) / (R_pref + R_orth).",
+               "Ringach, Shapley & Hawken 2002"),
+        Column("pref_direction_deg", "deg", "Preferred drift direction in [0, 360) (direction the wave vector "
+               "points; two-peaked von Mises fit).", "common practice"),
+        Column("dsi", "1", "Direction selectivity index (R_pref - R_opposite) / (R_pref + R_opposite).",
+               "common practice"),
+        Column("grating_class", "text", "`simple` (F1/F0 > 1) or `complex`, from drifting gratings.",
+               "Skottun et al. 1991"),
+        Column("flashed_peak_lag_s", "s", "Lag of the largest flashed-grating response.",
+               "Ringach, Sapiro & Shapley 1997"),
+        Column("flashed_p_value", "1", "P-value of the flashed-grating test (shuffled condition sequence, max over "
+               "conditions and lags).", "Ringach, Sapiro & Shapley 1997"),
+        Column("drifting_p_value", "1", "P-value of the drifting-grating test (F0, F1 and spontaneous tests, "
+               "Bonferroni)."),
+        Column("ori_fit_baseline", "response", "Baseline b of the orientation fit b + a exp(kappa (cos 2(theta - "
+               "theta0) - 1))."),
+        Column("ori_fit_amplitude", "response", "Amplitude a of the orientation fit."),
+        Column("ori_fit_kappa", "1", "Concentration kappa of the orientation fit."),
+        Column("ori_fit_r2", "1", "Variance of the orientation curve explained by the fit."),
+        Column("sf_model", "text", "The SF model behind `pref_sf_cpd` and `sf_bandwidth_oct`: `log_gaussian`, "
+               "`gaussian`, `dog`, or `average` (Akaike-weighted, no model above weight 0.95).",
+               "Akaike weights: common practice"),
+        Column("sf_fit_curve", "text", "The one SF curve whose parameters the `sf_fit_*` columns hold "
+               "(`log_gaussian`, `gaussian` or `dog`)."),
+        Column("sf_fit_baseline", "response", "Baseline of that SF curve (0 for `dog`)."),
+        Column("sf_fit_amplitude", "response", "Amplitude of that SF curve (centre strength for `dog`)."),
+        Column("sf_fit_sigma_oct", "oct", "Width (sd) of a `log_gaussian` SF curve; empty for the others."),
+        Column("sf_fit_sigma_cpd", "cpd", "Width (sd) of a `gaussian` SF curve; empty for the others."),
+        Column("sf_fit_rc_deg", "deg", "Centre radius of a `dog` SF curve; empty for the others.",
+               "Enroth-Cugell & Robson 1966"),
+        Column("sf_fit_r2", "1", "Variance of the SF curve explained by that fit."),
+    )),
+    (_BATCH, (
+        Column("session", "text", "`sessions.csv` of `map2d batch` only: the session's folder name (first column)."),
+    )),
+)
+
+#: Old name -> new name, for columns renamed so that every quantity carries its unit and intervals
+#: are named alike (map2d 0.x -> now). ``sf_fit_width`` became three columns, one per unit.
+RENAMED = {
+    **{f"{q}_ci_{e}": f"{q}_ci_{e}_{u}" for q, u in (
+        ("center_x", "deg"), ("center_y", "deg"), ("sigma_major", "deg"), ("sigma_minor", "deg"),
+        ("theta", "deg"), ("rc", "deg"), ("rs", "deg"), ("gabor_orientation", "deg"), ("gabor_sf", "cpd"),
+        ("gabor_phase", "deg")) for e in ("low", "high")},
+    "pref_orientation_ci95_deg": "pref_orientation_ci_halfwidth_deg",
+    "orientation_hwhh_ci95_deg": "orientation_hwhh_ci_halfwidth_deg",
+    "sf_bandwidth_ci95_oct": "sf_bandwidth_ci_halfwidth_oct",
+    "grating_signal_p": "grating_signal_p_value",
+    "sf_fit_model": "sf_model",
+    "sf_fit_params_model": "sf_fit_curve",
+    "sf_fit_width": "sf_fit_sigma_oct / sf_fit_sigma_cpd / sf_fit_rc_deg",
+}
+
+_BY_NAME = {c.name: c for _, group in COLUMNS for c in group}
+
+
+def describe(name: str) -> Column | None:
+    """The :class:`Column` called ``name``, or None when the table has no such column."""
+    return _BY_NAME.get(name)
+
+
+def meaning(name: str) -> str:
+    """One line for a column: its meaning, then its unit (for hover text); '' for an unknown name.
+
+    Examples
+    --------
+    >>> meaning("peak_lag_s")
+    "Lag between stimulus and response at which the map's largest |z| lies. [s]"
+    """
+    c = _BY_NAME.get(name)
+    if c is None:
+        return ""
+    return f"{c.meaning} [{c.unit}]" if c.unit not in ("text", "bool", "id") else c.meaning
+
+
+def unit(name: str) -> str:
+    """The unit key of a column (a key of :data:`UNITS`), '' for an unknown name."""
+    c = _BY_NAME.get(name)
+    return "" if c is None else c.unit
+
+
+def _cell(text: str) -> str:
+    return text.replace("|", "\\|")
+
+
+def markdown() -> str:
+    """``docs/columns.md``: the whole table as Markdown (generated; do not edit the page by hand)."""
+    out = ["# Columns of `cells.csv`", "",
+           "<!-- generated from map2d/columns.py by `python -m map2d.columns`; do not edit by hand -->", "",
+           "`map2d analyze` writes one row per cell, sorted by cell id. A value that cannot be estimated is "
+           "empty. `map2d maps` writes the map and fit columns, `map2d gratings` the tuning columns; a session "
+           "without one stimulus family leaves that family's columns empty or out. Intervals are 95 %.", "",
+           "Units:", ""]
+    out += [f"- `{k}`: {v}" for k, v in UNITS.items()]
+    for title, group in COLUMNS:
+        out += ["", f"## {title}", "", "| column | unit | meaning | source |", "| --- | --- | --- | --- |"]
+        out += [f"| `{c.name}` | {c.unit} | {_cell(c.meaning)} | {_cell(c.source)} |" for c in group]
+    out += ["", "## Renamed columns", "",
+            "Older results used these names; the columns are the same unless said otherwise.", "",
+            "| old name | new name |", "| --- | --- |"]
+    out += [f"| `{old}` | `{new}` |" for old, new in RENAMED.items()]
+    return "\n".join(out) + "\n"
+
+
+def doc_path() -> Path:
+    """Where the generated page lives in a source checkout: ``docs/columns.md``."""
+    return Path(__file__).resolve().parents[1] / "docs" / "columns.md"
+
+
+def write_doc(path=None) -> Path:
+    """Write :func:`markdown` to ``path`` (default :func:`doc_path`) and return the path."""
+    path = Path(path) if path is not None else doc_path()
+    path.write_text(markdown(), encoding="utf-8")
+    return path
+
+
+def _main(argv) -> int:
+    if argv[:1] == ["--check"]:
+        p = doc_path()
+        stale = not p.is_file() or p.read_text(encoding="utf-8") != markdown()
+        print(f"{p} is {'stale: run python -m map2d.columns' if stale else 'up to date'}")
+        return 1 if stale else 0
+    print(f"wrote {write_doc()}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(_main(sys.argv[1:]))
