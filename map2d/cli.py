@@ -92,9 +92,8 @@ def build_parser() -> argparse.ArgumentParser:
                            ("gratings", "grating response surfaces and tuning"),
                            ("analyze", "maps, gratings, reconciliation, TIFF stacks and report")):
         p = sub.add_parser(name, help=helptext, description=f"Compute {helptext} for every cell of a session.")
-        p.add_argument("session", type=Path,
-                       help="session folder (holding session.json)" + (", or an .nwb file with --config"
-                                                                        if name == "analyze" else ""))
+        p.add_argument("session", type=Path, help="session folder (holding session.json), or an .nwb file "
+                                                      "with --config")
         p.add_argument("--out", required=True, type=Path, help="results folder (replaced only after success)")
         p.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
                        help="longest lag in seconds (default 0.2)")
@@ -104,9 +103,9 @@ def build_parser() -> argparse.ArgumentParser:
                            help="imaging traces: remove the indicator's decay before the maps, with the "
                                 "time constant estimated per cell (auto, the default), given in seconds, "
                                 "or not at all (off); spikes are never filtered")
-        if name == "analyze":
-            p.add_argument("--config", type=Path, default=None,
-                           help="NWB mapping (JSON) when SESSION is an .nwb file (README, NWB files and many sessions; docs/batch.md)")
+        p.add_argument("--config", type=Path, default=None,
+                       help="NWB mapping (JSON) when SESSION is an .nwb file (README, NWB files and many "
+                            "sessions; docs/batch.md)")
         if name == "maps":
             p.add_argument("--no-fits", action="store_true",
                            help="maps and significance only: no model fits (centre = centroid of the "
@@ -175,10 +174,10 @@ def _dispatch(args) -> int:
         return pipeline.run_simulate(args)
     if args.command == "maps":
         return pipeline.run_maps(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed, quiet=args.quiet,
-                                 fits=not args.no_fits, trace_decay=args.trace_decay)
+                                 fits=not args.no_fits, trace_decay=args.trace_decay, config=args.config)
     if args.command == "gratings":
         return pipeline.run_gratings(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
-                                     quiet=args.quiet)
+                                     quiet=args.quiet, config=args.config)
     if args.command == "analyze":
         return pipeline.run_analyze(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
                                     quiet=args.quiet, config=args.config, trace_decay=args.trace_decay)

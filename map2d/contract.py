@@ -26,7 +26,7 @@ __all__ = [
     "load_session", "write_session", "write_table", "read_table", "GRATING_COLUMNS",
     "write_stimulus", "load_stimulus", "STIMULUS_MANIFEST", "count_spikes_outside", "find_frame_gaps",
     "GAP_FACTOR", "check_times", "check_frames", "frame_gap_mask", "check_traces", "check_spikes",
-    "check_grating_columns", "check_overlap",
+    "check_grating_columns", "check_overlap", "StoredFrames", "check_luminance",
 ]
 
 MANIFEST = "session.json"
@@ -34,11 +34,11 @@ GRATING_COLUMNS = ("onset_s", "offset_s", "orientation_deg", "sf_cpd", "phase_de
 KNOWN_TOP_KEYS = {"sparse_noise", "gratings", "responses", "display", "rois", "name", "notes", "generator",
                   "nwb"}
 KNOWN_SUB_KEYS = {
-    "sparse_noise": {"frames", "times", "grid", "exclude_gaps"},
+    "sparse_noise": {"frames", "times", "grid", "exclude_gaps", "luminance"},
     "sparse_noise.grid": {"center_deg", "spacing_deg"},
     "gratings": {"table", "phase_origin_deg"},
     "responses.spikes": {"kind", "file", "cell_ids"},
-    "responses.traces": {"kind", "file", "times"},
+    "responses.traces": {"kind", "file", "times", "cell_ids"},
 }
 #: A frame interval longer than this many median intervals looks like dropped frames.
 GAP_FACTOR = 1.5
@@ -152,16 +152,20 @@ class Spikes:
 
 @dataclass
 class Traces:
-    """Imaging traces ``(cells, samples)`` sampled at ``times_s``; cell ids are the row numbers."""
+    """Imaging traces ``(cells, samples)`` sampled at ``times_s``; cell ids are the row numbers, or
+    ``ids`` (one increasing integer per row, e.g. the ROI ids of an NWB response series)."""
 
     values: np.ndarray
     times_s: np.ndarray
+    ids: np.ndarray | None = None
 
     kind = "traces"
     unit = "trace units"
 
     @property
     def cell_ids(self) -> np.ndarray:
+        if self.ids is not None:
+            return np.asarray(self.ids, dtype=np.int64)
         return np.arange(self.values.shape[0], dtype=np.int64)
 
 
@@ -357,29 +361,187 @@ def check_times(times, file, field, expected=None) -> np.ndarray:
     return times
 
 
-def check_frames(frames, file, field) -> np.ndarray:
-    """Validate noise frames ``(frames, ny, nx)``: two frames or more, a non-empty grid, and values
-    -1, 0, +1 (any integer type) or finite reals (dense noise).
+class StoredFrames:
+    """Noise frames ``(frames, ny, nx)`` read a block at a time from a stored movie and converted on
+    read (luminance to contrast, binary +-1 to float, NWB axis order), so a dense movie is streamed
+    like a memory-mapped ``.npy`` file instead of being held in memory.
 
-    Values are checked in chunks of about 16 M, so a memory-mapped dense movie larger than memory
-    stays on disk (its pages are released after each chunk).
+    Only what the engines use is provided: ``shape``, ``ndim``, ``dtype``, ``len``, slicing along the
+    frames (``frames[a:b]`` gives an in-memory float32 array) and ``numpy.asarray`` (the whole movie).
 
     Parameters
     ----------
-    frames : numpy.ndarray
-        The frames, possibly memory-mapped.
+    read : callable
+        ``read(a, b)`` -> frames ``a:b`` as an array ``(b - a, ny, nx)`` (the stored values, oriented).
+    shape : tuple
+        ``(frames, ny, nx)``.
+    convert : callable, optional
+        Applied to each block read (default: as float32).
+    """
+
+    ndim = 3
+
+    def __init__(self, read, shape, convert=None):
+        self._read = read
+        self.shape = tuple(int(v) for v in shape)
+        self.dtype = np.dtype(np.float32)
+        self._convert = convert
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def _block(self, a: int, b: int) -> np.ndarray:
+        raw = np.asarray(self._read(a, b))
+        out = raw if self._convert is None else self._convert(raw)
+        return np.asarray(out, dtype=np.float32)
+
+    def __getitem__(self, key):
+        n = self.shape[0]
+        if isinstance(key, (int, np.integer)):
+            k = int(key) + (n if key < 0 else 0)
+            if not 0 <= k < n:
+                raise IndexError(f"frame {key} out of range for {n} frames")
+            return self._block(k, k + 1)[0]
+        if isinstance(key, slice):
+            a, b, step = key.indices(n)
+            if step == 1:
+                return self._block(a, max(a, b))
+            key = np.arange(a, b, step)
+        idx = np.arange(n)[key]
+        out = np.empty((idx.size,) + self.shape[1:], dtype=np.float32)
+        for i, k in enumerate(idx):
+            out[i] = self._block(int(k), int(k) + 1)[0]
+        return out
+
+    def __array__(self, dtype=None, copy=None):
+        out = np.empty(self.shape, dtype=np.float32)
+        step = _frames_per_chunk(self.shape)
+        for a in range(0, self.shape[0], step):
+            out[a:a + step] = self._block(a, min(self.shape[0], a + step))
+        return out if dtype is None else out.astype(dtype, copy=False)
+
+
+def _frames_per_chunk(shape) -> int:
+    """Frames per block of about 16 M values."""
+    return max(1, 2**24 // max(1, int(shape[1]) * int(shape[2])))
+
+
+def _read_block(frames, a, b) -> np.ndarray:
+    """Frames ``a:b`` in memory; the pages of a memory-mapped movie are released after the read."""
+    blk = np.array(frames[a:b])
+    mm = getattr(frames, "_mmap", None)
+    if mm is not None and hasattr(mm, "madvise"):      # keep resident memory at one chunk
+        import mmap
+        try:
+            mm.madvise(getattr(mmap, "MADV_DONTNEED", 4))
+        except (OSError, ValueError):
+            pass
+    return blk
+
+
+def _as_int8(frames, convert=None) -> np.ndarray:
+    """Int8 frames in memory, read block by block (``convert`` applied to each block)."""
+    out = np.empty(frames.shape, dtype=np.int8)
+    step = _frames_per_chunk(frames.shape)
+    for a in range(0, frames.shape[0], step):
+        blk = _read_block(frames, a, a + step)
+        out[a:a + step] = blk if convert is None else convert(blk)
+    return out
+
+
+def _stream(frames, convert):
+    """``frames`` as :class:`StoredFrames` applying ``convert`` to every block read."""
+    return StoredFrames(lambda a, b: _read_block(frames, a, b), frames.shape, convert)
+
+
+def check_luminance(spec, where, key: str = "sparse_noise.luminance") -> tuple[float, float]:
+    """The ``luminance`` entry of a manifest or mapping: ``{"background": B, "contrast_scale": S}``
+    (contrast = (value - B) / S, S > 0), as ``(B, S)``; BadInput naming the key otherwise."""
+    if not isinstance(spec, dict):
+        raise BadInput(where, key, f"must be a JSON object with background and contrast_scale, got {spec!r}")
+    unknown = sorted(set(spec) - {"background", "contrast_scale"})
+    if unknown:
+        raise BadInput(where, f"{key}.{unknown[0]}", "unknown key (known: background, contrast_scale)")
+    values = []
+    for k in ("background", "contrast_scale"):
+        if k not in spec:
+            raise BadInput(where, f"{key}.{k}", "is missing")
+        v = spec[k]
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            raise BadInput(where, f"{key}.{k}", f"must be a finite number, got {v!r}")
+        values.append(float(v))
+    if values[1] <= 0:
+        raise BadInput(where, f"{key}.contrast_scale", f"must be positive, got {values[1]:g}")
+    return values[0], values[1]
+
+
+def _levels(frames, file, field, most: int = 3):
+    """Sorted distinct values of ``frames`` (read in blocks), or None once there are more than
+    ``most``; non-finite values are refused."""
+    seen: set = set()
+    step = _frames_per_chunk(frames.shape)
+    for a in range(0, frames.shape[0], step):
+        blk = _read_block(frames, a, a + step)
+        if blk.dtype.kind == "f":
+            _refuse_first(~np.isfinite(blk).all(axis=(1, 2)), file, field, "is not finite", first_row=a)
+        if blk.dtype.kind == "u" and blk.dtype.itemsize <= 2:
+            seen.update(np.flatnonzero(np.bincount(blk.ravel())).tolist())
+        else:
+            seen.update(np.unique(blk).tolist())
+        if len(seen) > most:
+            return None
+    return sorted(seen)
+
+
+LUMINANCE_HINT = ("a luminance movie needs sparse_noise.luminance {\"background\": ..., \"contrast_scale\": ...}; "
+                  "float frames are read as dense noise")
+
+
+def check_frames(frames, file, field, luminance=None):
+    """Validate noise frames ``(frames, ny, nx)`` and say which engine reads them.
+
+    Two frames or more and a non-empty grid. Then, by what the frames hold:
+
+    - integers -1, 0, +1 with some 0 (background): sparse noise, int8 in memory;
+    - integers -1 and +1 only (binary dense noise): dense, streamed as float32;
+    - finite reals: dense noise, as given (a memory-mapped movie stays on disk);
+    - with ``luminance = (background, contrast_scale)``: stored luminance values (any integer or real
+      type, e.g. uint8 0/127/255) are converted to contrast ``(value - background) / contrast_scale``.
+      A movie of at most three levels, the background among them and at most one level on each side
+      (dark / background / bright) is sparse noise (the sign of the contrast, int8); any other movie
+      is dense noise, converted block by block as it is read.
+
+    Values are checked in chunks of about 16 M, so a movie larger than memory stays on disk.
+
+    Parameters
+    ----------
+    frames : numpy.ndarray or StoredFrames
+        The frames, possibly memory-mapped (or any array-like sliced along the frames).
     file, field : str or Path
         What an error names.
+    luminance : (float, float), optional
+        Background level and contrast scale of a luminance movie (:func:`check_luminance`).
 
     Returns
     -------
-    numpy.ndarray
-        Integer frames as int8 in memory; real frames as given (still memory-mapped if they were).
+    numpy.ndarray or StoredFrames
+        Sparse noise as int8 in memory (the engines' sparse path); dense noise as a real array or
+        :class:`StoredFrames` (the dense path).
 
     Raises
     ------
     BadInput
         Naming ``file``, ``field`` and the first bad frame (0-based row).
+
+    Examples
+    --------
+    >>> lum = np.array([[[127, 255]], [[0, 127]]], dtype=np.uint8)
+    >>> check_frames(lum, "f.npy", "frames", luminance=(127, 128))
+    array([[[ 0,  1]],
+    <BLANKLINE>
+           [[-1,  0]]], dtype=int8)
+    >>> check_frames(np.array([[[1, -1]], [[-1, 1]]], dtype=np.int8), "f.npy", "frames")[:].dtype
+    dtype('float32')
     """
     if frames.ndim != 3:
         raise BadInput(file, field, f"must have shape (frames, ny, nx), got {frames.shape}")
@@ -387,25 +549,35 @@ def check_frames(frames, file, field) -> np.ndarray:
         raise BadInput(file, field, f"needs at least two frames, got {frames.shape[0]}")
     if frames.shape[1] < 1 or frames.shape[2] < 1:
         raise BadInput(file, field, f"the grid is empty: shape {frames.shape}")
-    chunk = max(1, 2**24 // max(1, frames.shape[1] * frames.shape[2]))   # frames per ~16 M values
-    if frames.dtype.kind in "iu":
+    kind = frames.dtype.kind
+    if luminance is not None:
+        if kind not in "iuf":
+            raise BadInput(file, field, f"must hold numbers (luminance), got {frames.dtype}")
+        background, scale = luminance
+        levels = _levels(frames, file, field)
+        if (levels is not None and background in levels and sum(v < background for v in levels) <= 1
+                and sum(v > background for v in levels) <= 1):
+            return _as_int8(frames, lambda b: np.sign(b.astype(np.float64) - background))
+        return _stream(frames, lambda b: (b.astype(np.float32) - np.float32(background)) / np.float32(scale))
+    chunk = _frames_per_chunk(frames.shape)
+    if kind in "iu":
+        has_zero = False
         for a in range(0, frames.shape[0], chunk):
-            blk = frames[a:a + chunk]
+            blk = _read_block(frames, a, a + chunk)
             if blk.min() < -1 or blk.max() > 1:
-                _refuse_first(((blk < -1) | (blk > 1)).any(axis=(1, 2)), file, field,
-                              "values must be -1, 0 or +1", first_row=a)
-        if isinstance(frames, np.memmap):
-            return np.array(frames, dtype=np.int8)                # small: read into memory
-        return frames.astype(np.int8, copy=False)
-    if frames.dtype.kind == "f":
-        mm = getattr(frames, "_mmap", None)
+                hint = f"values must be -1, 0 or +1 ({LUMINANCE_HINT})"
+                _refuse_first(((blk < -1) | (blk > 1)).any(axis=(1, 2)), file, field, hint, first_row=a)
+            has_zero = has_zero or not blk.all()
+        if not has_zero:           # binary +-1 noise: every pixel bright or dark in every frame
+            return _stream(frames, None)
+        if isinstance(frames, np.ndarray) and not isinstance(frames, np.memmap):
+            return frames.astype(np.int8, copy=False)
+        return _as_int8(frames)                                   # small: read into memory
+    if kind == "f":
         for a in range(0, frames.shape[0], chunk):
-            finite = np.isfinite(frames[a:a + chunk]).all(axis=(1, 2))
-            if mm is not None and hasattr(mm, "madvise"):      # keep resident memory at one chunk
-                import mmap
-                mm.madvise(getattr(mmap, "MADV_DONTNEED", 4))
+            finite = np.isfinite(_read_block(frames, a, a + chunk)).all(axis=(1, 2))
             _refuse_first(~finite, file, field, "is not finite", first_row=a)
-        return frames
+        return frames if isinstance(frames, np.ndarray) else _stream(frames, None)
     raise BadInput(file, field, f"must be int8 (or float for dense noise), got {frames.dtype}")
 
 
@@ -445,7 +617,7 @@ def frame_gap_mask(times, exclude_gaps: bool, notes: list, where: str, setting: 
     return valid
 
 
-def check_traces(values, times, notes: list, where: str, row_word: str = "row") -> Traces:
+def check_traces(values, times, notes: list, where: str, row_word: str = "row", ids=None) -> Traces:
     """Traces from shape-checked numeric values ``(cells, samples)`` and checked sample times.
 
     NaN or infinite samples are kept (left out of every average); a note counts them and names the
@@ -463,18 +635,21 @@ def check_traces(values, times, notes: list, where: str, row_word: str = "row") 
         Opens the note.
     row_word : str
         What a cell's index is called in the note ("row" for a file, "ROI" for an NWB series).
+    ids : numpy.ndarray, optional
+        Increasing cell ids of the rows (default: the row numbers).
     """
     values = values.astype(np.float32, copy=False)
     finite = np.isfinite(values)
     n_nan = int(values.size - np.count_nonzero(finite))
+    name = np.arange(values.shape[0]) if ids is None else ids
     if n_nan:
         dead = np.flatnonzero(~finite.any(axis=1))
-        more = (f"; {dead.size} cells have no valid sample at all (first {row_word} {int(dead[0])}), their "
+        more = (f"; {dead.size} cells have no valid sample at all (first {row_word} {int(name[dead[0]])}), their "
                 f"results are empty" if dead.size else "")
         first = np.argwhere(~finite)[0]
-        _note(notes, f"{where}: {n_nan} samples are NaN or infinite (first at {row_word} {int(first[0])}, "
+        _note(notes, f"{where}: {n_nan} samples are NaN or infinite (first at {row_word} {int(name[first[0]])}, "
                      f"sample {int(first[1])}); they are left out of every average{more}", stacklevel=4)
-    return Traces(values=values, times_s=times)
+    return Traces(values=values, times_s=times, ids=ids)
 
 
 def check_spikes(time_s, cell, cell_ids, notes: list, where: str, unit: str = "cell") -> Spikes:
@@ -562,8 +737,9 @@ def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
     exclude_gaps = spec.get("exclude_gaps", False)
     if not isinstance(exclude_gaps, bool):
         raise BadInput(mpath, "sparse_noise.exclude_gaps", f"must be true or false, got {exclude_gaps!r}")
+    luminance = (check_luminance(spec["luminance"], mpath) if spec.get("luminance") is not None else None)
     frames = _load_npy(folder, frames_rel, "frames", mmap=True)  # memory-mapped: checked in chunks
-    frames = check_frames(frames, folder / frames_rel, "frames")
+    frames = check_frames(frames, folder / frames_rel, "frames", luminance=luminance)
     tpath = folder / times_rel
     times = check_times(_load_npy(folder, times_rel, "times"), tpath, "times", expected=frames.shape[0])
     grid = Grid(ny=frames.shape[1], nx=frames.shape[2], center_x_deg=cx, center_y_deg=cy, dx_deg=dx, dy_deg=dy)
@@ -725,7 +901,17 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
     times_rel = _rel(spec, "times", mpath, "responses")
     times = check_times(_load_npy(folder, times_rel, "times"), folder / times_rel, "times",
                         expected=values.shape[1])
-    return check_traces(values, times, notes, f"{path}: field traces")
+    ids = None
+    if spec.get("cell_ids") is not None:    # the ids of the rows (e.g. ROI ids); default the row numbers
+        raw = spec["cell_ids"]
+        if not (isinstance(raw, list) and all(isinstance(v, int) and not isinstance(v, bool) for v in raw)):
+            raise BadInput(mpath, "responses.cell_ids", "must be a list of integers, one per row of traces")
+        if len(raw) != values.shape[0]:
+            raise BadInput(mpath, "responses.cell_ids", f"has {len(raw)} ids for {values.shape[0]} rows of traces")
+        ids = np.asarray(raw, dtype=np.int64)
+        if np.any(np.diff(ids) <= 0):
+            raise BadInput(mpath, "responses.cell_ids", "must be increasing (one id per row, rows in id order)")
+    return check_traces(values, times, notes, f"{path}: field traces", ids=ids)
 
 
 def _stimulus_windows(session: "Session") -> tuple[np.ndarray, np.ndarray]:
@@ -969,6 +1155,8 @@ def write_session(folder, session: Session, overwrite: bool = False) -> Path:
         np.save(folder / "traces.npy", np.asarray(r.values, dtype=np.float32))
         np.save(folder / "trace_times.npy", np.asarray(r.times_s, dtype=np.float64))
         manifest["responses"] = {"kind": "traces", "file": "traces.npy", "times": "trace_times.npy"}
+        if r.ids is not None:
+            manifest["responses"]["cell_ids"] = [int(c) for c in r.ids]
     if session.display is not None:
         manifest["display"] = session.display.to_manifest()
     if session.rois is not None:

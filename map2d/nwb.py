@@ -58,7 +58,8 @@ from pathlib import Path
 import numpy as np
 
 from .contract import (GRATING_COLUMNS, MANIFEST, GratingTable, Session, SparseNoise, Spikes, Traces, _load_npy,
-                       _grid_place, _note, _pair, _read_json_object, _refuse_first, _section, check_frames,
+                       _grid_place, _load_rois, _note, _pair, _read_json_object, _refuse_first, _section,
+                       check_frames, check_luminance,
                        check_grating_columns, check_overlap, check_spikes, check_times, check_traces,
                        frame_gap_mask)
 from .errors import BadInput
@@ -73,8 +74,8 @@ MAPPING_KEYS = {"name", "responses", "gratings", "sparse_noise", "notes"}
 _SUB_KEYS = {
     "responses.spikes": {"kind", "units"},
     "responses.traces": {"kind", "series"},
-    "gratings": {"table", "columns", "phase_origin_deg"},
-    "sparse_noise": {"series", "frames", "times", "grid", "axes", "exclude_gaps"},
+    "gratings": {"table", "columns", "phase_origin_deg", "rows"},
+    "sparse_noise": {"series", "frames", "times", "grid", "axes", "first_row", "luminance", "exclude_gaps"},
 }
 _PREFIXES = ("stimulus/presentation/", "stimulus/templates/", "processing/", "intervals/", "acquisition/",
              "analysis/")
@@ -210,7 +211,10 @@ def _read_spikes(nwbfile, spec, nwb_path, where, notes) -> Spikes:
     return check_spikes(t, cell, np.unique(ids), notes, f"{nwb_path}: {upath}", unit="unit")
 
 
-def _read_traces(nwbfile, spec, nwb_path, where, notes) -> Traces:
+def _read_traces(nwbfile, spec, nwb_path, where, notes):
+    """Traces of a response series: cell id = the ROI id of each column (the series' ``rois`` region
+    into its PlaneSegmentation), else the column number; columns are put in id order. Also returns
+    the field-of-view label image from the ROI masks (None when the masks say nothing)."""
     from pynwb import TimeSeries
     ref = _name(spec, "series", where, "responses")
     series = _find(nwbfile, ref, TimeSeries, "response series", nwb_path, "responses.series")
@@ -227,87 +231,348 @@ def _read_traces(nwbfile, spec, nwb_path, where, notes) -> Traces:
     if data.shape[0] < 2:
         raise BadInput(nwb_path, f"{spath}.data", f"needs at least two samples, got {data.shape[0]}")
     times = _series_times(series, data.shape[0], nwb_path, spath)
+    ids, rows, table = None, None, None
+    region = getattr(series, "rois", None)
+    if region is not None:
+        rows = np.asarray(region.data[:], dtype=np.int64).reshape(-1)
+        table = region.table
+        all_ids = np.asarray(table.id[:], dtype=np.int64)
+        if rows.size != data.shape[1]:
+            raise BadInput(nwb_path, f"{spath}.rois", f"names {rows.size} ROIs but the data has {data.shape[1]} "
+                                                      f"columns")
+        if rows.size and (rows.min() < 0 or rows.max() >= all_ids.size):
+            raise BadInput(nwb_path, f"{spath}.rois", f"points past the {all_ids.size} rows of its ROI table")
+        ids = all_ids[rows]
+        if np.unique(ids).size != ids.size:
+            raise BadInput(nwb_path, f"{spath}.rois", "names an ROI twice")
     values = np.ascontiguousarray(data.T, dtype=np.float32)           # (cells, samples)
-    return check_traces(values, times, notes, f"{nwb_path}: {spath}", row_word="ROI")
+    if ids is not None:
+        order = np.argsort(ids, kind="stable")
+        values, ids, rows = values[order], ids[order], rows[order]
+        if np.array_equal(ids, np.arange(ids.size)):
+            ids = None                                                  # ids are the column numbers
+    traces = check_traces(values, times, notes, f"{nwb_path}: {spath}", row_word="ROI", ids=ids)
+    labels = _roi_labels(table, rows, traces.cell_ids, nwb_path, notes) if table is not None else None
+    return traces, labels
 
 
-def _column(table, tpath, spec, contract_name, nwb_path, n, where="mapping"):
-    """Values of one stimulus column: a column name, {"column", "scale"}, or a constant number."""
+def _roi_labels(table, rows, cell_ids, nwb_path, notes):
+    """Label image ``(y, x)`` of the field of view from a PlaneSegmentation's ``image_mask`` (ROI, x, y)
+    or ``pixel_mask`` (x, y, weight) rows: label = cell id + 1 (0 = no ROI); where masks overlap the
+    larger weight wins. None when the table has no masks or every mask is empty."""
+    cols = set(getattr(table, "colnames", ()))
+    masks = []
+    if "image_mask" in cols:
+        col = table["image_mask"]
+        for r in rows:
+            m = np.asarray(col[int(r)], dtype=np.float64)
+            if m.ndim != 2:
+                return None
+            yy, xx = np.nonzero(m.T > 0)
+            masks.append((yy, xx, m.T[yy, xx]))
+    elif "pixel_mask" in cols:
+        col = table["pixel_mask"]
+        for r in rows:
+            px = col[int(r)]
+            arr = np.array([(p[0], p[1], p[2]) for p in px], dtype=np.float64).reshape(-1, 3)
+            keep = arr[:, 2] > 0
+            masks.append((arr[keep, 1].astype(np.int64), arr[keep, 0].astype(np.int64), arr[keep, 2]))
+    else:
+        return None
+    if not any(m[0].size for m in masks):
+        return None
+    ny = 1 + max(int(m[0].max()) for m in masks if m[0].size)
+    nx = 1 + max(int(m[1].max()) for m in masks if m[1].size)
+    if "image_mask" in cols:
+        shape = np.asarray(table["image_mask"][int(rows[0])]).shape
+        nx, ny = max(nx, shape[0]), max(ny, shape[1])
+    labels = np.zeros((ny, nx), dtype=np.int64)
+    best = np.zeros((ny, nx))
+    for cid, (yy, xx, w) in zip(cell_ids, masks):
+        win = w > best[yy, xx]
+        labels[yy[win], xx[win]] = int(cid) + 1
+        best[yy[win], xx[win]] = w[win]
+    return labels
+
+
+_COLUMN_SPEC_KEYS = {"column", "scale", "offset"}
+
+
+def _number(spec, key, where, full, default):
+    v = spec.get(key, default)
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+        raise BadInput(where, f"{full}.{key}", f"must be a finite number, got {v!r}")
+    return float(v)
+
+
+def _column(table, tpath, spec, contract_name, nwb_path, rows, where="mapping"):
+    """Values of one stimulus column for the selected ``rows``: a column name, ``{"column", "scale",
+    "offset"}`` (value x scale + offset) or a constant number. NaN is kept (a blank, judged by the
+    caller); infinite values are refused at the row's id."""
     key = f"gratings.columns.{contract_name}"
-    scale = 1.0
+    scale, offset = 1.0, 0.0
     if isinstance(spec, bool):
-        raise BadInput(where, key, f"must be a column name, {{'column', 'scale'}} or a number, got {spec!r}")
+        raise BadInput(where, key, f"must be a column name, {{'column', 'scale', 'offset'}} or a number, "
+                                   f"got {spec!r}")
     if isinstance(spec, (int, float)):
         if not math.isfinite(spec):
             raise BadInput(where, key, "must be finite")
-        return np.full(n, float(spec))
+        return np.full(rows.size, float(spec))
     if isinstance(spec, dict):
+        unknown = sorted(set(spec) - _COLUMN_SPEC_KEYS)
+        if unknown:
+            raise BadInput(where, f"{key}.{unknown[0]}", "unknown key (known: column, scale, offset)")
         if "column" not in spec:
             raise BadInput(where, f"{key}.column", "is missing")
-        try:
-            scale = float(spec.get("scale", 1.0))
-        except (TypeError, ValueError):
-            raise BadInput(where, f"{key}.scale", f"must be a number, got {spec.get('scale')!r}") from None
-        if not math.isfinite(scale):
-            raise BadInput(where, f"{key}.scale", "must be finite")
+        scale = _number(spec, "scale", where, key, 1.0)
+        offset = _number(spec, "offset", where, key, 0.0)
         spec = spec["column"]
     if not isinstance(spec, str) or not spec.strip():
-        raise BadInput(where, key, f"must be a column name, {{'column', 'scale'}} or a number, got {spec!r}")
+        raise BadInput(where, key, f"must be a column name, {{'column', 'scale', 'offset'}} or a number, "
+                                   f"got {spec!r}")
     name = spec.strip()
-    if name not in table.colnames:
+    if name not in table.colnames and name not in ("start_time", "stop_time"):
         raise BadInput(nwb_path, f"{tpath}.{name}",
                        f"column is missing (mapping {key}); the table has: {', '.join(table.colnames)}")
     values = np.asarray(table[name].data[:])
     if values.ndim != 1 or values.dtype.kind not in "iuf":
         raise BadInput(nwb_path, f"{tpath}.{name}", f"must be one number per row, got {values.dtype} {values.shape}")
-    values = values.astype(np.float64) * scale
-    _refuse_first(~np.isfinite(values), nwb_path, f"{tpath}.{name}", "is not finite", first_row=1)
+    values = values[rows].astype(np.float64) * scale + offset
+    ids = np.asarray(table.id[:])[rows]
+    bad = np.flatnonzero(np.isinf(values))
+    if bad.size:
+        raise BadInput(nwb_path, f"{tpath}.{name}", "is not finite", row=f"id {int(ids[bad[0]])}")
     return values
 
 
-def _read_gratings(nwbfile, spec, nwb_path, where, default_origin, notes) -> GratingTable:
+def _row_filter(table, tpath, spec, nwb_path, where, section):
+    """Indices of the rows a ``rows`` filter ``{column: value or [values]}`` keeps (all rows without)."""
+    n = len(table)
+    keep = np.ones(n, dtype=bool)
+    flt = spec.get("rows")
+    if flt is None:
+        return np.flatnonzero(keep)
+    if not isinstance(flt, dict) or not flt:
+        raise BadInput(where, f"{section}.rows", "must be a JSON object {column: value or [values]}")
+    for col, want in flt.items():
+        if col not in table.colnames:
+            raise BadInput(nwb_path, f"{tpath}.{col}", f"column is missing (mapping {section}.rows); the table "
+                                                       f"has: {', '.join(table.colnames)}")
+        wanted = want if isinstance(want, list) else [want]
+        values = np.asarray(table[col].data[:])
+        if values.dtype.kind in "SO":
+            values = np.array([v.decode() if isinstance(v, bytes) else v for v in values], dtype=object)
+        keep &= np.isin(values, np.asarray(wanted, dtype=object if values.dtype == object else None))
+    if not keep.any():
+        raise BadInput(nwb_path, tpath, f"no row matches the filter (mapping {section}.rows = {flt!r})")
+    return np.flatnonzero(keep)
+
+
+def _read_one_table(nwbfile, spec, nwb_path, where, section, notes):
+    """One TimeIntervals table of a ``gratings`` entry: contract columns (blanks marked) and row ids."""
     from pynwb.epoch import TimeIntervals
-    ref = _name(spec, "table", where, "gratings")
-    table = _find(nwbfile, ref, TimeIntervals, "TimeIntervals table", nwb_path, "gratings.table")
+    ref = _name(spec, "table", where, section)
+    table = _find(nwbfile, ref, TimeIntervals, "TimeIntervals table", nwb_path, f"{section}.table")
     tpath = _file_path(nwbfile, table)
     columns = spec.get("columns", {})
     if not isinstance(columns, dict):
-        raise BadInput(where, "gratings.columns", f"must be a JSON object, got {type(columns).__name__}")
-    for k in sorted(set(columns) - set(NWB_STIMULUS_COLUMNS)):
-        _note(notes, f"{where}: unknown key 'gratings.columns.{k}' ignored (known: "
-                     f"{', '.join(NWB_STIMULUS_COLUMNS)})")
-    n = len(table)
-    if n == 0:
+        raise BadInput(where, f"{section}.columns", f"must be a JSON object, got {type(columns).__name__}")
+    unknown = sorted(set(columns) - set(NWB_STIMULUS_COLUMNS))
+    if unknown:
+        raise BadInput(where, f"{section}.columns.{unknown[0]}",
+                       f"unknown key (known: {', '.join(NWB_STIMULUS_COLUMNS)})")
+    if len(table) == 0:
         raise BadInput(nwb_path, tpath, "has no presentations")
+    rows = _row_filter(table, tpath, spec, nwb_path, where, section)
     data = {}
     for c in ("start_time", "stop_time"):
         if c not in table.colnames:
             raise BadInput(nwb_path, f"{tpath}.{c}", "column is missing")
-    data["onset_s"] = _column(table, tpath, "start_time", "onset_s", nwb_path, n)
-    data["offset_s"] = _column(table, tpath, "stop_time", "offset_s", nwb_path, n)
+    data["onset_s"] = _column(table, tpath, "start_time", "onset_s", nwb_path, rows)
+    data["offset_s"] = _column(table, tpath, "stop_time", "offset_s", nwb_path, rows)
     for c in NWB_STIMULUS_COLUMNS:
-        data[c] = _column(table, tpath, columns.get(c, c), c, nwb_path, n, where)
-    check_grating_columns(data, nwb_path, {"offset_s": f"{tpath}.stop_time", "sf_cpd": f"{tpath} (sf_cpd)",
-                                           "contrast": f"{tpath} (contrast)"}, onset_name="start_time")
+        data[c] = _column(table, tpath, columns.get(c, c), c, nwb_path, rows, where)
+    ids = np.asarray(table.id[:])[rows]
+    for c in ("onset_s", "offset_s", "contrast"):
+        name = {"onset_s": "start_time", "offset_s": "stop_time"}.get(c, f"{tpath} ({c})")
+        bad = np.flatnonzero(np.isnan(data[c]))
+        if bad.size:
+            raise BadInput(nwb_path, name if "(" in name else f"{tpath}.{name}", "is not finite",
+                           row=f"id {int(ids[bad[0]])}")
+    # a blank: contrast 0, or no orientation / spatial frequency (NaN); its other values do not matter
+    blank = (data["contrast"] == 0) | np.isnan(data["orientation_deg"]) | np.isnan(data["sf_cpd"])
+    n_nan_blank = int(np.count_nonzero(blank & (data["contrast"] != 0)))
+    if n_nan_blank:
+        _note(notes, f"{nwb_path}: {tpath}: {n_nan_blank} presentations without orientation or spatial "
+                     f"frequency (NaN) are blanks (contrast 0)")
+    data["contrast"] = np.where(blank, 0.0, data["contrast"])
+    for c in ("orientation_deg", "sf_cpd", "phase_deg", "tf_hz"):
+        nan = np.isnan(data[c])
+        bad = np.flatnonzero(nan & ~blank)
+        if bad.size:
+            raise BadInput(nwb_path, f"{tpath} ({c})", "is not finite (NaN is allowed only in blanks)",
+                           row=f"id {int(ids[bad[0]])}")
+        data[c] = np.where(nan, 0.0, data[c])
+    try:
+        check_grating_columns(data, nwb_path, {"offset_s": f"{tpath}.stop_time", "sf_cpd": f"{tpath} (sf_cpd)",
+                                               "contrast": f"{tpath} (contrast)"}, onset_name="start_time")
+    except BadInput as exc:                         # name the row by its id in the file
+        raise BadInput(exc.file, exc.field, exc.detail,
+                       row=None if exc.row is None else f"id {int(ids[int(exc.row) - 1])}") from None
+    return data, tpath
+
+
+def _read_gratings(nwbfile, spec, nwb_path, where, default_origin, notes) -> GratingTable:
+    """The ``gratings`` entry: one table spec, or a list of them (e.g. flashed and drifting tables),
+    joined in onset order."""
+    specs = spec if isinstance(spec, list) else [spec]
+    if not specs:
+        raise BadInput(where, "gratings", "is an empty list")
+    parts, origins, paths = [], [], []
+    for i, one in enumerate(specs):
+        section = "gratings" if not isinstance(spec, list) else f"gratings[{i}]"
+        one = _section(where, one, section, notes, known_as="gratings", known=_SUB_KEYS)
+        data, tpath = _read_one_table(nwbfile, one, nwb_path, where, section, notes)
+        parts.append(data)
+        paths.append(tpath)
+        if one.get("phase_origin_deg") is not None:
+            origins.append(_pair(one["phase_origin_deg"], where, f"{section}.phase_origin_deg"))
+    if len(set(origins)) > 1:
+        raise BadInput(where, "gratings.phase_origin_deg", f"differs between the tables: {origins}")
+    data = {c: np.concatenate([p[c] for p in parts]) for c in GRATING_COLUMNS}
+    n = data["onset_s"].size
+    what = " + ".join(paths)
     keys = np.column_stack([data[c] for c in GRATING_COLUMNS])
     _, first = np.unique(keys, axis=0, return_index=True)
     if first.size < n:
         keep = np.zeros(n, dtype=bool)
         keep[first] = True
-        _note(notes, f"{nwb_path}: {tpath}: {n - first.size} rows repeat an earlier row exactly; the repeats "
+        _note(notes, f"{nwb_path}: {what}: {n - first.size} rows repeat an earlier row exactly; the repeats "
                      f"are dropped")
         data = {c: v[keep] for c, v in data.items()}
     order = np.argsort(data["onset_s"], kind="stable")
     if np.any(order != np.arange(order.size)):
-        _note(notes, f"{nwb_path}: {tpath}: rows are not in onset order; sorted by start_time")
+        if len(parts) == 1:
+            _note(notes, f"{nwb_path}: {what}: rows are not in onset order; sorted by start_time")
         data = {c: v[order] for c, v in data.items()}
     if order.size > 1:
         overlap = np.flatnonzero(data["onset_s"][1:] < data["offset_s"][:-1] - 1e-9)
         if overlap.size:
-            _note(notes, f"{nwb_path}: {tpath}: {overlap.size} presentations overlap the previous one")
-    origin = (_pair(spec["phase_origin_deg"], where, "gratings.phase_origin_deg")
-              if spec.get("phase_origin_deg") is not None else default_origin)
+            _note(notes, f"{nwb_path}: {what}: {overlap.size} presentations overlap the previous one")
+    origin = origins[0] if origins else default_origin
     return GratingTable(**data, phase_origin_deg=origin)
+
+
+class _Movie:
+    """Stored frames ``(frames, d1, d2)`` read a block at a time and turned to ``(frames, ny, nx)``
+    with row 0 at the top: transposed when stored ``(frames, x, y)`` (``axes = "xy"``), flipped when
+    the first stored row is the bottom one. What :func:`map2d.contract.check_frames` reads."""
+
+    ndim = 3
+
+    def __init__(self, read, stored_shape, dtype, axes="yx", first_row="top"):
+        self._read = read
+        self.dtype = np.dtype(dtype)
+        n, d1, d2 = (int(v) for v in stored_shape)
+        self.shape = (n, d2, d1) if axes == "xy" else (n, d1, d2)
+        self.axes, self.first_row = axes, first_row
+
+    def __len__(self):
+        return self.shape[0]
+
+    def __getitem__(self, key):
+        if not isinstance(key, slice) or key.step not in (None, 1):
+            raise TypeError("stored frames are read by slices of consecutive frames")
+        a, b, _ = key.indices(self.shape[0])
+        blk = np.asarray(self._read(a, max(a, b)))
+        if self.axes == "xy":
+            blk = blk.transpose(0, 2, 1)
+        if self.first_row == "bottom":
+            blk = blk[:, ::-1, :]
+        return np.ascontiguousarray(blk)
+
+
+def _h5_reader(nwb_path, dataset: str):
+    """``read(a, b)``: rows ``a:b`` of an HDF5 dataset, opening the file for each read (a session
+    object holds no open file, and a forked worker gets no shared handle)."""
+    def read(a, b):
+        import h5py
+        with h5py.File(nwb_path, "r") as fh:
+            return fh[dataset][a:b]
+    return read
+
+
+def _orientation(spec, where, stored_shape, declared):
+    """``(axes, first_row)`` of a stored movie from the mapping, checked against the declared grid.
+
+    ``declared`` is ``"xy"`` for image data whose dimension order the NWB schema declares
+    ``(frames, x, y)`` (ImageSeries, Images), None for data of no declared order (a plain TimeSeries,
+    ``.npy`` files: the session folder's ``(frames, ny, nx)``). A square grid in the schema's order
+    without ``sparse_noise.axes`` is refused: its data cannot show which way it lies."""
+    axes = spec.get("axes")
+    if axes is not None and axes not in ("yx", "xy"):
+        raise BadInput(where, "sparse_noise.axes", f"must be 'yx' (frames, y, x) or 'xy' (frames, x, y), "
+                                                   f"got {axes!r}")
+    first_row = spec.get("first_row", "top")
+    if first_row not in ("top", "bottom"):
+        raise BadInput(where, "sparse_noise.first_row", f"must be 'top' or 'bottom', got {first_row!r}")
+    d1, d2 = (int(v) for v in stored_shape[1:3])
+    size = spec["grid"].get("size")
+    if size is not None:
+        try:
+            nx, ny = (int(v) for v in size)
+            if [nx, ny] != [float(v) for v in size] or nx < 1 or ny < 1:
+                raise ValueError
+        except (TypeError, ValueError):
+            raise BadInput(where, "sparse_noise.grid.size", f"must be [nx, ny], two positive integers, got "
+                                                            f"{size!r}") from None
+        fits = {"xy": (d1, d2) == (nx, ny), "yx": (d1, d2) == (ny, nx)}
+        if axes is None and nx != ny:
+            axes = "xy" if fits["xy"] else "yx" if fits["yx"] else None
+            if axes is None:
+                raise BadInput(where, "sparse_noise.grid.size", f"[{nx}, {ny}] does not match the stored frames "
+                                                                f"{tuple(stored_shape)}")
+        elif axes is not None and not fits[axes]:
+            raise BadInput(where, "sparse_noise.grid.size", f"[{nx}, {ny}] does not match the stored frames "
+                                                            f"{tuple(stored_shape)} read as axes '{axes}'")
+    if axes is None:
+        if declared == "xy" and d1 == d2:
+            raise BadInput(where, "sparse_noise.axes",
+                           f"is needed: the frames {tuple(stored_shape)} are a square grid stored as image data, "
+                           f"which the NWB schema orders (frames, x, y), and the data cannot show which way "
+                           f"they lie; set sparse_noise.axes ('xy' for (frames, x, y), 'yx' for (frames, y, x)) "
+                           f"and sparse_noise.first_row ('top' or 'bottom')")
+        axes = declared or "yx"
+    return axes, first_row
+
+
+def _templates(series, nwb_path, spath):
+    """The template images of an IndexSeries, ``(templates, d1, d2)`` in file order, and whether the
+    schema declares them ``(x, y)``."""
+    images = getattr(series, "indexed_images", None)
+    if images is not None:
+        order = getattr(images, "order_of_images", None)
+        if order is not None:
+            members = list(order.data[:])
+        else:
+            members = list(images.images.values())
+            if len(members) > 1:
+                raise BadInput(nwb_path, f"{_path_of(images)}.order_of_images",
+                               "is missing: the Images container does not say the order of its templates, so "
+                               "the indices of the IndexSeries point nowhere defined")
+        arrays = [np.asarray(m.data[:]) for m in members]
+        shapes = {a.shape for a in arrays}
+        if len(shapes) != 1 or arrays[0].ndim != 2:
+            raise BadInput(nwb_path, _path_of(images), f"templates must be 2-D images of one shape, got "
+                                                       f"{sorted(shapes)}")
+        return np.stack(arrays), "xy"
+    ts = getattr(series, "indexed_timeseries", None)
+    if ts is not None:
+        data = np.asarray(ts.data[:])
+        if data.ndim != 3:
+            raise BadInput(nwb_path, f"{_path_of(ts)}.data", f"must hold (templates, x, y), got {data.shape}")
+        return data, "xy"
+    raise BadInput(nwb_path, spath, "is an IndexSeries without indexed_images or indexed_timeseries")
 
 
 def _read_sparse_noise(nwbfile, spec, nwb_path, where, base, notes) -> SparseNoise:
@@ -316,38 +581,61 @@ def _read_sparse_noise(nwbfile, spec, nwb_path, where, base, notes) -> SparseNoi
     grid_spec = spec["grid"]
     if not isinstance(grid_spec, dict):
         raise BadInput(where, "sparse_noise.grid", "must be a JSON object")
+    for k in sorted(set(grid_spec) - {"center_deg", "spacing_deg", "size"}):
+        _note(notes, f"{where}: unknown key 'sparse_noise.grid.{k}' ignored")
     cx, cy, dx, dy = _grid_place(grid_spec, where)
-    axes = spec.get("axes", "yx")
-    if axes not in ("yx", "xy"):
-        raise BadInput(where, "sparse_noise.axes", f"must be 'yx' or 'xy', got {axes!r}")
     exclude_gaps = spec.get("exclude_gaps", False)
     if not isinstance(exclude_gaps, bool):
         raise BadInput(where, "sparse_noise.exclude_gaps", f"must be true or false, got {exclude_gaps!r}")
+    luminance = (check_luminance(spec["luminance"], where) if spec.get("luminance") is not None else None)
     if "series" in spec:
         if "frames" in spec or "times" in spec:
             raise BadInput(where, "sparse_noise", "give either series or frames + times, not both")
         from pynwb import TimeSeries
+        from pynwb.image import ImageSeries, IndexSeries
         ref = _name(spec, "series", where, "sparse_noise")
         series = _find(nwbfile, ref, TimeSeries, "stimulus series", nwb_path, "sparse_noise.series")
         spath = _file_path(nwbfile, series)
-        frames = np.asarray(series.data[:])
         fwhere, fkey = nwb_path, f"{spath}.data"
-        if frames.ndim == 3:
-            times = _series_times(series, frames.shape[0], nwb_path, spath)
+        if isinstance(series, IndexSeries):
+            templates, declared = _templates(series, nwb_path, spath)
+            idx = np.asarray(series.data[:])
+            if idx.ndim != 1 or idx.dtype.kind not in "iu":
+                raise BadInput(nwb_path, fkey, f"must hold one integer template index per frame, got "
+                                               f"{idx.dtype} {idx.shape}")
+            _refuse_first((idx < 0) | (idx >= templates.shape[0]), nwb_path, fkey,
+                          f"template index out of range (there are {templates.shape[0]} templates)")
+            stored = (idx.size,) + templates.shape[1:]
+            read = (lambda a, b: templates[idx[a:b]])                  # one block at a time, never the movie
+            dtype = templates.dtype
+        else:
+            if isinstance(series, ImageSeries) and getattr(series, "external_file", None) is not None:
+                raise BadInput(nwb_path, spath, "stores its frames in external files; map2d reads frames stored "
+                                                "in the NWB file")
+            data = series.data
+            stored, dtype = tuple(data.shape), data.dtype
+            declared = "xy" if isinstance(series, ImageSeries) else None
+            name = getattr(data, "name", None)
+            read = (_h5_reader(nwb_path, name) if isinstance(name, str) and hasattr(data, "id")
+                    else (lambda a, b, d=data: np.asarray(d[a:b])))
+        if len(stored) != 3:
+            raise BadInput(nwb_path, fkey, f"must hold (frames, x, y) or (frames, y, x) images, got shape {stored}")
+        times = _series_times(series, stored[0], nwb_path, spath)
     else:
         base = Path(base)
         frames_rel = _name(spec, "frames", where, "sparse_noise")
         times_rel = _name(spec, "times", where, "sparse_noise")
-        frames = _load_npy(base, frames_rel, "frames")
+        data = _load_npy(base, frames_rel, "frames", mmap=True)
         fwhere, fkey = base / frames_rel, "frames"
-        if frames.ndim == 3:
-            times = check_times(_load_npy(base, times_rel, "times"), base / times_rel, "times",
-                                expected=frames.shape[0])
-    if frames.ndim != 3:
-        raise BadInput(fwhere, fkey, f"must have shape (frames, ny, nx), got {frames.shape}")
-    if axes == "xy":
-        frames = np.ascontiguousarray(frames.transpose(0, 2, 1))
-    frames = check_frames(frames, fwhere, fkey)
+        if data.ndim != 3:
+            raise BadInput(fwhere, fkey, f"must have shape (frames, ny, nx), got {data.shape}")
+        times = check_times(_load_npy(base, times_rel, "times"), base / times_rel, "times",
+                            expected=data.shape[0])
+        stored, dtype, declared = data.shape, data.dtype, None
+        read = (lambda a, b: data[a:b])
+    axes, first_row = _orientation(spec, where, stored, declared)
+    movie = _Movie(read, stored, dtype, axes, first_row)
+    frames = check_frames(movie, fwhere, fkey, luminance=luminance)
     grid = Grid(ny=frames.shape[1], nx=frames.shape[2], center_x_deg=cx, center_y_deg=cy, dx_deg=dx, dy_deg=dy)
     valid = frame_gap_mask(times, exclude_gaps, notes, f"{fwhere}: sparse-noise times", "in the mapping")
     return SparseNoise(frames=frames, times_s=times, grid=grid, valid=valid)
@@ -411,22 +699,23 @@ def load_nwb(nwb_path, mapping) -> Session:
             nwbfile = io.read()
         except Exception as exc:
             raise BadInput(nwb_path, None, f"not a readable NWB file ({type(exc).__name__}: {exc})") from None
+        labels = None
         if kind == "spikes":
             responses = _read_spikes(nwbfile, resp, nwb_path, where, notes)
         else:
-            responses = _read_traces(nwbfile, resp, nwb_path, where, notes)
+            responses, labels = _read_traces(nwbfile, resp, nwb_path, where, notes)
         sparse = None
         if mapping.get("sparse_noise") is not None:
             spec = _section(where, mapping["sparse_noise"], "sparse_noise", notes, known=_SUB_KEYS)
             sparse = _read_sparse_noise(nwbfile, spec, nwb_path, where, base, notes)
         gratings = None
         if mapping.get("gratings") is not None:
-            spec = _section(where, mapping["gratings"], "gratings", notes, known=_SUB_KEYS)
+            spec = mapping["gratings"]
             origin = (sparse.grid.center_x_deg, sparse.grid.center_y_deg) if sparse is not None else (0.0, 0.0)
             gratings = _read_gratings(nwbfile, spec, nwb_path, where, origin, notes)
         name = mapping.get("name") or nwbfile.session_id or nwb_path.stem
     session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, path=nwb_path,
-                      name=str(name), notes=notes)
+                      name=str(name), notes=notes, rois=labels, roi_label_offset=1 if labels is not None else 0)
     check_overlap(session, (nwb_path, "spike_times" if kind == "spikes" else "responses"), notes,
                   f"{nwb_path}: spike_times")
     return session
@@ -489,8 +778,18 @@ def load_source(source, config=None) -> Session:
     for key in ("responses", "sparse_noise", "gratings"):
         if manifest.get(key) is not None:
             raise BadInput(mpath, key, "give it in the NWB mapping, not beside the nwb key")
+    for key in sorted(set(manifest) - {"nwb", "name", "rois", "notes", "generator"}):
+        _note(early_notes, f"{mpath}: unknown key '{key}' ignored")
     session = load_nwb(source / file_rel, mapping)
     session.notes[:0] = early_notes
+    if manifest.get("rois") is not None:     # a label image beside the NWB file replaces the file's masks
+        spec = manifest["rois"]
+        rel, offset = (spec.get("file"), spec.get("label_offset", 0)) if isinstance(spec, dict) else (spec, 0)
+        if not isinstance(rel, str) or not rel.strip():
+            raise BadInput(mpath, "rois", f"must be a file name or {{\"file\": ..., \"label_offset\": n}}, got {spec!r}")
+        if isinstance(offset, bool) or not isinstance(offset, int):
+            raise BadInput(mpath, "rois.label_offset", f"must be an integer, got {offset!r}")
+        session.rois, session.roi_label_offset = _load_rois(source, rel), int(offset)
     return session
 
 
@@ -589,12 +888,13 @@ def _build_nwbfile(session: Session, identifier, start):
         n = r.values.shape[0]
         offset = int(getattr(session, "roi_label_offset", 0))
         for k in range(n):
+            cid = int(r.cell_ids[k])                                      # ROI id = cell id
             if session.rois is not None:
-                yy, xx = np.nonzero(np.asarray(session.rois) == k + offset)
+                yy, xx = np.nonzero(np.asarray(session.rois) == cid + offset)
                 mask = [(int(x), int(y), 1.0) for x, y in zip(xx, yy)] or [(0, 0, 0.0)]
-                ps.add_roi(pixel_mask=mask)
+                ps.add_roi(pixel_mask=mask, id=cid)
             else:
-                ps.add_roi(image_mask=np.zeros((1, 1), dtype=np.float32))
+                ps.add_roi(image_mask=np.zeros((1, 1), dtype=np.float32), id=cid)
         region = ps.create_roi_table_region("all ROIs", region=list(range(n)))
         rrs = RoiResponseSeries(name="responses", data=np.ascontiguousarray(np.asarray(r.values, np.float32).T),
                                 rois=region, unit="trace units", timestamps=np.asarray(r.times_s, np.float64))
@@ -608,7 +908,8 @@ def _build_nwbfile(session: Session, identifier, start):
             timestamps=np.asarray(sn.times_s, np.float64),
             description=f"sparse noise (frames, ny, nx), row 0 at the top; grid centre "
                         f"({g.center_x_deg:g}, {g.center_y_deg:g}) deg, spacing ({g.dx_deg:g}, {g.dy_deg:g}) deg"))
-        mapping["sparse_noise"] = {"series": "sparse_noise", "grid": g.to_manifest()}
+        mapping["sparse_noise"] = {"series": "sparse_noise", "grid": g.to_manifest(), "axes": "yx",
+                                   "first_row": "top"}
         if sn.valid is not None:
             mapping["sparse_noise"]["exclude_gaps"] = True
     gt = session.gratings

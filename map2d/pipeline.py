@@ -232,7 +232,8 @@ def _trace_decay_option(value):
         raise BadInput("--trace-decay", None, str(exc)) from None
 
 
-def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, trace_decay="auto") -> int:
+def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, trace_decay="auto",
+             config=None) -> int:
     """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``.
 
     ``maps.npz`` holds ``on, off, linear`` and ``on_z, off_z, linear_z`` (float32, cells x lags x ny x nx,
@@ -249,18 +250,22 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
 
     ``trace_decay`` ('auto', 'off' or seconds; ``--trace-decay``): for traces, the indicator decay
     removed before the maps (:func:`map2d.traces.decay_corrected`); spikes are never filtered.
+
+    ``session_path`` and ``config`` are read as by :func:`run_analyze` (a session folder, one pointing
+    at an NWB file, or an ``.nwb`` file with its mapping).
     """
     import dataclasses
 
     import numpy as np
 
     from .analysis import GRATING_ONLY_COLUMNS, analyze_session
-    from .contract import load_session, write_table
+    from .contract import write_table
+    from .nwb import load_source
 
     trace_decay = _trace_decay_option(trace_decay)
-    session = load_session(session_path)
+    session = load_source(session_path, config)
     if session.sparse_noise is None:
-        raise BadInput(Path(session_path) / "session.json", "sparse_noise",
+        raise BadInput(_manifest_of(session_path, config), "sparse_noise",
                        "is missing (maps need a sparse-noise stimulus)")
     sn = session.sparse_noise
     if not (max_lag_s >= 0):
@@ -305,7 +310,12 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
     return 0
 
 
-def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
+def _manifest_of(session_path, config):
+    """What a missing stimulus is named in: the NWB mapping, else the folder's session.json."""
+    return Path(config) if config is not None else Path(session_path) / "session.json"
+
+
+def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None) -> int:
     """``map2d gratings``: grating surfaces and tuning -> ``gratings.npz`` and ``cells.csv``.
 
     ``gratings.npz`` (cells sorted by id, ``cell_ids``): for a flashed sequence ``orientations_deg``,
@@ -317,16 +327,18 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False) -> int:
     ``flashed_peak_lag_s``, ``flashed_p_value``; for drifting trials ``directions_deg``,
     ``drift_sfs_cpd``, ``drift_tfs_hz``, ``f0_mean``, ``f0_sem``, ``f1_mean`` (complex), ``f1_sem``,
     ``f1_amp_mean``, ``n_trials`` (cells x direction x SF x TF), ``spontaneous``, ``drifting_p_value``.
-    ``cells.csv`` holds :data:`map2d.fit.tuning.TUNING_COLUMNS`.
+    ``cells.csv`` holds :data:`map2d.fit.tuning.TUNING_COLUMNS`. ``session_path`` and ``config`` as for
+    :func:`run_analyze`.
     """
     import numpy as np
 
-    from .contract import load_session, write_table
+    from .contract import write_table
     from .fit.tuning import grating_tuning_columns
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
+    from .nwb import load_source
 
-    session = load_session(session_path)
-    manifest = Path(session_path) / "session.json"
+    session = load_source(session_path, config)
+    manifest = _manifest_of(session_path, config)
     g = session.gratings
     if g is None:
         raise BadInput(manifest, "gratings", "is missing (this command needs grating presentations)")

@@ -296,7 +296,8 @@ def remove_decay(traces: Traces, tau_s, resmooth_s=None) -> Traces:
     C, N = vals.shape
     tau = np.broadcast_to(np.asarray(tau_s, dtype=np.float64), (C,))
     if N < 2:
-        return Traces(values=np.full((C, N), np.nan, dtype=np.float32), times_s=times.copy())
+        return Traces(values=np.full((C, N), np.nan, dtype=np.float32), times_s=times.copy(),
+                      ids=traces.ids)
     seg, med = _segments(times)
     h = np.diff(times)
     after_gap = np.zeros(N, dtype=bool)
@@ -323,7 +324,7 @@ def remove_decay(traces: Traces, tau_s, resmooth_s=None) -> Traces:
     mid[0] = times[0] - 0.5 * (med if np.isfinite(med) else 0.0)
     # after a gap the midpoint would fall inside the gap: keep the half interval of a normal step
     mid[after_gap] = times[after_gap] - 0.5 * med
-    return Traces(values=out, times_s=mid)
+    return Traces(values=out, times_s=mid, ids=traces.ids)
 
 
 def _moving_average(d: np.ndarray, r: float, after_gap: np.ndarray) -> np.ndarray:

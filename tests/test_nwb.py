@@ -248,7 +248,7 @@ def test_bad_values_are_refused_with_the_row(tmp_path, tiny):
     nwb = tmp_path / "x.nwb"
     m = session_to_nwb(s, nwb)
     m["gratings"]["columns"]["contrast"] = -1.0                  # a constant applies to every row
-    with pytest.raises(BadInput, match=r"contrast.*row 1: must not be negative"):
+    with pytest.raises(BadInput, match=r"contrast.*row id 0: must not be negative"):
         _quiet(load_nwb, nwb, m)
     m = session_to_nwb(s, nwb)
     m["sparse_noise"]["grid"]["spacing_deg"] = [0, 2]
