@@ -20,27 +20,19 @@ where the sparse-noise grid sits in visual space, so a small JSON *mapping* says
         "series": "sparse_noise",                                (a series in the file, or:)
         "frames": "sparse_noise.npy", "times": "sparse_noise_times.npy",   (files beside the mapping)
         "grid": {"center_deg": [10, 5], "spacing_deg": [2, 2]},
-        "axes": "yx",                                            (optional: "xy" if data are (frames, nx, ny))
+        "axes": "xy", "first_row": "top",                        (which way the stored grid lies)
         "exclude_gaps": false                                    (optional, as in session.json)
       }
     }
 
-``responses`` may instead be ``{"kind": "traces", "series": "ophys/Fluorescence/dff"}``: an ophys
-``RoiResponseSeries`` (or any TimeSeries) with data ``(samples, rois)``; column k is cell k, sample
-times come from its ``timestamps`` or from ``starting_time + k / rate``. Spikes come from the units
-table: cell id = unit id, spike times from ``spike_times`` (units without spikes are kept).
-
-Grating presentations: onset and offset from ``start_time`` and ``stop_time``; each of the five
-stimulus columns is a column name, ``{"column": NAME, "scale": FACTOR}`` (value x factor, e.g. phase
-stored in cycles -> 360), or a plain number used for every row (e.g. ``"tf_hz": 0`` for a flashed
-sequence). A column left out of ``columns`` is looked up under the contract's own name
-(``orientation_deg`` ...). The sparse-noise series holds ``(frames, ny, nx)`` values -1/0/+1 (row 0 at
-the top, as in the session folder) with ``timestamps`` or ``rate`` + ``starting_time``.
-
-NWB objects are named by their path inside the file (``intervals/gratings``,
-``processing/ophys/Fluorescence/dff``, ``stimulus/presentation/sparse_noise``; the group prefixes
-``intervals/``, ``processing/``, ``acquisition/``, ``stimulus/presentation/`` and
-``stimulus/templates/`` may be left out) or by a bare name that is unique in the file.
+The full mapping format is documented in ``docs/batch.md``. In short: ``responses`` may instead be
+``{"kind": "traces", "series": "ophys/Fluorescence/dff"}`` (cell id = the ROI id of each column, from the
+series' ``rois`` region; field-of-view labels from the PlaneSegmentation's masks); ``gratings`` may be a
+list of table entries, each with an optional ``rows`` filter; a column spec is a name, ``{"column",
+"scale", "offset"}`` or a number; blanks are rows with contrast 0 or NaN orientation / SF; the sparse
+noise is an ImageSeries (schema order ``(frames, x, y)``), an IndexSeries into template images, or a
+TimeSeries ``(frames, ny, nx)``, oriented by ``axes`` and ``first_row`` (a square grid stored as image
+data must state ``axes``), with ``luminance`` for stored luminance values.
 
 Every array is validated as the folder loader validates its files; a missing or malformed table, column
 or series raises :class:`map2d.errors.BadInput` naming the NWB file, the object and the mapping key.
