@@ -47,10 +47,14 @@ class Analysis:
         what predicts the gratings
     flashed : map2d.gratings.FlashedResult or None
     drifting : map2d.gratings.DriftingResult or None
-    predicted_h : ndarray complex (C, O, S) or None  forward prediction of the flashed surface from the map
-    predicted_h : see above; divided by the pixel box's transfer (:func:`map2d.reconcile.pixel_box_transfer`)
+    predicted_h : ndarray complex (C, O, S) or None  forward prediction of the flashed surface from the map:
+        the closed-form spectrum of the fitted kernel (:func:`map2d.reconcile.forward_prediction`)
+    predicted_h_sampled : ndarray complex (C, O, S) or None  the sampled map's Fourier sum over the pixel
+        box's transfer, NaN beyond the grid's Nyquist band (a diagnostic)
+    time_course_sign : ndarray (C,) or None  +1 / -1: the sign that refers the gratings' pattern to the
+        map's latency (:func:`map2d.reconcile.time_course_sign`)
     measured_h : ndarray complex (C, O, S) or None  measured first harmonic, lags pooled
-        (``FlashedResult.harmonic_combined``)
+        (``FlashedResult.harmonic_combined``), times ``time_course_sign``
     measured_noise : ndarray (C, O, S) or None  noise variance of ``measured_h`` (:func:`flashed_noise`)
     forward : dict of arrays or None  :func:`map2d.reconcile.forward_agreement` output
     inverse : map2d.reconcile.InverseComparison or None
@@ -79,6 +83,8 @@ class Analysis:
     flashed: object | None = None
     drifting: object | None = None
     predicted_h: np.ndarray | None = None
+    predicted_h_sampled: np.ndarray | None = None
+    time_course_sign: np.ndarray | None = None
     measured_h: np.ndarray | None = None
     measured_noise: np.ndarray | None = None
     forward: dict | None = None
@@ -146,6 +152,16 @@ def linear_share(maps, c, z_min=3.0):
     if not sel.any():
         return 1.0
     return float(np.sum((on - off)[sel] ** 2) / np.sum(both[sel] ** 2))
+
+
+def _map_time_course(maps, patterns):
+    """Each cell's map over lags projected on its spatial pattern, ``(C, L)``: ``m_l = map_l . p / p . p``
+    (1 at the lag the pattern was scaled to; NaN-free). The time course that goes with the pattern."""
+    lin = np.nan_to_num(np.asarray(maps.linear, float)).reshape(maps.linear.shape[0], maps.linear.shape[1], -1)
+    p = np.nan_to_num(np.asarray(patterns, float)).reshape(lin.shape[0], -1)
+    pp = np.sum(p * p, axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(pp[:, None] > 0, np.einsum("clp,cp->cl", lin, p) / pp[:, None], 0.0)
 
 
 def spatial_maps(maps):
@@ -332,10 +348,14 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
       the pixel, and a fit to it reports widths 3-8 % too large and a Gabor frequency 2-3 % too low on
       2-deg pixels; :func:`map2d.fit.spatial.remove_pixel_box` undoes that (exact to < 1 % on noiseless
       pixel-integrated kernels).
-    - The forward prediction is the fitted model of the map (the raw map's pixel noise would spread over
-      every wave vector), divided by the pixel box's transfer ``sinc(kx dx) sinc(ky dy)``
-      (:func:`map2d.reconcile.pixel_box_transfer`): the gratings see the bare kernel. Measured effect on
-      the agreement: < 1 % (the gain absorbs the box's mean over the surface).
+    - The forward prediction is the closed-form spectrum of the fitted kernel (the raw map's pixel noise
+      would spread over every wave vector; the sampled map mirrors the spectrum beyond the grid's
+      Nyquist frequency), with the pixel box removed once, from the parameters
+      (:func:`map2d.reconcile.forward_prediction`). The gratings' surface is re-signed to the map's
+      latency (:func:`map2d.reconcile.time_course_sign`); the gain keeps its sign.
+    - Traces: one per-cell indicator decay (:func:`map2d.traces.decay_corrected`) for the maps, the
+      flashed gratings (the same decay-corrected traces) and the drifting gratings (the decay in the
+      fit of each trial, :func:`map2d.gratings.analyze_drifting`).
     - ``agreement`` is corrected for the noise of the measured grating surface
       (:func:`flashed_noise`, :func:`map2d.reconcile.forward_agreement`): on a 20-minute session with the
       default 5 minutes of flashed gratings the raw score of linear cells was 0.70-0.95, of which the
@@ -395,13 +415,23 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     g = session.gratings
     if g is not None:
         an.phase_origin_deg = tuple(g.phase_origin_deg)
+        # traces: one per-cell indicator decay for every stage (maps, flashed, drifting)
+        flashed_responses, cell_tau = session.responses, None
+        if isinstance(session.responses, Traces):
+            if an.trace_decay is None and has_flashed(g):
+                flashed_responses, an.trace_decay = decay_corrected(session.responses, trace_decay)
+                an.notes.append(an.trace_decay.note())
+            elif an.trace_decay is not None:
+                flashed_responses = map_responses
+            if an.trace_decay is not None and np.isfinite(an.trace_decay.tau_s).any():
+                cell_tau = np.asarray(an.trace_decay.tau_s, float)
         if has_flashed(g):
             step("flashed gratings")
-            an.flashed = analyze_flashed(session.responses, g, max_lag_s=max_lag_s, rng=rng, alpha=alpha)
-            an.measured_noise = flashed_noise(session.responses, g, an.flashed, max_lag_s)
+            an.flashed = analyze_flashed(flashed_responses, g, max_lag_s=max_lag_s, rng=rng, alpha=alpha)
+            an.measured_noise = flashed_noise(flashed_responses, g, an.flashed, max_lag_s)
         if has_drifting(g):
             step("drifting gratings")
-            an.drifting = analyze_drifting(session.responses, g, alpha=alpha)
+            an.drifting = analyze_drifting(session.responses, g, alpha=alpha, trace_tau_s=cell_tau)
     else:
         an.notes.append("no gratings: no tuning, no reconciliation")
     tuning = None
@@ -411,6 +441,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
 
     # -- reconciliation --------------------------------------------------------------------------------
     agreement = nan.copy()
+    grating_response, no_agreement_reason = None, "no flashed gratings"
     if an.maps is not None and an.flashed is not None:
         step("reconcile")
         fl = an.flashed
@@ -421,13 +452,21 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         # the maps see the kernel through the pixel box, the gratings see it bare: divide by the box's
         # transfer (a 0-16 % factor on the default grid; it changes the agreement by < 1 % in
         # practice, since the gain absorbs its mean, but it is the right prediction)
-        box = reconcile.pixel_box_transfer(grid, fl.orientations_deg[:, None], fl.sfs_cpd[None, :])
-        an.predicted_h = reconcile.predict_gratings(np.nan_to_num(an.model_maps), grid, fl.orientations_deg,
-                                                    fl.sfs_cpd, origin) / box
-        an.measured_h = fl.harmonic_combined
+        # closed-form spectrum of the fitted kernel (any SF); the sampled map only inside its Nyquist
+        # band (reconcile.forward_prediction)
+        an.predicted_h, an.predicted_h_sampled = reconcile.forward_prediction(
+            fit_cols, an.map_kind == "linear", an.model_maps, grid, fl.orientations_deg, fl.sfs_cpd, origin)
+        # both experiments' patterns referred to the same latency (reconcile.time_course_sign)
+        an.time_course_sign = reconcile.time_course_sign(
+            _map_time_course(an.maps, linear_spatial), an.maps.lags_s, fl.temporal_profile, fl.lags_s)
+        an.measured_h = fl.harmonic_combined * an.time_course_sign[:, None, None]
         pred = np.where(an.maps.responsive[:, None, None], an.predicted_h, np.nan)
         an.forward = reconcile.forward_agreement(pred, an.measured_h, noise_var=an.measured_noise)
         agreement = np.asarray(an.forward["agreement"], float)
+        sig = np.asarray(an.forward["signal_p"], float) < reconcile.SIGNAL_ALPHA
+        grating_response = np.asarray(fl.responsive, bool) | sig
+        no_pred = an.maps.responsive & ~np.all(np.isfinite(an.predicted_h), axis=(1, 2))
+        no_agreement_reason = np.where(no_pred, "no prediction (no fitted model)", "no flashed gratings")
         if len(fl.orientations_deg) > 1 and len(fl.sfs_cpd) > 1:
             an.inverse = reconcile.inverse_comparison(an.measured_h, np.nan_to_num(an.spatial_maps), grid,
                                                       fl.orientations_deg, fl.sfs_cpd, origin)
@@ -460,11 +499,16 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells[k] = list(tun.get(k, [None] * C))
     cells["agreement"] = list(agreement)
     f1f0 = np.asarray([np.nan if v is None else v for v in cells["f1_f0"]], float)
+    if tuning is not None:   # F1/F0 counts only where its interval excludes 1 (a grating_class)
+        f1f0 = np.where(np.asarray(tuning["grating_class"], object) != "", f1f0, np.nan)
     overlap = None if an.maps is None else np.asarray(an.maps.onoff_overlap, float)
     # no sparse noise: no map, so the call is empty with the reason "no map"
     responsive = np.full(C, None, object) if an.maps is None else np.asarray(an.maps.responsive, bool)
     # criteria that are missing (no map, no flashed gratings) are skipped or leave the call empty
-    linear, reason = reconcile.linearity_call(agreement, f1f0, overlap, responsive)
+    gain = None if an.forward is None else an.forward["gain"]
+    linear, reason = reconcile.linearity_call(agreement, f1f0, overlap, responsive,
+                                              grating_response=grating_response, gain=gain,
+                                              no_agreement_reason=no_agreement_reason)
     cells["linear"] = list(linear)
     cells["linear_reason"] = list(reason)
     # -- extra columns ----------------------------------------------------------------------------------
@@ -490,6 +534,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["magnitude_agreement"] = list(an.forward["magnitude_agreement"])
         cells["phase_error_deg"] = list(an.forward["phase_error_deg"])
         cells["agreement_gain"] = list(an.forward["gain"])
+        cells["time_course_sign"] = [float(v) if r else np.nan for v, r in
+                                     zip(an.time_course_sign, an.maps.responsive)]
     if an.inverse is not None:
         cells["inverse_similarity"] = list(np.where(np.asarray(responsive, bool), an.inverse.similarity, np.nan))
     if tuning is not None:

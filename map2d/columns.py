@@ -78,17 +78,19 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "a constant (F test p < 0.01) and, for flashed gratings, circular variance <= 0.9.", "common practice"),
         Column("pref_sf_cpd", "cpd", "Preferred spatial frequency, read along the preferred orientation "
                "(model named in `sf_model`).", "common practice"),
-        Column("f1_f0", "1", "F1/F0 of drifting-grating responses at the preferred condition; > 1 = simple.",
+        Column("f1_f0", "1", "F1/F0 of drifting-grating responses at the preferred condition (first cycle left "
+               "out, F1 with its noise bias removed); > 1 = simple when its interval excludes 1.",
                "Skottun et al. 1991"),
         Column("agreement", "1", "How well the map's fitted model predicts the measured flashed-grating first "
                "harmonics, 0-1, corrected for the noise of the measured surface when it holds signal "
                "(`agreement_noise_corrected`).", "ours; correction: Spearman 1904"),
-        Column("linear", "bool", "The cell is linear: agreement >= 0.5, F1/F0 > 1 when drifting gratings exist, "
-               "ON/OFF overlap <= 0.5.", "ours; Skottun et al. 1991; Hubel & Wiesel 1962"),
+        Column("linear", "bool", "The cell is linear: agreement >= 0.5 with a non-negative gain, F1/F0 > 1 when "
+               "drifting gratings class the cell, ON/OFF overlap <= 0.5; empty when the flashed gratings did not "
+               "drive the cell.", "ours; Skottun et al. 1991; Hubel & Wiesel 1962"),
     )),
     (_MAP, (
         Column("linear_reason", "text", "Which criteria decided `linear`, or why it is empty (no map, not "
-               "responsive, no flashed gratings)."),
+               "responsive, no flashed gratings, no prediction, no grating response)."),
         Column("p_value", "1", "P-value of the sparse-noise `responsive` test.", "Nichols & Holmes 2002"),
         Column("polarity", "text", "`ON-centre`, `OFF-centre` or `mixed` (ON and OFF both significant, the weaker "
                "at least half the stronger); empty when not responsive."),
@@ -166,8 +168,10 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "(phases ignored; 0 when the correlation is negative)."),
         Column("phase_error_deg", "deg", "Mean absolute phase difference (0-180) between measured and predicted "
                "first harmonics, weighted by |measured| x |predicted|."),
-        Column("agreement_gain", "1", "The real, non-negative gain fitted between predicted and measured surfaces "
-               "(grating response per unit of map prediction)."),
+        Column("agreement_gain", "1", "The real gain fitted between predicted and measured surfaces, with its "
+               "sign (grating response per unit of map prediction; negative: opposite signs at the same latency)."),
+        Column("time_course_sign", "1", "+1 or -1: the sign that refers the gratings' pattern to the map's latency "
+               "(the two time courses compared lag by lag)."),
         Column("inverse_similarity", "1", "Pearson correlation of the map rebuilt from the gratings (inverse Fourier sum) "
                "with the measured map limited to the same band."),
     )),
@@ -188,13 +192,19 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("circular_variance", "1", "Circular variance of the orientation curve (0 one orientation, 1 untuned).",
                "Ringach, Shapley & Hawken 2002"),
         Column("osi", "1", "Orientation selectivity index (R_pref - R_orth) / (R_pref + R_orth).",
-               "Ringach, Shapley & Hawken 2002"),
+               "common practice (e.g. Niell & Stryker 2008)"),
         Column("pref_direction_deg", "deg", "Preferred drift direction in [0, 360) (direction the wave vector "
                "points; two-peaked von Mises fit).", "common practice"),
         Column("dsi", "1", "Direction selectivity index (R_pref - R_opposite) / (R_pref + R_opposite).",
                "common practice"),
-        Column("grating_class", "text", "`simple` (F1/F0 > 1) or `complex`, from drifting gratings.",
-               "Skottun et al. 1991"),
+        Column("f1_f0_ci_low", "1", "Lower end of the 95 % bootstrap interval of `f1_f0` (trials of the preferred "
+               "condition resampled).", "Efron & Tibshirani 1993"),
+        Column("f1_f0_ci_high", "1", "Upper end of the 95 % bootstrap interval of `f1_f0`.",
+               "Efron & Tibshirani 1993"),
+        Column("f1_f0_simple_p_value", "1", "Bootstrap p-value of F1/F0 > 1 (share of resamples at or below 1).",
+               "Efron & Tibshirani 1993"),
+        Column("grating_class", "text", "`simple` when the interval of F1/F0 lies above 1, `complex` when below, "
+               "empty otherwise; from drifting gratings.", "Skottun et al. 1991"),
         Column("flashed_peak_lag_s", "s", "Lag of the largest flashed-grating response.",
                "Ringach, Sapiro & Shapley 1997"),
         Column("flashed_p_value", "1", "P-value of the flashed-grating test (shuffled condition sequence, max over "

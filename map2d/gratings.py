@@ -545,7 +545,8 @@ class DriftingResult:
     ----------
     cell_ids : (cells,)
     directions_deg, sfs_cpd, tfs_hz : (D,), (S,), (T,)
-    trial_onset_s, trial_window_s : (n,)  onset and analysis window (whole cycles) of each trial
+    trial_onset_s, trial_window_s : (n,)  start and length of each trial's analysis window (whole cycles,
+        after the skipped cycles and the latency)
     trial_condition : (n, 3) int  (direction, SF, TF) index of each trial
     trial_f0 : (cells, n)  mean response in the window minus spontaneous
     trial_f1 : (cells, n) complex  first harmonic at the TF (see module notes), multiplied by
@@ -559,8 +560,20 @@ class DriftingResult:
     f1_amp_mean : (cells, D, S, T)  mean over trials of ``|trial_f1|`` (biased upward by noise)
     n_trials : (cells, D, S, T)
     pref_index : (cells, 3) int  condition with the largest ``F0 + |F1|`` (-1 if none)
-    f1_f0 : (cells,)  ``|F1| / F0`` at the preferred condition (NaN when ``F0 <= 0``)
-    simple : (cells,) bool  ``|F1| > F0`` at the preferred condition (Skottun et al. 1991)
+    f1_f0 : (cells,)  ``F1 / F0`` at the preferred condition (NaN when ``F0 <= 0``), with ``F1`` the
+        noise-bias-corrected amplitude of the vector mean, ``sqrt(max(|f1_mean|^2 - f1_sem^2, 0))``
+        (the squared length of a vector mean of noisy trials exceeds the true one by the variance of
+        the mean; without the correction an unmodulated cell reads F1/F0 well above 0)
+    f1_f0_ci_low, f1_f0_ci_high : (cells,)  95 % bootstrap interval of ``f1_f0`` over the preferred
+        condition's trials (``_f1_f0_bootstrap``)
+    f1_f0_p_simple : (cells,)  bootstrap p of ``F1/F0 > 1``: the share of resamples at or below 1
+    grating_class : (cells,) str  ``"simple"`` when the cell is responsive and the interval lies above 1,
+        ``"complex"`` when it lies below 1, else ``""`` (undecided: the data do not separate the ratio
+        from the criterion of Skottun et al. 1991)
+    simple : (cells,) bool  point estimate ``F1 > F0`` at the preferred condition (chooses the response
+        measure for tuning; the class is ``grating_class``)
+    cell_tau_s : (cells,)  traces: the indicator decay used for each cell (NaN: none)
+    skip_cycles, latency_s : the window settings (whole cycles left out after the onset, latency)
     response : (cells, D, S, T)  the response measure used for tuning: ``|F1|`` for simple cells,
         ``F0`` for complex cells (common practice)
     pref_direction_deg : (cells,)  direction of the largest ``response`` at the preferred SF/TF
@@ -603,6 +616,13 @@ class DriftingResult:
     responsive: np.ndarray
     alpha: float
     trace_tau_s: float = float("nan")
+    f1_f0_ci_low: np.ndarray = None
+    f1_f0_ci_high: np.ndarray = None
+    f1_f0_p_simple: np.ndarray = None
+    grating_class: np.ndarray = None
+    cell_tau_s: np.ndarray = None
+    skip_cycles: int = 0
+    latency_s: float = 0.0
 
 
 def _spike_f1(spikes: Spikes, onset, end, tf):
@@ -681,6 +701,39 @@ def _trace_f1(traces: Traces, onset, end, tf, tau_s=float("nan"), harmonic=True)
         f1 = f1 * (1.0 + 2j * np.pi * tf * tau_s)[None, :]
     f1[~good] = np.nan
     return f0, f1
+
+
+def _per_tau(fun, traces: Traces, cell_tau):
+    """``fun(traces_subset, tau)`` for each group of cells sharing one decay, reassembled by cell.
+    ``fun`` returns arrays with cells first."""
+    tau = np.asarray(cell_tau, float)
+    key = np.where(np.isfinite(tau), np.round(tau, 9), -1.0)
+    outs = None
+    for k in np.unique(key):
+        sel = np.flatnonzero(key == k)
+        sub = Traces(values=np.asarray(traces.values)[sel], times_s=traces.times_s)
+        part = fun(sub, float(tau[sel[0]]) if k >= 0 else float("nan"))
+        if outs is None:
+            outs = [np.empty((tau.size,) + np.shape(p)[1:], dtype=np.asarray(p).dtype) for p in part]
+        for o, p in zip(outs, part):
+            o[sel] = p
+    return tuple(outs)
+
+
+def _per_tau_spont(traces: Traces, table, rows, cell_tau):
+    """:func:`_spontaneous` with one decay per cell (cells grouped by decay)."""
+    tau = np.asarray(cell_tau, float)
+    key = np.where(np.isfinite(tau), np.round(tau, 9), -1.0)
+    groups = [np.flatnonzero(key == k) for k in np.unique(key)]
+    res = [_spontaneous(Traces(values=np.asarray(traces.values)[sel], times_s=traces.times_s), table, rows,
+                        float(tau[sel[0]]) if key[sel[0]] >= 0 else float("nan")) for sel in groups]
+    n = tau.size
+    spont = np.empty(n)
+    windows = np.empty((n, res[0][2].shape[1]))
+    for sel, r in zip(groups, res):
+        spont[sel] = r[0]
+        windows[sel] = r[2]
+    return spont, res[0][1], windows, res[0][3]
 
 
 def _nanmean(a, axis):
@@ -857,7 +910,8 @@ def _spontaneous(responses, table: GratingTable, drift_rows, tau_s=float("nan"))
 
 
 def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: float = 0.01,
-                     trace_tau_s: float | None = None) -> DriftingResult:
+                     trace_tau_s=None, skip_cycles: int = 1, latency_s: float = 0.0,
+                     n_boot: int = 1000, rng=0) -> DriftingResult:
     """F0 and F1 of drifting-grating trials, per trial and per (direction, SF, TF) condition.
 
     Parameters
@@ -874,7 +928,22 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         the rise at each onset also lowers F0 and the tail of the previous trial raises the
         spontaneous level. With ``tau`` the fit models all three (see ``_trace_f1``). ``None``
         estimates ``tau`` from the decay after trial offsets (:func:`estimate_decay_tau`); ``0``
-        applies no correction. The value used is ``DriftingResult.trace_tau_s``.
+        applies no correction. An array gives one decay per cell (e.g. the per-cell estimate of
+        :func:`map2d.traces.decay_corrected`, so that maps, flashed and drifting gratings share one
+        estimate; a NaN entry takes the session's estimate). The value used is
+        ``DriftingResult.trace_tau_s`` (the median over cells) and ``DriftingResult.cell_tau_s``.
+    skip_cycles : int
+        Whole cycles left out at the start of each trial (default 1: the onset transient, common
+        practice), as long as at least one whole cycle remains; a trial shorter than
+        ``skip_cycles + 1`` cycles keeps all of it.
+    latency_s : float
+        The analysis window starts and ends this much after the stimulus (the response latency);
+        F1's phase stays referred to the stimulus onset.
+    n_boot : int
+        Resamples of the preferred condition's trials for the interval of F1/F0 (0: no interval,
+        ``grating_class`` empty).
+    rng : numpy.random.Generator or int, optional
+        Seed of the resampling.
 
     Returns
     -------
@@ -906,9 +975,18 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
                                        360.0), _ROUND), 360.0)
     sf = np.round(table.sf_cpd[rows].astype(float), 9)
     tfr = np.round(tf, 9)
+    if int(skip_cycles) < 0:
+        raise ValueError(f"skip_cycles must be >= 0, got {skip_cycles}")
+    if not np.isfinite(latency_s) or latency_s < 0:
+        raise ValueError(f"latency_s must be >= 0, got {latency_s}")
     n_cycles = np.floor(dur * tf + 1e-6)
-    window = np.where(n_cycles >= 1, n_cycles / np.where(tf > 0, tf, 1), dur)
-    end = onset + window
+    skip = np.where(n_cycles >= int(skip_cycles) + 1, int(skip_cycles), 0)
+    tf_safe = np.where(tf > 0, tf, 1)
+    window = np.where(n_cycles >= 1, (n_cycles - skip) / tf_safe, dur)
+    start = onset + skip / tf_safe + float(latency_s)      # whole cycles: the phase is unchanged
+    end = start + window
+    stim_onset = onset
+    onset = start
 
     dirs, sfs, tfs = np.unique(direction), np.unique(sf), np.unique(tfr)
     di, si, ti = _index(direction, dirs), _index(sf, sfs), _index(tfr, tfs)
@@ -918,20 +996,37 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
 
     if isinstance(responses, Spikes):
         tau = float("nan")
+        cell_tau = np.full(responses.cell_ids.size, np.nan)
         raw = interval_responses(responses, onset, end).astype(float)
         trial_f1 = _spike_f1(responses, onset, end, tf)
     else:
-        if trace_tau_s is None:
-            nxt = np.append(onset[1:], np.inf)
-            tau = estimate_decay_tau(responses, table.offset_s[rows], nxt)
+        given = None if trace_tau_s is None else np.asarray(trace_tau_s, float)
+        if given is None or given.ndim == 1 and not np.isfinite(given).all():
+            nxt = np.append(stim_onset[1:], np.inf)
+            session_tau = estimate_decay_tau(responses, table.offset_s[rows], nxt)
         else:
-            tau = float(trace_tau_s)
-        raw, trial_f1 = _trace_f1(responses, onset, end, tf, tau)
-    spont, source, spont_windows, spont_len = _spontaneous(responses, table, rows, tau)
+            session_tau = float("nan")
+        if given is None:
+            cell_tau = np.full(responses.values.shape[0], session_tau)
+        elif given.ndim == 0:
+            cell_tau = np.full(responses.values.shape[0], float(given))
+        else:
+            if given.shape != (responses.values.shape[0],):
+                raise ValueError(f"trace_tau_s must be one number or one per cell "
+                                 f"({responses.values.shape[0]}), got shape {given.shape}")
+            cell_tau = np.where(np.isfinite(given), given, session_tau)
+        fin_tau = cell_tau[np.isfinite(cell_tau)]
+        tau = float(np.median(fin_tau)) if fin_tau.size else float("nan")
+        raw, trial_f1 = _per_tau(lambda tr, t: _trace_f1(tr, onset, end, tf, t), responses, cell_tau)
+    spont, source, spont_windows, spont_len = (
+        _spontaneous(responses, table, rows, tau) if isinstance(responses, Spikes)
+        else _per_tau_spont(responses, table, rows, cell_tau))
     # refer each trial's F1 to stimulus phase 0 at onset: a grating started at phase p shifts the
     # response by p (F1 ~ exp(-i p) for tf > 0, exp(+i p) for tf < 0), so that without this trials of
     # one condition shown at different start phases cancel in the vector mean
     trial_f1 = trial_f1 * np.exp(1j * np.sign(tf_signed) * np.deg2rad(table.phase_deg[rows].astype(float)))[None, :]
+    # the window started later than the stimulus (whole cycles skipped, latency): F1 referred to the onset
+    trial_f1 = trial_f1 * np.exp(-2j * np.pi * tf * (onset - stim_onset))[None, :]
     trial_f0 = raw - np.where(np.isfinite(spont), spont, 0.0)[:, None]
     n_cells = trial_f0.shape[0]
 
@@ -956,7 +1051,13 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         sem1 = np.sqrt(np.maximum(varr + vari, 0.0) / n1)
         amp_mean = np.where(n1 > 0, amp / np.maximum(n1, 1), np.nan)
     f1m = mr + 1j * mi
-    f1a = np.abs(f1m)
+    # noise bias of |vector mean|: E|m|^2 = |F1|^2 + (var re + var im) / n, removed with the condition's
+    # own variance (the pooled within-condition variance for a condition with one trial; none if
+    # nothing can be estimated)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pooled = (sswr + sswi) / np.where(nt1 - k1 > 0, nt1 - k1, np.nan)          # var re + var im
+        bias = np.where(n1 > 1, sem1**2, pooled[:, None] / n1)
+        f1a = np.sqrt(np.maximum(np.abs(f1m) ** 2 - np.where(np.isfinite(bias), bias, 0.0), 0.0))
 
     shape = (n_cells, n_d, n_s, n_t)
     # preferred condition, class, F1/F0
@@ -969,6 +1070,7 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     with np.errstate(invalid="ignore", divide="ignore"):
         ratio = np.where(pf0 > 0, pf1 / pf0, np.nan)
     simple = np.isfinite(pf1) & (pf1 > np.where(np.isfinite(pf0), pf0, np.inf))
+    ci_lo, ci_hi, p_simple = _f1_f0_bootstrap(trial_f0, trial_f1, cond, pref, int(n_boot), rng)
     response = np.where(simple[:, None], f1a, m0)
 
     pref_idx = np.full((n_cells, 3), -1, dtype=np.int64)
@@ -1018,6 +1120,9 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         pmin = np.where(n_tests > 0, np.nanmin(np.where(fin_p, both, np.inf), axis=0), np.nan)
         p_value = np.minimum(1.0, n_tests * pmin)
     responsive = np.isfinite(p_value) & (p_value < alpha)
+    grating_class = np.full(n_cells, "", dtype=object)
+    grating_class[responsive & (ci_lo > 1.0)] = "simple"
+    grating_class[responsive & (ci_hi < 1.0)] = "complex"
 
     return DriftingResult(
         cell_ids=np.asarray(responses.cell_ids), directions_deg=dirs, sfs_cpd=sfs, tfs_hz=tfs,
@@ -1026,4 +1131,46 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         f0_mean=m0.reshape(shape), f0_sem=sem0.reshape(shape), f1_mean=f1m.reshape(shape),
         f1_sem=sem1.reshape(shape), f1_amp_mean=amp_mean.reshape(shape), n_trials=n0.reshape(shape),
         pref_index=pref_idx, f1_f0=ratio, simple=simple, response=resp4, pref_direction_deg=pref_dir,
-        dsi=dsi, p_value=p_value, responsive=responsive, alpha=float(alpha), trace_tau_s=float(tau))
+        dsi=dsi, p_value=p_value, responsive=responsive, alpha=float(alpha), trace_tau_s=float(tau),
+        f1_f0_ci_low=ci_lo, f1_f0_ci_high=ci_hi, f1_f0_p_simple=p_simple, grating_class=grating_class,
+        cell_tau_s=cell_tau, skip_cycles=int(skip_cycles), latency_s=float(latency_s))
+
+
+def _f1_f0_bootstrap(trial_f0, trial_f1, cond, pref, n_boot, rng, level=0.95):
+    """Percentile interval of F1/F0 at each cell's preferred condition, resampling its trials.
+
+    Each resample draws the condition's trials with replacement and recomputes F0 (mean) and the
+    noise-bias-corrected F1 (``sqrt(max(|mean F1|^2 - (var re + var im) / n, 0))``), as the point
+    estimate does; a resample with ``F0 <= 0`` and ``F1 > 0`` counts as a ratio above any bound.
+    ``p_simple`` is the share of resamples with ``F1/F0 <= 1`` (bootstrap test of ``F1/F0 > 1``;
+    Efron & Tibshirani 1993, An Introduction to the Bootstrap, ch. 13 and 16). NaN without at least
+    3 finite trials at the preferred condition or ``n_boot = 0``.
+    """
+    n_cells = trial_f0.shape[0]
+    lo, hi, p = (np.full(n_cells, np.nan) for _ in range(3))
+    if n_boot <= 0:
+        return lo, hi, p
+    rng = np.random.default_rng(rng)
+    a = (1.0 - level) / 2.0
+    for c in np.flatnonzero(pref >= 0):   # one small resampling per cell (trials of one condition)
+        idx = np.flatnonzero(cond == pref[c])
+        f0, f1 = trial_f0[c, idx], trial_f1[c, idx]
+        ok = np.isfinite(f0) & np.isfinite(f1)
+        f0, f1 = f0[ok], f1[ok]
+        n = f0.size
+        if n < 3:
+            continue
+        pick = rng.integers(0, n, (n_boot, n))
+        b0 = f0[pick].mean(axis=1)
+        z = f1[pick]
+        m = z.mean(axis=1)
+        v = (z.real.var(axis=1, ddof=1) + z.imag.var(axis=1, ddof=1)) / n
+        b1 = np.sqrt(np.maximum(np.abs(m) ** 2 - v, 0.0))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r = np.where(b0 > 0, b1 / b0, np.where(b1 > 0, np.inf, np.nan))
+        r = r[~np.isnan(r)]
+        if r.size < n_boot // 2:
+            continue
+        lo[c], hi[c] = np.quantile(r, [a, 1.0 - a], method="inverted_cdf")   # no interpolation: inf allowed
+        p[c] = float(np.mean(r <= 1.0))
+    return lo, hi, p

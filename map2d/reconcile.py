@@ -37,10 +37,14 @@ from dataclasses import dataclass
 import numpy as np
 
 from .geometry import Grid
-from .spectral import fourier_at, inverse_fourier, orientation_period, polar_area_weights
+from .spectral import (dog_spectrum_at, fourier_at, gabor_spectrum, gaussian_spectrum, inverse_fourier,
+                       nyquist_mask, orientation_period, polar_area_weights)
 
 __all__ = [
     "predict_gratings",
+    "predict_from_fits",
+    "time_course_sign",
+    "forward_prediction",
     "predict_static_responses",
     "forward_agreement",
     "inverse_map",
@@ -110,6 +114,190 @@ def predict_gratings(maps, grid: Grid, orientations_deg, sfs_cpd, origin_deg=Non
     return fourier_at(maps, grid, ori, sf, origin_deg)
 
 
+def _col(fits, name, n):
+    v = fits.get(name) if hasattr(fits, "get") else None
+    if v is None:
+        return np.full(n, np.nan)
+    a = np.array([np.nan if x is None or x == "" else x for x in np.asarray(v, object).ravel()], float)
+    return a if a.size == n else np.full(n, np.nan)
+
+
+def predict_from_fits(fits, orientations_deg, sfs_cpd, origin_deg, outer=True):
+    """Complex grating responses predicted from the closed-form spectra of fitted kernels.
+
+    The forward prediction of :func:`predict_gratings` sums a map sampled on the sparse-noise grid, so
+    beyond the grid's Nyquist band (``|kx| dx > 1/2`` or ``|ky| dy > 1/2``) it returns the mirror image
+    of the spectrum, not the spectrum (aliasing): on 4-deg pixels a Gabor of 0.08 cpd, sampled without
+    noise, predicts ``|H|`` 36 at 0.16 cpd where its transform is 0.1. A fitted model is a function of
+    the continuous plane, and its transform has a closed form (Gaussian pair, shift and modulation
+    theorems; Bracewell 2000): :func:`map2d.spectral.gaussian_spectrum`,
+    :func:`map2d.spectral.dog_spectrum_at`, :func:`map2d.spectral.gabor_spectrum`. With the kernel's
+    parameters (the pixel box already removed from the fit, :func:`map2d.fit.spatial.remove_pixel_box`)
+    this is what the gratings see, at any SF, with the box handled once.
+
+    Parameters
+    ----------
+    fits : mapping of column name -> array (C,)
+        The columns of :func:`map2d.fit.spatial.fit_maps` (``model``, ``center_x_deg``,
+        ``center_y_deg``, ``amplitude``, ``sigma_major_deg``, ``sigma_minor_deg``, ``theta_deg``,
+        ``dog_kc``, ``rc_deg``, ``dog_ks``, ``rs_deg``, ``gabor_*``).
+    orientations_deg, sfs_cpd : array_like
+        As in :func:`predict_gratings`.
+    origin_deg : (float, float)
+        The gratings' phase origin.
+
+    Returns
+    -------
+    numpy.ndarray, complex, shape (C, O, S) or (C, K)
+        NaN for a cell without a model or with a missing parameter (a rejected or unresolved fit
+        gives no prediction, never an invented one).
+
+    Examples
+    --------
+    >>> f = {"model": ["gaussian"], "center_x_deg": [0.0], "center_y_deg": [0.0], "amplitude": [1.0],
+    ...      "sigma_major_deg": [1.0], "sigma_minor_deg": [1.0], "theta_deg": [0.0]}
+    >>> h = predict_from_fits(f, [0.0], [0.0], (0.0, 0.0))
+    >>> bool(np.isclose(h[0, 0, 0], 2 * np.pi))
+    True
+    """
+    model = np.asarray(fits.get("model", []), object).ravel()
+    n = model.size
+    ori = np.asarray(orientations_deg, float)
+    sf = np.asarray(sfs_cpd, float)
+    if outer:
+        if ori.ndim != 1 or sf.ndim != 1:
+            raise ValueError("with outer=True, orientations_deg and sfs_cpd must be 1-D axes")
+        o, f = ori[None, :, None], sf[None, None, :]
+        shape = (n, ori.size, sf.size)
+    else:
+        if ori.shape != sf.shape:
+            raise ValueError(f"with outer=False, orientations_deg {ori.shape} and sfs_cpd {sf.shape} "
+                             "must have the same shape")
+        o, f = ori[None], sf[None]
+        shape = (n,) + ori.shape
+    origin = tuple(np.asarray(origin_deg, float).ravel())
+    out = np.full(shape, np.nan + 0j)
+    col = {k: _col(fits, k, n) for k in (
+        "center_x_deg", "center_y_deg", "amplitude", "sigma_major_deg", "sigma_minor_deg", "theta_deg",
+        "dog_kc", "rc_deg", "dog_ks", "rs_deg", "gabor_orientation_deg", "gabor_sf_cpd", "gabor_phase_deg",
+        "gabor_sigma_u_deg", "gabor_sigma_v_deg")}
+    extra = (None,) * (len(shape) - 1)
+
+    def c(name, sel):
+        return col[name][sel][(slice(None),) + extra]
+
+    for kind in ("gaussian", "dog", "gabor"):
+        sel = model == kind
+        if not sel.any():
+            continue
+        x0, y0 = c("center_x_deg", sel), c("center_y_deg", sel)
+        if kind == "gaussian":
+            h = gaussian_spectrum(o, f, x0, y0, c("sigma_major_deg", sel), c("sigma_minor_deg", sel),
+                                  c("theta_deg", sel), c("amplitude", sel), origin)
+        elif kind == "dog":
+            h = dog_spectrum_at(o, f, x0, y0, c("dog_kc", sel), c("rc_deg", sel), c("dog_ks", sel),
+                                c("rs_deg", sel), origin)
+        else:
+            h = gabor_spectrum(o, f, x0, y0, c("gabor_sigma_u_deg", sel), c("gabor_sigma_v_deg", sel),
+                               c("gabor_orientation_deg", sel), c("gabor_sf_cpd", sel),
+                               c("gabor_phase_deg", sel), c("amplitude", sel), origin)
+        out[sel] = np.broadcast_to(h, (int(sel.sum()),) + shape[1:])
+    return out
+
+
+def forward_prediction(fits, use_fit, sampled_maps, grid: Grid, orientations_deg, sfs_cpd, origin_deg=None):
+    """The forward prediction of a flashed (orientation x SF) surface, and the sampled-map diagnostic.
+
+    Where ``use_fit`` and the fit's parameters are finite: the closed-form spectrum of the fitted
+    kernel (:func:`predict_from_fits`), valid at any SF. Elsewhere (e.g. a map that is not fitted as a
+    linear kernel, or a width the pixel box leaves unresolved): the Fourier sum of the sampled map
+    divided by the pixel box's transfer (:func:`predict_gratings`, :func:`pixel_box_transfer`), but
+    only inside the grid's Nyquist band (:func:`map2d.spectral.nyquist_mask`); beyond it NaN (no
+    prediction), since a sampled map cannot tell a frequency from its mirror image there.
+
+    Parameters
+    ----------
+    fits : mapping of column -> array (C,)
+        :func:`map2d.fit.spatial.fit_maps` columns (kernel parameters, pixel box removed).
+    use_fit : array_like of bool (C,)
+        Cells whose fit is a model of the linear kernel.
+    sampled_maps : array_like (C, ny, nx)
+        The maps to sum where no closed form is used (NaN: no prediction).
+    grid, orientations_deg, sfs_cpd, origin_deg
+        As in :func:`predict_gratings`.
+
+    Returns
+    -------
+    predicted : numpy.ndarray complex (C, O, S)
+    sampled : numpy.ndarray complex (C, O, S)
+        The sampled-map prediction everywhere, NaN beyond the Nyquist band (a diagnostic).
+    """
+    ori = np.asarray(orientations_deg, float)
+    sf = np.asarray(sfs_cpd, float)
+    if origin_deg is None:
+        origin_deg = (float(grid.center_x_deg), float(grid.center_y_deg))
+    m = np.asarray(sampled_maps, float)
+    box = pixel_box_transfer(grid, ori[:, None], sf[None, :], min_value=0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sampled = predict_gratings(np.nan_to_num(m), grid, ori, sf, origin_deg) / box
+    bad = ~np.all(np.isfinite(m), axis=(-2, -1))
+    sampled[bad] = np.nan
+    inside = nyquist_mask(grid, ori[:, None], sf[None, :])
+    sampled = np.where(inside[None], sampled, np.nan)
+    closed = predict_from_fits(fits, ori, sf, origin_deg)
+    use = np.asarray(use_fit, bool).ravel()[:, None, None] & np.all(np.isfinite(closed), axis=(1, 2),
+                                                                     keepdims=True)
+    return np.where(use, closed, sampled), sampled
+
+
+def time_course_sign(map_course, map_lags_s, grating_course, grating_lags_s):
+    """Sign relation (+1 / -1) between the time courses of the two experiments, lag by lag.
+
+    Each experiment reduces its responses over lags to one spatial (or spectral) pattern times a time
+    course, and takes the pattern's sign from its own time course (the map from the peak lag of its
+    ``|z|``, the gratings from the largest lobe of their temporal profile). For a biphasic response
+    whose dominant lobe differs between the two (lobes +1 / -0.8 for spots and +0.8 / -1 for
+    gratings) the two patterns then have opposite signs although the cell is the same. Compared at
+    the same latencies the time courses say which: ``sign(sum_t m(t) g(t))`` over the grating lags
+    ``t`` inside the map's lag range, ``m`` linearly interpolated from the map's lags (the two
+    experiments may use different frame rates). Multiplying the measured grating surface by this
+    sign refers both to the same latency.
+
+    Parameters
+    ----------
+    map_course : array_like (C, Lm)
+        The map's time course relative to its spatial pattern (1 at the lag the pattern comes from).
+    map_lags_s : array_like (Lm,)
+    grating_course : array_like (C, Lg)
+        The gratings' temporal profile (``FlashedResult.temporal_profile``).
+    grating_lags_s : array_like (Lg,)
+
+    Returns
+    -------
+    numpy.ndarray (C,)
+        +1 or -1; +1 where the time courses do not overlap or their product sums to 0.
+
+    Examples
+    --------
+    >>> time_course_sign([[0, 1.0, -0.8]], [0, 0.1, 0.2], [[0, -0.8, 1.0]], [0, 0.1, 0.2]).tolist()
+    [-1.0]
+    """
+    m = np.atleast_2d(np.asarray(map_course, float))
+    g = np.atleast_2d(np.asarray(grating_course, float))
+    tm = np.asarray(map_lags_s, float).ravel()
+    tg = np.asarray(grating_lags_s, float).ravel()
+    if m.shape[0] != g.shape[0]:
+        raise ValueError(f"map_course {m.shape} and grating_course {g.shape} must have one row per cell")
+    inside = (tg >= tm.min() - 1e-9) & (tg <= tm.max() + 1e-9)
+    out = np.ones(m.shape[0])
+    for c in range(m.shape[0]):  # C small; interpolation per cell
+        mi = np.interp(tg[inside], tm, np.nan_to_num(m[c]))
+        s = float(np.sum(mi * np.nan_to_num(g[c, inside])))
+        if s < 0:
+            out[c] = -1.0
+    return out
+
+
 def predict_static_responses(maps, grid: Grid, orientation_deg, sf_cpd, phase_deg, contrast=1.0,
                              origin_deg=None):
     """Linear response of spatial maps to individual static gratings.
@@ -169,18 +357,21 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_
     -------
     dict of numpy.ndarray, each of shape (C,) (0-d for a 1-D input)
         ``gain``
-            The one real, non-negative gain ``g`` minimising ``sum |meas - g pred|^2``:
-            ``max(0, sum Re(conj(pred) meas) / sum |pred|^2)``. Real because the phase of a linear
-            cell's first harmonic is fixed by the kernel and the phase origin (a complex gain would
-            forgive any phase error); non-negative because the map and the gratings come from the same
-            cell with the same sign of response. No offset is fitted: the first harmonic over phase
-            contains no constant term (the phase-invariant part goes to the mean response, not to ``H``).
+            The one real gain ``g`` minimising ``sum |meas - g pred|^2``:
+            ``sum Re(conj(pred) meas) / sum |pred|^2``, with its sign. Real because the phase of a
+            linear cell's first harmonic is fixed by the kernel and the phase origin (a complex gain
+            would forgive any phase error). Not clipped at 0: the sign relation between the two
+            experiments is reported, not hidden (refer the two time courses to the same latency first,
+            :func:`time_course_sign`; a negative gain then says that map and gratings answer with
+            opposite signs at the same latency, which :func:`linearity_call` counts against
+            linearity). No offset is fitted: the first harmonic over phase contains no constant term
+            (the phase-invariant part goes to the mean response, not to ``H``).
         ``agreement_raw``
             Explained variance of the measured complex surface, ``1 - sum |meas - g pred|^2 /
             sum |meas|^2`` in [0, 1]. The reference is zero, not the surface mean: a cell with no linear
             component has a first harmonic of zero at every wave vector. With the least-squares gain this
-            equals ``c^2``, ``c = sum Re(conj(pred) meas) / (||pred|| ||meas||)`` (0 when ``c <= 0``),
-            the squared cosine between the two surfaces as real vectors. Noise in the measured surface
+            equals ``c^2``, ``c = sum Re(conj(pred) meas) / (||pred|| ||meas||)``, the squared cosine
+            between the two surfaces as real vectors (the sign of ``c`` is the sign of ``gain``). Noise in the measured surface
             lowers it even for a perfect prediction: its expectation is then ``P / (P + N)``, with
             ``P`` the signal and ``N = sum noise_var`` the noise power of the surface.
         ``agreement``
@@ -244,7 +435,7 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_
     pm = np.sum(np.real(np.conj(p0) * m0), axis=1)
     ok = (n >= max(1, int(min_conditions))) & (pp > 0) & (mm > 0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        gain = np.where(ok, np.maximum(pm / pp, 0.0), np.nan)
+        gain = np.where(ok, pm / pp, np.nan)
         sse = mm - 2 * gain * pm + gain**2 * pp
         agreement = np.where(ok, np.clip(1.0 - sse / mm, 0.0, 1.0), np.nan)
 
@@ -287,7 +478,7 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_
             scale = np.where(n_ok & (v2 > 0), v2 / (2 * np.where(n_ok, big_n, 1.0)), 1.0)
             nu = np.where(n_ok & (v2 > 0), 2 * big_n**2 / np.where(v2 > 0, v2, 1.0), 1.0)
             signal_p = np.where(n_ok, chi2.sf(mm / scale, nu), np.nan)
-            explained = np.where(pm > 0, pm**2 / pp, 0.0) - np.sum(np.abs(p0) ** 2 * v_use, axis=1) / (2 * pp)
+            explained = pm**2 / np.where(pp > 0, pp, 1.0) - np.sum(np.abs(p0) ** 2 * v_use, axis=1) / (2 * pp)
             signal = mm - big_n
             corrected = n_ok & (signal_p < alpha) & (signal > 0)
             nc = np.clip(explained / np.where(corrected, signal, 1.0), 0.0, 1.0)
@@ -587,7 +778,8 @@ def _as_float(v, n, name):
 
 def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
                    agreement_threshold=AGREEMENT_THRESHOLD, f1_f0_threshold=F1_F0_THRESHOLD,
-                   overlap_threshold=OVERLAP_THRESHOLD):
+                   overlap_threshold=OVERLAP_THRESHOLD, grating_response=None, gain=None,
+                   no_agreement_reason="no flashed gratings"):
     """Call each cell linear or not, with the reason.
 
     A cell is linear when all available criteria agree:
@@ -610,13 +802,24 @@ def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
     responsive : array_like of bool or None
         The sparse-noise ``responsive`` call per cell (None or NaN for a cell = no map: the call is
         empty with reason "no map"). None for the whole argument skips this check.
+    grating_response : array_like of bool or None
+        Whether the flashed gratings drove the cell at all: a significant first harmonic or a
+        significant phase-invariant response. False leaves the call empty with the reason
+        ``"no grating response"``: an agreement near 0 against a surface of pure noise measures
+        nothing, and silence is not evidence of nonlinearity. None skips this check.
+    gain : array_like or None
+        The signed gain of :func:`forward_agreement` (time courses referred to the same latency). A
+        negative gain (map and gratings of opposite sign at the same latency) fails the call.
+    no_agreement_reason : str or array_like of str
+        Reason given where ``agreement`` is NaN (per cell or one for all).
 
     Returns
     -------
     linear : numpy.ndarray of object, shape (C,)
         True, False, or None (empty: cannot be called).
     reason : numpy.ndarray of str, shape (C,)
-        ``"not responsive"``, ``"no map"``, ``"no flashed gratings"`` (no agreement to judge), or the criteria that decided, e.g.
+        ``"not responsive"``, ``"no map"``, ``"no flashed gratings"`` (no agreement to judge; or
+        ``no_agreement_reason``), ``"no grating response"``, or the criteria that decided, e.g.
         ``"agreement 0.12 < 0.50"``, ``"f1/f0 0.60 <= 1.00"``, ``"ON/OFF overlap 0.80 > 0.50"`` (all
         failing criteria, joined by "; "), or for a linear cell all criteria that were tested, joined
         by ", ".
@@ -643,6 +846,13 @@ def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
             resp = np.full(n, resp[0], object)
         if resp.size != n:
             raise ValueError(f"responsive must have one value per cell ({n}), got {resp.size}")
+    g = _as_float(gain, n, "gain")
+    gr = None if grating_response is None else np.asarray(grating_response, object).ravel()
+    if gr is not None and gr.size == 1 and n != 1:
+        gr = np.full(n, gr[0], object)
+    if gr is not None and gr.size != n:
+        raise ValueError(f"grating_response must have one value per cell ({n}), got {gr.size}")
+    why_nan = np.broadcast_to(np.asarray(no_agreement_reason, object), (n,))
     linear = np.full(n, None, object)
     reason = np.empty(n, object)
     for c in range(n):  # per-cell strings; C is small
@@ -655,9 +865,15 @@ def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
                 reason[c] = "not responsive"
                 continue
         if np.isnan(agr[c]):
-            reason[c] = "no flashed gratings"
+            reason[c] = str(why_nan[c])
+            continue
+        if gr is not None and gr[c] is not None and not (isinstance(gr[c], float) and np.isnan(gr[c])) \
+                and not bool(gr[c]):
+            reason[c] = "no grating response"
             continue
         passed, failed = [], []
+        if np.isfinite(g[c]) and g[c] < 0:
+            failed.append("map and gratings of opposite sign")
         if agr[c] >= agreement_threshold:
             passed.append(f"agreement {agr[c]:.2f} >= {agreement_threshold:.2f}")
         else:

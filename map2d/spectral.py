@@ -26,7 +26,8 @@ import numpy as np
 
 from .geometry import Grid, wave_vector
 
-__all__ = ["fourier_at", "inverse_fourier", "grating_basis", "polar_area_weights", "orientation_period"]
+__all__ = ["fourier_at", "inverse_fourier", "grating_basis", "polar_area_weights", "orientation_period",
+           "gaussian_spectrum", "dog_spectrum_at", "gabor_spectrum", "nyquist_mask"]
 
 #: Largest number of complex elements in one intermediate ``(C, ny, chunk)`` block.
 _BLOCK_ELEMENTS = 4_000_000
@@ -288,3 +289,90 @@ def orientation_period(orientations_deg) -> float:
     """180 when all orientations lie in ``[0, 180)`` (half plane), else 360 (whole plane)."""
     o = np.asarray(orientations_deg, float)
     return 180.0 if np.all((o >= 0) & (o < 180)) else 360.0
+
+
+# ----------------------------------------------------------------------------------------------------
+# closed-form spectra of the spatial models (map2d.models), same convention as fourier_at
+# ----------------------------------------------------------------------------------------------------
+
+def _shift(kx, ky, x0, y0, origin):
+    """``exp(+i 2 pi k . (x0 - xc))``: a model centred at ``(x0, y0)`` seen from the phase origin."""
+    xc, yc = origin
+    return np.exp(2j * np.pi * (kx * (np.asarray(x0, float) - xc) + ky * (np.asarray(y0, float) - yc)))
+
+
+def _gauss_ft(ku, kv, su, sv):
+    """Integral of ``exp(-u^2 / 2 su^2 - v^2 / 2 sv^2)`` times ``exp(+i 2 pi (ku u + kv v))``:
+    ``2 pi su sv exp(-2 pi^2 (su^2 ku^2 + sv^2 kv^2))`` (Gaussian pair, Bracewell 2000)."""
+    return 2 * np.pi * su * sv * np.exp(-2 * np.pi**2 * (su**2 * ku**2 + sv**2 * kv**2))
+
+
+def _rotate_k(kx, ky, theta_deg):
+    th = np.deg2rad(theta_deg)
+    c, s = np.cos(th), np.sin(th)
+    return kx * c + ky * s, -kx * s + ky * c
+
+
+def gaussian_spectrum(orientation_deg, sf_cpd, x0, y0, sigma_u_deg, sigma_v_deg, theta_deg, amplitude,
+                      origin_deg=(0.0, 0.0)):
+    """Fourier transform of :func:`map2d.models.gaussian2d` at grating wave vectors (closed form).
+
+    ``H = A 2 pi su sv exp(-2 pi^2 (su^2 ku^2 + sv^2 kv^2)) exp(+i 2 pi k . (x0 - xc))`` with
+    ``(ku, kv)`` the wave vector along and across ``theta`` (the Gaussian pair and the shift theorem,
+    Bracewell 2000), in the convention of :func:`fourier_at` but as an integral over the continuous
+    plane: no pixel grid, so it holds at any SF. Parameters broadcast (per cell against per wave vector).
+
+    Examples
+    --------
+    >>> h = gaussian_spectrum(0.0, 0.0, 0.0, 0.0, 1.0, 1.0, 0.0, 1.0)
+    >>> bool(np.isclose(h, 2 * np.pi))      # the integral of a unit Gaussian of sd 1
+    True
+    """
+    kx, ky = wave_vector(np.asarray(orientation_deg, float), np.asarray(sf_cpd, float))
+    ku, kv = _rotate_k(kx, ky, theta_deg)
+    return amplitude * _gauss_ft(ku, kv, sigma_u_deg, sigma_v_deg) * _shift(kx, ky, x0, y0, origin_deg)
+
+
+def dog_spectrum_at(orientation_deg, sf_cpd, x0, y0, kc, rc_deg, ks, rs_deg, origin_deg=(0.0, 0.0)):
+    """Fourier transform of :func:`map2d.models.dog2d` at grating wave vectors (closed form).
+
+    ``(kc pi rc^2 exp(-(pi rc f)^2) - ks pi rs^2 exp(-(pi rs f)^2)) exp(+i 2 pi k . (x0 - xc))``
+    (:func:`map2d.models.dog_spectrum` with the shift theorem; Bracewell 2000).
+    """
+    from .models import dog_spectrum
+    kx, ky = wave_vector(np.asarray(orientation_deg, float), np.asarray(sf_cpd, float))
+    f = np.hypot(kx, ky)
+    return dog_spectrum(f, kc, rc_deg, ks, rs_deg) * _shift(kx, ky, x0, y0, origin_deg)
+
+
+def gabor_spectrum(orientation_deg, sf_cpd, x0, y0, sigma_u_deg, sigma_v_deg, theta_deg, f0_cpd, phase_deg,
+                   amplitude, origin_deg=(0.0, 0.0)):
+    """Fourier transform of :func:`map2d.models.gabor2d` at grating wave vectors (closed form).
+
+    The carrier ``cos(2 pi f0 u + phi) = (e^{i(2 pi f0 u + phi)} + e^{-i(2 pi f0 u + phi)}) / 2`` shifts
+    the envelope's transform ``G`` (:func:`gaussian_spectrum`) to ``-+ f0`` along ``u`` (modulation
+    theorem, Bracewell 2000)::
+
+        H = A / 2 (e^{i phi} G(ku + f0, kv) + e^{-i phi} G(ku - f0, kv)) exp(+i 2 pi k . (x0 - xc))
+
+    Examples
+    --------
+    >>> h = gabor_spectrum(0.0, 0.1, 0.0, 0.0, 3.0, 3.0, 0.0, 0.1, 0.0, 1.0)
+    >>> bool(np.isclose(h.real, np.pi * 9 * (1 + np.exp(-2 * np.pi**2 * 9 * 0.04))))
+    True
+    """
+    kx, ky = wave_vector(np.asarray(orientation_deg, float), np.asarray(sf_cpd, float))
+    ku, kv = _rotate_k(kx, ky, theta_deg)
+    ph = np.deg2rad(phase_deg)
+    h = 0.5 * amplitude * (np.exp(1j * ph) * _gauss_ft(ku + f0_cpd, kv, sigma_u_deg, sigma_v_deg)
+                           + np.exp(-1j * ph) * _gauss_ft(ku - f0_cpd, kv, sigma_u_deg, sigma_v_deg))
+    return h * _shift(kx, ky, x0, y0, origin_deg)
+
+
+def nyquist_mask(grid: Grid, orientation_deg, sf_cpd, margin=1.0):
+    """True where a wave vector lies inside the grid's Nyquist band, ``|kx| dx <= 1/2`` and
+    ``|ky| dy <= 1/2`` (times ``margin``): where a map sampled on ``grid`` determines its Fourier sum.
+    Beyond it the sum of the sampled map picks up the mirror image of the spectrum (aliasing)."""
+    kx, ky = wave_vector(np.asarray(orientation_deg, float), np.asarray(sf_cpd, float))
+    return ((np.abs(kx) * grid.dx_deg <= 0.5 * margin + 1e-12)
+            & (np.abs(ky) * grid.dy_deg <= 0.5 * margin + 1e-12))

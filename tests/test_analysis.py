@@ -313,3 +313,67 @@ def test_results_npz_holds_the_fitted_model_maps(tmp_path, small_spikes_session)
     assert fitted
     for i, r in enumerate(rows):
         assert np.all(np.isfinite(mm[i])) == (i in fitted), i
+
+
+def _biphasic_session():
+    """Stimuli of a simulated session (10-Hz sparse noise and flashed gratings), responses replaced by
+    two linear Gabor cells with biphasic time courses (lags in frames): cell 0 with lobes +1 / -0.8 for
+    spots and +0.8 / -1 for gratings (the dominant lobe differs), cell 1 with the same map but silent
+    to gratings. Traces are piecewise constant per frame, sampled at 40 Hz, plus white noise."""
+    from map2d.contract import Traces
+    from map2d.geometry import Grid
+    from map2d.gratings import flashed_rows
+    from map2d.models import gabor2d
+    from map2d.simulate import simulate_session
+    from map2d.spectral import fourier_at
+
+    s, _ = simulate_session(n_cells=2, minutes=4, responses="traces", seed=5, sparse_rate_hz=10.0,
+                            flashed_minutes=3, flashed_rate_hz=10.0, repeats=0, cell_types=["simple", "simple"])
+    grid, sn, g = s.sparse_noise.grid, s.sparse_noise, s.gratings
+    par = (grid.center_x_deg + 2, grid.center_y_deg - 1, 3.0, 4.0, 30.0, 0.08, 20.0, 1.0)
+    n, d = 8, grid.dx_deg
+    fine = Grid(ny=grid.ny * n, nx=grid.nx * n, center_x_deg=grid.center_x_deg,
+                center_y_deg=grid.center_y_deg, dx_deg=d / n, dy_deg=d / n)
+    fx, fy = fine.mesh_deg()
+    kern = gabor2d(fx, fy, *par) * (d / n) ** 2
+    pix = kern.reshape(grid.ny, n, grid.nx, n).sum(axis=(1, 3))       # the kernel over each pixel
+    drive_sn = np.einsum("tij,ij->t", sn.frames.astype(float), pix)
+    rows = np.flatnonzero(flashed_rows(g))
+    rows = rows[np.argsort(g.onset_s[rows])]
+    h = fourier_at(gabor2d(fx, fy, *par), fine, g.orientation_deg[rows], g.sf_cpd[rows], g.phase_origin_deg)
+    drive_gr = g.contrast[rows] * np.real(h * np.exp(1j * np.deg2rad(g.phase_deg[rows])))
+
+    def respond(drive, lobes):
+        r = np.zeros_like(drive)
+        for lag, a in enumerate(lobes):
+            r[lag:] += a * drive[:drive.size - lag]
+        return r
+
+    r_sn, r_gr = respond(drive_sn, (0.0, 1.0, -0.8)), respond(drive_gr, (0.0, 0.8, -1.0))
+    t_sn, t_gr = sn.times_s, g.onset_s[rows]
+    times = np.arange(0, max(t_gr[-1], t_sn[-1]) + 5, 1 / 40.0)
+    vals = np.zeros((2, times.size))
+    for tt, rr, cells in ((t_sn, r_sn, (0, 1)), (t_gr, r_gr, (0,))):
+        i = np.searchsorted(tt, times, side="right") - 1
+        ok = (i >= 0) & (times < tt[np.maximum(i, 0)] + 0.1)
+        for c in cells:
+            vals[c, ok] = rr[i[ok]]
+    vals += 0.3 * np.abs(r_sn).std() * np.random.default_rng(0).normal(size=vals.shape)
+    s.responses = Traces(values=vals, times_s=times)
+    return s
+
+
+def test_biphasic_cell_agrees_and_silence_gets_no_verdict():
+    """Issue 14, effects 2 and 3. Before: the linear biphasic cell scored agreement 0.00, gain 0 (clipped),
+    phase error 176 deg and linear = False; the cell silent to gratings was called not linear
+    ("agreement 0.00 < 0.50"). After: the two time courses are compared lag by lag
+    (time_course_sign -1), agreement >= 0.95 with phase error <= 15 deg and linear = True; the silent
+    cell's call is empty with the reason "no grating response"."""
+    an = analyze_session(_biphasic_session(), trace_decay="off", n_shuffles=100)
+    c = an.cells
+    assert c["responsive"] == [True, True]
+    assert c["time_course_sign"][0] == -1.0
+    assert c["agreement"][0] >= 0.95 and c["agreement_gain"][0] > 0
+    assert c["phase_error_deg"][0] <= 15.0
+    assert c["linear"][0] is True
+    assert c["linear"][1] is None and c["linear_reason"][1] == "no grating response"

@@ -182,9 +182,12 @@ def test_phase_invariant_responses_disagree():
     res = forward_agreement(np.stack([pred, predict_gratings(odd, GRID, ORI, SFS, ORIGIN)]),
                             np.stack([measured, measured]))
     assert np.all(res["agreement"] <= 0.3)
-    # (c) opposite sign: the one gain is non-negative, so an inverted surface scores 0
+    # (c) opposite sign: the gain keeps its sign (-1) instead of being clipped to 0 (issue 14); the
+    # linearity call then fails the cell for the sign, not for a made-up agreement of 0
     res = forward_agreement(pred.ravel(), -pred.ravel())      # 1-D: one cell, 0-d results
-    assert float(res["gain"]) == 0.0 and float(res["agreement"]) == 0.0
+    assert float(res["gain"]) == pytest.approx(-1.0) and float(res["agreement"]) == pytest.approx(1.0)
+    lin, why = linearity_call([float(res["agreement"])], gain=[float(res["gain"])])
+    assert lin[0] is False and "opposite sign" in why[0]
 
 
 def test_agreement_missing_conditions_and_empty_cells():
@@ -429,3 +432,39 @@ def test_pixel_box_transfer_is_the_fourier_sum_ratio_of_a_pixel_averaged_map():
     assert np.all(np.abs(h_pix - h_bare)[strong].max() > 0.02 * np.max(np.abs(h_bare)))
     # beyond min_value (far past Nyquist) no correction
     assert float(pixel_box_transfer(GRID, 0.0, 1.5 / GRID.dx_deg)) == 1.0
+
+
+def test_forward_prediction_above_the_grid_nyquist_uses_the_model_spectrum():
+    """Issue 14, effect 1: 4-deg pixels, a Gabor of 0.08 cpd, a perfect (noiseless, pixel-integrated)
+    map and gratings to 0.32 cpd. The sampled map's Fourier sum over the pixel box (the old forward
+    prediction) mirrors the spectrum beyond Nyquist (0.125 cpd): |H| 63.5 at 165 deg, 0.16 cpd where
+    the kernel's transform is < 0.01, and the agreement of a perfect map with the truth is only 0.69.
+    The closed-form spectrum of the fitted model (here the true parameters) agrees to >= 0.9999."""
+    from map2d.reconcile import forward_prediction, pixel_box_transfer
+    from map2d.spectral import gabor_spectrum
+    d, n = 4.0, 20
+    g = Grid(ny=12, nx=16, center_x_deg=0.0, center_y_deg=0.0, dx_deg=d, dy_deg=d)
+    u = ((np.arange(n) + 0.5) / n - 0.5) * d
+    x = g.x_deg[None, :, None, None] + u[None, None, None, :]
+    y = g.y_deg[:, None, None, None] + u[None, None, :, None]
+    par = (2.0, -1.0, 6.0, 8.0, 30.0, 0.08, 20.0, 1.0)
+    pix = gabor2d(x, y, *par).mean(axis=(2, 3))                  # the kernel averaged over each pixel
+    ori, sf = np.arange(12) * 15.0, np.array([0.02, 0.04, 0.08, 0.12, 0.16, 0.24, 0.32])
+    truth = gabor_spectrum(ori[:, None], sf[None], *par, origin_deg=(0.0, 0.0))
+    old = predict_gratings(pix, g, ori, sf, (0.0, 0.0)) / pixel_box_transfer(g, ori[:, None], sf[None])
+    assert abs(old[11, 4]) == pytest.approx(63.5, abs=0.5) and abs(truth[11, 4]) < 0.01
+    assert forward_agreement(old[None], truth[None])["agreement"][0] == pytest.approx(0.69, abs=0.01)
+    fits = {"model": np.array(["gabor"], object), "center_x_deg": [2.0], "center_y_deg": [-1.0],
+            "amplitude": [1.0], "gabor_sigma_u_deg": [6.0], "gabor_sigma_v_deg": [8.0],
+            "gabor_orientation_deg": [30.0], "gabor_sf_cpd": [0.08], "gabor_phase_deg": [20.0]}
+    new, sampled = forward_prediction(fits, [True], pix[None], g, ori, sf, (0.0, 0.0))
+    np.testing.assert_allclose(new[0], truth, atol=1e-9)
+    assert forward_agreement(new, truth[None])["agreement"][0] >= 0.9999
+    # the sampled-map diagnostic is kept inside the Nyquist band only, where it is close to the truth
+    inside = np.isfinite(sampled[0])
+    assert inside[:, :3].all() and not inside[:, 5:].any()     # per axis: 0.16 cpd at 45 deg is inside
+    assert forward_agreement(sampled, truth[None])["agreement"][0] >= 0.999
+    # a missing fit (e.g. rejected: NaN parameters) and no usable map: no prediction at all
+    fits["gabor_sf_cpd"] = [np.nan]
+    none, _ = forward_prediction(fits, [True], np.full((1,) + g.shape, np.nan), g, ori, sf, (0.0, 0.0))
+    assert np.isnan(none).all()

@@ -153,3 +153,45 @@ def test_polar_area_weights_undefined_and_bad_input():
         polar_area_weights([0.0, 90.0], [0.2, 0.2])
     with pytest.raises(ValueError, match="log"):
         polar_area_weights([0.0, 90.0], [0.0, 0.2], sf_axis="log")
+
+
+def test_closed_form_model_spectra_match_reference_transforms():
+    """The closed-form spectra (Bracewell 2000: Gaussian pair, shift and modulation theorems) against
+    the brute-force grating dot product of finely sampled kernels, and the Gabor against the kernel of
+    skimage.filters.gabor_kernel (a reference implementation of the Gabor function)."""
+    from skimage.filters import gabor_kernel
+
+    from map2d.models import dog2d, gabor2d, gaussian2d
+    from map2d.spectral import dog_spectrum_at, gabor_spectrum, gaussian_spectrum
+    fine = Grid(ny=361, nx=361, center_x_deg=1.0, center_y_deg=-0.5, dx_deg=0.15, dy_deg=0.15)
+    x, y = fine.mesh_deg()
+    ori = np.array([0.0, 35.0, 100.0, 250.0])
+    sf = np.array([0.04, 0.16, 0.32, 0.2])
+    cases = [
+        (gabor2d(x, y, 2.0, -1.0, 3.0, 4.0, 30.0, 0.16, 40.0, 1.5),
+         gabor_spectrum(ori, sf, 2.0, -1.0, 3.0, 4.0, 30.0, 0.16, 40.0, 1.5, ORIGIN)),
+        (dog2d(x, y, 2.0, -1.0, 1.0, 2.0, 0.2, 4.0),
+         dog_spectrum_at(ori, sf, 2.0, -1.0, 1.0, 2.0, 0.2, 4.0, ORIGIN)),
+        (gaussian2d(x, y, 2.0, -1.0, 4.0, 2.0, 30.0, 2.0),
+         gaussian_spectrum(ori, sf, 2.0, -1.0, 4.0, 2.0, 30.0, 2.0, ORIGIN)),
+    ]
+    for kernel, closed in cases:
+        ref = brute_force(kernel, fine, ori, sf, ORIGIN)
+        np.testing.assert_allclose(closed, ref, atol=1e-6 * np.abs(ref).max())
+    # skimage's Gabor on a unit pixel grid: exp(-(x'^2/sx^2 + y'^2/sy^2)/2) exp(i(2 pi f x' + offset))
+    # / (2 pi sx sy), x' = x cos(theta) + y sin(theta); theta = 0, so the row direction does not matter
+    sk = gabor_kernel(0.1, theta=0.0, sigma_x=4.0, sigma_y=6.0, offset=0.7, n_stds=5).real
+    ny, nx = sk.shape
+    unit = Grid(ny=ny, nx=nx, center_x_deg=0.0, center_y_deg=0.0, dx_deg=1.0, dy_deg=1.0)
+    want = brute_force(sk, unit, ori[:3], sf[:3], (0.0, 0.0))
+    got = gabor_spectrum(ori[:3], sf[:3], 0.0, 0.0, 4.0, 6.0, 0.0, 0.1, np.rad2deg(0.7),
+                         1.0 / (2 * np.pi * 4.0 * 6.0), (0.0, 0.0))
+    np.testing.assert_allclose(got, want, atol=1e-6 * np.abs(want).max())
+
+
+def test_nyquist_mask_marks_half_a_cycle_per_pixel():
+    from map2d.spectral import nyquist_mask
+    g = Grid(ny=4, nx=4, center_x_deg=0.0, center_y_deg=0.0, dx_deg=5.0, dy_deg=5.0)
+    # 5-deg pixels: Nyquist 0.1 cpd along each axis (1 / (2 spacing), sampling theorem)
+    assert nyquist_mask(g, [0.0, 0.0, 45.0, 45.0], [0.1, 0.11, 0.14, 0.15]).tolist() == [True, False, True,
+                                                                                        False]

@@ -24,15 +24,18 @@ processes when there are many. 95 % confidence intervals come from the covarianc
 ``s^2 (J^T J)^-1`` (``s^2`` the residual variance) with Student-t quantiles. A quantity
 that the data cannot give (too few points, a failed fit, a peak outside the tested range) is NaN.
 
-Selectivity: circular variance ``CV = 1 - |sum r exp(2 i theta)| / sum r`` and
-``OSI = (R_pref - R_orth) / (R_pref + R_orth)`` (Ringach, Shapley & Hawken 2002); negative responses
-(below the blank or spontaneous level) are set to 0 first (common practice).
+Selectivity: circular variance ``CV = 1 - |sum r exp(2 i theta)| / sum r`` (Ringach, Shapley & Hawken
+2002, who define this measure) and ``OSI = (R_pref - R_orth) / (R_pref + R_orth)`` (common practice,
+e.g. in mouse visual cortex, Niell & Stryker 2008, cited from memory; it is not the measure of Ringach
+et al.); negative responses (below the blank or spontaneous level) are set to 0 first (common practice).
 
 References
 ----------
 Burnham KP, Anderson DR (2002) Model Selection and Multimodel Inference, 2nd ed. Springer.
 Enroth-Cugell C, Robson JG (1966) The contrast sensitivity of retinal ganglion cells of the cat.
 J Physiol 187:517-552.
+Niell CM, Stryker MP (2008) Highly selective receptive fields in mouse visual cortex. J Neurosci
+28:7520-7536.
 Ringach DL, Shapley RM, Hawken MJ (2002) Orientation selectivity in macaque V1: diversity and laminar
 dependence. J Neurosci 22:5639-5651.
 Skottun BC et al. (1991) Classifying simple and complex cells on the basis of response modulation.
@@ -170,7 +173,9 @@ def osi(theta_deg, r):
     """Orientation selectivity index ``(R_pref - R_orth) / (R_pref + R_orth)`` from sampled responses.
 
     ``R_pref`` is the largest response, ``R_orth`` the response at the sampled orientation nearest
-    to ``pref + 90`` (modulo 180). Negative responses are set to 0 (Ringach, Shapley & Hawken 2002).
+    to ``pref + 90`` (modulo 180). Negative responses are set to 0. The index is common practice
+    (e.g. Niell & Stryker 2008, cited from memory); Ringach, Shapley & Hawken (2002) define the
+    circular variance (:func:`circular_variance`), not this index.
 
     Examples
     --------
@@ -1037,7 +1042,8 @@ TUNING_COLUMNS = (
     "cell", "grating_responsive", "tuning_source", "pref_orientation_deg", "pref_orientation_ci_halfwidth_deg",
     "orientation_hwhh_deg", "orientation_hwhh_ci_halfwidth_deg", "pref_sf_cpd", "pref_sf_ci_low_cpd",
     "pref_sf_ci_high_cpd", "sf_bandwidth_oct", "sf_bandwidth_ci_halfwidth_oct", "circular_variance", "osi",
-    "pref_direction_deg", "dsi", "f1_f0", "grating_class", "flashed_peak_lag_s", "flashed_p_value",
+    "pref_direction_deg", "dsi", "f1_f0", "f1_f0_ci_low", "f1_f0_ci_high", "f1_f0_simple_p_value",
+    "grating_class", "flashed_peak_lag_s", "flashed_p_value",
     "drifting_p_value", "ori_fit_baseline", "ori_fit_amplitude", "ori_fit_kappa", "ori_fit_r2",
     "sf_model", "sf_fit_curve", "sf_fit_baseline", "sf_fit_amplitude", "sf_fit_sigma_oct", "sf_fit_sigma_cpd",
     "sf_fit_rc_deg", "sf_fit_r2",
@@ -1139,7 +1145,9 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
     Orientation and SF tuning come from the flashed sequence when the cell responds significantly
     to it (its finer orientation x SF sampling and phase coverage make it the natural choice), else
     from drifting gratings when it responds to those; ``tuning_source`` says which. F1/F0, the
-    simple/complex class, direction preference and DSI come from drifting gratings only. A cell
+    simple/complex class, direction preference and DSI come from drifting gratings only; F1/F0 comes
+    with its bootstrap interval (``f1_f0_ci_low``, ``f1_f0_ci_high``) and the bootstrap p of F1/F0 > 1
+    (``f1_f0_simple_p_value``), and ``grating_class`` is empty unless that interval excludes 1. A cell
     without a significant response to any grating gets empty values; a responsive cell whose
     orientation fit does not beat a constant (F test, p >= 0.01, e.g. a centre-surround cell), or whose
     flashed-grating circular variance is above :data:`MAX_CIRCULAR_VARIANCE_ORIENTED`, gets an empty
@@ -1195,7 +1203,7 @@ def _may_start_processes():
 
 _FLASHED_FIELDS = ("cell_ids", "p_value", "responsive", "peak_lag_s", "peak_response")
 _DRIFTING_FIELDS = ("cell_ids", "p_value", "responsive", "f1_f0", "simple", "dsi", "pref_direction_deg",
-                    "pref_index", "response")
+                    "pref_index", "response", "f1_f0_ci_low", "f1_f0_ci_high", "f1_f0_p_simple", "grating_class")
 
 
 def _flashed_view(fl):
@@ -1205,7 +1213,11 @@ def _flashed_view(fl):
 
 
 def _drifting_view(dr):
-    v = SimpleNamespace(**{k: np.asarray(getattr(dr, k)) for k in _DRIFTING_FIELDS})
+    n = np.asarray(dr.cell_ids).size
+    defaults = {"f1_f0_ci_low": np.full(n, np.nan), "f1_f0_ci_high": np.full(n, np.nan),
+                "f1_f0_p_simple": np.full(n, np.nan), "grating_class": np.full(n, "", object)}
+    v = SimpleNamespace(**{k: np.asarray(getattr(dr, k) if getattr(dr, k, None) is not None else defaults[k])
+                           for k in _DRIFTING_FIELDS})
     v.directions_deg, v.sfs_cpd = np.asarray(dr.directions_deg), np.asarray(dr.sfs_cpd)
     return v
 
@@ -1258,7 +1270,11 @@ def _tuning_chunk(flashed, drifting, cell_ids):
             row["tuning_source"] = "drifting" if curves is not None else ""
         if dr_resp:
             row["f1_f0"] = float(drifting.f1_f0[di])
-            row["grating_class"] = "simple" if drifting.simple[di] else "complex"
+            row["f1_f0_ci_low"] = float(drifting.f1_f0_ci_low[di])
+            row["f1_f0_ci_high"] = float(drifting.f1_f0_ci_high[di])
+            row["f1_f0_simple_p_value"] = float(drifting.f1_f0_p_simple[di])
+            # a class only when the bootstrap interval of F1/F0 excludes the criterion 1
+            row["grating_class"] = str(drifting.grating_class[di])
             row["dsi"] = float(drifting.dsi[di])
             dc = _drifting_curves(drifting, di)
             if dc is not None:
