@@ -12,7 +12,8 @@ regenerate the page from the repository root::
 
 Naming rules (tested): every quantity ends in its unit (``_deg``, ``_s``, ``_cpd``, ``_oct``, ``_hz``);
 the ends of a 95 % interval are ``<quantity>_ci_low_<unit>`` and ``<quantity>_ci_high_<unit>``; the
-half-width of a symmetric interval is ``<quantity>_ci_halfwidth_<unit>``. Numbers without a unit
+half-width of a symmetric interval is ``<quantity>_ci_halfwidth_<unit>`` (``<quantity>_ci_low`` etc. for a
+number without unit). Numbers without a unit
 (p-values, indices, ratios, scores) and values in the response's own unit (spikes/s, or the traces'
 unit, e.g. dF/F) carry no suffix; the table says which.
 """

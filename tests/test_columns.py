@@ -79,7 +79,9 @@ def test_names_follow_the_rules():
             else:
                 assert not re.search(r"_(deg|s|cpd|oct|hz)$", c.name), f"{c.name}: suffix but unit {c.unit}"
             assert "ci95" not in c.name
-            if "_ci_" in c.name:
+            if "_ci_" in c.name and c.unit == "1":      # an interval of a number without unit
+                assert re.search(r"_ci_(low|high|halfwidth)$", c.name), c.name
+            elif "_ci_" in c.name:
                 assert re.search(r"_ci_(low|high|halfwidth)_(deg|s|cpd|oct|hz)$", c.name), c.name
             if c.name.endswith("_p") or "p_value" in c.name:
                 assert c.name.endswith("p_value"), c.name
