@@ -69,6 +69,9 @@ def build_parser() -> argparse.ArgumentParser:
     gr.add_argument("--start-s", type=float, default=0.0, help="onset of the first presentation (default 0)")
     gr.add_argument("--phase-origin-deg", type=float, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
                     help="phase origin (xc, yc) in degrees (default 0 0)")
+    gr.add_argument("--aperture-deg", type=float, nargs=3, default=None, metavar=("X", "Y", "DIAMETER"),
+                    help="show the gratings only in this circle (centre azimuth, elevation and diameter in "
+                         "degrees; grey outside) when rendering; stored in stimulus.json (default: full screen)")
     gr.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     _add_render_args(gr)
     _add_common(gr)
@@ -137,6 +140,36 @@ def build_parser() -> argparse.ArgumentParser:
                           "are still written)")
     _add_common(bat)
 
+    # -- live ------------------------------------------------------------------------------------
+    w = sub.add_parser("watch", help="live maps while a recording appends to a session folder",
+                       description="Follow DIR (sparse noise written by map2d stimulus; frame_times.txt and "
+                                   "spikes.txt appended by the recording, formats in docs/live.md), update "
+                                   "every cell's maps as data arrive, show them in DIR/live.html (reloads "
+                                   "itself) and in the terminal, and suggest a grating aperture. When no data "
+                                   "arrive for --idle-s seconds (or on Ctrl-C) write the session into DIR and "
+                                   "the offline maps (as map2d maps) into --out.")
+    w.add_argument("folder", type=Path, metavar="DIR", help="the folder the recording writes into")
+    w.add_argument("--out", type=Path, default=None, help="results folder for the final maps (default DIR/maps)")
+    w.add_argument("--page", type=Path, default=None, help="live page (default DIR/live.html)")
+    w.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s", help="longest lag in seconds (default 0.2)")
+    w.add_argument("--idle-s", type=float, default=60.0, help="end after this many seconds without data (default 60)")
+    w.add_argument("--poll-s", type=float, default=0.5, help="seconds between reads of the files (default 0.5)")
+    w.add_argument("--refresh-s", type=float, default=2.0, help="seconds between page updates (default 2)")
+    w.add_argument("--summary-s", type=float, default=10.0, help="seconds between terminal lines (default 10)")
+    w.add_argument("--cells", type=int, nargs="+", default=None, metavar="ID",
+                   help="cells whose fields the aperture covers (default: every responsive cell)")
+    w.add_argument("--seed", type=int, default=0, help="seed for the final shuffles (default 0)")
+    w.add_argument("--no-fits", action="store_true", help="final maps without model fits (faster)")
+    _add_common(w)
+    rp = sub.add_parser("replay", help="write a session into a folder as a recording would (tests, demos)",
+                        description="Write SESSION's sparse noise into DIR, then append its frame onsets and "
+                                    "spikes to DIR/frame_times.txt and DIR/spikes.txt at --speed times real time.")
+    rp.add_argument("session", type=Path, help="session folder with sparse noise and spikes")
+    rp.add_argument("folder", type=Path, metavar="DIR", help="folder to write into (created)")
+    rp.add_argument("--speed", type=float, default=1.0, help="times real time (default 1; inf = at once)")
+    rp.add_argument("--seconds", type=float, default=None, help="replay only this much recording time")
+    _add_common(rp)
+
     demo = sub.add_parser("demo", help="run the whole job on the shipped demo session",
                           description="Analyse data_demo/ (simulated) and write a report.")
     demo.add_argument("--out", type=Path, default=Path("map2d_demo_results"),
@@ -186,6 +219,11 @@ def _dispatch(args) -> int:
                                   max_lag_s=args.max_lag_s, seed=args.seed, workers=args.workers,
                                   memory_limit=args.memory_limit, report=not args.no_report,
                                   quiet=args.quiet, trace_decay=args.trace_decay)
+    if args.command == "watch":
+        return pipeline.run_watch(args)
+    if args.command == "replay":
+        from .replay import replay_session
+        return replay_session(args.session, args.folder, speed=args.speed, seconds=args.seconds, quiet=args.quiet)
     if args.command == "demo":
         return pipeline.run_demo(args.out, quiet=args.quiet)
     raise AssertionError(args.command)

@@ -58,6 +58,8 @@ def run_stimulus(args) -> int:
     ``frames.tif``, frames ``--render-start`` .. ``+ --render-frames`` at display resolution. The folder
     is written atomically (see :func:`results_folder`). Bad arguments raise :class:`BadInput`.
     """
+    import math
+
     import numpy as np
 
     from .contract import write_stimulus
@@ -87,6 +89,9 @@ def run_stimulus(args) -> int:
                 raise BadInput("--" + name.replace("_", "-"), None, f"must be >= 1, got {getattr(args, name)}")
         if args.render_start < 0:
             raise BadInput("--render-start", None, f"must be >= 0, got {args.render_start}")
+    ap = getattr(args, "aperture_deg", None)
+    if ap is not None and not (all(math.isfinite(v) for v in ap) and ap[2] > 0):
+        raise BadInput("--aperture-deg", None, f"needs a finite centre and a positive diameter, got {list(ap)}")
     try:
         sparse, table = None, None
         if kind == "sparse-noise":
@@ -129,7 +134,8 @@ def run_stimulus(args) -> int:
             if first >= all_times.size:
                 raise BadInput("--render-start", None, f"must be below the {all_times.size} frames")
             times = all_times[first:first + count]
-            frames = rnd.render_gratings(table, display, times, scale=args.render_scale)
+            frames = rnd.render_gratings(table, display, times, scale=args.render_scale,
+                                         aperture_deg=getattr(args, "aperture_deg", None))
         info["rendered"] = {"file": rnd.FRAMES_FILE, "first_frame": int(first), "frames": int(frames.shape[0]),
                             "scale": int(args.render_scale), "shape": list(frames.shape),
                             "times_s": [float(t) for t in times]}
@@ -509,6 +515,23 @@ def run_batch(sources, out, **kwargs) -> int:
     process, then ``sessions.csv``, ``population.png`` and ``batch.csv``)."""
     from .batch import run_batch as _run_batch
     return _run_batch(sources, out, **kwargs)
+
+
+def run_watch(args) -> int:
+    """``map2d watch DIR``: :func:`map2d.watch.watch_folder` with the command's options."""
+    import math
+
+    from .watch import watch_folder
+    for name in ("idle_s", "poll_s", "refresh_s", "summary_s"):
+        v = getattr(args, name)
+        if not (math.isfinite(v) and v > 0):
+            raise BadInput("--" + name.replace("_", "-"), None, f"must be a positive number of seconds, got {v}")
+    if not (math.isfinite(args.max_lag_s) and args.max_lag_s >= 0):
+        raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {args.max_lag_s}")
+    watch_folder(args.folder, out=args.out, page=args.page, max_lag_s=args.max_lag_s, seed=args.seed,
+                 idle_s=args.idle_s, poll_s=args.poll_s, refresh_s=args.refresh_s, summary_s=args.summary_s,
+                 cells=args.cells, fits=not args.no_fits, quiet=args.quiet)
+    return 0
 
 
 DEMO_FOLDER = "data_demo"

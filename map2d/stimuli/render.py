@@ -113,7 +113,7 @@ def grating_frame_times(table: GratingTable, rate_hz: float = 60.0) -> np.ndarra
     return np.concatenate(parts) if parts else np.empty(0)
 
 
-def render_gratings(table: GratingTable, display: Display, times_s, scale: int = 1) -> np.ndarray:
+def render_gratings(table: GratingTable, display: Display, times_s, scale: int = 1, aperture_deg=None) -> np.ndarray:
     """Grating frames as seen on the screen at the given times.
 
     Caution: flashing and high-contrast patterns can trigger seizures in photosensitive people.
@@ -121,6 +121,7 @@ def render_gratings(table: GratingTable, display: Display, times_s, scale: int =
     At time ``t`` the presentation shown is the latest one with ``onset <= t < offset``; when none is,
     the frame is grey. The pixel value is ``round(128 + 127 s)`` with ``s`` the contract's formula
     (:func:`map2d.geometry.grating_image`), evaluated at each screen pixel's exact direction.
+    ``aperture_deg = (x, y, diameter)`` shows the gratings only inside that circle (grey outside).
 
     Returns
     -------
@@ -130,6 +131,12 @@ def render_gratings(table: GratingTable, display: Display, times_s, scale: int =
     t = np.atleast_1d(np.asarray(times_s, dtype=float))
     az, el = screen_mesh_deg(display, scale)
     out = np.full((t.size,) + az.shape, GREY, dtype=np.uint8)
+    inside = None
+    if aperture_deg is not None:
+        ax, ay, ad = (float(v) for v in aperture_deg)
+        if not (np.isfinite([ax, ay, ad]).all() and ad > 0):
+            raise ValueError(f"aperture_deg must be (x, y, diameter > 0), got {tuple(aperture_deg)}")
+        inside = np.hypot(az - ax, el - ay) <= ad / 2
     on = np.asarray(table.onset_s, float)
     off = np.asarray(table.offset_s, float)
     for n, tn in enumerate(t):
@@ -140,7 +147,8 @@ def render_gratings(table: GratingTable, display: Display, times_s, scale: int =
         s = grating_image(az, el, table.orientation_deg[row], table.sf_cpd[row], table.phase_deg[row],
                           contrast=table.contrast[row], origin_deg=table.phase_origin_deg,
                           tf_hz=table.tf_hz[row], t_since_onset_s=tn - on[row])
-        out[n] = np.clip(np.rint(GREY + 127.0 * s), 0, 255).astype(np.uint8)
+        frame = np.clip(np.rint(GREY + 127.0 * s), 0, 255).astype(np.uint8)
+        out[n] = frame if inside is None else np.where(inside, frame, np.uint8(GREY))
     return out
 
 
