@@ -105,3 +105,16 @@ def sim_folder(tmp_path_factory, small_spikes_session) -> Path:
 def sim_traces_folder(tmp_path_factory, small_traces_session) -> Path:
     """Folder holding ``small_traces_session``; its truth is ``Path(str(folder) + ".truth.json")``."""
     return _write(tmp_path_factory, "session_traces", *small_traces_session)
+
+
+@pytest.fixture(scope="session")
+def browser():
+    """Headless Chromium driven by selenium (:mod:`tests.browser`); skips, saying why, only when the
+    browser cannot be installed."""
+    from browser import start_browser
+
+    b, reason = start_browser()
+    if b is None:
+        pytest.skip(f"no browser: {reason}")
+    yield b
+    b.quit()

@@ -41,6 +41,7 @@ def test_demo_writes_a_complete_results_folder(tmp_path, capsys):
         assert tif.series[0].axes == "TZCYX"
         assert tif.series[0].shape[1:3] == (24, 3)
     html = (out / "report.html").read_text(encoding="utf-8")
-    assert html.count("data:image/png;base64,") >= 5
+    assert all(f'id="cell-{int(r["cell"])}"' in html for r in rows)      # every cell reachable
+    assert 'id="m2d-cells"' in html and 'id="fov-map"' in html
     fov = tifffile.imread(out / "fov.tif")
     assert np.isnan(fov[0, 0, 0])                          # background is NaN

@@ -1,56 +1,90 @@
-"""``report.html``: one self-contained page (figures embedded as PNG data URIs, no scripts, no links out).
+"""``report.html``: one self-contained page for a session of any size (no network, no server, no files
+beside it).
 
-Layout: what the session holds and what was absent, counts, notes, the summary figures, a panel per
-cell (key values beside the figure) for the cells that respond, and the whole ``cells.csv`` table.
-Figures come from :mod:`map2d.report.figures`.
+Layout: what the session holds and what was absent, counts that account for every cell, notes, the
+population at a glance (receptive-field mosaic coloured by the linearity call, preferred orientation
+and SF, histograms with their thresholds), for imaging the field-of-view maps with ROI numbers and the
+retinotopy check, then the cell index (sortable, filterable; row ``id="cell-<id>"`` for every cell) with
+the cell viewer (key values beside the figures; previous / next), and the whole ``cells.csv`` table.
+
+Every figure is drawn in the browser by :file:`page.js` (SVG and canvas, plain JavaScript embedded in
+the page) from the small arrays of :mod:`map2d.report.data`; a cell's arrays are decoded and drawn only
+when it is opened. Writing the page costs a few milliseconds per cell (see ``benchmarks/README.md``).
 """
 
 from __future__ import annotations
 
 import html
+import json
 import math
 from pathlib import Path
 
 import numpy as np
 
-from .._forked import ForkedCall
+from . import data as D
 from . import figures as F
 
-__all__ = ["write_report", "render_report", "REPORT_FILE", "DEFAULT_MAX_CELLS"]
+__all__ = ["write_report", "render_report", "REPORT_FILE"]
 
 REPORT_FILE = "report.html"
-#: Most cell panels in one report. Measured on a 500-cell simulated session (2-core machine, shared):
-#: about 0.25 s of CPU per panel, so 30 panels plus the summary and table take about 8 s of CPU (about
-#: 4 s on two cores: half of the panels are drawn in a forked child process).
-DEFAULT_MAX_CELLS = 30
+_JS_FILE = Path(__file__).with_name("page.js")
 
 _CSS = """
 body { font-family: system-ui, -apple-system, 'Segoe UI', sans-serif; margin: 0; color: #1f2328;
-       background: #f6f5f1; }
-header { background: #24414a; color: #f6f5f1; padding: 18px 28px; }
+       background: #f6f5f1; font-size: 14px; }
+header { background: #24414a; color: #f6f5f1; padding: 16px 28px; }
 header h1 { margin: 0 0 4px 0; font-size: 22px; font-weight: 600; }
-header p { margin: 0; font-size: 13px; opacity: 0.85; }
-main { padding: 8px 28px 40px 28px; max-width: 1500px; }
-h2 { font-size: 18px; margin: 28px 0 8px 0; border-bottom: 2px solid #c9c3b4; padding-bottom: 4px; }
-h3 { font-size: 15px; margin: 0 0 6px 0; }
+header p { margin: 0; font-size: 13px; opacity: 0.9; }
+header nav a { color: #f6f5f1; margin-right: 16px; font-size: 13px; }
+main { padding: 6px 28px 40px 28px; }
+h2 { font-size: 18px; margin: 26px 0 8px 0; border-bottom: 2px solid #c9c3b4; padding-bottom: 4px; }
+h3 { font-size: 15px; margin: 0; }
 p, li { font-size: 14px; line-height: 1.45; max-width: 1100px; }
-table { border-collapse: collapse; font-size: 12.5px; }
+table { border-collapse: collapse; font-size: 13px; }
 td, th { padding: 2px 8px; border-bottom: 1px solid #e0dccf; text-align: left; vertical-align: top; }
 th { background: #ebe7dc; font-weight: 600; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
-.facts { display: flex; flex-wrap: wrap; gap: 28px; }
+.facts { display: flex; flex-wrap: wrap; gap: 28px; align-items: flex-start; }
 .absent { color: #7a3b2e; }
-figure { margin: 10px 0 18px 0; background: #ffffff; padding: 8px; border: 1px solid #ddd8ca;
-         display: inline-block; }
-figure img { display: block; max-width: 100%; height: auto; }
-figcaption { font-size: 12.5px; color: #444; max-width: 950px; margin-top: 4px; }
-section.cell { display: flex; flex-wrap: wrap; gap: 14px; align-items: flex-start; background: #fbfaf7;
-               border: 1px solid #ddd8ca; padding: 10px; margin: 14px 0; }
-section.cell table { min-width: 250px; }
-section.cell figure { margin: 0; }
-nav.cells a { display: inline-block; margin: 0 8px 4px 0; font-size: 13px; color: #24414a; }
-.scroll { overflow: auto; max-height: 640px; border: 1px solid #ddd8ca; background: #ffffff; }
-.scroll table th { position: sticky; top: 0; }
+#population, #retinotopy { display: flex; flex-wrap: wrap; gap: 14px; align-items: flex-start; }
+figure.pop { margin: 0; background: #fff; padding: 8px; border: 1px solid #ddd8ca; width: min-content; }
+figure.pop figcaption { font-size: 13px; color: #333; margin-top: 4px; line-height: 1.35; }
+figure.pop svg { display: block; }
+svg.plot text { font-family: system-ui, -apple-system, 'Segoe UI', sans-serif; fill: #222; }
+svg text.tick { font-size: 11.5px; } svg text.lab { font-size: 12.5px; } svg text.ttl { font-size: 13px; font-weight: 600; }
+svg text.small { font-size: 11.5px; } svg text.note { font-size: 12.5px; font-weight: 600; }
+.pick { cursor: pointer; } .pick:hover { stroke-width: 3; } .pick.picked { stroke: #000; stroke-width: 3.2; }
+#fov-wrap { display: flex; gap: 12px; align-items: flex-start; flex-wrap: wrap; }
+#fov-map canvas { display: block; cursor: pointer; border: 1px solid #999; }
+#fov-props button, .vhead button { font: inherit; font-size: 13px; margin: 0 6px 6px 0; padding: 3px 10px;
+       border: 1px solid #8a8576; background: #fbfaf7; border-radius: 3px; cursor: pointer; }
+#fov-props button.on { background: #24414a; color: #fff; }
+.keys span { display: inline-block; margin: 6px 12px 0 0; font-size: 13px; }
+.keys i { display: inline-block; width: 14px; height: 14px; margin-right: 5px; vertical-align: -2px;
+          border: 1px solid #555; }
+.controls { margin: 6px 0; display: flex; gap: 12px; align-items: center; flex-wrap: wrap; }
+.controls input { font: inherit; width: 360px; padding: 3px 6px; }
+.controls select { font: inherit; }
+#index-scroll { max-height: 330px; overflow: auto; border: 1px solid #ddd8ca; background: #fff;
+                display: inline-block; max-width: 100%; }
+#index th { position: sticky; top: 0; cursor: pointer; white-space: nowrap; user-select: none; }
+#index th[data-sort=up]::after { content: " \\25B2"; } #index th[data-sort=down]::after { content: " \\25BC"; }
+#index td { white-space: nowrap; }
+#index tbody tr { cursor: pointer; } #index tbody tr:hover { background: #eef3f4; }
+#index tbody tr.sel { background: #d7e6ea; }
+#viewer { margin-top: 12px; background: #fbfaf7; border: 1px solid #ddd8ca; padding: 10px; min-height: 200px; }
+.vhead { display: flex; align-items: center; gap: 10px; margin-bottom: 8px; }
+.vhead .hint { color: #666; font-size: 12.5px; }
+.vbody { display: flex; gap: 14px; align-items: flex-start; }
+.facts-box { flex: 0 0 300px; } .facts-box table { width: 300px; }
+.figs { flex: 1 1 auto; min-width: 0; }
+.figrow { display: flex; flex-wrap: wrap; gap: 6px; margin-bottom: 10px; background: #fff;
+          border: 1px solid #e4e0d4; padding: 4px; }
+.rowtitle { flex: 0 0 100%; font-size: 13px; color: #555; }
+.flagged { margin-top: 6px; }
+.scroll { overflow: auto; max-height: 560px; border: 1px solid #ddd8ca; background: #ffffff; }
+.scroll table th { position: sticky; top: 0; white-space: nowrap; }
+.scroll td { white-space: nowrap; max-width: 260px; overflow: hidden; text-overflow: ellipsis; }
 """
 
 
@@ -102,13 +136,6 @@ def _table(rows, header=None, cls=""):
     return "\n".join(out)
 
 
-def _figure(fig_id, fig, caption, alt):
-    data = F.figure_png_base64(fig)
-    cap = f"<figcaption>{_esc(caption)}</figcaption>" if caption else ""
-    return (f'<figure id="{_esc(fig_id)}"><img alt="{_esc(alt)}" '
-            f'src="data:image/png;base64,{data}">{cap}</figure>')
-
-
 # ----------------------------------------------------------------------------------------------
 # sections
 # ----------------------------------------------------------------------------------------------
@@ -155,12 +182,17 @@ def _counts(an):
     gresp = F.column_bool(an, "grating_responsive")
     lin = F.column_bool(an, "linear")
     rows = [("cells", len(an.cell_ids))]
+    has_g = an.flashed is not None or an.drifting is not None
     if an.maps is not None:
         rows.append(("responsive to sparse noise", sum(v is True for v in resp)))
-    if an.flashed is not None or an.drifting is not None:
+    if has_g:
         rows.append(("responsive to gratings", sum(v is True for v in gresp)))
-    if an.maps is not None and (an.flashed is not None or an.drifting is not None):
-        rows.append(("responsive to both", sum(a is True and b is True for a, b in zip(resp, gresp))))
+    if an.maps is not None and has_g:       # four groups that add up to every cell
+        both = sum(a is True and b is True for a, b in zip(resp, gresp))
+        rows += [("\u2003to both", both),
+                 ("\u2003to sparse noise only", sum(a is True and b is not True for a, b in zip(resp, gresp))),
+                 ("\u2003to gratings only", sum(a is not True and b is True for a, b in zip(resp, gresp))),
+                 ("\u2003to neither", sum(a is not True and b is not True for a, b in zip(resp, gresp)))]
     rows += [("called linear", sum(v is True for v in lin)), ("called not linear", sum(v is False for v in lin)),
              ("no linearity call", sum(v is None for v in lin))]
     for col, label in (("polarity", "map polarity"), ("model", "fitted model"),
@@ -213,7 +245,7 @@ def _all_cells_table(an):
 
     cols = list(an.cells.keys())
     n = len(an.cell_ids)
-    out = ['<div class="scroll"><table>',
+    out = ['<div class="scroll"><table id="all-cells">',
            "<tr>" + "".join(f'<th title="{_esc(meaning(c))}">{_esc(c)}</th>' for c in cols) + "</tr>"]
     columns = [an.cells[c] for c in cols]
     for r in range(n):
@@ -222,26 +254,75 @@ def _all_cells_table(an):
             v = col[r] if r < len(col) else None
             t = _cell_text(v)
             num = isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_))
-            cells.append(f'<td class="num">{_esc(t)}</td>' if num else f"<td>{_esc(t)}</td>")
+            if num:
+                cells.append(f'<td class="num">{_esc(t)}</td>')
+            elif len(t) > 30:
+                cells.append(f'<td title="{_esc(t)}">{_esc(t)}</td>')
+            else:
+                cells.append(f"<td>{_esc(t)}</td>")
         out.append("<tr>" + "".join(cells) + "</tr>")
     out.append("</table></div>")
     return "\n".join(out)
 
 
+
+
+def _index_table(an):
+    """The cell index: one row per cell, ``id="cell-<id>"``; ``data-v`` holds the value for sorting."""
+    cols = D.index_columns(an)
+    vals = D.index_values(an, cols)
+    out = ['<div id="index-scroll"><table id="index"><thead><tr>']
+    for c, head, kind, text in cols:
+        out.append(f'<th data-col="{_esc(c)}" data-kind="{kind}" title="{_esc(text)}">{_esc(head)}</th>')
+    out.append("</tr></thead><tbody>")
+    for r, row in enumerate(vals):
+        cid = int(an.cell_ids[r])
+        tds = []
+        for (c, _, kind, _), v in zip(cols, row):
+            if v is None:
+                tds.append('<td data-v=""></td>')
+            elif kind == "bool":
+                tds.append(f'<td data-v="{"true" if v else "false"}">{"yes" if v else "no"}</td>')
+            elif kind in ("num", "int"):
+                tds.append(f'<td class="num" data-v="{v!r}">{_esc(_num(v, "{:.3g}") if kind == "num" else v)}</td>')
+            else:
+                tds.append(f'<td data-v="{_esc(v)}">{_esc(v)}</td>')
+        out.append(f'<tr id="cell-{cid}">' + "".join(tds) + "</tr>")
+    out.append("</tbody></table></div>")
+    return "\n".join(out)
+
+
+def _quick_filters(an):
+    opts = []
+    if an.maps is not None:
+        opts.append(("responsive", "map", (("true", "yes"), ("false", "no"))))
+    if an.flashed is not None or an.drifting is not None:
+        opts.append(("grating_responsive", "gratings", (("true", "yes"), ("false", "no"))))
+    opts.append(("linear", "linear", (("true", "yes"), ("false", "no"), ("none", "no call"))))
+    out = []
+    for col, label, choices in opts:
+        out.append(f'<label>{_esc(label)}: <select class="quick" data-col="{col}"><option value="">any</option>'
+                   + "".join(f'<option value="{v}">{_esc(t)}</option>' for v, t in choices) + "</select></label>")
+    return "".join(out)
+
+
+def _script_json(obj_text):
+    """JSON text safe inside a <script> element: every "<" (only ever inside JSON strings) as \\u003c."""
+    return obj_text.replace("<", "\\u003c")
+
+
 # ----------------------------------------------------------------------------------------------
 # the page
 # ----------------------------------------------------------------------------------------------
-def render_report(analysis, session=None, max_cells="default") -> str:
-    """The whole report as one HTML string.
+def render_report(analysis, session=None) -> str:
+    """The whole report as one HTML string (see the module notes).
 
     Parameters
     ----------
     analysis : map2d.analysis.Analysis
     session : map2d.contract.Session, optional
-        Adds what only the session knows (recording kind, frame count, the loader's notes).
-    max_cells : int or None
-        Most cell panels (:func:`map2d.report.figures.select_cells` chooses which); None for all;
-        by default :data:`DEFAULT_MAX_CELLS`.
+        Adds what only the session knows (recording kind, frame count, the loader's notes, the ROI
+        label image of an imaging session).
 
     Returns
     -------
@@ -249,18 +330,21 @@ def render_report(analysis, session=None, max_cells="default") -> str:
     """
     from .. import __version__
 
-    if isinstance(max_cells, str) and max_cells == "default":
-        max_cells = DEFAULT_MAX_CELLS
     an = analysis
     name = an.session_name or "session"
+    n = len(an.cell_ids)
+    has_fov = session is not None and getattr(session, "rois", None) is not None
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+             '<meta name="viewport" content="width=device-width, initial-scale=1">',
              f"<title>map2d report: {_esc(name)}</title>", f"<style>{_CSS}</style></head><body>",
              f"<header><h1>Receptive fields of {_esc(name)}</h1>"
-             f"<p>map2d {_esc(__version__)} &middot; {len(an.cell_ids)} cells &middot; responses in "
-             f"{_esc(an.unit)}</p></header><main>"]
+             f"<p>map2d {_esc(__version__)} &middot; {n} cells &middot; responses in {_esc(an.unit)}</p>"
+             '<nav><a href="#s-session">session</a><a href="#s-population">population</a>'
+             + ('<a href="#s-fov">field of view</a>' if has_fov else "")
+             + '<a href="#s-cells">cells</a><a href="#s-table">all columns</a></nav></header><main>']
 
     facts, absent = _session_facts(an, session)
-    parts.append("<h2>Session and counts</h2><div class='facts'>")
+    parts.append("<h2 id='s-session'>Session and counts</h2><div class='facts'>")
     parts.append(_table(facts, header=("what", "value")))
     parts.append(_table(_counts(an), header=("cells", "count")))
     parts.append("</div>")
@@ -268,79 +352,63 @@ def render_report(analysis, session=None, max_cells="default") -> str:
     if absent or notes:
         parts.append("<h2>Notes</h2><ul>")
         parts += [f'<li class="absent">{_esc(a)}</li>' for a in absent]
-        parts += [f"<li>{_esc(n)}</li>" for n in notes]
+        parts += [f"<li>{_esc(x)}</li>" for x in notes]
         parts.append("</ul>")
 
-    rows, n_qual = F.select_cells(an, max_cells)
-    # the second half of the cell panels is drawn in a forked child while this process draws the
-    # summary and the first half (rendering is most of the report's time)
-    half = len(rows) // 2 if len(rows) >= _FORK_MIN_PANELS else len(rows)
-    child = _Forked(lambda: _cell_sections(an, rows[half:]), enabled=half < len(rows))
-
-    parts.append("<h2>Summary</h2>")
-    summary = F.summary_figures(an)
+    parts.append("<h2 id='s-population'>Population</h2>")
     if an.maps is None:
         parts.append("<p class='absent'>No receptive-field map over the visual field: the session has no "
                      "sparse noise.</p>")
-    for fig_id, caption, fig in summary:
-        parts.append(_figure(fig_id, fig, caption, alt=fig_id.replace("fig-", "").replace("-", " ")))
-    del summary
+    parts.append('<div id="population"></div>')
+    if has_fov:
+        parts.append("<h2 id='s-fov'>Field of view</h2><p>Each ROI painted with its cell's value (grey: no "
+                     "value; dark: background), numbered with its cell id; click an ROI to open the cell. "
+                     "The same maps are in fov.tif and the fov_*.png files.</p>"
+                     '<div id="fov-props"></div><div id="fov-wrap"><div id="fov-map"></div>'
+                     '<div id="fov-bar"></div></div>'
+                     "<h3 style='margin-top:14px'>Retinotopy</h3><div id=\"retinotopy\"></div>")
 
-    parts.append("<h2>Cells</h2>")
-    if n_qual == 0:
-        parts.append("<p>No cell responds significantly to sparse noise or gratings, so there are no cell "
-                     "panels. Every cell is in the table below.</p>")
-    else:
-        omitted = n_qual - len(rows)
-        text = (f"{n_qual} cells respond to sparse noise or gratings"
-                + (f"; panels for {len(rows)} of them, {omitted} omitted to keep the report quick to make "
-                   "and to read. The panels go to cells responsive to both stimuli first, then to sparse "
-                   "noise only, then to gratings only; within each group the strongest map (signal-to-noise "
-                   "ratio) or grating response (p-value) first." if omitted else "; each has a panel.")
-                + " Panels are in cell-id order; every cell is in the table at the end.")
-        parts.append(f"<p>{_esc(text)}</p>")
-        parts.append("<p>Each panel: maps at the peak lag (colour: change in response after a bright or dark "
-                     "spot on that pixel; outline: fitted receptive field, 1 s.d.) and their time course at the "
-                     "strongest pixel; measured and predicted first-harmonic magnitude |H| over orientation and "
-                     "spatial frequency, and the map rebuilt from the gratings beside the measured map limited "
-                     "to the same band of spatial frequencies; orientation and spatial-frequency tuning (points: "
-                     "measured, line: fit); size tuning predicted from the map for bright disks and annuli; "
-                     "the spread of flashed-grating responses over lag. (n.s.): not significant.</p>")
-        parts.append("<nav class='cells'>" + "".join(
-            f'<a href="#cell-{int(an.cell_ids[r])}">cell {int(an.cell_ids[r])}</a>' for r in rows) + "</nav>")
-        parts += _cell_sections(an, rows[:half])
-        parts += child.result() if half < len(rows) else []
+    parts.append("<h2 id='s-cells'>Cells</h2>")
+    parts.append("<p>Every cell has a row in the index; click a row (or a receptive field, a point or an ROI "
+                 "above) to draw its panel below the index, and step through the rows shown with the "
+                 "previous / next buttons or the keys p / n. Click a heading to sort. Filter with words "
+                 "(any cell text) and conditions on the headings, e.g. <code>agreement&gt;0.5 "
+                 "SF&lt;0.1 polarity=ON-centre</code>. Hover a heading for its meaning.</p>")
+    parts.append('<div class="controls"><input id="filter" type="search" placeholder="filter: words or '
+                 'heading&gt;value, heading=value" aria-label="filter the cell index">'
+                 + _quick_filters(an) + f'<span id="shown">{n} of {n} cells shown</span></div>')
+    parts.append(_index_table(an))
+    parts.append('<section id="viewer" aria-live="polite"><p>Select a cell in the index.</p></section>')
+    parts.append("<p>Panel: maps at the peak lag on one colour scale (change in response after a bright or "
+                 "dark spot on that pixel; outline: fitted receptive field, 1 s.d.; white ring: the pixel of "
+                 "the time course). Measured and predicted first-harmonic magnitude |H| share one colour "
+                 "scale; the prediction is drawn plainly only for cells called linear. The map rebuilt from "
+                 "the gratings holds only the tested orientations and spatial frequencies, so it is "
+                 "band-limited: rings around the field are the missing frequencies, not the cell; it is "
+                 "compared with the measured map limited to the same band. Tuning curves: points with "
+                 "error bars of 1 s.e.m., fitted von Mises curve for orientation, preferred SF with its "
+                 "95% interval (shaded) for SF; the horizontal line is the blank (flashed) or spontaneous "
+                 "(drifting) level, the zero of the responses. (n.s.): not significant.</p>")
+    for r in range(n):
+        cid = int(an.cell_ids[r])
+        parts.append(f'<template id="facts-{cid}">{_table(_cell_facts(an, r))}</template>')
 
-    parts.append("<h2>All cells</h2><p>The contents of cells.csv (empty: not estimated).</p>")
+    parts.append("<h2 id='s-table'>All cells</h2><details><summary>The contents of cells.csv (empty: not "
+                 "estimated; hover a long value to read it whole)</summary>")
     parts.append(_all_cells_table(an))
-    parts.append("</main></body></html>")
+    parts.append("</details></main>")
+    session_json = json.dumps(D.session_payload(an, session), separators=(",", ":"), allow_nan=False)
+    payloads = D.cell_payloads(an)
+    cells_json = "{" + ",".join(f'"{cid}":{txt}' for cid, txt in payloads.items()) + "}"
+    parts.append(f'<script type="application/json" id="m2d-session">{_script_json(session_json)}</script>')
+    parts.append(f'<script type="application/json" id="m2d-cells">{_script_json(cells_json)}</script>')
+    parts.append(f"<script>{_JS_FILE.read_text(encoding='utf-8')}</script>")
+    parts.append("</body></html>")
     return "\n".join(parts)
 
 
-#: Fewest cell panels for which half of them are drawn in a second process.
-_FORK_MIN_PANELS = 6
-
-
-def _cell_sections(an, rows):
-    """The HTML sections (facts and panel) of the cells in ``rows``, drawn on one reused Figure."""
-    out = []
-    if len(rows) == 0:
-        return out
-    panels = F.CellPanels(an)
-    for r in rows:
-        cid = int(an.cell_ids[r])
-        fig = panels.draw(r)
-        out.append(f'<section class="cell" id="cell-{cid}"><div><h3>Cell {cid}</h3>'
-                   + _table(_cell_facts(an, r)) + "</div>"
-                   + _figure(f"fig-cell-{cid}", fig, None, alt=f"panel of cell {cid}") + "</section>")
-    return out
-
-
-_Forked = ForkedCall  # the shared helper (map2d._forked)
-
-
-def write_report(folder, analysis, session=None, max_cells="default") -> Path:
+def write_report(folder, analysis, session=None) -> Path:
     """Write ``report.html`` into ``folder`` and return its path (see :func:`render_report`)."""
     path = Path(folder) / REPORT_FILE
-    path.write_text(render_report(analysis, session, max_cells=max_cells), encoding="utf-8")
+    path.write_text(render_report(analysis, session), encoding="utf-8")
     return path
