@@ -59,6 +59,26 @@ def cyclic_colormap():
     return ListedColormap(cyclic_rgb(256), name="map2d_orientation")
 
 
+#: 64 colours of matplotlib's ``PuOr_r`` (hex, 6 digits each), so that the page needs no matplotlib.
+_SIGNED_HEX = (
+    "2d004b330655390c5e3f12684518714c1f7b522584582e8c5f3a916646976d529c745ea27b6aa88275ad8a7eb39287b9"
+    "9b92c1a39bc7aba3cdb3acd2b9b3d6bfbbdac5c2decbc9e2d1d1e6d7d8eadcddece1e2eee5e7f0eaebf2eff0f4f4f4f6"
+    "f8f5f1f9f1e6faeedcfbead2fce6c8fde3befedeb3fed8a6fed299fdcc8cfdc57ffdbf72fdb965f9b158f4a84cf0a03f"
+    "ea9530e68d23e18417db7d12d47610cd700ec6690cbe630ab75c07b05606a85206a04d079749078f44078740087f3b08"
+)
+#: 64 colours of matplotlib's ``viridis`` (hex, 6 digits each), so that the page needs no matplotlib.
+_MAGNITUDE_HEX = (
+    "44015446075a470d6047136548186a481d6f482374482878472d7b46327e453781443b844240864045883e49893d4e8a"
+    "3a538b38588c365c8d34608d32648e31688e2f6c8e2d708e2c738e2a778e297b8e277f8e26828e24868e238a8d218e8d"
+    "20928c1f968b1f9a8a1f9e891fa18721a58523a98326ad812ab07f2fb47c35b7793bbb7542be714ac16d52c5695ac864"
+    "65cb5e6ece5877d15381d34d8bd64695d840a0da39aadc32b5de2bc0df25cae11fd5e21adfe318eae51af4e61efde725"
+)
+
+
+def _split(hexes):
+    return ["#" + hexes[i:i + 6] for i in range(0, len(hexes), 6)]
+
+
 def _hex(rgb):
     return ["#%02x%02x%02x" % tuple(int(round(255 * v)) for v in row[:3]) for row in rgb]
 
@@ -73,4 +93,4 @@ def lut_hex(name, n=64):
 
 def report_luts():
     """The three look-up tables the page uses: signed, magnitude and cyclic (64 colours each)."""
-    return {"signed": lut_hex("PuOr_r"), "magnitude": lut_hex("viridis"), "cyclic": lut_hex("cyclic")}
+    return {"signed": _split(_SIGNED_HEX), "magnitude": _split(_MAGNITUDE_HEX), "cyclic": lut_hex("cyclic")}
