@@ -1,11 +1,15 @@
 """Command line: argument parsing only. Every command calls a function of the library.
 
-Exit codes: 0 ok, 1 internal error, 2 bad input.
+Exit codes: 0 ok, 1 internal error, 2 bad input or a refusal of the machine (full disk, missing
+permission; the path is named), 130 interrupted (Ctrl-C), 143 stopped by SIGTERM.
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
+import io
+import signal
 import sys
 import warnings
 from pathlib import Path
@@ -236,7 +240,7 @@ def main(argv=None) -> int:
         parser.print_help()
         return 0
     from .contract import InputWarning
-    from .errors import BadInput
+    from .errors import BadInput, Terminated, environment_error
 
     def show_warning(message, category, filename, lineno, file=None, line=None):
         if issubclass(category, InputWarning):
@@ -245,6 +249,10 @@ def main(argv=None) -> int:
             print(warnings.formatwarning(message, category, filename, lineno, line), file=sys.stderr, end="")
 
     warnings.showwarning = show_warning
+    for stream in (sys.stdout, sys.stderr):       # a path that is not UTF-8 never breaks a message
+        with contextlib.suppress(AttributeError, ValueError, io.UnsupportedOperation):
+            stream.reconfigure(errors="backslashreplace")
+    previous = _catch_sigterm()
     try:
         return int(_dispatch(args) or 0)
     except BadInput as exc:
@@ -252,15 +260,40 @@ def main(argv=None) -> int:
             raise
         print(f"map2d: error: {exc}", file=sys.stderr)
         return 2
+    except Terminated:
+        print("map2d: stopped (SIGTERM); no results were written", file=sys.stderr)
+        return 143
     except KeyboardInterrupt:
         print("map2d: interrupted; no results were written", file=sys.stderr)
         return 130
     except Exception as exc:  # an internal error: one line and a hint
         if args.debug:
             raise
+        env = environment_error(exc)
+        if env is not None:              # a full disk or a missing permission: not a bug
+            print(f"map2d: error: {env}", file=sys.stderr)
+            return 2
         print(f"map2d: internal error: {type(exc).__name__}: {exc}. "
               f"Run again with --debug for the traceback and report it.", file=sys.stderr)
         return 1
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _catch_sigterm():
+    """SIGTERM raises :class:`map2d.errors.Terminated` in the main thread, so that a stopped run
+    removes its temporary folder and ends its worker processes; returns the previous handler
+    (None where no handler can be set, e.g. outside the main thread)."""
+    from .errors import Terminated
+
+    def stop(signum, frame):
+        raise Terminated()
+
+    try:
+        return signal.signal(signal.SIGTERM, stop)
+    except (ValueError, OSError):
+        return None
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -2,6 +2,14 @@
 
 from __future__ import annotations
 
+import errno
+import os
+
+#: ``errno`` values that mean the machine refused (storage, permissions), not a bug of map2d.
+ENVIRONMENT_ERRNOS = frozenset(getattr(errno, n) for n in
+                               ("ENOSPC", "EDQUOT", "EACCES", "EPERM", "EROFS", "EFBIG", "ENAMETOOLONG",
+                                "EIO", "EMFILE", "ENFILE", "EILSEQ") if hasattr(errno, n))
+
 
 class BadInput(Exception):
     """A user's input is wrong. The CLI prints the message (no traceback) and exits with code 2.
@@ -36,3 +44,40 @@ class BadInput(Exception):
             parts.append(f"row {row}")
         super().__init__(": ".join([parts[0], ", ".join(parts[1:])]) + f": {detail}"
                          if len(parts) > 1 else f"{parts[0]}: {detail}")
+
+
+class BadEnvironment(BadInput):
+    """The machine refused: a full disk, a missing permission, a read-only or vanished folder. Not a
+    bug of map2d: the CLI prints the path and the reason and exits with code 2, like bad input.
+
+    Examples
+    --------
+    >>> str(BadEnvironment("/data/out", None, "cannot write (No space left on device)"))
+    '/data/out: cannot write (No space left on device)'
+    """
+
+
+class Terminated(KeyboardInterrupt):
+    """Raised in the main thread by the CLI's SIGTERM handler, so that a stopped run cleans up
+    (temporary folders removed, worker processes ended) like an interrupted one."""
+
+
+def environment_error(exc, path=None, doing="write"):
+    """A :class:`BadEnvironment` for the OSError ``exc`` if its errno is one of
+    :data:`ENVIRONMENT_ERRNOS` (naming ``exc.filename``, else ``path``), else None.
+
+    Examples
+    --------
+    >>> str(environment_error(OSError(28, "No space left on device"), "/data/out"))
+    '/data/out: cannot write (No space left on device)'
+    >>> environment_error(OSError(2, "No such file or directory")) is None
+    True
+    """
+    if not isinstance(exc, OSError) or exc.errno not in ENVIRONMENT_ERRNOS:
+        return None
+    where = exc.filename if exc.filename is not None else path
+    if where is None:
+        where = "map2d"
+    reason = exc.strerror or os.strerror(exc.errno)
+    return BadEnvironment(os.fsdecode(where) if isinstance(where, bytes) else where, None,
+                          f"cannot {doing} ({reason})")

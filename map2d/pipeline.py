@@ -19,35 +19,250 @@ from .errors import BadInput
 RESULTS_MARK = ".map2d-results"
 
 
+#: Bytes that temporary siblings add to ``--out``'s name (``.NAME.partial-PID-XXXXXXXX``).
+_SIBLING_EXTRA = 32
+
+
+def _name_max(folder) -> int:
+    try:
+        return int(os.pathconf(folder, "PC_NAME_MAX"))
+    except (OSError, ValueError, AttributeError):
+        return 255
+
+
+def results_target(out) -> Path:
+    """Where the results of ``--out`` go, checked before any work: ``out`` itself, or the folder a
+    symbolic link ``out`` points to (the link is kept).
+
+    Refused (:class:`BadInput`, exit 2): a name too long for the file system once the temporary
+    siblings' suffix is added, a link loop, an existing file, and a non-empty folder without the
+    ``.map2d-results`` mark (a mistyped ``--out`` never deletes a user's other files).
+    """
+    out = Path(os.path.abspath(out))
+    dest = Path(os.path.realpath(out)) if os.path.islink(out) else out
+    if os.path.islink(dest):
+        raise BadInput(out, "--out", "is a symbolic link that never reaches a folder (a loop)")
+    name = os.fsencode(dest.name)
+    parent = dest.parent
+    limit = _name_max(parent if parent.is_dir() else "/") - _SIBLING_EXTRA
+    if len(name) > limit:
+        raise BadInput(out, "--out", f"its name is {len(name)} bytes long; at most {limit} fit beside the "
+                                     f"temporary folders")
+    if dest.exists():
+        if not dest.is_dir():
+            raise BadInput(out, "--out", "exists and is not a folder")
+        if any(dest.iterdir()) and not (dest / RESULTS_MARK).exists():
+            raise BadInput(out, "--out", "is a non-empty folder not written by map2d; choose another")
+    return dest
+
+
+def _lock(fd, block=True) -> bool | None:
+    """flock ``fd`` exclusively: True when held, False when another process holds it (non-blocking),
+    None where the file system has no locks (then callers fall back to process ids)."""
+    try:
+        import fcntl
+        fcntl.flock(fd, fcntl.LOCK_EX | (0 if block else fcntl.LOCK_NB))
+        return True
+    except BlockingIOError:
+        return False
+    except (OSError, ImportError):
+        return None
+
+
+def _pid_alive(pid) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:
+        return True
+    return True
+
+
+def _exchange(a, b) -> bool:
+    """Swap the two paths atomically (Linux ``renameat2(RENAME_EXCHANGE)``); False where unsupported."""
+    import sys
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        import ctypes
+        libc = ctypes.CDLL(None, use_errno=True)
+        fn = libc.renameat2
+    except (OSError, AttributeError):
+        return False
+    fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    at_fdcwd, rename_exchange = -100, 2
+    if fn(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), rename_exchange) == 0:
+        return True
+    err = ctypes.get_errno()
+    import errno
+    if err in (errno.EINVAL, errno.ENOSYS, errno.ENOTSUP, errno.EOPNOTSUPP):
+        return False
+    raise OSError(err, os.strerror(err), os.fsdecode(a))
+
+
+def _clean_stale(dest: Path) -> None:
+    """Remove temporary siblings of ``dest`` left by dead runs: ``.NAME.partial-*`` folders that no live
+    run holds locked (or, without locks, whose process id is gone or is ours), and ``.NAME.old-*``
+    folders (earlier results already replaced). If a run died between its two renames (``dest``
+    missing, an ``old`` folder left), the newest ``old`` folder is put back as ``dest``. Call with the
+    parent folder locked."""
+    parent = dest.parent
+    prefixes = (f".{dest.name}.partial-", f".{dest.name}.old-")
+    try:
+        entries = [e for e in os.scandir(parent) if e.name.startswith(prefixes)
+                   and e.is_dir(follow_symlinks=False)]
+    except OSError:
+        return
+    olds = []
+    for e in entries:
+        if e.name.startswith(prefixes[1]):
+            olds.append(Path(e.path))
+            continue
+        try:
+            fd = os.open(e.path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0) | getattr(os, "O_NOFOLLOW", 0))
+        except OSError:
+            continue
+        try:
+            held = _lock(fd, block=False)
+            if held is None:                       # no locks here: judge by the process id
+                try:
+                    pid = int(e.name[len(prefixes[0]):].split("-")[0])
+                except ValueError:
+                    continue
+                if pid != os.getpid() and _pid_alive(pid):
+                    continue
+            elif not held:                         # a live run is writing there
+                continue
+            shutil.rmtree(e.path, ignore_errors=True)
+        finally:
+            os.close(fd)
+    if olds and not os.path.lexists(dest):
+        newest = max(olds, key=lambda p: p.stat().st_mtime)
+        with contextlib.suppress(OSError):
+            os.rename(newest, dest)
+            olds.remove(newest)
+    for old in olds:
+        shutil.rmtree(old, ignore_errors=True)
+
+
 @contextlib.contextmanager
-def results_folder(out):
+def _parent_locked(parent: Path):
+    """Hold an exclusive lock on the folder ``parent`` (best effort: none where unsupported)."""
+    try:
+        fd = os.open(parent, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+    except OSError:
+        fd = None
+    try:
+        if fd is not None:
+            _lock(fd)
+        yield
+    finally:
+        if fd is not None:
+            os.close(fd)
+
+
+@contextlib.contextmanager
+def results_folder(out, mark=True):
     """Yield a temporary folder beside ``out``; on success it replaces ``out`` atomically.
 
     An existing ``out`` is replaced only if it is empty or was written by map2d (it holds the
-    ``.map2d-results`` mark), so a mistyped ``--out`` never deletes a user's other files. On any
-    error the temporary folder is removed and ``out`` is left untouched.
+    ``.map2d-results`` mark; ``mark=False`` skips both the mark and that check, for callers that
+    check themselves). On any error the temporary folder is removed and ``out`` is left untouched.
+
+    - A symbolic link ``out`` stays a link: the results replace the folder it points to.
+    - The folder gets the permissions the umask allows (not the private mode of a temporary folder).
+    - Temporary siblings (``.NAME.partial-PID-XXXXXXXX``) are locked while in use; those of dead runs
+      are removed by the next run (:func:`_clean_stale`).
+    - The swap is one atomic exchange where the system offers it (Linux ``renameat2``), else two
+      renames; either way under a lock on the parent folder, so concurrent runs into the same
+      ``out`` never fail and never leave mixed or orphaned folders: the last one to finish wins.
+    - A full disk or a missing permission is refused (:class:`map2d.errors.BadEnvironment`, exit 2)
+      naming the path.
     """
-    out = Path(out).absolute()
-    if out.exists():
-        if not out.is_dir():
-            raise BadInput(out, "--out", "exists and is not a folder")
-        if any(out.iterdir()) and not (out / RESULTS_MARK).exists():
-            raise BadInput(out, "--out", "is a non-empty folder not written by map2d; choose another")
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    from .errors import environment_error
+    dest = results_target(out) if mark else _plain_target(out)
+    parent = dest.parent
+    fd = None
     try:
+        parent.mkdir(parents=True, exist_ok=True)
+        with _parent_locked(parent):         # no other run cleans between mkdtemp and the lock
+            _clean_stale(dest)
+            tmp = Path(tempfile.mkdtemp(prefix=f".{dest.name}.partial-{os.getpid()}-", dir=parent))
+            fd = os.open(tmp, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+            _lock(fd, block=False)           # marks the folder as in use for _clean_stale
+    except OSError as exc:
+        if fd is not None:
+            os.close(fd)
+        raise (environment_error(exc, parent) or exc) from None
+    try:
+        os.chmod(tmp, 0o777 & ~_umask())     # mkdtemp makes it private; results are shared
         yield tmp
-        (tmp / RESULTS_MARK).write_text("written by map2d\n", encoding="utf-8")
-        old = None
-        if out.exists():
-            old = out.parent / f".{out.name}.old-{os.getpid()}"
-            os.replace(out, old)
-        os.replace(tmp, out)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-    except BaseException:
+        if mark:
+            (tmp / RESULTS_MARK).write_text("written by map2d\n", encoding="utf-8")
+        replaced = _swap_into_place(tmp, dest, check=mark)
+        if replaced is not None:
+            shutil.rmtree(replaced, ignore_errors=True)
+    except BaseException as exc:
         shutil.rmtree(tmp, ignore_errors=True)
+        if isinstance(exc, OSError):             # name the results' path, not the temporary one
+            name = os.fsdecode(exc.filename) if exc.filename is not None else str(dest)
+            if name.startswith(str(tmp)):
+                name = str(dest) + name[len(str(tmp)):]
+            env = environment_error(OSError(exc.errno, exc.strerror, name), dest)
+            if env is not None:
+                raise env from None
         raise
+    finally:
+        if fd is not None:
+            os.close(fd)
+
+
+def _umask() -> int:
+    umask = os.umask(0o022)
+    os.umask(umask)
+    return umask
+
+
+def _plain_target(out) -> Path:
+    """``out`` (or a symbolic link's target) with only the name-length check (see :func:`results_target`)."""
+    out = Path(os.path.abspath(out))
+    dest = Path(os.path.realpath(out)) if os.path.islink(out) else out
+    limit = _name_max(dest.parent if dest.parent.is_dir() else "/") - _SIBLING_EXTRA
+    if len(os.fsencode(dest.name)) > limit:
+        raise BadInput(out, None, f"its name is {len(os.fsencode(dest.name))} bytes long; at most {limit} fit")
+    return dest
+
+
+def _swap_into_place(tmp: Path, dest: Path, check: bool) -> Path | None:
+    """Put the finished folder ``tmp`` at ``dest`` (under the parent's lock); return the folder now
+    holding the replaced results (to delete), or None."""
+    import secrets
+    for _ in range(20):
+        with _parent_locked(dest.parent):
+            if os.path.lexists(dest):
+                if check:
+                    results_target(dest)           # still ours to replace (another writer may have won)
+                elif not dest.is_dir() or dest.is_symlink():
+                    raise BadInput(dest, None, "exists and is not a folder")
+                if _exchange(tmp, dest):
+                    return tmp                        # tmp now holds the earlier results
+                old = dest.parent / f".{dest.name}.old-{os.getpid()}-{secrets.token_hex(4)}"
+                os.rename(dest, old)
+                try:
+                    os.rename(tmp, dest)
+                except BaseException:
+                    os.rename(old, dest)
+                    raise
+                return old
+            try:
+                os.rename(tmp, dest)
+                return None
+            except OSError as exc:                    # created meanwhile by a writer without locks
+                import errno
+                if exc.errno not in (errno.EEXIST, errno.ENOTEMPTY):
+                    raise
+    raise BadInput(dest, None, "is being replaced by other runs all the time; try again")
 
 
 def run_stimulus(args) -> int:
@@ -195,31 +410,16 @@ def run_simulate(args) -> int:
         session.rois = roi_label_image(session.cell_ids, rng=int(args.seed))
         session.roi_label_offset = 1
     text = json.dumps(truth, indent=2, allow_nan=False) + "\n"
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
-    umask = os.umask(0)
-    os.umask(umask)
-    os.chmod(tmp, 0o777 & ~umask)            # mkdtemp makes it private; a session folder is not
-    tmp_truth = out.parent / f".{truth_path.name}.partial-{os.getpid()}"
-    old = None
+    import secrets
+    tmp_truth = out.parent / f".{truth_path.name}.partial-{os.getpid()}-{secrets.token_hex(4)}"
     try:
-        write_session(tmp, session)
-        tmp_truth.write_text(text, encoding="utf-8")
-        if out.exists():
-            old = out.parent / f".{out.name}.old-{os.getpid()}"
-            os.replace(out, old)
-        os.replace(tmp, out)
+        with results_folder(out, mark=False) as tmp:
+            write_session(tmp, session)
+            tmp_truth.write_text(text, encoding="utf-8")
         os.replace(tmp_truth, truth_path)
     except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
         tmp_truth.unlink(missing_ok=True)
-        if old is not None and not out.exists():
-            os.replace(old, out)
-            old = None
         raise
-    finally:
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
     if not getattr(args, "quiet", False):
         kinds = {}
         for c in truth["cells"]:

@@ -75,13 +75,13 @@ from __future__ import annotations
 
 import math
 import os
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage
 from scipy.optimize import least_squares
 
+from .._forked import worker_pool
 from ..geometry import Grid
 from ..models import dog2d, gabor2d, gaussian2d
 
@@ -1033,7 +1033,7 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
         chunks = np.array_split(np.arange(idx.size), n_jobs * 4)
         chunks = [ch for ch in chunks if ch.size]
         rows, preds = [], []
-        with ProcessPoolExecutor(max_workers=n_jobs) as ex:
+        with worker_pool(n_jobs) as ex:   # workers die with this process
             futs = [ex.submit(_fit_chunk, sub[ch], grid, None if subsd is None else subsd[ch],
                               tuple(models), criterion, pixel_box) for ch in chunks]
             for fu in futs:

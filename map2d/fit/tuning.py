@@ -45,13 +45,14 @@ Vision Res 31:1079-1086.
 from __future__ import annotations
 
 import os
-from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
 from types import SimpleNamespace
 
 import numpy as np
 from scipy import optimize, stats
+
+from .._forked import worker_pool
 
 __all__ = [
     "von_mises_orientation", "von_mises_direction", "log_gaussian_sf", "gaussian_sf", "dog_sf",
@@ -1181,7 +1182,7 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
     if n_jobs > 1:
         chunks = [ch for ch in np.array_split(cell_ids, n_jobs * 4) if ch.size]
         try:
-            with ProcessPoolExecutor(max_workers=n_jobs) as ex:
+            with worker_pool(n_jobs) as ex:   # workers die with this process
                 futs = [ex.submit(_tuning_chunk, _subset(fl, ch), _subset(dr, ch), ch) for ch in chunks]
                 parts = [fu.result() for fu in futs]
         except (OSError, BrokenProcessPool, AssertionError):
