@@ -263,16 +263,33 @@ class _Bar:
 
 def _run_distributed(jobs, scheduler, workers, memory_limit, bar) -> dict:
     try:
-        from distributed import Client, LocalCluster, as_completed
+        import distributed  # noqa: F401  (the optional extra)
     except ImportError:
         raise BadInput("--scheduler", None, DISTRIBUTED_HINT) from None
     import logging
     cluster = None
     results = {}
+    # the cluster's own log lines (start-up, heartbeats lost at shutdown) are chatter: failures reach
+    # batch.csv through the futures. Worker processes read the level from the environment at import.
+    quiet_env = {"DASK_LOGGING__DISTRIBUTED": "critical"}
+    saved_env = {k: os.environ.get(k) for k in quiet_env}
+    os.environ.update(quiet_env)
+    logging.getLogger("distributed").setLevel(logging.CRITICAL)
+    try:
+        return _run_on_cluster(jobs, scheduler, workers, memory_limit, bar, cluster, results)
+    finally:
+        for k, v in saved_env.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+def _run_on_cluster(jobs, scheduler, workers, memory_limit, bar, cluster, results) -> dict:
+    from distributed import Client, LocalCluster, as_completed
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")   # start-up chatter of the cluster (ports, dashboard)
         if scheduler is None:
-            logging.getLogger("distributed").setLevel(logging.ERROR)
             cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                    memory_limit=memory_limit, host="127.0.0.1", dashboard_address=None)
             address = cluster

@@ -9,10 +9,54 @@ from __future__ import annotations
 import argparse
 import contextlib
 import io
+import re
 import signal
 import sys
 import warnings
 from pathlib import Path
+
+class _ArgumentError(Exception):
+    """An argument argparse cannot accept (one line, exit 2, like every bad input)."""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):
+        raise _ArgumentError(f"{self.prog}: {message}")
+
+
+#: Longest lag (s) any command accepts: far beyond any visual latency; a longer one is a units mistake.
+MAX_LAG_S = 10.0
+#: Seeds: what numpy's generators take, within a signed 64-bit integer.
+MAX_SEED = 2 ** 63 - 1
+
+
+def _number(lo, hi, integer=False, above=False):
+    """An argparse type: a number in plain decimal or exponent notation
+    (:func:`map2d.contract.parse_number`), whole when ``integer``, within ``lo`` .. ``hi`` (``lo``
+    excluded when ``above``); the message names the bound."""
+    def parse(text):
+        from .contract import parse_number
+        try:
+            v = parse_number(text)
+        except ValueError as exc:
+            raise argparse.ArgumentTypeError(str(exc)) from None
+        if integer:
+            if v != int(v) or not re.fullmatch(r"\s*[+-]?[0-9]+\s*", str(text)):
+                raise argparse.ArgumentTypeError(f"'{text}' is not a whole number")
+            v = int(str(text).strip())
+        if not ((v > lo if above else v >= lo) and v <= hi):
+            low, high = (f"{b}" if integer else f"{b:g}" for b in (lo, hi))
+            raise argparse.ArgumentTypeError(f"{text.strip()} is outside {'(' if above else '['}{low}, {high}]")
+        return v
+    parse.__name__ = "integer" if integer else "number"
+    return parse
+
+
+_SEED = _number(0, MAX_SEED, integer=True)
+_LAG = _number(0.0, MAX_LAG_S)
+_ANGLE = _number(-360.0, 360.0)
+_COUNT = _number(1, 10 ** 6, integer=True)
+
 
 CAUTION = ("Caution: flashing and high-contrast patterns can trigger seizures in photosensitive people. "
            "Follow local guidance and your local animal-care approvals when presenting these stimuli.")
@@ -24,7 +68,7 @@ def _add_common(p):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="map2d",
         description="Map 2-D receptive fields from sparse noise and gratings, and check that the two agree.")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -36,18 +80,18 @@ def build_parser() -> argparse.ArgumentParser:
     sn = stim_sub.add_parser("sparse-noise", help="bright and dark spots on a grid",
                              description="Sparse noise: a few bright and dark spots per frame on a grid. " + CAUTION)
     sn.add_argument("--out", required=True, type=Path, help="folder to write sparse_noise.npy and times into")
-    sn.add_argument("--ny", type=int, default=16, help="grid rows (default 16)")
-    sn.add_argument("--nx", type=int, default=24, help="grid columns (default 24)")
-    sn.add_argument("--spacing-deg", type=float, nargs=2, default=(2.0, 2.0), metavar=("DX", "DY"),
+    sn.add_argument("--ny", type=_number(1, 4096, integer=True), default=16, help="grid rows (default 16)")
+    sn.add_argument("--nx", type=_number(1, 4096, integer=True), default=24, help="grid columns (default 24)")
+    sn.add_argument("--spacing-deg", type=_number(1e-4, 180.0), nargs=2, default=(2.0, 2.0), metavar=("DX", "DY"),
                     help="pixel spacing in degrees (default 2 2)")
-    sn.add_argument("--center-deg", type=float, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
+    sn.add_argument("--center-deg", type=_ANGLE, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
                     help="grid centre azimuth and elevation in degrees (default 0 0)")
-    sn.add_argument("--spots", type=int, default=4, help="spots per frame (default 4)")
-    sn.add_argument("--min-distance-deg", type=float, default=5.0,
+    sn.add_argument("--spots", type=_number(1, 10 ** 4, integer=True), default=4, help="spots per frame (default 4)")
+    sn.add_argument("--min-distance-deg", type=_number(0.0, 360.0), default=5.0,
                     help="minimum distance between spots in one frame, degrees (default 5)")
-    sn.add_argument("--rate-hz", type=float, default=20.0, help="frames per second (default 20)")
-    sn.add_argument("--minutes", type=float, default=10.0, help="duration in minutes (default 10)")
-    sn.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    sn.add_argument("--rate-hz", type=_number(0.0, 1000.0, above=True), default=20.0, help="frames per second (default 20)")
+    sn.add_argument("--minutes", type=_number(0.0, 10080.0, above=True), default=10.0, help="duration in minutes (default 10)")
+    sn.add_argument("--seed", type=_SEED, default=0, help="random seed (default 0)")
     _add_render_args(sn)
     _add_common(sn)
 
@@ -57,26 +101,26 @@ def build_parser() -> argparse.ArgumentParser:
     gr.add_argument("--out", required=True, type=Path, help="folder to write gratings.csv into")
     gr.add_argument("--mode", choices=("flashed", "drifting"), default="flashed",
                     help="flashed sequence or drifting trials (default flashed)")
-    gr.add_argument("--orientations", type=int, default=12,
+    gr.add_argument("--orientations", type=_number(1, 3600, integer=True), default=12,
                     help="number of orientations over 0-180 (flashed) or directions over 0-360 (drifting)")
-    gr.add_argument("--sf-cpd", type=float, nargs="+", default=(0.02, 0.04, 0.08, 0.16, 0.32),
+    gr.add_argument("--sf-cpd", type=_number(1e-4, 100.0), nargs="+", default=(0.02, 0.04, 0.08, 0.16, 0.32),
                     help="spatial frequencies in cycles/deg")
-    gr.add_argument("--phases", type=int, default=4, help="phases per grating, flashed mode (default 4)")
-    gr.add_argument("--blank-fraction", type=float, default=0.1, help="fraction of blank frames, flashed mode")
-    gr.add_argument("--contrast", type=float, default=1.0, help="Michelson contrast (default 1)")
-    gr.add_argument("--rate-hz", type=float, default=10.0, help="frames per second, flashed mode (default 10)")
-    gr.add_argument("--minutes", type=float, default=10.0, help="duration, flashed mode (default 10)")
-    gr.add_argument("--tf-hz", type=float, default=2.0, help="temporal frequency, drifting mode (default 2)")
-    gr.add_argument("--duration-s", type=float, default=2.0, help="trial duration, drifting mode (default 2)")
-    gr.add_argument("--gap-s", type=float, default=1.0, help="gap between trials, drifting mode (default 1)")
-    gr.add_argument("--repeats", type=int, default=5, help="repeats per condition, drifting mode (default 5)")
-    gr.add_argument("--start-s", type=float, default=0.0, help="onset of the first presentation (default 0)")
-    gr.add_argument("--phase-origin-deg", type=float, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
+    gr.add_argument("--phases", type=_number(1, 3600, integer=True), default=4, help="phases per grating, flashed mode (default 4)")
+    gr.add_argument("--blank-fraction", type=_number(0.0, 1.0), default=0.1, help="fraction of blank frames, flashed mode")
+    gr.add_argument("--contrast", type=_number(0.0, 1.0), default=1.0, help="Michelson contrast (default 1)")
+    gr.add_argument("--rate-hz", type=_number(0.0, 1000.0, above=True), default=10.0, help="frames per second, flashed mode (default 10)")
+    gr.add_argument("--minutes", type=_number(0.0, 10080.0, above=True), default=10.0, help="duration, flashed mode (default 10)")
+    gr.add_argument("--tf-hz", type=_number(0.0, 1000.0), default=2.0, help="temporal frequency, drifting mode (default 2)")
+    gr.add_argument("--duration-s", type=_number(0.0, 86400.0, above=True), default=2.0, help="trial duration, drifting mode (default 2)")
+    gr.add_argument("--gap-s", type=_number(0.0, 86400.0), default=1.0, help="gap between trials, drifting mode (default 1)")
+    gr.add_argument("--repeats", type=_number(1, 10 ** 5, integer=True), default=5, help="repeats per condition, drifting mode (default 5)")
+    gr.add_argument("--start-s", type=_number(0.0, 1e10), default=0.0, help="onset of the first presentation (default 0)")
+    gr.add_argument("--phase-origin-deg", type=_ANGLE, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
                     help="phase origin (xc, yc) in degrees (default 0 0)")
-    gr.add_argument("--aperture-deg", type=float, nargs=3, default=None, metavar=("X", "Y", "DIAMETER"),
+    gr.add_argument("--aperture-deg", type=_ANGLE, nargs=3, default=None, metavar=("X", "Y", "DIAMETER"),
                     help="show the gratings only in this circle (centre azimuth, elevation and diameter in "
                          "degrees; grey outside) when rendering; stored in stimulus.json (default: full screen)")
-    gr.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    gr.add_argument("--seed", type=_SEED, default=0, help="random seed (default 0)")
     _add_render_args(gr)
     _add_common(gr)
 
@@ -86,9 +130,9 @@ def build_parser() -> argparse.ArgumentParser:
                                      "answering sparse noise and gratings; writes a session folder and "
                                      "OUT.truth.json beside it.")
     sim.add_argument("out", type=Path, help="session folder to create")
-    sim.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
-    sim.add_argument("--cells", type=int, default=20, help="number of cells (default 20)")
-    sim.add_argument("--minutes", type=float, default=20.0, help="sparse-noise duration in minutes (default 20)")
+    sim.add_argument("--seed", type=_SEED, default=0, help="random seed (default 0)")
+    sim.add_argument("--cells", type=_number(-10 ** 6, 10 ** 5, integer=True), default=20, help="number of cells (default 20)")
+    sim.add_argument("--minutes", type=_number(-1e4, 10080.0), default=20.0, help="sparse-noise duration in minutes (default 20)")
     sim.add_argument("--responses", choices=("spikes", "traces"), default="spikes",
                      help="electrophysiology spikes or imaging traces (default spikes)")
     sim.add_argument("--overwrite", action="store_true", help="replace an existing session folder")
@@ -102,9 +146,9 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("session", type=Path, help="session folder (holding session.json), or an .nwb file "
                                                       "with --config")
         p.add_argument("--out", required=True, type=Path, help="results folder (replaced only after success)")
-        p.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
+        p.add_argument("--max-lag", type=_LAG, default=0.2, dest="max_lag_s",
                        help="longest lag in seconds (default 0.2)")
-        p.add_argument("--seed", type=int, default=0, help="seed for shuffles and bootstraps (default 0)")
+        p.add_argument("--seed", type=_SEED, default=0, help="seed for shuffles and bootstraps (default 0)")
         if name in ("maps", "analyze"):
             p.add_argument("--trace-decay", default="auto", dest="trace_decay", metavar="auto|off|SECONDS",
                            help="imaging traces: remove the indicator's decay before the maps, with the "
@@ -130,13 +174,13 @@ def build_parser() -> argparse.ArgumentParser:
     bat.add_argument("--scheduler", default=None,
                      help="tcp://HOST:PORT of a running dask scheduler, or sync to run here without Dask "
                           "(default: an embedded local cluster)")
-    bat.add_argument("--workers", type=int, default=2, help="workers of the embedded local cluster (default 2)")
+    bat.add_argument("--workers", type=_number(1, 1024, integer=True), default=2, help="workers of the embedded local cluster (default 2)")
     bat.add_argument("--memory-limit", default="10GB",
                      help="memory limit per worker of the embedded local cluster (default 10GB)")
     bat.add_argument("--config", type=Path, default=None, help="NWB mapping (JSON) for every .nwb SESSION")
-    bat.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s",
+    bat.add_argument("--max-lag", type=_LAG, default=0.2, dest="max_lag_s",
                      help="longest lag in seconds (default 0.2)")
-    bat.add_argument("--seed", type=int, default=0, help="seed for shuffles and bootstraps (default 0)")
+    bat.add_argument("--seed", type=_SEED, default=0, help="seed for shuffles and bootstraps (default 0)")
     bat.add_argument("--trace-decay", default="auto", dest="trace_decay", metavar="auto|off|SECONDS",
                      help="imaging traces: remove the indicator's decay before the maps (as for analyze)")
     bat.add_argument("--no-report", action="store_true",
@@ -185,18 +229,18 @@ def build_parser() -> argparse.ArgumentParser:
 def _add_render_args(p):
     p.add_argument("--render", action="store_true",
                    help="also write frames at display resolution as a uint8 TIFF stack")
-    p.add_argument("--display", type=float, nargs=5, metavar=("W_CM", "H_CM", "W_PX", "H_PX", "DIST_CM"),
+    p.add_argument("--display", type=_number(1e-3, 1e6), nargs=5, metavar=("W_CM", "H_CM", "W_PX", "H_PX", "DIST_CM"),
                    default=(52.0, 29.25, 1920, 1080, 30.0),
                    help="screen width and height (cm), resolution (px) and viewing distance (cm)")
-    p.add_argument("--eye-cm", type=float, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
+    p.add_argument("--eye-cm", type=_number(-1e5, 1e5), nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
                    help="eye position relative to the screen centre (cm)")
-    p.add_argument("--render-scale", type=int, default=1,
+    p.add_argument("--render-scale", type=_number(-10 ** 6, 10 ** 4, integer=True), default=1,
                    help="render every Nth screen pixel (1 = full resolution)")
-    p.add_argument("--render-frames", type=int, default=60,
+    p.add_argument("--render-frames", type=_number(-10 ** 6, 10 ** 6, integer=True), default=60,
                    help="number of frames to render (default 60; a whole session is very large)")
-    p.add_argument("--render-start", type=int, default=0,
+    p.add_argument("--render-start", type=_number(-10 ** 9, 10 ** 9, integer=True), default=0,
                    help="first frame to render (default 0)")
-    p.add_argument("--render-rate-hz", type=float, default=60.0,
+    p.add_argument("--render-rate-hz", type=_number(0.0, 1000.0, above=True), default=60.0,
                    help="display refresh rate used to render drifting gratings (default 60)")
 
 
@@ -235,7 +279,11 @@ def _dispatch(args) -> int:
 
 def main(argv=None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except _ArgumentError as exc:
+        print(f"map2d: error: {exc} (see --help)", file=sys.stderr)
+        return 2
     if args.command is None:
         parser.print_help()
         return 0
@@ -258,7 +306,7 @@ def main(argv=None) -> int:
     except BadInput as exc:
         if args.debug:
             raise
-        print(f"map2d: error: {exc}", file=sys.stderr)
+        print(f"map2d: error: {_one_line(exc)}", file=sys.stderr)
         return 2
     except Terminated:
         print("map2d: stopped (SIGTERM); no results were written", file=sys.stderr)
@@ -269,16 +317,33 @@ def main(argv=None) -> int:
     except Exception as exc:  # an internal error: one line and a hint
         if args.debug:
             raise
-        env = environment_error(exc)
+        env = environment_error(exc, doing="use it")
         if env is not None:              # a full disk or a missing permission: not a bug
-            print(f"map2d: error: {env}", file=sys.stderr)
+            print(f"map2d: error: {_one_line(env)}", file=sys.stderr)
             return 2
-        print(f"map2d: internal error: {type(exc).__name__}: {exc}. "
+        print(f"map2d: internal error: {type(exc).__name__}: {_one_line(exc)}. "
               f"Run again with --debug for the traceback and report it.", file=sys.stderr)
         return 1
     finally:
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
+
+
+#: Longest message printed (a dependency's error text can run to pages); --debug shows all of it.
+MAX_MESSAGE_CHARS = 400
+
+
+def _one_line(exc) -> str:
+    """``exc``'s message on one line (whitespace runs, newlines included, become one space), cut to
+    :data:`MAX_MESSAGE_CHARS` characters with a pointer to ``--debug``.
+
+    >>> _one_line(ValueError("a\\n  b"))
+    'a b'
+    """
+    text = " ".join(str(exc).split())
+    if len(text) > MAX_MESSAGE_CHARS:
+        text = text[:MAX_MESSAGE_CHARS - 40].rstrip() + " ... (--debug shows all of it)"
+    return text
 
 
 def _catch_sigterm():

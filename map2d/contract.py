@@ -11,6 +11,7 @@ import io
 import json
 import math
 import os
+import re
 import warnings
 import zipfile
 from dataclasses import dataclass, field
@@ -26,7 +27,8 @@ __all__ = [
     "load_session", "write_session", "write_table", "read_table", "GRATING_COLUMNS",
     "write_stimulus", "load_stimulus", "STIMULUS_MANIFEST", "count_spikes_outside", "find_frame_gaps",
     "GAP_FACTOR", "check_times", "check_frames", "frame_gap_mask", "check_traces", "check_spikes",
-    "check_grating_columns", "check_overlap", "StoredFrames", "check_luminance",
+    "check_grating_columns", "check_overlap", "StoredFrames", "check_luminance", "parse_number", "check_range",
+    "LIMITS",
 ]
 
 MANIFEST = "session.json"
@@ -236,7 +238,11 @@ def _rel(spec, key, manifest_path, section) -> str:
         raise BadInput(manifest_path, f"{section}.{key}", "is missing")
     value = spec[key]
     if not isinstance(value, str) or not value.strip():
-        raise BadInput(manifest_path, f"{section}.{key}", f"must be a file name, got {value!r}")
+        raise BadInput(manifest_path, f"{section}.{key}", f"must be a file name, got {value!r}"[:200])
+    longest = max(len(os.fsencode(part)) for part in Path(value).parts) if Path(value).parts else 0
+    if "\x00" in value or longest > 255 or len(value) > 4096:
+        raise BadInput(manifest_path, f"{section}.{key}", f"is not a usable file name ({len(value)} characters, "
+                                                         f"a part of {longest} bytes; at most 255)")
     return value
 
 
@@ -251,19 +257,75 @@ def _section(manifest_path, spec, name, notes, known_as=None, known=None):
     return spec
 
 
-def _load_npz(folder: Path, rel: str, key: str) -> dict:
+#: Largest array map2d reads from one ``.npz`` member (bytes), further limited by the memory free.
+MAX_NPZ_MEMBER_BYTES = 16 * 2 ** 30
+#: Largest ROI label image (pixels): 10000 x 10000, far above any imaging field of view.
+MAX_ROI_PIXELS = 10 ** 8
+#: Bytes read at a time when checking a member's CRC-32.
+_CHUNK_BYTES = 2 ** 20
+
+
+def _memory_available() -> int | None:
+    """Bytes of memory the system can still give (``MemAvailable`` on Linux), None if unknown."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
+
+
+def _affordable(nbytes, path, key, what) -> None:
+    """Refuse reading ``nbytes`` when above the member cap or 80 % of the memory available."""
+    cap = MAX_NPZ_MEMBER_BYTES
+    free = _memory_available()
+    if free is not None:
+        cap = min(cap, int(0.8 * free))
+    if nbytes > cap:
+        raise BadInput(path, key, f"{what} needs {nbytes / 2 ** 20:.0f} MiB; at most {cap / 2 ** 20:.0f} MiB can be "
+                                  f"read here")
+
+
+def _load_npz(folder: Path, rel: str, key: str, members=None) -> dict:
+    """The arrays of an ``.npz`` file (only ``members`` when given; others are never read).
+
+    Reads are bounded before any decompression: each member's declared size must fit the limit
+    (:func:`_affordable`) and agree with the shape and type its ``.npy`` header states; then its
+    CRC-32 is checked in 1 MiB chunks, so damaged data never loads silently."""
     path = folder / rel
     if not path.is_file():
         raise BadInput(path, key, "file not found")
     try:
-        with zipfile.ZipFile(path) as zf:   # every member's CRC-32: damaged data never loads silently
-            damaged = zf.testzip()
-        if damaged is not None:
-            raise BadInput(path, key, f"not a readable .npz file (member {damaged} fails its checksum)")
+        with zipfile.ZipFile(path) as zf:
+            infos = [i for i in zf.infolist() if i.filename.endswith(".npy")
+                     and (members is None or i.filename[:-4] in members)]
+            for info in infos:
+                name = info.filename[:-4]
+                _affordable(info.file_size, path, name, "the array")
+                with zf.open(info) as fh:
+                    version = np.lib.format.read_magic(fh)
+                    shape, _, dtype = (np.lib.format.read_array_header_1_0(fh) if version == (1, 0)
+                                       else np.lib.format.read_array_header_2_0(fh))
+                    if dtype.hasobject:
+                        raise BadInput(path, name, "holds Python objects (not read: only plain arrays are)")
+                    count = 1
+                    for n in shape:
+                        count *= int(n)
+                    data = count * dtype.itemsize
+                    if fh.tell() + data != info.file_size:
+                        raise BadInput(path, name, f"not a readable .npz member (its header describes {data} "
+                                                   f"bytes of data, the member holds {info.file_size - fh.tell()})")
+                    while fh.read(_CHUNK_BYTES):   # the CRC-32 is checked when the member ends
+                        pass
         with np.load(path, allow_pickle=False) as z:
-            return {k: z[k] for k in z.files}
+            return {k: z[k] for k in z.files if members is None or k in members}
     except BadInput:
         raise
+    except zipfile.BadZipFile as exc:
+        detail = "fails its checksum" if "CRC" in str(exc) else f"({exc})"
+        raise BadInput(path, key, f"not a readable .npz file {detail}"[:300]) from None
     except Exception as exc:
         raise BadInput(path, key, f"not a readable .npz file ({type(exc).__name__})") from None
 
@@ -274,13 +336,18 @@ def _require(mapping, key, where):
     return mapping[key]
 
 
-def _pair(value, where, key):
+def _pair(value, where, key, limit="position_deg"):
+    """Two numbers (a JSON list) within ``LIMITS[limit]``."""
+    if (not isinstance(value, (list, tuple)) or len(value) != 2
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)):
+        raise BadInput(where, key, "must be a list of two numbers")
     try:
         a, b = (float(v) for v in value)
-    except Exception:
+    except (TypeError, ValueError, OverflowError):
         raise BadInput(where, key, "must be a list of two numbers") from None
     if not (math.isfinite(a) and math.isfinite(b)):
         raise BadInput(where, key, "must be finite")
+    check_range([a, b], limit, where, key, first_row=None)
     return a, b
 
 
@@ -290,10 +357,95 @@ def _grid_place(grid_spec: dict, where) -> tuple[float, float, float, float]:
         if key not in grid_spec:
             raise BadInput(where, f"sparse_noise.grid.{key}", "is missing")
     cx, cy = _pair(grid_spec["center_deg"], where, "sparse_noise.grid.center_deg")
-    dx, dy = _pair(grid_spec["spacing_deg"], where, "sparse_noise.grid.spacing_deg")
-    if not (dx > 0 and dy > 0):
-        raise BadInput(where, "sparse_noise.grid.spacing_deg", f"must be positive, got [{dx}, {dy}]")
+    try:
+        dx, dy = (float(v) for v in grid_spec["spacing_deg"])
+        if not (dx > 0 and dy > 0):
+            raise BadInput(where, "sparse_noise.grid.spacing_deg", f"must be positive, got [{dx}, {dy}]")
+    except (TypeError, ValueError, OverflowError):
+        pass                                              # _pair names the defect
+    dx, dy = _pair(grid_spec["spacing_deg"], where, "sparse_noise.grid.spacing_deg", "spacing_deg")
     return cx, cy, dx, dy
+
+
+# ----------------------------------------------------------------------------------------------
+# numbers and bounds: one strict parser for every text field, one table of physical limits
+# ----------------------------------------------------------------------------------------------
+_NUMBER = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+#: Longest number text accepted: a float64 needs 17 significant digits, a sign, a point and an exponent.
+MAX_NUMBER_CHARS = 40
+
+#: Bounds of every physical quantity and id map2d reads, ``name: (low, high, unit)``. They are far
+#: outside any experiment, so that only wrong units, damaged values or hostile input meet them.
+LIMITS = {
+    "time_s": (-1e10, 1e10, "s"),             # a Unix-epoch clock reads 1.7e9 s
+    "duration_s": (0.0, 86400.0, "s"),        # one presentation: at most a day
+    "sf_cpd": (0.0, 100.0, "cycles/deg"),     # 0 = blank; no eye resolves 100 cycles/deg
+    "sf_positive_cpd": (1e-4, 100.0, "cycles/deg"),   # a period above 10^4 deg is no grating
+    "contrast": (0.0, 1.0, ""),               # Michelson contrast, a fraction (100 % is 1)
+    "angle_deg": (-3600.0, 3600.0, "deg"),    # orientation, direction, phase: ten turns either way
+    "tf_hz": (-1000.0, 1000.0, "Hz"),
+    "position_deg": (-360.0, 360.0, "deg"),   # grid centre, phase origin (visual angle)
+    "spacing_deg": (1e-4, 180.0, "deg"),
+    "cell_id": (-(2.0 ** 53), 2.0 ** 53, ""),  # exact in float64 (CSV, JSON)
+    "roi_label": (0, 2 ** 31 - 1, ""),
+    "label_offset": (-(2 ** 31), 2 ** 31 - 1, ""),
+    "display_cm": (1e-3, 1e5, "cm"),
+    "display_px": (1, 1e6, "px"),
+    "eye_cm": (-1e5, 1e5, "cm"),              # eye position relative to the screen centre
+}
+
+
+def parse_number(text) -> float:
+    """The number in ``text``: plain decimal or exponent notation only (ASCII digits, an optional
+    sign, point and exponent, at most :data:`MAX_NUMBER_CHARS` characters, surrounding blanks
+    ignored). ``ValueError`` for anything else, e.g. underscores (``0_08``, which Python's ``float``
+    reads as 8), digits of other scripts, ``nan``/``inf``, hexadecimal, or a value beyond float64.
+
+    Examples
+    --------
+    >>> parse_number(" 0.08 "), parse_number("-1.5e-3"), parse_number("3")
+    (0.08, -0.0015, 3.0)
+    >>> parse_number("0_08")
+    Traceback (most recent call last):
+    ...
+    ValueError: '0_08' is not a number (plain decimal or exponent notation, e.g. 0.08 or 8e-2)
+    """
+    s = str(text).strip()
+    if len(s) > MAX_NUMBER_CHARS:
+        raise ValueError(f"'{s[:12]}...' ({len(s)} characters) is not a number of at most "
+                         f"{MAX_NUMBER_CHARS} characters")
+    if not _NUMBER.fullmatch(s):
+        raise ValueError(f"'{s}' is not a number (plain decimal or exponent notation, e.g. 0.08 or 8e-2)")
+    v = float(s)
+    mantissa = re.split("[eE]", s)[0]
+    if not math.isfinite(v) or (v == 0 and any(c in mantissa for c in "123456789")):
+        raise ValueError(f"'{s}' is beyond the range of a 64-bit float")
+    return v
+
+
+def check_range(values, limit, file, field, first_row=0):
+    """Refuse the first value of ``values`` outside ``LIMITS[limit]`` (or not a number), naming the
+    value, the bound and its unit; for an array the row is its index + ``first_row`` (no row when
+    ``first_row`` is None).
+
+    Examples
+    --------
+    >>> check_range(0.5, "contrast", "g.csv", "contrast")
+    >>> check_range([0.5, 100.0], "contrast", "g.csv", "contrast", first_row=1)
+    Traceback (most recent call last):
+    ...
+    map2d.errors.BadInput: g.csv: field contrast, row 2: 100 is outside 0 to 1
+    """
+    lo, hi, unit = LIMITS[limit]
+    a = np.asarray(values, dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        bad = ~((a >= lo) & (a <= hi))
+    if not np.any(bad):
+        return
+    u = f" {unit}" if unit else ""
+    r = int(np.flatnonzero(bad.reshape(-1))[0])
+    raise BadInput(file, field, f"{a.reshape(-1)[r]:.6g}{u} is outside {lo:.6g} to {hi:.6g}{u}",
+                   row=None if a.ndim == 0 or first_row is None else r + first_row)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -706,6 +858,13 @@ def check_grating_columns(data: dict, file, fields: dict | None = None, onset_na
         _refuse_first(data[c] < 0, file, fields[c], "must not be negative", first_row=1)
     _refuse_first((data["sf_cpd"] == 0) & (data["contrast"] != 0), file, fields["sf_cpd"],
                   "must be positive for a grating with contrast", first_row=1)
+    for c, limit in (("onset_s", "time_s"), ("offset_s", "time_s"), ("sf_cpd", "sf_cpd"),
+                     ("contrast", "contrast"), ("orientation_deg", "angle_deg"), ("phase_deg", "angle_deg"),
+                     ("tf_hz", "tf_hz")):
+        check_range(data[c], limit, file, fields.get(c, c), first_row=1)
+    sf = data["sf_cpd"]
+    check_range(np.where(sf > 0, sf, 1.0), "sf_positive_cpd", file, fields["sf_cpd"], first_row=1)
+    check_range(data["offset_s"] - data["onset_s"], "duration_s", file, fields["offset_s"], first_row=1)
 
 
 def find_frame_gaps(times_s, factor: float = GAP_FACTOR) -> np.ndarray:
@@ -782,6 +941,9 @@ def _load_gratings(folder: Path, spec, default_origin, notes) -> GratingTable:
         raise BadInput(path, missing[0], "column is missing from the header")
     if not rows:
         raise BadInput(path, None, "has a header but no presentations")
+    twice = sorted({c for c in header if header.count(c) > 1})
+    if twice:
+        raise BadInput(path, twice[0], "column name appears more than once in the header")
     idx = {c: header.index(c) for c in header}
     data = {c: np.empty(len(rows)) for c in GRATING_COLUMNS}
     extra = {c: [] for c in header if c not in GRATING_COLUMNS}
@@ -789,14 +951,10 @@ def _load_gratings(folder: Path, spec, default_origin, notes) -> GratingTable:
         if len(row) != len(header):
             raise BadInput(path, None, f"has {len(row)} fields, header has {len(header)}", row=r)
         for c in GRATING_COLUMNS:
-            text = row[idx[c]].strip()
             try:
-                v = float(text)
-            except ValueError:
-                raise BadInput(path, c, f"'{text}' is not a number", row=r) from None
-            if not math.isfinite(v):
-                raise BadInput(path, c, f"'{text}' is not finite", row=r)
-            data[c][r - 1] = v
+                data[c][r - 1] = parse_number(row[idx[c]])
+            except ValueError as exc:
+                raise BadInput(path, c, str(exc), row=r) from None
         for c in extra:
             extra[c].append(row[idx[c]])
     check_grating_columns(data, path)
@@ -848,7 +1006,7 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
     rel = _rel(spec, "file", mpath, "responses")
     path = folder / rel
     if kind == "spikes":
-        z = _load_npz(folder, rel, "file")
+        z = _load_npz(folder, rel, "file", members=("time_s", "cell"))
         for key in ("time_s", "cell"):
             if key not in z:
                 raise BadInput(path, key, "array is missing")
@@ -870,6 +1028,7 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
         elif c.dtype.kind not in "iu":
             raise BadInput(path, "cell", f"must hold integers, got {c.dtype}")
         c = c.astype(np.int64, copy=False)
+        check_range(c, "cell_id", path, "cell")
         ids = None
         if "cell_ids" in spec:
             raw = spec["cell_ids"]
@@ -880,6 +1039,7 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
                 ids = np.asarray(raw, dtype=np.int64).reshape(-1)
             except (TypeError, ValueError, OverflowError):
                 raise BadInput(mpath, "responses.cell_ids", "must be a list of integers") from None
+            check_range(ids, "cell_id", mpath, "responses.cell_ids")
             unknown = np.setdiff1d(c, ids)
             if unknown.size:
                 raise BadInput(path, "cell", f"cell {int(unknown[0])} is not in responses.cell_ids")
@@ -955,13 +1115,69 @@ def _read_json_object(path, missing: str = "file not found") -> dict:
     path = Path(path)
     if not path.is_file():
         raise BadInput(path, None, missing)
+    size = path.stat().st_size
+    if size > MAX_JSON_BYTES:
+        raise BadInput(path, None, f"is {size} bytes; a manifest or mapping has at most {MAX_JSON_BYTES}")
     try:
-        value = json.loads(path.read_text(encoding="utf-8"))
+        with open(path, "rb") as fh:
+            raw = fh.read(MAX_JSON_BYTES + 1)
+        if len(raw) > MAX_JSON_BYTES:
+            raise BadInput(path, None, f"is larger than {MAX_JSON_BYTES} bytes")
+        text = raw.decode("utf-8")
+        depth = _json_depth(text)
+        if depth > MAX_JSON_DEPTH:
+            raise BadInput(path, None, f"nests {depth} levels deep; at most {MAX_JSON_DEPTH} are accepted")
+        value = json.loads(text, parse_float=_json_number, parse_int=_json_number,
+                           parse_constant=_json_constant)
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise BadInput(path, None, f"is not valid JSON ({exc})") from None
+    except ValueError as exc:                               # from _json_number / _json_constant
+        raise BadInput(path, None, f"holds an unreadable number: {exc}") from None
+    except RecursionError:
+        raise BadInput(path, None, "nests too deeply") from None
     if not isinstance(value, dict):
         raise BadInput(path, None, "must hold a JSON object")
     return value
+
+
+#: Largest manifest or mapping (JSON) read; a session.json with a million cell ids is ~8 MB.
+MAX_JSON_BYTES = 64 * 2 ** 20
+#: Deepest nesting of JSON arrays and objects accepted (a manifest needs 3).
+MAX_JSON_DEPTH = 32
+
+
+def _json_depth(text: str) -> int:
+    """Deepest nesting of ``[``/``{`` outside strings in the JSON ``text`` (no recursion)."""
+    depth = deepest = 0
+    in_str = False
+    for ch in re.findall(r'\\.|[\[\]{}"]', text, re.S):
+        if ch[0] == "\\":                         # an escape sequence (inside a string)
+            continue
+        if in_str:
+            if ch == '"':
+                in_str = False
+        elif ch == '"':
+            in_str = True
+        elif ch in "[{":
+            depth += 1
+            deepest = max(deepest, depth)
+        elif ch in "]}":
+            depth -= 1
+    return deepest
+
+
+def _json_number(text: str):
+    """A JSON number: an int when written as one, else a float; refused beyond :data:`MAX_NUMBER_CHARS`
+    characters or the float64 range."""
+    if len(text) > MAX_NUMBER_CHARS:
+        raise ValueError(f"'{text[:12]}...' has {len(text)} characters (at most {MAX_NUMBER_CHARS})")
+    if re.fullmatch(r"-?[0-9]+", text):
+        return int(text)
+    return parse_number(text)
+
+
+def _json_constant(name: str):
+    raise ValueError(f"{name} is not a number JSON allows")
 
 
 def _load_stimuli(folder: Path, manifest: dict, notes: list):
@@ -1012,9 +1228,16 @@ def load_session(folder) -> Session:
         d = manifest["display"]
         try:
             eye = d.get("eye_cm", [0.0, 0.0])
+            for key, limit in (("width_cm", "display_cm"), ("height_cm", "display_cm"),
+                               ("distance_cm", "display_cm"), ("width_px", "display_px"),
+                               ("height_px", "display_px")):
+                check_range(float(d[key]), limit, mpath, f"display.{key}")
+            check_range([float(eye[0]), float(eye[1])], "eye_cm", mpath, "display.eye_cm")
             display = Display(width_cm=float(d["width_cm"]), height_cm=float(d["height_cm"]),
                               width_px=int(d["width_px"]), height_px=int(d["height_px"]),
                               distance_cm=float(d["distance_cm"]), eye_x_cm=float(eye[0]), eye_y_cm=float(eye[1]))
+        except BadInput:
+            raise
         except (KeyError, TypeError, ValueError, IndexError, AttributeError, OverflowError) as exc:
             raise BadInput(mpath, "display", f"is incomplete or invalid ({exc})") from None
     rois = None
@@ -1028,6 +1251,7 @@ def load_session(folder) -> Session:
             off = spec.get("label_offset", 0)
             if isinstance(off, bool) or not isinstance(off, int):
                 raise BadInput(mpath, "rois.label_offset", f"must be an integer, got {off!r}")
+            check_range(off, "label_offset", mpath, "rois.label_offset")
             roi_offset = int(off)
         else:
             rel = spec
@@ -1037,12 +1261,29 @@ def load_session(folder) -> Session:
         rois = _load_rois(folder, rel)
     session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
                       rois=rois, roi_label_offset=roi_offset, path=folder,
-                      name=str(manifest.get("name", folder.name)), notes=notes)
+                      name=_session_name(manifest, folder, mpath), notes=notes)
     spec = manifest["responses"]
     spike_file = folder / spec["file"]
     at = (spike_file, "time_s") if isinstance(responses, Spikes) else (folder / spec["times"], "times")
     check_overlap(session, at, notes, f"{spike_file}: field time_s")
     return session
+
+
+#: Longest session name accepted (it names folders and report titles).
+MAX_NAME_CHARS = 200
+
+
+def _session_name(manifest: dict, folder: Path, mpath) -> str:
+    """The manifest's ``name`` (text of at most :data:`MAX_NAME_CHARS` characters), else the folder's
+    name, with bytes that are not UTF-8 (a folder named in another encoding) shown as U+FFFD."""
+    if manifest.get("name") is not None:
+        name = manifest["name"]
+        if not isinstance(name, str) or not name.strip():
+            raise BadInput(mpath, "name", f"must be a non-empty text, got {name!r}"[:120])
+        if len(name) > MAX_NAME_CHARS:
+            raise BadInput(mpath, "name", f"has {len(name)} characters; at most {MAX_NAME_CHARS}")
+        return name
+    return os.fsencode(Path(os.path.abspath(folder)).name).decode("utf-8", "replace")[:MAX_NAME_CHARS]
 
 
 def check_overlap(session: Session, at, notes: list, where: str) -> None:
@@ -1086,12 +1327,31 @@ def _load_rois(folder: Path, rel) -> np.ndarray:
         raise BadInput(path, "rois", "file not found")
     try:
         import tifffile
-        labels = tifffile.imread(path)
+        with tifffile.TiffFile(path) as tif:      # dimensions checked before anything is decoded
+            series = tif.series[0]
+            shape, dtype = tuple(int(n) for n in series.shape), np.dtype(series.dtype)
+            pixels = 1
+            for n in shape:
+                pixels *= n
+            if pixels > MAX_ROI_PIXELS:
+                raise BadInput(path, "rois", f"holds {' x '.join(map(str, shape))} pixels; a label image has at "
+                                             f"most {MAX_ROI_PIXELS}")
+            _affordable(pixels * dtype.itemsize, path, "rois", "the label image")
+            labels = series.asarray()
+    except BadInput:
+        raise
     except Exception as exc:
         raise BadInput(path, "rois", f"not a readable TIFF ({type(exc).__name__})") from None
     labels = np.squeeze(labels)
     if labels.ndim != 2 or not np.issubdtype(labels.dtype, np.integer):
         raise BadInput(path, "rois", f"must be a 2-D integer label image, got {labels.dtype} {labels.shape}")
+    if labels.size:
+        lo, hi = LIMITS["roi_label"][:2]
+        bad = (labels < lo) | (labels > hi)
+        if np.any(bad):
+            i, j = (int(v) for v in np.argwhere(bad)[0])
+            raise BadInput(path, "rois", f"label {int(labels[i, j])} at pixel ({i}, {j}) is outside {lo} to {hi} "
+                                         f"(0 = no cell)")
     return labels
 
 

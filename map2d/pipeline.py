@@ -438,6 +438,17 @@ def _trace_decay_option(value):
         raise BadInput("--trace-decay", None, str(exc)) from None
 
 
+def _check_max_lag(max_lag_s, sn) -> None:
+    """``--max-lag`` against the sparse noise ``sn`` (None: only the sign): at most a quarter of the
+    frames, so that the shuffles have room (BadInput naming both otherwise)."""
+    import math
+    if not (math.isfinite(max_lag_s) and max_lag_s >= 0):
+        raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {max_lag_s}")
+    if sn is not None and not (max_lag_s / sn.frame_interval_s < sn.n_frames / 4):
+        raise BadInput("--max-lag", None, f"{max_lag_s} s is too long for {sn.n_frames} sparse-noise frames "
+                                          f"of {sn.frame_interval_s:.4g} s (at most a quarter of them)")
+
+
 def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, trace_decay="auto",
              config=None) -> int:
     """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``.
@@ -469,16 +480,13 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
     from .nwb import load_source
 
     trace_decay = _trace_decay_option(trace_decay)
+    results_target(out)                       # refuse a bad --out before the work
     session = load_source(session_path, config)
     if session.sparse_noise is None:
         raise BadInput(_manifest_of(session_path, config), "sparse_noise",
                        "is missing (maps need a sparse-noise stimulus)")
     sn = session.sparse_noise
-    if not (max_lag_s >= 0):
-        raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {max_lag_s}")
-    if max_lag_s / sn.frame_interval_s >= sn.n_frames / 4:
-        raise BadInput("--max-lag", None, f"{max_lag_s} s is too long for {sn.n_frames} frames "
-                                          f"of {sn.frame_interval_s:.4g} s")
+    _check_max_lag(max_lag_s, sn)
     if fits:
         an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed,
                              trace_decay=trace_decay)
@@ -543,6 +551,7 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
     from .nwb import load_source
 
+    results_target(out)                       # refuse a bad --out before the work
     session = load_source(session_path, config)
     manifest = _manifest_of(session_path, config)
     g = session.gratings
@@ -692,7 +701,9 @@ def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=No
     from .analysis import analyze_session
     from .nwb import load_source
     trace_decay = _trace_decay_option(trace_decay)
+    results_target(out)                       # refuse a bad --out before the work
     session = load_source(session_path, config)
+    _check_max_lag(max_lag_s, session.sparse_noise)
     bar = _StageBar(quiet)
     try:
         analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, progress=bar,

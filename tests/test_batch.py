@@ -84,13 +84,16 @@ def test_sync_batch_reports_the_broken_session_and_finishes_the_others(sync_run,
     assert png[:8] == b"\x89PNG\r\n\x1a\n"
 
 
-def test_local_cluster_gives_identical_results(sessions, sync_run, tmp_path):
+def test_local_cluster_gives_identical_results(sessions, sync_run, tmp_path, capfd):
     pytest.importorskip("distributed")
     _, sync_out = sync_run
     out = tmp_path / "local"
+    capfd.readouterr()
     rc = batch.run_batch([sessions / n for n in NAMES] + [sessions / "d_broken"], out, report=False,
                          quiet=True)                  # default: the embedded local cluster
     assert rc == 2
+    err = capfd.readouterr().err                     # quiet: no log lines of the cluster, even at shutdown
+    assert "distributed." not in err and "Traceback" not in err, err
     a, b = _digest(sync_out), _digest(out)
     assert len(a) >= 3 * 4 and a == b                # cells.csv, maps.tif, maps.ome.tif, results.npz each
     assert (out / "batch.csv").read_text().count("bad input") == 1

@@ -139,8 +139,8 @@ def test_worker_pool_left_by_an_exception_kills_its_workers_at_once():
     with pytest.raises(ZeroDivisionError):
         with worker_pool(2) as ex:
             futs = [ex.submit(_sleep_then, 30.0) for _ in range(8)]   # 4 min of queued work
-            _wait_until(lambda: len(_children(os.getpid())) >= 2, 60)
-            pids = _children(os.getpid())
+            _wait_until(lambda: sum(_alive(p) for p in (ex._processes or {})) >= 2, 60)
+            pids = list(ex._processes or {})
             1 / 0
     assert time.monotonic() - t0 < 60          # did not wait for the queued work
     assert pids and _wait_until(lambda: not any(_alive(p) for p in pids), 10.0)
