@@ -269,9 +269,10 @@ def _run_distributed(jobs, scheduler, workers, memory_limit, bar) -> dict:
     import logging
     cluster = None
     results = {}
-    # the cluster's own log lines (start-up, heartbeats lost at shutdown) are chatter: failures reach
-    # batch.csv through the futures. Worker processes read the level from the environment at import.
-    quiet_env = {"DASK_LOGGING__DISTRIBUTED": "critical"}
+    # the cluster's own log lines (start-up, heartbeats lost at shutdown) and warnings in its worker
+    # processes are chatter (the CLI shows a single run's warnings only with --debug): failures reach
+    # batch.csv through the futures. Worker processes read both settings from the environment.
+    quiet_env = {"DASK_LOGGING__DISTRIBUTED": "critical", "PYTHONWARNINGS": "ignore"}
     saved_env = {k: os.environ.get(k) for k in quiet_env}
     os.environ.update(quiet_env)
     logging.getLogger("distributed").setLevel(logging.CRITICAL)

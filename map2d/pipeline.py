@@ -189,8 +189,11 @@ def results_folder(out, mark=True):
         with _parent_locked(parent):         # no other run cleans between mkdtemp and the lock
             _clean_stale(dest)
             tmp = Path(tempfile.mkdtemp(prefix=f".{dest.name}.partial-{os.getpid()}-", dir=parent))
-            fd = os.open(tmp, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-            _lock(fd, block=False)           # marks the folder as in use for _clean_stale
+            try:                             # lock it: marks the folder as in use for _clean_stale
+                fd = os.open(tmp, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+                _lock(fd, block=False)
+            except OSError:                  # no folder handles here (Windows): process ids only
+                pass
     except OSError as exc:
         if fd is not None:
             os.close(fd)

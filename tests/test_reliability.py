@@ -339,3 +339,18 @@ def test_simulate_replaces_atomically_and_follows_the_umask(tmp_path, capsys):
     assert (tmp_path / "s").stat().st_mode & 0o777 == 0o750
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s", "s.truth.json"]
     assert np.load(tmp_path / "s" / "sparse_noise_times.npy").size > 0
+
+
+def test_maps_ome_tiff_is_byte_identical_run_to_run(tmp_path):
+    from map2d.export.tiff import write_maps_ome_tiff
+    from map2d.geometry import Grid
+    grid = Grid(ny=3, nx=4, center_x_deg=0.0, center_y_deg=0.0, dx_deg=1.0, dy_deg=1.0)
+    maps = np.random.default_rng(0).random((2, 2, 3, 3, 4)).astype(np.float32)
+    for name in ("a", "b"):
+        write_maps_ome_tiff(tmp_path / f"{name}.ome.tif", maps, grid, [0.0, 0.05], [0, 1])
+    maps[0, 0, 0, 0, 0] += 1.0
+    write_maps_ome_tiff(tmp_path / "c.ome.tif", maps, grid, [0.0, 0.05], [0, 1])
+    a, b, c = ((tmp_path / f"{n}.ome.tif").read_bytes() for n in "abc")
+    assert a == b
+    uuid = [x.split(b'UUID="')[1][:45] for x in (a, c)]
+    assert uuid[0] != uuid[1]                    # other maps, another identity
