@@ -288,12 +288,13 @@ def _affordable(nbytes, path, key, what) -> None:
                                   f"read here")
 
 
-def _load_npz(folder: Path, rel: str, key: str, members=None) -> dict:
+def _load_npz(folder: Path, rel: str, key: str, members=None, check_headers=None) -> dict:
     """The arrays of an ``.npz`` file (only ``members`` when given; others are never read).
 
     Reads are bounded before any decompression: each member's declared size must fit the limit
-    (:func:`_affordable`) and agree with the shape and type its ``.npy`` header states; then its
-    CRC-32 is checked in 1 MiB chunks, so damaged data never loads silently."""
+    (:func:`_affordable`) and agree with the shape and type its ``.npy`` header states, and
+    ``check_headers({name: (shape, dtype)})`` may refuse the file from the headers alone; then each
+    member's CRC-32 is checked in 1 MiB chunks, so damaged data never loads silently."""
     path = folder / rel
     if not path.is_file():
         raise BadInput(path, key, "file not found")
@@ -301,6 +302,7 @@ def _load_npz(folder: Path, rel: str, key: str, members=None) -> dict:
         with zipfile.ZipFile(path) as zf:
             infos = [i for i in zf.infolist() if i.filename.endswith(".npy")
                      and (members is None or i.filename[:-4] in members)]
+            headers = {}
             for info in infos:
                 name = info.filename[:-4]
                 _affordable(info.file_size, path, name, "the array")
@@ -317,6 +319,11 @@ def _load_npz(folder: Path, rel: str, key: str, members=None) -> dict:
                     if fh.tell() + data != info.file_size:
                         raise BadInput(path, name, f"not a readable .npz member (its header describes {data} "
                                                    f"bytes of data, the member holds {info.file_size - fh.tell()})")
+                headers[name] = (tuple(int(n) for n in shape), dtype)
+            if check_headers is not None:
+                check_headers(headers)
+            for info in infos:
+                with zf.open(info) as fh:
                     while fh.read(_CHUNK_BYTES):   # the CRC-32 is checked when the member ends
                         pass
         with np.load(path, allow_pickle=False) as z:
@@ -1006,7 +1013,16 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
     rel = _rel(spec, "file", mpath, "responses")
     path = folder / rel
     if kind == "spikes":
-        z = _load_npz(folder, rel, "file", members=("time_s", "cell"))
+        def spike_headers(h):                      # refused from the headers, before any data is read
+            for key in ("time_s", "cell"):
+                if key not in h:
+                    raise BadInput(path, key, "array is missing")
+                if len(h[key][0]) != 1:
+                    raise BadInput(path, key, f"must be one-dimensional, got shape {h[key][0]}")
+            if h["time_s"][0] != h["cell"][0]:
+                raise BadInput(path, "cell", f"has {h['cell'][0][0]} entries but time_s has {h['time_s'][0][0]}")
+
+        z = _load_npz(folder, rel, "file", members=("time_s", "cell"), check_headers=spike_headers)
         for key in ("time_s", "cell"):
             if key not in z:
                 raise BadInput(path, key, "array is missing")

@@ -312,3 +312,25 @@ def test_a_long_multiline_message_is_cut_to_one_line(good, tmp_path, capsys, mon
     assert map2d.cli.main(["analyze", str(good), "--out", str(tmp_path / "o"), "--quiet"]) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and len(err) <= 420 and "x.nwb" in err and "--debug" in err, err
+
+
+def test_spike_arrays_of_unequal_length_are_refused_from_their_headers(copy, monkeypatch):
+    with np.load(copy / "spikes.npz") as z:
+        t, c = z["time_s"], z["cell"]
+    np.savez(copy / "spikes.npz", time_s=np.zeros(2_000_000), cell=c)       # 16 MB of zeros
+    read = []
+    original = zipfile.ZipExtFile.read
+    monkeypatch.setattr(zipfile.ZipExtFile, "read", lambda self, n=-1: read.append(n) or original(self, n))
+    with pytest.raises(BadInput) as info:
+        load_session(copy)
+    assert f"has {c.size} entries but time_s has 2000000" in str(info.value)
+    assert contract._CHUNK_BYTES not in read and -1 not in read     # only the headers were read
+
+
+@pytest.mark.parametrize("command", ["maps", "analyze"])
+def test_two_frame_sparse_noise_is_refused_naming_max_lag(copy, tmp_path, capsys, command):
+    np.save(copy / "sparse_noise.npy", np.load(copy / "sparse_noise.npy")[:2])
+    np.save(copy / "sparse_noise_times.npy", np.load(copy / "sparse_noise_times.npy")[:2])
+    code = map2d.cli.main([command, str(copy), "--out", str(tmp_path / "o"), "--quiet"])
+    err = [ln for ln in capsys.readouterr().err.splitlines() if "warning" not in ln]
+    assert code == 2 and len(err) == 1 and "--max-lag" in err[0] and "2 sparse-noise frames" in err[0], err
