@@ -207,18 +207,31 @@ def results_folder(out, mark=True):
         if replaced is not None:
             shutil.rmtree(replaced, ignore_errors=True)
     except BaseException as exc:
+        errno_, reason = getattr(exc, "errno", None), getattr(exc, "strerror", None)
+        if isinstance(exc, OSError) and errno_ is None and _disk_full(parent):
+            import errno                          # e.g. numpy's "N requested and M written"
+            errno_, reason = errno.ENOSPC, os.strerror(errno.ENOSPC)
         shutil.rmtree(tmp, ignore_errors=True)
         if isinstance(exc, OSError):             # name the results' path, not the temporary one
             name = os.fsdecode(exc.filename) if exc.filename is not None else str(dest)
             if name.startswith(str(tmp)):
                 name = str(dest) + name[len(str(tmp)):]
-            env = environment_error(OSError(exc.errno, exc.strerror, name), dest)
+            env = environment_error(OSError(errno_, reason, name), dest)
             if env is not None:
                 raise env from None
         raise
     finally:
         if fd is not None:
             os.close(fd)
+
+
+def _disk_full(folder) -> bool:
+    """Whether the file system of ``folder`` has (almost) no space left: under 1 MiB or 0.1 % free."""
+    try:
+        use = shutil.disk_usage(folder)
+    except OSError:
+        return False
+    return use.free < max(2 ** 20, 0.001 * use.total)
 
 
 def _umask() -> int:

@@ -354,3 +354,18 @@ def test_maps_ome_tiff_is_byte_identical_run_to_run(tmp_path):
     assert a == b
     uuid = [x.split(b'UUID="')[1][:45] for x in (a, c)]
     assert uuid[0] != uuid[1]                    # other maps, another identity
+
+
+def test_a_short_write_on_a_full_disk_is_named_as_such(tmp_path, monkeypatch, capsys):
+    """numpy reports a full disk as "N requested and M written" without an errno (seen on a 200 kB
+    tmpfs): with the file system (almost) full it is refused as a full disk."""
+    import map2d.contract
+
+    def short_write(folder, **kwargs):
+        raise OSError("921600 requested and 204672 written")
+    monkeypatch.setattr(map2d.contract, "write_stimulus", short_write)
+    monkeypatch.setattr(pipeline, "_disk_full", lambda folder: True)
+    assert _stimulus(tmp_path / "res") == 2
+    msg = capsys.readouterr().err
+    assert f"{tmp_path / 'res'}: cannot write (No space left on device)" in msg
+    assert sorted(p.name for p in tmp_path.iterdir()) == []
