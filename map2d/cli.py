@@ -89,8 +89,10 @@ def build_parser() -> argparse.ArgumentParser:
     sn.add_argument("--spots", type=_number(1, 10 ** 4, integer=True), default=4, help="spots per frame (default 4)")
     sn.add_argument("--min-distance-deg", type=_number(0.0, 360.0), default=5.0,
                     help="minimum distance between spots in one frame, degrees (default 5)")
-    sn.add_argument("--rate-hz", type=_number(0.0, 1000.0, above=True), default=20.0, help="frames per second (default 20)")
-    sn.add_argument("--minutes", type=_number(0.0, 10080.0, above=True), default=10.0, help="duration in minutes (default 10)")
+    sn.add_argument("--rate-hz", type=_number(0.0, 1000.0, above=True), default=20.0,
+                    help="frames per second (default 20)")
+    sn.add_argument("--minutes", type=_number(0.0, 10080.0, above=True), default=10.0,
+                    help="duration in minutes (default 10)")
     sn.add_argument("--seed", type=_SEED, default=0, help="random seed (default 0)")
     _add_render_args(sn)
     _add_common(sn)
@@ -105,16 +107,25 @@ def build_parser() -> argparse.ArgumentParser:
                     help="number of orientations over 0-180 (flashed) or directions over 0-360 (drifting)")
     gr.add_argument("--sf-cpd", type=_number(1e-4, 100.0), nargs="+", default=(0.02, 0.04, 0.08, 0.16, 0.32),
                     help="spatial frequencies in cycles/deg")
-    gr.add_argument("--phases", type=_number(1, 3600, integer=True), default=4, help="phases per grating, flashed mode (default 4)")
-    gr.add_argument("--blank-fraction", type=_number(0.0, 1.0), default=0.1, help="fraction of blank frames, flashed mode")
+    gr.add_argument("--phases", type=_number(1, 3600, integer=True), default=4,
+                    help="phases per grating, flashed mode (default 4)")
+    gr.add_argument("--blank-fraction", type=_number(0.0, 1.0), default=0.1,
+                    help="fraction of blank frames, flashed mode")
     gr.add_argument("--contrast", type=_number(0.0, 1.0), default=1.0, help="Michelson contrast (default 1)")
-    gr.add_argument("--rate-hz", type=_number(0.0, 1000.0, above=True), default=10.0, help="frames per second, flashed mode (default 10)")
-    gr.add_argument("--minutes", type=_number(0.0, 10080.0, above=True), default=10.0, help="duration, flashed mode (default 10)")
-    gr.add_argument("--tf-hz", type=_number(0.0, 1000.0), default=2.0, help="temporal frequency, drifting mode (default 2)")
-    gr.add_argument("--duration-s", type=_number(0.0, 86400.0, above=True), default=2.0, help="trial duration, drifting mode (default 2)")
-    gr.add_argument("--gap-s", type=_number(0.0, 86400.0), default=1.0, help="gap between trials, drifting mode (default 1)")
-    gr.add_argument("--repeats", type=_number(1, 10 ** 5, integer=True), default=5, help="repeats per condition, drifting mode (default 5)")
-    gr.add_argument("--start-s", type=_number(0.0, 1e10), default=0.0, help="onset of the first presentation (default 0)")
+    gr.add_argument("--rate-hz", type=_number(0.0, 1000.0, above=True), default=10.0,
+                    help="frames per second, flashed mode (default 10)")
+    gr.add_argument("--minutes", type=_number(0.0, 10080.0, above=True), default=10.0,
+                    help="duration, flashed mode (default 10)")
+    gr.add_argument("--tf-hz", type=_number(0.0, 1000.0), default=2.0,
+                    help="temporal frequency, drifting mode (default 2)")
+    gr.add_argument("--duration-s", type=_number(0.0, 86400.0, above=True), default=2.0,
+                    help="trial duration, drifting mode (default 2)")
+    gr.add_argument("--gap-s", type=_number(0.0, 86400.0), default=1.0,
+                    help="gap between trials, drifting mode (default 1)")
+    gr.add_argument("--repeats", type=_number(1, 10 ** 5, integer=True), default=5,
+                    help="repeats per condition, drifting mode (default 5)")
+    gr.add_argument("--start-s", type=_number(0.0, 1e10), default=0.0,
+                    help="onset of the first presentation (default 0)")
     gr.add_argument("--phase-origin-deg", type=_ANGLE, nargs=2, default=(0.0, 0.0), metavar=("X", "Y"),
                     help="phase origin (xc, yc) in degrees (default 0 0)")
     gr.add_argument("--aperture-deg", type=_ANGLE, nargs=3, default=None, metavar=("X", "Y", "DIAMETER"),
@@ -131,8 +142,10 @@ def build_parser() -> argparse.ArgumentParser:
                                      "OUT.truth.json beside it.")
     sim.add_argument("out", type=Path, help="session folder to create")
     sim.add_argument("--seed", type=_SEED, default=0, help="random seed (default 0)")
-    sim.add_argument("--cells", type=_number(-10 ** 6, 10 ** 5, integer=True), default=20, help="number of cells (default 20)")
-    sim.add_argument("--minutes", type=_number(-1e4, 10080.0), default=20.0, help="sparse-noise duration in minutes (default 20)")
+    sim.add_argument("--cells", type=_number(-10 ** 6, 10 ** 5, integer=True), default=20,
+                     help="number of cells (default 20)")
+    sim.add_argument("--minutes", type=_number(-1e4, 10080.0), default=20.0,
+                     help="sparse-noise duration in minutes (default 20)")
     sim.add_argument("--responses", choices=("spikes", "traces"), default="spikes",
                      help="electrophysiology spikes or imaging traces (default spikes)")
     sim.add_argument("--overwrite", action="store_true", help="replace an existing session folder")
@@ -174,7 +187,8 @@ def build_parser() -> argparse.ArgumentParser:
     bat.add_argument("--scheduler", default=None,
                      help="tcp://HOST:PORT of a running dask scheduler, or sync to run here without Dask "
                           "(default: an embedded local cluster)")
-    bat.add_argument("--workers", type=_number(1, 1024, integer=True), default=2, help="workers of the embedded local cluster (default 2)")
+    bat.add_argument("--workers", type=_number(1, 1024, integer=True), default=2,
+                     help="workers of the embedded local cluster (default 2)")
     bat.add_argument("--memory-limit", default="10GB",
                      help="memory limit per worker of the embedded local cluster (default 10GB)")
     bat.add_argument("--config", type=Path, default=None, help="NWB mapping (JSON) for every .nwb SESSION")
