@@ -213,14 +213,17 @@ def build_parser() -> argparse.ArgumentParser:
     w.add_argument("folder", type=Path, metavar="DIR", help="the folder the recording writes into")
     w.add_argument("--out", type=Path, default=None, help="results folder for the final maps (default DIR/maps)")
     w.add_argument("--page", type=Path, default=None, help="live page (default DIR/live.html)")
-    w.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s", help="longest lag in seconds (default 0.2)")
-    w.add_argument("--idle-s", type=float, default=60.0, help="end after this many seconds without data (default 60)")
-    w.add_argument("--poll-s", type=float, default=0.5, help="seconds between reads of the files (default 0.5)")
-    w.add_argument("--refresh-s", type=float, default=2.0, help="seconds between page updates (default 2)")
-    w.add_argument("--summary-s", type=float, default=10.0, help="seconds between terminal lines (default 10)")
-    w.add_argument("--cells", type=int, nargs="+", default=None, metavar="ID",
+    w.add_argument("--max-lag", type=_LAG, default=0.2, dest="max_lag_s", help="longest lag in seconds (default 0.2)")
+    w.add_argument("--idle-s", type=_number(0.0, 1e7), default=60.0,
+                   help="end after this many seconds without data (default 60)")
+    w.add_argument("--poll-s", type=_number(0.0, 3600.0, above=True), default=0.5,
+                   help="seconds between reads of the files (default 0.5)")
+    w.add_argument("--refresh-s", type=_number(0.0, 1e7), default=2.0, help="seconds between page updates (default 2)")
+    w.add_argument("--summary-s", type=_number(0.0, 1e7), default=10.0,
+                   help="seconds between terminal lines (default 10)")
+    w.add_argument("--cells", type=_number(-2 ** 53, 2 ** 53, integer=True), nargs="+", default=None, metavar="ID",
                    help="cells whose fields the aperture covers (default: every responsive cell)")
-    w.add_argument("--seed", type=int, default=0, help="seed for the final shuffles (default 0)")
+    w.add_argument("--seed", type=_SEED, default=0, help="seed for the final shuffles (default 0)")
     w.add_argument("--no-fits", action="store_true", help="final maps without model fits (faster)")
     _add_common(w)
     rp = sub.add_parser("replay", help="write a session into a folder as a recording would (tests, demos)",

@@ -278,7 +278,7 @@ LAG_AND_SEED = [("--max-lag", v) for v in ("-1", "nan", "inf", "100", "1_0", "1e
                [("--seed", v) for v in ("-1", str(2 ** 70), "1.5", "1_0")]
 
 
-@pytest.mark.parametrize("command", ["maps", "gratings", "analyze", "batch"])
+@pytest.mark.parametrize("command", ["maps", "gratings", "analyze", "batch", "watch"])
 @pytest.mark.parametrize("option,value", LAG_AND_SEED)
 def test_max_lag_and_seed_validated_in_every_analysis_command(good, tmp_path, capsys, command, option, value):
     code = map2d.cli.main([command, str(good), "--out", str(tmp_path / "o"), "--quiet", option, value])
