@@ -13,10 +13,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .contract import Session, Traces
-from .reconcile import OVERLAP_THRESHOLD
 
-__all__ = ["Analysis", "analyze_session", "flashed_noise", "spatial_maps", "linear_share", "CONTRACT_COLUMNS",
-           "LINEAR_SHARE_THRESHOLD"]
+__all__ = ["Analysis", "analyze_session", "flashed_noise", "CONTRACT_COLUMNS"]
 
 #: The columns the results contract requires, first and in this order.
 CONTRACT_COLUMNS = ("cell", "responsive", "center_x_deg", "center_y_deg", "peak_lag_s",
@@ -40,11 +38,13 @@ class Analysis:
     maps : map2d.maps.MapResult or None  (None without sparse noise)
     fits : list of map2d.fit.spatial.SpatialFit or None, per cell (None for a cell not fitted)
     peak_maps : ndarray (C, ny, nx) or None  the linear map at each cell's peak lag (NaN when not responsive)
-    spatial_maps : ndarray (C, ny, nx) or None  spatial part of the separable fit (:func:`spatial_maps`);
-        what the models are fitted to
+    spatial_maps : ndarray (C, ny, nx) or None  spatial part of the separable fit of the map that carries
+        each cell (:func:`map2d.maps.choose_maps`); what the models are fitted to
     map_kind : ndarray of str (C,) or None  which map that is: 'linear', 'on+off', or '' (not responsive)
-    model_maps : ndarray (C, ny, nx) or None  the fitted model evaluated on the grid (NaN when not fitted);
-        what predicts the gratings
+    model_maps : ndarray (C, ny, nx) or None  what predicts the gratings: the accepted fit of a linear map,
+        otherwise the separable linear map itself (NaN when not responsive)
+    fields : map2d.fit.spatial.CellFields or None  map choice, fit checks, centres and each cell's field
+        pixel (:func:`map2d.fit.spatial.locate_fields`)
     flashed : map2d.gratings.FlashedResult or None
     drifting : map2d.gratings.DriftingResult or None
     predicted_h : ndarray complex (C, O, S) or None  forward prediction of the flashed surface from the map:
@@ -61,7 +61,8 @@ class Analysis:
     size_radii_deg : ndarray (R,) or None ; size_disk, size_annulus : ndarray (C, R) or None
     cells : dict of column name -> list/array  the ``cells.csv`` table (contract columns first), then
         ``linear_reason``, map statistics (``polarity``, ``onoff_overlap``, ``linear_share``, ``snr`` ...),
-        the fit columns of :func:`map2d.fit.spatial.fit_maps` (kernel parameters, pixel box removed),
+        the fit columns of :func:`map2d.fit.spatial.locate_fields` (kernel parameters, pixel box removed;
+        ``center_method``, ``fit_check``),
         ``agreement_raw``, ``agreement_noise_corrected``, ``grating_signal_fraction``,
         ``grating_signal_p_value``, ``magnitude_agreement``, ``phase_error_deg``, ``agreement_gain``,
         ``inverse_similarity`` and the tuning columns
@@ -95,6 +96,7 @@ class Analysis:
     cells: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)
     trace_decay: object | None = None
+    fields: object | None = None
 
     @property
     def grid(self):
@@ -102,56 +104,6 @@ class Analysis:
 
     def row_of(self, cell_id) -> int:
         return int(np.searchsorted(self.cell_ids, cell_id))
-
-
-def _separable(a, li):
-    """Spatial singular vector of ``a`` (L, P), scaled to the projection of lag ``li`` on it."""
-    _, _, vt = np.linalg.svd(a, full_matrices=False)
-    u = vt[0]
-    return u * float(a[li] @ u)
-
-
-#: :func:`linear_share` below which ON and OFF regions are called coextensive: the value for ON and OFF
-#: maps of equal size with cosine similarity 0.5, the overlap threshold (``(1 - 0.5) / (1 + 0.5)``).
-LINEAR_SHARE_THRESHOLD = 1.0 / 3.0
-
-
-def linear_share(maps, c, z_min=3.0):
-    """Share of the ON + OFF map's power that the linear map keeps, over the cell's excitatory region.
-
-    ``sum_S (on - off)^2 / sum_S (on + off)^2`` at the cell's peak lag, over the pixels ``S`` where the
-    ON + OFF map exceeds ``z_min`` noise sds (the sd of ON + OFF equals that of the linear map,
-    ``linear / linear_z``; ON and OFF estimates come from different frames). A cell whose bright and dark
-    spots excite the same pixels (a complex cell) has ``on ~ off`` there: a share near 0 (the residual
-    is the linear map's noise, about ``1 / z^2``). A rectified linear cell (simple, DoG) has ``on = [k]_+``
-    and ``off = [-k]_+``, so ``|on - off| = |on + off|``: a share near 1. With ON and OFF maps of equal
-    norm and cosine similarity ``s`` it is ``(1 - s) / (1 + s)``. Selecting ``S`` on the ON + OFF map does
-    not bias the linear map's noise (the two noises are uncorrelated for equal ON and OFF variances).
-
-    Returns
-    -------
-    float
-        1.0 when no pixel reaches ``z_min`` (no excitation by both polarities to compare, e.g. a cell
-        that is linear without rectification, whose ON + OFF map is zero), NaN for dense noise.
-    """
-    li = int(maps.peak_lag_index[c])
-    if li < 0:
-        return np.nan
-    on, off = maps.on[c, li].astype(float), maps.off[c, li].astype(float)
-    lin, lz = maps.linear[c, li].astype(float), maps.linear_z[c, li].astype(float)
-    if not np.isfinite(on).any():
-        return np.nan
-    with np.errstate(invalid="ignore", divide="ignore"):
-        sd = np.abs(lin / lz)
-    sd = np.where(np.isfinite(sd) & (sd > 0), sd, np.nan)
-    if not np.isfinite(sd).any():
-        return 1.0
-    sd = np.where(np.isfinite(sd), sd, np.nanmedian(sd))
-    both = on + off
-    sel = np.isfinite(both) & (both / sd >= z_min)
-    if not sel.any():
-        return 1.0
-    return float(np.sum((on - off)[sel] ** 2) / np.sum(both[sel] ** 2))
 
 
 def _map_time_course(maps, patterns):
@@ -162,52 +114,6 @@ def _map_time_course(maps, patterns):
     pp = np.sum(p * p, axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(pp[:, None] > 0, np.einsum("clp,cp->cl", lin, p) / pp[:, None], 0.0)
-
-
-def spatial_maps(maps):
-    """The spatial part of a rank-1 space-time separable fit of each responsive cell's map.
-
-    The map over lags, ``(L, ny * nx)``, is reduced to its first singular vectors ``m(l, p) ~ s_l u_p``;
-    the spatial map is ``u`` scaled to the cell's peak lag (the peak-lag map projected on ``u``), so it
-    keeps the peak-lag map's units and sign. Pooling the lags this way raises the signal-to-noise
-    ratio when a response spreads over two frames.
-
-    The linear map (ON - OFF) is used unless the cell's ON and OFF regions coincide (ON/OFF overlap
-    above :data:`map2d.reconcile.OVERLAP_THRESHOLD`, the segregation criterion of Hubel & Wiesel 1962,
-    or :func:`linear_share` below :data:`LINEAR_SHARE_THRESHOLD`, the same criterion measured over the
-    whole excitatory region, which stays reliable at low signal-to-noise):
-    a cell that answers bright and dark spots alike at the same places (a complex cell) has little
-    linear map, and its location then comes from the ON + OFF map, which is positive where either
-    polarity excites it.
-
-    Returns
-    -------
-    spatial : ndarray (C, ny, nx)  NaN for cells that are not responsive
-    linear_spatial : ndarray (C, ny, nx)  separable linear map (whether significant or not)
-    peak : ndarray (C, ny, nx)  the raw linear map at the peak lag
-    kind : ndarray of str (C,)  'linear', 'on+off' or '' (not responsive)
-    """
-    C = maps.n_cells
-    ny, nx = maps.grid.shape
-    shape = (C, ny, nx)
-    spatial, linear_spatial, peak = np.full(shape, np.nan), np.full(shape, np.nan), np.full(shape, np.nan)
-    kind = np.full(C, "", dtype=object)
-    L = maps.linear.shape[1]
-    for c in np.flatnonzero(maps.peak_lag_index >= 0):
-        li = int(maps.peak_lag_index[c])
-        lin = np.nan_to_num(maps.linear[c].reshape(L, -1).astype(float))
-        peak[c] = lin[li].reshape(ny, nx)
-        linear_spatial[c] = _separable(lin, li).reshape(ny, nx)
-        overlap = float(maps.onoff_overlap[c])
-        coextensive = overlap > OVERLAP_THRESHOLD or linear_share(maps, c) < LINEAR_SHARE_THRESHOLD
-        if not coextensive or not np.isfinite(maps.on[c]).any():
-            kind[c] = "linear"
-            spatial[c] = linear_spatial[c]
-        else:
-            both = np.nan_to_num((maps.on[c] + maps.off[c]).reshape(L, -1).astype(float))
-            kind[c] = "on+off"
-            spatial[c] = _separable(both, li).reshape(ny, nx)
-    return spatial, linear_spatial, peak, kind
 
 
 def flashed_noise(responses, table, flashed, max_lag_s=0.2):
@@ -321,7 +227,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     rng : numpy.random.Generator or int, optional
         Seed for the shuffle tests (same seed, same results).
     n_jobs : int, optional
-        Worker processes for the model fits (default: chosen by :func:`map2d.fit.spatial.fit_maps`).
+        Worker processes for the model fits (default: as :func:`map2d.fit.spatial.fit_maps`).
     n_shuffles, alpha : int, float
         Shuffle count and family-wise level of the ``responsive`` calls.
     size_radii_deg : array_like, optional
@@ -341,9 +247,9 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     -----
     Choices, each measured on simulated sessions (``tests/test_analysis.py``):
 
-    - What is fitted: the spatial part of a rank-1 space-time separable map (:func:`spatial_maps`),
-      the linear map for cells with segregated ON and OFF regions, the ON + OFF map (Gaussian envelope:
-      location and extent only) for coextensive ones (:func:`linear_share`, ``onoff_overlap``).
+    - What is fitted, and whether the fit is kept: :func:`map2d.fit.spatial.locate_fields` (the map that
+      carries each cell is chosen by :func:`map2d.maps.choose_maps`; a fit that does not earn its place
+      leaves the fit columns empty and the centre comes from the significant region, ``center_method``).
     - Widths and SF are the kernel's: a spot fills its pixel, so the map is the kernel averaged over
       the pixel, and a fit to it reports widths 3-8 % too large and a Gabor frequency 2-3 % too low on
       2-deg pixels; :func:`map2d.fit.spatial.remove_pixel_box` undoes that (exact to < 1 % on noiseless
@@ -366,7 +272,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
       ``grating_signal_fraction`` and ``grating_signal_p_value`` say what was done.
     """
     from . import reconcile
-    from .fit.spatial import fit_maps
+    from .fit.spatial import locate_fields
     from .fit.tuning import TUNING_COLUMNS, grating_tuning_columns
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
     from .maps import compute_maps
@@ -392,22 +298,18 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
             an.notes.append(an.trace_decay.note())
         an.maps = compute_maps(map_responses, session.sparse_noise, max_lag_s=max_lag_s,
                                n_shuffles=n_shuffles, alpha=alpha, rng=rng)
-        an.spatial_maps, linear_spatial, an.peak_maps, an.map_kind = spatial_maps(an.maps)
         step("fits")
-        is_linear = an.map_kind == "linear"
-        # reported parameters are the kernel's: the pixel box of the spots is removed (the maps
-        # average the kernel over each pixel; see map2d.fit.spatial.remove_pixel_box)
-        fit_cols, an.model_maps = fit_maps(np.nan_to_num(an.spatial_maps), an.maps.grid, is_linear,
-                                           n_jobs=n_jobs, return_predicted=True, pixel_box=True)
-        is_energy = an.map_kind == "on+off"
-        if is_energy.any():  # location and extent only: an envelope fitted to the ON + OFF map
-            e_cols = fit_maps(np.nan_to_num(an.spatial_maps), an.maps.grid, is_energy, n_jobs=n_jobs,
-                              models=("gaussian",), pixel_box=True)
-            for k, v in e_cols.items():
-                fit_cols[k] = np.where(is_energy, v, fit_cols[k])
-        # what predicts the gratings: the fitted model of a significant linear map; otherwise the
-        # separable linear map itself (for a complex cell mostly noise: it should predict little)
-        an.model_maps = np.where(is_linear[:, None, None], an.model_maps, linear_spatial)
+        # which map carries each cell, fits that must earn their place, centres (map2d.fit.spatial);
+        # reported parameters are the kernel's (the pixel box of the spots removed)
+        an.fields = locate_fields(an.maps, n_jobs=n_jobs)
+        ch = an.fields.choice
+        an.spatial_maps, an.peak_maps, an.map_kind = ch.spatial, ch.peak, ch.kind
+        linear_spatial = ch.linear_spatial
+        fit_cols = an.fields.columns
+        # what predicts the gratings: the accepted fit of a linear map; otherwise the separable linear
+        # map itself (for a complex cell mostly noise: it should predict little); never a rejected fit
+        fitted = (ch.kind == "linear") & (fit_cols["center_method"] == "model")
+        an.model_maps = np.where(fitted[:, None, None], an.fields.model_maps, ch.linear_spatial)
     else:
         an.notes.append("no sparse noise: no maps, no fits, no reconciliation")
 
@@ -518,7 +420,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["polarity"] = list(m.polarity)
         cells["fitted_map"] = list(an.map_kind)
         cells["onoff_overlap"] = list(m.onoff_overlap)
-        cells["linear_share"] = [linear_share(m, c) if m.responsive[c] else np.nan for c in range(C)]
+        cells["linear_share"] = list(an.fields.choice.linear_share)
         cells["snr"] = list(m.snr)
         if an.trace_decay is not None:
             cells["trace_decay_tau_s"] = list(an.trace_decay.tau_s)

@@ -53,7 +53,8 @@ from .contract import SparseNoise, Spikes, Traces
 from .geometry import Grid
 
 __all__ = ["MapResult", "compute_maps", "frame_responses", "map_lags", "dense_sta", "whitened_sta",
-           "map_centroid_deg", "KINDS"]
+           "map_centroid_deg", "KINDS", "MapChoice", "choose_maps", "region_threshold_z", "region_centre",
+           "LINEAR_SHARE_THRESHOLD"]
 
 #: Map kinds, in the order used by every ``kind`` axis.
 KINDS = ("on", "off", "linear")
@@ -1430,61 +1431,246 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
 
 
 # ----------------------------------------------------------------------------------------------
-# centre of the map (placeholder until a model fit gives the envelope centre)
+# which map carries a cell, and where its significant region is
 # ----------------------------------------------------------------------------------------------
-def _component(mask: np.ndarray, i: int, j: int) -> np.ndarray:
-    """The 8-connected component of ``mask`` holding pixel ``(i, j)`` (grown by repeated dilation;
-    the same set as ``scipy.ndimage.label`` with a 3 x 3 structure, without importing it)."""
-    region = np.zeros_like(mask, dtype=bool)
-    if not mask[i, j]:
-        return region
-    region[i, j] = True
-    ny, nx = mask.shape
-    while True:
-        p = np.pad(region, 1)
-        grown = np.zeros_like(region)
-        for di in (0, 1, 2):
-            for dj in (0, 1, 2):
-                grown |= p[di:di + ny, dj:dj + nx]
-        grown &= mask
-        if np.array_equal(grown, region):
-            return region
-        region = grown
+#: :attr:`MapChoice.linear_share` below which a cell is located on its ON + OFF map: the share of ON and
+#: OFF maps of equal norm whose cosine similarity is 0.5 (``(1 - 0.5) / 2``), the segregation criterion
+#: of :data:`map2d.reconcile.OVERLAP_THRESHOLD` (Hubel & Wiesel 1962).
+LINEAR_SHARE_THRESHOLD = 0.25
 
 
-def map_centroid_deg(result: MapResult, cell_index: int, threshold_z: float | None = None):
-    """Centre of the significant region around the peak pixel, in degrees ``(x, y)``.
+def region_threshold_z(n_tests: int, alpha: float) -> float:
+    """Two-sided Bonferroni threshold for ``n_tests`` standard-normal z values at family-wise ``alpha``.
 
-    At the peak lag, the map kind holding the largest ``|z|`` is taken; the region is the connected
-    set of pixels (8-neighbourhood) around the peak pixel whose z has the peak's sign and
-    ``|z| >= max(threshold_z, |z_peak| / 2)`` (``threshold_z`` defaults to 2); the centre is the
-    centroid of the map values (response units, absolute) over that region, converted to degrees
-    with the grid (row 0 at the top). NaN for a cell that is not responsive.
+    A pixel whose ``|z|`` reaches it belongs to a significant region; under the null of no stimulus
+    dependence the chance that any of ``n_tests`` z values does so is at most ``alpha`` (Bonferroni
+    inequality; the z-scores are calibrated to unit sd by the shuffles of :func:`compute_maps`).
 
-    This is a model-free stand-in: the analysis pipeline replaces it with the centre of the fitted
-    model's envelope when a fit exists.
+    Examples
+    --------
+    >>> round(region_threshold_z(1, 0.05), 3)          # the familiar 1.96 (scipy.special.ndtri)
+    1.96
     """
-    if threshold_z is None:
-        threshold_z = 2.0
-    li = int(result.peak_lag_index[cell_index])
-    if li < 0:
-        return float("nan"), float("nan")
-    kinds = [k for k in KINDS if np.isfinite(result.zmaps(k)[cell_index, li]).any()]
-    peaks = [np.nanmax(np.abs(result.zmaps(k)[cell_index, li])) for k in kinds]
-    kind = kinds[int(np.argmax(peaks))]
-    z = result.zmaps(kind)[cell_index, li].astype(float)
-    m = result.maps(kind)[cell_index, li].astype(float)
-    zz = np.nan_to_num(z)
-    i, j = np.unravel_index(int(np.argmax(np.abs(zz))), zz.shape)
-    sign = np.sign(zz[i, j])
-    thr = max(threshold_z, abs(zz[i, j]) / 2)
-    mask = sign * zz >= thr
-    region = _component(mask, i, j)
-    w = np.where(region, np.abs(np.nan_to_num(m)), 0.0)
-    if w.sum() <= 0:
-        w = region.astype(float)
+    from scipy.special import ndtri
+    n = max(int(n_tests), 1)
+    return float(-ndtri(alpha / (2.0 * n)))
+
+
+def _separable(a, li):
+    """Spatial singular vector of ``a`` (L, P), scaled to the projection of lag ``li`` on it."""
+    _, _, vt = np.linalg.svd(a, full_matrices=False)
+    u = vt[0]
+    return u * float(a[li] @ u)
+
+
+@dataclass
+class MapChoice:
+    """Which map carries each cell, its space-time separable spatial part and the noise of that map.
+
+    Attributes
+    ----------
+    kind : ndarray of str (C,)
+        'linear' (ON - OFF), 'on+off' (excitation by both contrasts), or '' (not responsive).
+    linear_share : ndarray (C,)
+        Share, in [0, 1], of the signal power over the cell's significant space-time region that the
+        linear map holds (see :func:`choose_maps`); NaN when not responsive or not estimable.
+    spatial : ndarray (C, ny, nx)
+        Spatial part of the rank-1 separable fit of the chosen map over lags, scaled to the peak lag
+        (what the models are fitted to); NaN for cells that are not responsive.
+    linear_spatial : ndarray (C, ny, nx)
+        The same for the linear map, whatever the choice.
+    peak : ndarray (C, ny, nx)
+        The raw linear map at the peak lag.
+    z : ndarray (C, ny, nx)
+        z-map of the chosen kind at the peak lag (null: standard normal).
+    noise_sd : ndarray (C, ny, nx)
+        Null sd of the chosen map at the peak lag (response units), per pixel.
+    threshold_z : float
+        Corrected threshold of a significant pixel of one map (:func:`region_threshold_z` over its pixels).
+    """
+
+    kind: np.ndarray
+    linear_share: np.ndarray
+    spatial: np.ndarray
+    linear_spatial: np.ndarray
+    peak: np.ndarray
+    z: np.ndarray
+    noise_sd: np.ndarray
+    threshold_z: float
+
+
+def _both_maps(result: MapResult, c: int):
+    """ON + OFF map of cell ``c`` over lags ``(L, P)``, and its z-map (null sd from the kinds' sds)."""
+    L = result.lag_frames.size
+    on, off = result.on[c].reshape(L, -1).astype(float), result.off[c].reshape(L, -1).astype(float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sd_on = np.abs(on / result.on_z[c].reshape(L, -1))
+        sd_off = np.abs(off / result.off_z[c].reshape(L, -1))
+        both = on + off
+        # ON and OFF means come from disjoint frames: their covariance (-s^2 / (F - 1)) is negligible
+        z = both / np.sqrt(sd_on ** 2 + sd_off ** 2)
+    return both, z
+
+
+def _linear_power_share(lin, zlin, both, zboth, sel):
+    """Noise-corrected share ``P_lin / (P_lin + P_both)`` over the elements ``sel`` (NaN if no signal)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p_lin = np.nansum(lin[sel] ** 2 - (lin[sel] / zlin[sel]) ** 2)
+        p_both = np.nansum(both[sel] ** 2 - (both[sel] / zboth[sel]) ** 2)
+    p_lin, p_both = max(float(p_lin), 0.0), max(float(p_both), 0.0)
+    return p_lin / (p_lin + p_both) if p_lin + p_both > 0 else np.nan
+
+
+def choose_maps(result: MapResult, alpha: float | None = None) -> MapChoice:
+    """Decide which map carries each responsive cell: the linear map or the ON + OFF map.
+
+    The decision rests on the whole significant space-time region of the cell, never on one pixel:
+
+    1. The region ``S``: every (lag, pixel) where the ON, OFF, linear or ON + OFF z-map reaches the
+       corrected threshold :func:`region_threshold_z` for ``4 x lags x pixels`` tests at ``alpha``
+       (the family-wise level of the responsive call). Under the null no element of a map reaches it
+       with probability above ``alpha``.
+    2. ``linear_share = P_lin / (P_lin + P_both)`` with ``P = sum_S (m^2 - sd^2)``, the signal power of
+       the linear (ON - OFF) and ON + OFF maps over ``S``, each corrected for its noise power (``sd`` the
+       null sd of the map element, so noise alone adds nothing on average). It lies in [0, 1]: about 0 for
+       a cell that bright and dark spots excite at the same places (complex, ON-OFF: ``on ~ off``),
+       0.5 for a half-wave rectified linear cell (``on = [k]+``, ``off = [-k]+``, so
+       ``|on - off| = |on + off|``), 1 for a linear cell with a maintained discharge (``on = k``,
+       ``off = -k``, ON + OFF near zero). For ON and OFF maps of equal norm and cosine similarity ``s``
+       it is ``(1 - s) / 2``.
+    3. The ON + OFF map carries the cell when ``linear_share < LINEAR_SHARE_THRESHOLD`` (0.25: ``s``
+       above 0.5, the segregation criterion of Hubel & Wiesel 1962, as
+       :data:`map2d.reconcile.OVERLAP_THRESHOLD`) and the ON + OFF map itself reaches the threshold;
+       otherwise the linear map. A cell with a significant, segregated linear map therefore never goes
+       to the ON + OFF map, whatever a stray pixel does.
+
+    The spatial map is the first spatial singular vector of the chosen map over lags (a rank-1
+    space-time separable fit), scaled to the projection of the peak lag on it; pooling lags this way
+    raises the signal-to-noise ratio when a response spreads over two frames.
+
+    Parameters
+    ----------
+    result : MapResult
+        Sparse-noise maps (dense noise has only the linear map, which then carries every cell).
+    alpha : float, optional
+        Family-wise level of the regions (default: ``result.alpha``).
+
+    Returns
+    -------
+    MapChoice
+    """
+    alpha = result.alpha if alpha is None else float(alpha)
+    C = result.n_cells
+    ny, nx = result.grid.shape
+    P = ny * nx
+    L = result.lag_frames.size
+    shape = (C, ny, nx)
+    spatial, linear_spatial, peak = np.full(shape, np.nan), np.full(shape, np.nan), np.full(shape, np.nan)
+    zmap, noise = np.full(shape, np.nan), np.full(shape, np.nan)
+    kind = np.full(C, "", dtype=object)
+    share = np.full(C, np.nan)
+    t_st = region_threshold_z(4 * L * P, alpha)
+    for c in np.flatnonzero(result.peak_lag_index >= 0):
+        li = int(result.peak_lag_index[c])
+        lin_raw = result.linear[c].reshape(L, -1).astype(float)
+        zlin = result.linear_z[c].reshape(L, -1).astype(float)
+        lin = np.nan_to_num(lin_raw)
+        peak[c] = lin[li].reshape(ny, nx)
+        linear_spatial[c] = _separable(lin, li).reshape(ny, nx)
+        chosen = "linear"
+        if np.isfinite(result.on[c]).any():
+            both, zboth = _both_maps(result, c)
+            zon = result.on_z[c].reshape(L, -1).astype(float)
+            zoff = result.off_z[c].reshape(L, -1).astype(float)
+            zall = np.fmax(np.fmax(np.abs(zon), np.abs(zoff)), np.fmax(np.abs(zlin), np.abs(zboth)))
+            sel = np.nan_to_num(zall) >= t_st
+            ok = sel & np.isfinite(zlin) & np.isfinite(zboth) & (zlin != 0) & (zboth != 0)
+            if ok.any():
+                share[c] = _linear_power_share(lin_raw, zlin, both, zboth, ok)
+                if share[c] < LINEAR_SHARE_THRESHOLD and np.nanmax(np.abs(zboth[ok])) >= t_st:
+                    chosen = "on+off"
+        kind[c] = chosen
+        if chosen == "linear":
+            spatial[c] = linear_spatial[c]
+            z = zlin[li]
+            m = lin_raw[li]
+        else:
+            spatial[c] = _separable(np.nan_to_num(both), li).reshape(ny, nx)
+            z = zboth[li]
+            m = both[li]
+        zmap[c] = z.reshape(ny, nx)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sd = np.abs(m / z)
+        sd = np.where(np.isfinite(sd) & (sd > 0), sd, np.nan)
+        if np.isfinite(sd).any():
+            sd = np.where(np.isfinite(sd), sd, np.nanmedian(sd))
+        noise[c] = sd.reshape(ny, nx)
+    return MapChoice(kind=kind, linear_share=share, spatial=spatial, linear_spatial=linear_spatial,
+                     peak=peak, z=zmap, noise_sd=noise, threshold_z=region_threshold_z(P, alpha))
+
+
+def _components(mask: np.ndarray) -> np.ndarray:
+    """Labels of the 8-connected components of ``mask`` (0 = background), as ``scipy.ndimage.label``
+    with a 3 x 3 structure."""
+    from scipy import ndimage
+    lab, _ = ndimage.label(mask, structure=np.ones((3, 3), dtype=int))
+    return lab
+
+
+def region_centre(z_map: np.ndarray, grid: Grid, threshold_z: float):
+    """Centre of a map's significant region: the ``|z|``-weighted centroid of its main cluster, in degrees.
+
+    The cluster: pixels whose ``|z|`` reaches ``threshold_z`` and half the peak's ``|z|`` (either sign:
+    the ON and OFF subregions of a simple cell make one field; half the peak keeps the noisy tails of a
+    strong field out), 8-connected, taking the cluster that holds the largest ``|z|``. When no pixel reaches the
+    threshold, the pixels around the peak with at least half its ``|z|`` are used. Weighting by ``|z|``
+    rather than by the response makes pixels of unequal noise (unequal spot counts, anisotropic
+    sampling) count by their evidence.
+
+    Returns
+    -------
+    (x_deg, y_deg, n_pixels) ; NaN and 0 for an empty map.
+    """
+    z = np.abs(np.nan_to_num(np.asarray(z_map, float)))
+    if not np.any(z > 0):
+        return float("nan"), float("nan"), 0
+    i, j = np.unravel_index(int(np.argmax(z)), z.shape)
+    thr = max(float(threshold_z), 0.5 * z[i, j]) if z[i, j] >= threshold_z else 0.5 * z[i, j]
+    mask = z >= thr
+    lab = _components(mask)
+    region = lab == lab[i, j]
+    w = np.where(region, z, 0.0)
     rows, cols = np.indices(z.shape)
     r = float((w * rows).sum() / w.sum())
     c = float((w * cols).sum() / w.sum())
-    x, y = result.grid.point_of(r, c)
-    return float(x), float(y)
+    x, y = grid.point_of(r, c)
+    return float(x), float(y), int(region.sum())
+
+
+def map_centroid_deg(result: MapResult, cell_index: int, threshold_z: float | None = None):
+    """Centre of a cell's significant region, in degrees ``(x, y)``, without a model fit.
+
+    The map that carries the cell (:func:`choose_maps`: linear, or ON + OFF for cells that bright and
+    dark spots excite at the same places) at the peak lag; the ``|z|``-weighted centroid of its
+    significant cluster (:func:`region_centre`, threshold :func:`region_threshold_z` over the grid's
+    pixels at the map's ``alpha`` unless ``threshold_z`` is given). NaN for a cell that is not
+    responsive. The analysis reports this centre (``center_method = region``) whenever no model fit
+    earns its place.
+    """
+    if int(result.peak_lag_index[cell_index]) < 0:
+        return float("nan"), float("nan")
+    sub = _one_cell(result, cell_index)
+    ch = choose_maps(sub)
+    thr = ch.threshold_z if threshold_z is None else float(threshold_z)
+    x, y, _ = region_centre(ch.z[0], result.grid, thr)
+    return x, y
+
+
+def _one_cell(result: MapResult, c: int) -> MapResult:
+    """A view of ``result`` holding cell ``c`` only."""
+    import dataclasses
+    s = slice(c, c + 1)
+    per_cell = {f.name: getattr(result, f.name)[s] for f in dataclasses.fields(result)
+                if isinstance(getattr(result, f.name), np.ndarray) and getattr(result, f.name).ndim >= 1
+                and getattr(result, f.name).shape[0] == result.n_cells and f.name not in ("lags_s", "lag_frames")}
+    return dataclasses.replace(result, **per_cell)

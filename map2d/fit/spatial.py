@@ -95,6 +95,9 @@ __all__ = [
     "FIT_COLUMNS",
     "MODELS",
     "remove_pixel_box",
+    "fit_check",
+    "locate_fields",
+    "CellFields",
 ]
 
 MODELS = ("gaussian", "dog", "gabor")
@@ -1045,3 +1048,256 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
             out[c][k] = row[c]
         predicted[k] = pred
     return (out, predicted) if return_predicted else out
+
+
+# --------------------------------------------------------------------------------------------------
+# does a fit earn its place
+# --------------------------------------------------------------------------------------------------
+
+#: Largest ratio of a fitted envelope's widths (major / minor sd) that is taken as physical.
+MAX_ASPECT = 5.0
+#: Smallest fitted width (sd, or a DoG centre's ``rc / sqrt(2)``), as a share of the pixel.
+MIN_WIDTH_PIXELS = 1.0 / 3.0
+#: How far (in pixels) beyond the grid's outer pixel edges a fitted centre may lie.
+CENTRE_MARGIN_PIXELS = 1.0
+#: Smallest ``sf x sigma_u`` of an accepted Gabor: below it the carrier does not change sign within the
+#: envelope's sd (``2 pi sf sigma_u < 0.63``), the fit is a blob with a phase ramp and its envelope centre
+#: is not the field's (measured on thresholded fields; fitted 0.005-0.015 cpd with 1-2 deg widths).
+MIN_GABOR_CYCLES = 0.1
+#: Smallest share of the map's signal variance (above its noise) that an accepted fit explains.
+MIN_SIGNAL_EXPLAINED = 0.5
+
+
+def _widths(fit: SpatialFit):
+    """The fitted envelope's sds (model's own parameters, before the pixel box is removed)."""
+    p = fit.params
+    if fit.model == "gaussian":
+        return p["sigma_major_deg"], p["sigma_minor_deg"]
+    if fit.model == "dog":
+        return p["rc_deg"] / math.sqrt(2.0), p["rc_deg"] / math.sqrt(2.0)
+    return p["sigma_u_deg"], p["sigma_v_deg"]
+
+
+def fit_check(fit: SpatialFit, map_yx, grid: Grid, noise_sd, alpha: float = 0.01) -> str:
+    """Whether a fit earns its place: ``''`` when it does, otherwise the first reason it does not.
+
+    A fitted centre and size are reported only when all of these hold (in this order):
+
+    - ``'not above noise'``: the model removes more of the map's noise-weighted power than noise alone
+      would, ``sum(d^2 / sd^2) - sum((d - m)^2 / sd^2) >= chi2_k^-1(1 - alpha)`` (likelihood-ratio test of
+      the model against an empty map, ``k`` its parameters; Wilks 1938);
+    - ``'explains too little'``: the model explains at least :data:`MIN_SIGNAL_EXPLAINED` of the map's
+      signal variance, ``(TSS - RSS) / (TSS - sum sd^2)`` (the noise ceiling: the variance noise alone
+      adds is not there to explain; common practice in receptive-field estimation, e.g. David &
+      Gallant 2005, Network 16:239);
+    - ``'too narrow'``: every width at least :data:`MIN_WIDTH_PIXELS` of a pixel (a field narrower than
+      a third of a spot cannot be told from a single noisy pixel);
+    - ``'elongated'``: aspect ratio at most :data:`MAX_ASPECT`;
+    - ``'no carrier'`` (Gabor): ``sf x sigma_u >= MIN_GABOR_CYCLES``;
+    - ``'centre off the grid'``: centre within the grid's outer pixel edges plus
+      :data:`CENTRE_MARGIN_PIXELS`;
+    - ``'no finite interval'``: finite 95 % intervals for the centre.
+
+    Parameters
+    ----------
+    fit : SpatialFit
+        The fit as :func:`fit_map` returns it (pixel box not removed).
+    map_yx : array_like (ny, nx)
+        The fitted map.
+    grid : Grid
+    noise_sd : float or array_like (ny, nx)
+        Null sd of the map's pixels (response units). The sd of a single lag's map; the separable
+        map pools lags and is no noisier, so the test errs on the side of rejecting.
+    alpha : float
+        Level of the test against noise.
+    """
+    from scipy.stats import chi2
+
+    if not fit.model or not np.isfinite(fit.center_x_deg) or fit.predicted is None:
+        return "not fitted"
+    d = np.asarray(map_yx, float)
+    sd = np.broadcast_to(np.asarray(noise_sd, float), d.shape)
+    m = np.asarray(fit.predicted, float)
+    ok = np.isfinite(d) & np.isfinite(sd) & (sd > 0) & np.isfinite(m)
+    if ok.sum() <= len(fit.params):
+        return "not above noise"
+    d, sd, m = d[ok], sd[ok], m[ok]
+    gain = float(np.sum((d / sd) ** 2) - np.sum(((d - m) / sd) ** 2))
+    if not gain >= chi2.isf(alpha, len(fit.params)):
+        return "not above noise"
+    tss = float(np.sum((d - d.mean()) ** 2))
+    signal = tss - float(np.sum(sd ** 2)) * (1 - 1 / d.size)
+    rss = float(np.sum((d - m) ** 2))
+    if not (signal > 0 and (tss - rss) / signal >= MIN_SIGNAL_EXPLAINED):
+        return "explains too little"
+    w = np.asarray(_widths(fit), float)
+    pixel = min(grid.dx_deg, grid.dy_deg)
+    if not (np.all(np.isfinite(w)) and w.min() >= MIN_WIDTH_PIXELS * pixel):
+        return "too narrow"
+    if fit.model != "dog" and not w.max() <= MAX_ASPECT * w.min():
+        return "elongated"
+    if fit.model == "gabor" and not fit.params["sf_cpd"] * fit.params["sigma_u_deg"] >= MIN_GABOR_CYCLES:
+        return "no carrier"
+    xs, ys = grid.x_deg, grid.y_deg
+    mx, my = (0.5 + CENTRE_MARGIN_PIXELS) * grid.dx_deg, (0.5 + CENTRE_MARGIN_PIXELS) * grid.dy_deg
+    if not (xs.min() - mx <= fit.center_x_deg <= xs.max() + mx and ys.min() - my <= fit.center_y_deg <= ys.max() + my):
+        return "centre off the grid"
+    ci = list(fit.ci.get("center_x_deg", (np.nan, np.nan))) + list(fit.ci.get("center_y_deg", (np.nan, np.nan)))
+    if not np.all(np.isfinite(ci)):
+        return "no finite interval"
+    return ""
+
+
+def fit_checked(map_yx, grid: Grid, check_map, check_sd, models=MODELS, alpha: float = 0.01):
+    """Fit every model and keep the best (by BIC) that earns its place (:func:`fit_check`).
+
+    Parameters
+    ----------
+    map_yx : array_like (ny, nx)
+        The map that is fitted (e.g. the spatial part of a separable space-time map).
+    grid : Grid
+    check_map, check_sd : array_like (ny, nx)
+        The map the fit is checked against, with the null sd of its pixels: the single-lag map that
+        ``map_yx`` is scaled to, whose noise is known (the separable map pools lags and its noise is
+        not).
+    models : sequence of str
+    alpha : float
+
+    Returns
+    -------
+    (SpatialFit or None, str)
+        The accepted fit (``aic`` and ``bic`` hold every model tried) and ``''``; or None and the
+        reason the best-ranked model was rejected.
+    """
+    pr = _Problem(map_yx, grid, None)
+    fits = {m: _FITTERS[m](pr) for m in models}
+    aic = {m: f.aic[m] for m, f in fits.items()}
+    bic = {m: f.bic[m] for m, f in fits.items()}
+    ranked = sorted((m for m in models if np.isfinite(bic[m])), key=lambda m: bic[m])
+    first = "not fitted"
+    for i, m in enumerate(ranked):
+        why = fit_check(fits[m], check_map, grid, check_sd, alpha)
+        if not why:
+            out = fits[m]
+            out.aic, out.bic, out.criterion = aic, bic, "bic"
+            return out, ""
+        if i == 0:
+            first = why
+    return None, first
+
+
+def _fit_checked_chunk(maps, grid, check_maps, check_sd, models, pixel_box, alpha):
+    """:func:`fit_checked` for each map: (rows or None, predicted maps or None, reasons)."""
+    rows, predicted, reasons = [], [], []
+    for c in range(maps.shape[0]):
+        fit, why = fit_checked(maps[c], grid, check_maps[c], check_sd[c], models, alpha)
+        reasons.append(why)
+        if fit is None:
+            rows.append(None)
+            predicted.append(None)
+            continue
+        rows.append(_row(remove_pixel_box(fit, grid) if pixel_box else fit))
+        predicted.append(np.asarray(fit.predicted, dtype=float))
+    return rows, predicted, reasons
+
+
+@dataclass
+class CellFields:
+    """Where each cell's field is, and how that was found (:func:`locate_fields`).
+
+    Attributes
+    ----------
+    choice : map2d.maps.MapChoice
+        Which map carries each cell and the map that was fitted.
+    columns : dict of str to ndarray (C,)
+        :data:`FIT_COLUMNS` (empty for cells without an accepted fit) with ``center_x_deg`` and
+        ``center_y_deg`` filled for every responsive cell, plus ``center_method`` ('model', 'region' or
+        '') and ``fit_check`` ('passed', the reason the fit was rejected, or '').
+    model_maps : ndarray (C, ny, nx)
+        The accepted fit evaluated on the grid; NaN where no fit was accepted.
+    field_pixel : ndarray int (C, 2)
+        ``(row, col)`` of the pixel nearest the centre; -1 when not responsive.
+    """
+
+    choice: object
+    columns: dict
+    model_maps: np.ndarray
+    field_pixel: np.ndarray
+
+
+def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True) -> CellFields:
+    """Choose each responsive cell's map, fit it, keep the fit only if it earns its place, else use the
+    region.
+
+    Steps: :func:`map2d.maps.choose_maps` (linear or ON + OFF map, calibrated); the linear map is
+    fitted with every model (BIC chooses), the ON + OFF map with a Gaussian envelope (location and
+    extent only); :func:`fit_check` accepts or rejects each fit against the noise of the map at the
+    peak lag; an accepted fit gives the centre (``center_method = 'model'``), otherwise the
+    ``|z|``-weighted centroid of the map's significant cluster does (:func:`map2d.maps.region_centre`,
+    ``center_method = 'region'``) and the fit columns stay empty.
+
+    Parameters
+    ----------
+    result : map2d.maps.MapResult
+    n_jobs : int, optional
+        Worker processes for the fits (as :func:`fit_maps`).
+    alpha : float, optional
+        Level of the regions and of the fit test (default ``result.alpha``).
+    pixel_box : bool
+        Report the kernel's parameters, the pixel box removed (:func:`remove_pixel_box`).
+
+    Returns
+    -------
+    CellFields
+    """
+    from ..maps import choose_maps, region_centre
+
+    alpha = result.alpha if alpha is None else float(alpha)
+    grid = result.grid
+    ch = choose_maps(result, alpha)
+    C = result.n_cells
+    out = {c: np.full(C, np.nan) for c in FIT_COLUMNS}
+    out["model"] = np.full(C, "", dtype=object)
+    out["center_method"] = np.full(C, "", dtype=object)
+    out["fit_check"] = np.full(C, "", dtype=object)
+    model_maps = np.full((C,) + grid.shape, np.nan)
+    maps = np.nan_to_num(ch.spatial)
+    check = ch.z * ch.noise_sd                     # the chosen map at the peak lag
+    for kind, models in (("linear", MODELS), ("on+off", ("gaussian",))):
+        idx = np.flatnonzero(ch.kind == kind)
+        if idx.size == 0:
+            continue
+        nj = n_jobs if n_jobs is not None else (1 if idx.size < 50 else 2)
+        nj = max(1, min(int(nj), os.cpu_count() or 1, idx.size))
+        if nj == 1:
+            rows, preds, why = _fit_checked_chunk(maps[idx], grid, check[idx], ch.noise_sd[idx], models,
+                                                  pixel_box, alpha)
+        else:
+            parts = [p for p in np.array_split(np.arange(idx.size), nj * 4) if p.size]
+            rows, preds, why = [], [], []
+            with ProcessPoolExecutor(max_workers=nj) as ex:
+                futs = [ex.submit(_fit_checked_chunk, maps[idx[p]], grid, check[idx[p]], ch.noise_sd[idx[p]],
+                                  models, pixel_box, alpha) for p in parts]
+                for fu in futs:
+                    r, p, w = fu.result()
+                    rows += r
+                    preds += p
+                    why += w
+        for c, row, pred, reason in zip(idx, rows, preds, why):
+            out["fit_check"][c] = reason or "passed"
+            if row is not None:
+                for k in FIT_COLUMNS:
+                    out[k][c] = row[k]
+                model_maps[c] = pred
+                out["center_method"][c] = "model"
+            else:
+                x, y, _ = region_centre(ch.z[c], grid, ch.threshold_z)
+                out["center_x_deg"][c], out["center_y_deg"][c] = x, y
+                out["center_method"][c] = "region" if np.isfinite(x) else ""
+    field_pixel = np.full((C, 2), -1, dtype=int)
+    has = np.isfinite(out["center_x_deg"]) & np.isfinite(out["center_y_deg"])
+    if has.any():
+        r, c = grid.pixel_of(out["center_x_deg"][has], out["center_y_deg"][has])
+        field_pixel[has, 0] = np.clip(np.rint(r), 0, grid.ny - 1).astype(int)
+        field_pixel[has, 1] = np.clip(np.rint(c), 0, grid.nx - 1).astype(int)
+    return CellFields(choice=ch, columns=out, model_maps=model_maps, field_pixel=field_pixel)
