@@ -506,7 +506,7 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
     if fits:
         an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed,
                              trace_decay=trace_decay)
-        res, spatial, model = an.maps, an.spatial_maps, an.model_maps
+        res, spatial, model = an.maps, an.spatial_maps, _model_maps(an).get("model_maps", an.model_maps)
         table = {k: v for k, v in an.cells.items() if k not in GRATING_ONLY_COLUMNS}
     else:
         from .contract import Traces
@@ -634,13 +634,16 @@ class _StageBar:
 
 
 def _model_maps(an) -> dict:
-    """``{"model_maps": (C, ny, nx)}``: the fitted spatial model of each cell with a fitted linear map,
-    NaN for the others (no model was fitted to their linear map); empty without maps."""
+    """``{"model_maps": (C, ny, nx)}``: the accepted spatial model of each cell with a fitted linear map,
+    NaN for the others (no model fitted to their linear map, or the fit was rejected); empty without maps."""
     import numpy as np
 
     if an.model_maps is None or an.map_kind is None:
         return {}
-    fitted = (np.asarray(an.map_kind) == "linear")[:, None, None]
+    fitted = np.asarray(an.map_kind) == "linear"
+    if an.fields is not None:
+        fitted &= np.asarray(an.fields.columns["center_method"]) == "model"
+    fitted = fitted[:, None, None]
     return {"model_maps": np.where(fitted, an.model_maps, np.nan).astype(np.float32)}
 
 
