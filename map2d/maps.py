@@ -1609,12 +1609,24 @@ def choose_maps(result: MapResult, alpha: float | None = None) -> MapChoice:
                      peak=peak, z=zmap, noise_sd=noise, threshold_z=region_threshold_z(P, alpha))
 
 
-def _components(mask: np.ndarray) -> np.ndarray:
-    """Labels of the 8-connected components of ``mask`` (0 = background), as ``scipy.ndimage.label``
-    with a 3 x 3 structure."""
-    from scipy import ndimage
-    lab, _ = ndimage.label(mask, structure=np.ones((3, 3), dtype=int))
-    return lab
+def _component(mask: np.ndarray, i: int, j: int) -> np.ndarray:
+    """The 8-connected component of ``mask`` holding pixel ``(i, j)`` (grown by repeated dilation;
+    the same set as ``scipy.ndimage.label`` with a 3 x 3 structure, without importing it)."""
+    region = np.zeros_like(mask, dtype=bool)
+    if not mask[i, j]:
+        return region
+    region[i, j] = True
+    ny, nx = mask.shape
+    while True:
+        p = np.pad(region, 1)
+        grown = np.zeros_like(region)
+        for di in (0, 1, 2):
+            for dj in (0, 1, 2):
+                grown |= p[di:di + ny, dj:dj + nx]
+        grown &= mask
+        if np.array_equal(grown, region):
+            return region
+        region = grown
 
 
 def region_centre(z_map: np.ndarray, grid: Grid, threshold_z: float):
@@ -1637,8 +1649,7 @@ def region_centre(z_map: np.ndarray, grid: Grid, threshold_z: float):
     i, j = np.unravel_index(int(np.argmax(z)), z.shape)
     thr = max(float(threshold_z), 0.5 * z[i, j]) if z[i, j] >= threshold_z else 0.5 * z[i, j]
     mask = z >= thr
-    lab = _components(mask)
-    region = lab == lab[i, j]
+    region = _component(mask, i, j)
     w = np.where(region, z, 0.0)
     rows, cols = np.indices(z.shape)
     r = float((w * rows).sum() / w.sum())
