@@ -67,10 +67,11 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("responsive", "bool", "The sparse-noise map is significant: a max-statistic test over pixels x lags x "
                "map kinds, family-wise alpha 0.01, null from circular-shift shuffles (Gumbel fit to block maxima).",
                "Nichols & Holmes 2002; Coles 2001"),
-        Column("center_x_deg", "deg", "Azimuth of the centre of the fitted model's envelope (positive right; "
-               "`map2d maps --no-fits`: the centroid of the significant region).",
+        Column("center_x_deg", "deg", "Azimuth of the cell's field (positive right): the centre of the fitted "
+               "model's envelope when a fit passed its checks, otherwise the |z|-weighted centroid of the "
+               "significant cluster (`center_method`; `map2d maps --no-fits`: always the centroid).",
                "common practice"),
-        Column("center_y_deg", "deg", "Elevation of the centre of the fitted model's envelope (positive up).",
+        Column("center_y_deg", "deg", "Elevation of the cell's field (positive up), as `center_x_deg`.",
                "common practice"),
         Column("peak_lag_s", "s", "Lag between stimulus and response at which the map's largest |z| lies.",
                "common practice"),
@@ -95,19 +96,28 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("p_value", "1", "P-value of the sparse-noise `responsive` test.", "Nichols & Holmes 2002"),
         Column("polarity", "text", "`ON-centre`, `OFF-centre` or `mixed` (ON and OFF both significant, the weaker "
                "at least half the stronger); empty when not responsive."),
-        Column("fitted_map", "text", "Which map the spatial model was fitted to: `linear` (ON - OFF) or `on+off` "
-               "(coextensive ON and OFF regions)."),
+        Column("fitted_map", "text", "Which map carries the cell and was fitted: `linear` (ON - OFF) or `on+off` "
+               "(bright and dark spots excite the same places: `linear_share` < 0.25 and a significant ON + OFF "
+               "map)."),
         Column("onoff_overlap", "1", "Cosine similarity of the excitatory parts of the ON and OFF z-maps at the "
                "peak lag (0 segregated, 1 coextensive).", "ours; after Hubel & Wiesel 1962"),
-        Column("linear_share", "1", "Share of the ON + OFF map's power the linear map keeps over the excitatory "
-               "pixels (near 1 for linear cells, near 0 for complex-like cells)."),
+        Column("linear_share", "1", "Share (0-1) of the signal power, noise power subtracted, that the linear map "
+               "holds against the ON + OFF map over every pixel and lag where a map passes a Bonferroni-corrected "
+               "threshold: near 0 when bright and dark spots excite the same places (complex, ON-OFF), 0.5 for a "
+               "half-wave rectified linear cell, near 1 for a linear cell with a maintained discharge."),
         Column("snr", "1", "Largest |z| of the linear map at the peak lag."),
         Column("trace_decay_tau_s", "s", "Imaging only: the indicator decay time constant removed from the trace "
                "before the maps.", "Vogelstein et al. 2010"),
     )),
     (_FIT, (
-        Column("model", "text", "The spatial model chosen by BIC: `gaussian`, `dog` or `gabor`; empty when not "
-               "fitted.", "Enroth-Cugell & Robson 1966 (DoG); Jones & Palmer 1987 (Gabor)"),
+        Column("model", "text", "The spatial model: the best by BIC among `gaussian`, `dog` and `gabor` that passed "
+               "the fit checks (`fit_check`); empty when none did or when not responsive.",
+               "Enroth-Cugell & Robson 1966 (DoG); Jones & Palmer 1987 (Gabor)"),
+        Column("center_method", "text", "How the centre was found: `model` (an accepted fit's envelope) or `region` "
+               "(the |z|-weighted centroid of the map's significant cluster); empty when not responsive."),
+        Column("fit_check", "text", "`passed`, or why the best-ranked fit was rejected: `not above noise`, "
+               "`explains too little`, `too narrow`, `elongated`, `no carrier`, `centre off the grid`, "
+               "`no finite interval`; empty when not responsive.", "ours; Wilks 1938 (test against noise)"),
         Column("center_x_ci_low_deg", "deg", "Lower end of the 95 % interval of `center_x_deg` (from the fit's "
                "Jacobian).", "common practice"),
         Column("center_x_ci_high_deg", "deg", "Upper end of the 95 % interval of `center_x_deg`.", "common practice"),
