@@ -389,16 +389,19 @@ class Aperture:
                 f"--aperture-deg {x:.1f} {y:.1f} {d:.1f}")
 
 
-def field_region(result: MapResult, c: int):
+def field_region(result: MapResult, c: int, kinds=None):
     """Pixels (bool ny x nx), map values and their null sd of cell index ``c``'s field at its peak lag,
     or None when the cell is not responsive.
 
     The field is the region of :func:`map2d.maps.map_centroid_deg`: at the peak lag, in the map kind
     holding the largest ``|z|``, the 8-connected pixels around the peak whose z has the peak's sign
     and ``|z| >= max(2, |z_peak| / 2)`` (half the peak, common practice for a field's extent).
+    ``kinds``: ``result.peak_kind_index()`` when already computed.
     """
     li = int(result.peak_lag_index[c])
-    k = int(result.peak_kind_index()[c]) if li >= 0 else -1
+    if li < 0:
+        return None
+    k = int((result.peak_kind_index() if kinds is None else kinds)[c])
     if li < 0 or k < 0:
         return None
     kind = KINDS[k]
@@ -451,9 +454,10 @@ def suggest_aperture(result: MapResult, cells=None, margin_deg: float = 0.0) -> 
     else:
         idx = np.flatnonzero(np.isin(ids, np.asarray(list(cells), dtype=np.int64)))
     g = result.grid
+    kinds = result.peak_kind_index()
     centres, ses, xs, ys, used = [], [], [], [], []
     for c in idx:
-        f = field_region(result, int(c))
+        f = field_region(result, int(c), kinds)
         if f is None or not f[0].any():
             continue
         cx, cy, sx, sy, x, y = _centroid_with_se(g, *f)

@@ -446,6 +446,8 @@ def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0
     dirty = True
     interrupted = False
 
+    page_data = [None]
+
     def render(final=False):
         nonlocal result, aperture, version
         result = follower.live.snapshot()
@@ -456,8 +458,8 @@ def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0
                 "recorded_s": float(on[-1] - on[0]) if on.size > 1 else 0.0, "alpha": follower.live.alpha,
                 "updated": datetime.now(timezone.utc).strftime("%H:%M:%S UTC")}
         if result is not None:
-            write_live_page(page, live_page_data(result, aperture, info), refresh_s=refresh_s,
-                            version=version, final=final)
+            page_data[0] = live_page_data(result, aperture, info)
+            write_live_page(page, page_data[0], refresh_s=refresh_s, version=version, final=final)
 
     if not quiet:
         print_fn(f"map2d watch: following {folder} (page {page}); ends after {idle_s:g} s without data "
@@ -497,6 +499,13 @@ def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0
         diff = max(float(np.nanmax(np.abs(np.asarray(getattr(result, k)) - z[k]), initial=0.0))
                    for k in ("on", "off", "linear"))
         scale = max(float(np.nanmax(np.abs(z[k]), initial=0.0)) for k in ("on", "off", "linear"))
+    from .contract import read_table
+    header, rows = read_table(out / "cells.csv")
+    col = header.index("responsive")
+    n_off = sum(r[col].strip().lower() == "true" for r in rows)
+    page_data[0]["info"]["note"] = (f" Offline analysis (map2d maps, circular-shift null): {n_off} of "
+                                    f"{len(rows)} cells responsive; results in {out}.")
+    write_live_page(page, page_data[0], refresh_s=refresh_s, version=version, final=True)
     if not quiet:
         print_fn(f"map2d watch: wrote the session ({MANIFEST}, {MEASURED_TIMES_FILE}, {RECORDED_SPIKES_FILE}) "
                  f"and the offline maps into {out}; live and offline maps differ by at most {diff:.2g} "

@@ -44,15 +44,15 @@ def offline_so_far(session, now_s):
 
 @pytest.fixture(scope="module")
 def replayed(small_spikes_session, tmp_path_factory):
-    """The small spikes session replayed in 2-minute steps with a writer crash at 5 min: the live maps
-    after each step, and the offline maps of the data so far."""
+    """The small spikes session (10 minutes) replayed in 1-minute steps with a writer crash at 5 min:
+    the live maps after each step."""
     session, truth = small_spikes_session
     folder = tmp_path_factory.mktemp("live") / "rec"
-    steps = replay_steps(session, folder, step_s=120.0, crash_at_s=300.0)
-    next(steps)                                    # stimulus written, first 2 minutes appended
+    steps = replay_steps(session, folder, step_s=60.0, crash_at_s=300.0)
+    next(steps)                                    # stimulus written, first minute appended
     fol = Follower(folder)
     out = []
-    for written in itertools.chain([120.0], steps):
+    for written in itertools.chain([60.0], steps):
         fol.poll()
         out.append((written, fol.live.snapshot(), fol))
     return session, truth, folder, fol, out
@@ -60,16 +60,17 @@ def replayed(small_spikes_session, tmp_path_factory):
 
 def test_live_maps_equal_offline_maps_of_the_data_so_far(replayed):
     session, _, _, fol, out = replayed
-    assert len(out) >= 6                                      # 10 minutes in 2-minute steps + the crash
-    for written, live, _ in out[::2] + [out[-1]]:
+    assert len(out) == 11                                     # 10 minutes in 1-minute steps + the crash
+    for written, live, _ in out[::3] + [out[5], out[-1]]:
         assert_maps_equal(live, offline_so_far(session, written))
 
 
-def test_maps_appear_in_the_first_minutes_and_responsive_calls_follow_the_offline_ones(replayed):
+def test_maps_appear_in_the_first_minute_and_responsive_calls_follow_the_offline_ones(replayed):
     session, truth, _, fol, out = replayed
     first = out[0][1]
     assert first.n_cells == 12 and np.isfinite(first.on).any()
-    assert (first.n_shuffles > 0).any()                        # the live null exists after 2 minutes
+    assert (first.n_shuffles > 0).any()                        # the live null exists after 1 minute
+    assert first.responsive.any()                              # strong cells are called in the first minute
     final = out[-1][1]
     off = offline_so_far(session, out[-1][0])
     # the live null (3 fixed shifts) is not the offline one (circular shifts): calls may differ only
@@ -277,6 +278,30 @@ def test_watch_ends_with_the_offline_maps_and_a_session(small_spikes_session, tm
     assert manifest["sparse_noise"]["frames"] == "sparse_noise_recorded.npy"    # 3 of 10 minutes shown
     page = (folder / "live.html").read_text()
     assert 'data-state="final (recording ended)"' in page and "cell-" in page
+    n_off = sum(v == "true" for v in (line.split(",")[1] for line in
+                                       (folder / "maps" / "cells.csv").read_text().splitlines()[1:]))
+    assert f"Offline analysis (map2d maps, circular-shift null): {n_off} of 12 cells responsive" in page
+
+
+def test_ctrl_c_ends_the_watch_with_the_data_so_far(small_spikes_session, tmp_path):
+    session, _ = small_spikes_session
+    folder = tmp_path / "rec"
+    steps = replay_steps(session, folder, step_s=45.0)
+    next(steps)
+    now = [0.0]
+
+    def sleep(s):                       # the recording goes on for three polls, then Ctrl-C
+        now[0] += s
+        if now[0] > 3:
+            raise KeyboardInterrupt
+        next(steps)
+
+    res = watch_folder(folder, idle_s=60.0, poll_s=1.0, refresh_s=1.0, fits=False, quiet=True,
+                       clock=lambda: now[0], sleep=sleep)
+    assert res["interrupted"]
+    written = 45.0 * 4
+    assert_maps_equal(res["result"], offline_so_far(session, written))
+    assert res["max_difference"] <= 1e-5 * np.nanmax(np.abs(res["result"].on))
 
 
 def test_watch_refuses_a_folder_without_sparse_noise(tmp_path, capsys):

@@ -37,6 +37,7 @@ def live_page_data(result, aperture=None, info=None) -> dict:
     g = result.grid
     ny, nx = g.shape
     cells, blobs = [], []
+    kinds = result.peak_kind_index()
     for c in range(result.n_cells):
         li = _best_lag(result, c)
         maps = np.zeros((3, ny, nx), np.float32) if li < 0 else np.stack(
@@ -46,7 +47,7 @@ def live_page_data(result, aperture=None, info=None) -> dict:
         q = np.zeros(maps.shape, np.int8) if scale == 0 else np.rint(
             np.where(finite, maps, 0) / scale * 127).astype(np.int8)
         blobs.append(q.tobytes())
-        region = field_region(result, c) if result.responsive[c] else None
+        region = field_region(result, c, kinds) if result.responsive[c] else None
         z = result.max_abs_z[c]
         cells.append({
             "id": int(result.cell_ids[c]), "responsive": bool(result.responsive[c]),
@@ -54,7 +55,7 @@ def live_page_data(result, aperture=None, info=None) -> dict:
             "z_critical": None if not np.isfinite(result.z_critical[c]) else round(float(result.z_critical[c]), 2),
             "p": None if not np.isfinite(result.p_value[c]) else float(f"{result.p_value[c]:.3g}"),
             "lag_s": None if li < 0 else round(float(result.lags_s[li]), 4),
-            "polarity": str(result.polarity[c]), "scale": round(scale, 4),
+            "polarity": str(result.polarity[c]), "scale": float(f"{scale:.3g}"),
             "field": [] if region is None else np.flatnonzero(region[0]).tolist()})
     data = {"ny": ny, "nx": nx, "unit": result.unit,
             "extent": [float(v) for v in g.extent_deg],
@@ -109,24 +110,42 @@ for (const i of order) {
   });
   list.appendChild(div);
 }
-// population mosaic: every responsive cell's field, and the suggested aperture
+// population mosaic: every responsive cell's field, and the suggested aperture, in degrees
 const mc = document.getElementById('mosaic');
 const ctx = mc.getContext('2d');
 const [x0, x1, y0, y1] = D.extent;
-const sx = mc.width / (x1 - x0), sy = mc.height / (y1 - y0);
+const ml = 46, mr = 10, mt = 10, mb = 38;
+const W = mc.width - ml - mr, H = mc.height - mt - mb;
+const sx = W / (x1 - x0), sy = H / (y1 - y0);
+const X = x => ml + (x - x0) * sx, Y = y => mt + (y1 - y) * sy;
 const dx = (x1 - x0) / D.nx, dy = (y1 - y0) / D.ny;
-ctx.fillStyle = '#f4f4f0'; ctx.fillRect(0, 0, mc.width, mc.height);
-ctx.strokeStyle = '#999'; ctx.strokeRect(0, 0, mc.width, mc.height);
+ctx.fillStyle = '#fff'; ctx.fillRect(0, 0, mc.width, mc.height);
+ctx.fillStyle = '#f4f4f0'; ctx.fillRect(ml, mt, W, H);
+ctx.strokeStyle = '#999'; ctx.strokeRect(ml, mt, W, H);
+const span = Math.max(x1 - x0, y1 - y0);
+const step = span > 60 ? 20 : span > 25 ? 10 : 5;
+ctx.fillStyle = '#333'; ctx.font = '12px sans-serif'; ctx.textAlign = 'center';
+for (let v = Math.ceil(x0 / step) * step; v <= x1; v += step) {
+  ctx.fillRect(X(v), mt + H, 1, 5); ctx.fillText(String(v), X(v), mt + H + 17);
+}
+ctx.fillText('azimuth (deg)', ml + W / 2, mc.height - 4);
+ctx.textAlign = 'right';
+for (let v = Math.ceil(y0 / step) * step; v <= y1; v += step) {
+  ctx.fillRect(ml - 5, Y(v), 5, 1); ctx.fillText(String(v), ml - 7, Y(v) + 4);
+}
+ctx.save(); ctx.translate(12, mt + H / 2); ctx.rotate(-Math.PI / 2); ctx.textAlign = 'center';
+ctx.fillText('elevation (deg)', 0, 0); ctx.restore();
+ctx.textAlign = 'left';
 const hues = [12, 200, 95, 280, 45, 160, 330, 240];
 D.cells.forEach((c, n) => {
   if (!c.field.length) return;
   const h = hues[n % hues.length];
-  ctx.fillStyle = 'hsla(' + h + ',70%,45%,0.30)'; ctx.strokeStyle = 'hsl(' + h + ',70%,35%)';
+  ctx.fillStyle = 'hsla(' + h + ',70%,45%,0.30)';
   let cxs = 0, cys = 0;
   for (const p of c.field) {
     const i = Math.floor(p / D.nx), j = p % D.nx;
-    ctx.fillRect(j * dx * sx, i * dy * sy, dx * sx, dy * sy);
-    cxs += (j + 0.5) * dx * sx; cys += (i + 0.5) * dy * sy;
+    ctx.fillRect(ml + j * dx * sx, mt + i * dy * sy, dx * sx, dy * sy);
+    cxs += ml + (j + 0.5) * dx * sx; cys += mt + (i + 0.5) * dy * sy;
   }
   ctx.fillStyle = '#222'; ctx.font = '12px sans-serif';
   ctx.fillText(String(c.id), cxs / c.field.length - 4, cys / c.field.length + 4);
@@ -135,7 +154,7 @@ if (D.aperture) {
   const a = D.aperture;
   ctx.strokeStyle = '#111'; ctx.lineWidth = 2; ctx.setLineDash([6, 4]);
   ctx.beginPath();
-  ctx.ellipse((a.x - x0) * sx, (y1 - a.y) * sy, a.d / 2 * sx, a.d / 2 * sy, 0, 0, 2 * Math.PI);
+  ctx.ellipse(X(a.x), Y(a.y), a.d / 2 * sx, a.d / 2 * sy, 0, 0, 2 * Math.PI);
   ctx.stroke();
 }
 """
@@ -151,7 +170,7 @@ figure { display: inline-block; margin: 4px 4px 0 0; }
 figcaption { text-align: center; font-size: 12px; }
 canvas.map { width: 100px; image-rendering: pixelated; border: 1px solid #ddd; }
 code { background: #f2f2f2; padding: 2px 4px; }
-#mosaic { width: 480px; border: 1px solid #bbb; }
+#mosaic { width: 520px; }
 """
 
 
@@ -183,7 +202,7 @@ def write_live_page(path, data: dict, refresh_s: float = 2.0, version: int = 0, 
 {len(data['cells'])} cells responsive (live call, alpha {info.get('alpha', 0.01)}); updated
 {html.escape(str(info.get('updated', '')))} (update {int(version)}).{html.escape(str(info.get('note', '')))}</div>
 {apert}
-<canvas id="mosaic" width="480" height="{max(int(480 * ar), 60)}"></canvas>
+<canvas id="mosaic" width="520" height="{max(int(464 * ar), 60) + 48}"></canvas>
 <div id="cells"></div>
 <script type="application/json" id="live-data">{payload}</script>
 <script>{_SCRIPT}</script>
