@@ -1,54 +1,15 @@
-"""The live page of ``map2d watch`` in a real browser: headless Chromium (Debian's ``chromium`` and
-``chromium-driver``) driven by selenium loads the page while a replayed recording goes on, and sees it
-reload itself with more data. Polls with generous timeouts: nothing depends on the machine's speed.
+"""The live page of ``map2d watch`` in a real browser: headless Chromium (the ``browser`` fixture of
+``tests/conftest.py``, :mod:`tests.browser`) loads the page while a replayed recording goes on, and sees
+it reload itself with more data. Polls with generous timeouts: nothing depends on the machine's speed.
 """
 
 from __future__ import annotations
 
-import os
-import shutil
-import tempfile
 import threading
 import time
 
-import pytest
-
 from map2d.replay import replay_steps
 from map2d.watch import watch_folder
-
-FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-         "--disable-background-networking", "--disable-component-update", "--disable-sync",
-         "--disable-dev-shm-usage", "--force-device-scale-factor=1")
-CHROMEDRIVER = "/usr/bin/chromedriver"
-CHROMIUM = next((p for p in ("/usr/bin/chromium", "/usr/lib/chromium/chromium") if os.path.exists(p)), None)
-
-
-@pytest.fixture(scope="module")
-def live_browser():
-    """A selenium Chrome driver on headless Chromium with a fresh profile; skips, saying why, when the
-    browser or selenium is missing (``apt-get install -y chromium chromium-driver``)."""
-    if CHROMIUM is None or not os.path.exists(CHROMEDRIVER):
-        pytest.skip("no browser: chromium / chromium-driver not installed")
-    try:
-        from selenium import webdriver
-        from selenium.webdriver.chrome.service import Service
-    except ImportError:
-        pytest.skip("no browser: selenium is not installed (pip install -e '.[test]')")
-    profile = tempfile.mkdtemp(prefix="map2d-chromium-")
-    opts = webdriver.ChromeOptions()
-    opts.binary_location = CHROMIUM
-    for f in FLAGS:
-        opts.add_argument(f)
-    opts.add_argument(f"--user-data-dir={profile}")
-    opts.add_argument("--window-size=1400,1000")
-    opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
-    driver = webdriver.Chrome(service=Service(CHROMEDRIVER), options=opts)
-    driver.set_page_load_timeout(60)
-    yield driver
-    try:
-        driver.quit()
-    finally:
-        shutil.rmtree(profile, ignore_errors=True)
 
 
 def wait_for(check, timeout_s=90.0, what="condition"):
@@ -87,7 +48,7 @@ def page_state(driver):
         return None
 
 
-def test_live_page_loads_and_updates_while_the_recording_goes_on(live_browser, small_spikes_session, tmp_path):
+def test_live_page_loads_and_updates_while_the_recording_goes_on(browser, small_spikes_session, tmp_path):
     session, _ = small_spikes_session
     folder = tmp_path / "rec"
     steps = replay_steps(session, folder, step_s=60.0, seconds=240.0)
@@ -106,8 +67,9 @@ def test_live_page_loads_and_updates_while_the_recording_goes_on(live_browser, s
     th.start()
     page = folder / "live.html"
     wait_for(page.exists, what="the live page")
-    d = live_browser
-    d.get(page.as_uri())
+    browser.console()                                              # earlier tests' messages
+    browser.open(page)
+    d = browser.driver
     first = wait_for(lambda: page_state(d), what="the page's data")
     assert first[2] == "live" and first[1] > 0
     assert first[3] == 3 * first[4]                                # ON, OFF, linear for every cell
@@ -118,8 +80,7 @@ def test_live_page_loads_and_updates_while_the_recording_goes_on(live_browser, s
     assert later[0] > first[0]
     screenshot(d, tmp_path / "live_later.png")
     assert "map2d stimulus gratings" in d.find_element("id", "command").text
-    severe = [m for m in d.get_log("browser") if m.get("level") == "SEVERE"]
-    assert severe == []
+    assert browser.console_errors() == []
     stop.set()
     th.join(timeout=300)
     assert not th.is_alive() and not errors, errors
