@@ -215,7 +215,7 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2):
 
 def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
                     n_shuffles: int = 200, alpha: float = 0.01, size_radii_deg=None,
-                    progress=None, trace_decay="auto") -> Analysis:
+                    progress=None, trace_decay="auto", dense_estimate="auto") -> Analysis:
     """Run every stage the session's data allow.
 
     Parameters
@@ -238,6 +238,10 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         Traces only: the indicator's first-order decay removed before the maps
         (:func:`map2d.traces.decay_corrected`; 'auto' estimates it per cell, a number is the time
         constant in seconds, 'off' maps the traces as they are). Spikes are never filtered.
+    dense_estimate : 'auto', 'sta' or 'whitened'
+        Dense (real-valued) noise only: the linear map's estimate (``dense_method`` of
+        :func:`map2d.maps.compute_maps`; 'auto' whitens correlated noise). The estimate used is named in
+        the notes and in the ``dense_estimate`` / ``dense_ridge_penalty`` columns.
 
     Returns
     -------
@@ -275,7 +279,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     from .fit.spatial import locate_fields
     from .fit.tuning import TUNING_COLUMNS, grating_tuning_columns
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
-    from .maps import compute_maps
+    from .maps import compute_maps, dense_columns, dense_estimate_note
     from .traces import decay_corrected
 
     rng = np.random.default_rng(rng)
@@ -297,7 +301,9 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
                 span_s=(sn.times_s[0], sn.frame_ends_s()[-1]))
             an.notes.append(an.trace_decay.note())
         an.maps = compute_maps(map_responses, session.sparse_noise, max_lag_s=max_lag_s,
-                               n_shuffles=n_shuffles, alpha=alpha, rng=rng)
+                               n_shuffles=n_shuffles, alpha=alpha, rng=rng, dense_method=dense_estimate)
+        if an.maps.stimulus == "dense":
+            an.notes.append(dense_estimate_note(an.maps))
         step("fits")
         # which map carries each cell, fits that must earn their place, centres (map2d.fit.spatial);
         # reported parameters are the kernel's (the pixel box of the spots removed)
@@ -424,6 +430,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["snr"] = list(m.snr)
         if an.trace_decay is not None:
             cells["trace_decay_tau_s"] = list(an.trace_decay.tau_s)
+        if m.stimulus == "dense":
+            cells.update(dense_columns(m))
         for k, v in fit_cols.items():
             if k not in cells:
                 cells[k] = list(v)

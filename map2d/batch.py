@@ -44,7 +44,7 @@ DISTRIBUTED_HINT = "running on a cluster needs the optional package dask.distrib
 
 
 def analyze_one(source, out, config=None, max_lag_s: float = 0.2, seed: int = 0, n_jobs: int = 1,
-                report: bool = True, trace_decay="auto") -> dict:
+                report: bool = True, trace_decay="auto", dense_estimate="auto") -> dict:
     """Analyse one session into the results folder ``out`` (what ``map2d analyze`` writes).
 
     Runs in a batch worker; never raises for a session's own failure.
@@ -66,12 +66,15 @@ def analyze_one(source, out, config=None, max_lag_s: float = 0.2, seed: int = 0,
         Write ``report.html`` (the slowest file: figures); False leaves it out.
     trace_decay : "auto", "off" or float
         As ``--trace-decay`` of ``map2d analyze`` (imaging traces only).
+    dense_estimate : "auto", "sta" or "whitened"
+        As ``--dense-estimate`` of ``map2d analyze`` (dense noise only).
 
     Returns
     -------
     dict
         ``status`` (``"ok"``, ``"bad input"`` or ``"error"``), ``message`` (empty when ok),
-        ``cells``, ``responsive``, ``seconds``, ``notes`` (input warnings and analysis notes).
+        ``cells``, ``responsive``, ``seconds``, ``notes`` (input warnings and analysis notes),
+        ``maps_estimate`` ('sparse', 'sta' or 'whitened'; empty without maps).
     """
     from .analysis import analyze_session
     from .contract import InputWarning
@@ -79,18 +82,19 @@ def analyze_one(source, out, config=None, max_lag_s: float = 0.2, seed: int = 0,
     from .pipeline import results_folder, write_analysis
 
     t0 = time.perf_counter()
-    result = {"status": "ok", "message": "", "cells": None, "responsive": None, "notes": []}
+    result = {"status": "ok", "message": "", "cells": None, "responsive": None, "notes": [], "maps_estimate": ""}
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", InputWarning)   # kept in session.notes instead
             session = load_source(source, config)
             analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, n_jobs=n_jobs,
-                                       trace_decay=trace_decay)
+                                       trace_decay=trace_decay, dense_estimate=dense_estimate)
             with results_folder(out) as tmp:
                 write_analysis(tmp, analysis, session, report=report)
         result["cells"] = int(len(analysis.cell_ids))
         result["responsive"] = int(sum(1 for v in analysis.cells.get("responsive", []) if v is True))
         result["notes"] = [str(n) for n in list(session.notes) + list(analysis.notes)]
+        result["maps_estimate"] = "" if analysis.maps is None else str(analysis.maps.method)
     except BadInput as exc:
         result.update(status="bad input", message=str(exc))
     except Exception as exc:  # noqa: BLE001 - one session's failure must not stop the batch
@@ -327,7 +331,7 @@ def _run_on_cluster(jobs, scheduler, workers, memory_limit, bar, cluster, result
 
 def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0.2, seed: int = 0,
               workers: int = LOCAL_WORKERS, memory_limit: str = LOCAL_MEMORY_LIMIT, report: bool = True,
-              quiet: bool = False, trace_decay="auto") -> int:
+              quiet: bool = False, trace_decay="auto", dense_estimate="auto") -> int:
     """``map2d batch``: analyse every session, then write ``sessions.csv``, ``population.png``, ``batch.csv``.
 
     Parameters
@@ -352,6 +356,9 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
         No progress bar and no summary (failures are still reported on stderr).
     trace_decay : "auto", "off" or float
         As ``--trace-decay`` of ``map2d analyze``, for every session (checked before anything runs).
+    dense_estimate : "auto", "sta" or "whitened"
+        As ``--dense-estimate`` of ``map2d analyze``, for every session; ``batch.csv`` names the
+        estimate each session's maps used (``maps_estimate``).
 
     Returns
     -------
@@ -359,8 +366,9 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
         0 if every session succeeded; 2 if some failed and every failure was bad input; 1 if any failed
         with an internal error (or its worker died).
     """
-    from .pipeline import _trace_decay_option
+    from .pipeline import _dense_estimate_option, _trace_decay_option
     trace_decay = _trace_decay_option(trace_decay)
+    dense_estimate = _dense_estimate_option(dense_estimate)
     sources = find_sessions(sources)
     names = _session_names(sources)
     if scheduler not in (None, "sync") and not str(scheduler).startswith(("tcp://", "tls://", "inproc://",
@@ -381,7 +389,7 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
     out = Path(out).absolute()
     _prepare_out(out)
     jobs = {name: (str(src.absolute()), str(out / name), config if src.suffix.lower() == ".nwb" else None,
-                   float(max_lag_s), int(seed), 1, bool(report), trace_decay)
+                   float(max_lag_s), int(seed), 1, bool(report), trace_decay, dense_estimate)
             for name, src in zip(names, sources)}
     bar = _Bar(len(jobs), quiet)
     t0 = time.perf_counter()
@@ -400,6 +408,7 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
                "status": [results[n]["status"] for n in names],
                "cells": [results[n]["cells"] for n in names],
                "responsive": [results[n]["responsive"] for n in names],
+               "maps_estimate": [results[n].get("maps_estimate", "") for n in names],
                "seconds": [results[n]["seconds"] for n in names],
                "message": [results[n]["message"] for n in names]}
     from .contract import write_table

@@ -170,6 +170,12 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--config", type=Path, default=None,
                        help="NWB mapping (JSON) when SESSION is an .nwb file (README, NWB files and many "
                             "sessions; docs/batch.md)")
+        if name in ("maps", "analyze"):
+            p.add_argument("--dense-estimate", default="auto", choices=("auto", "sta", "whitened"),
+                           dest="dense_estimate",
+                           help="dense (real-valued) noise: the linear map's estimate: the spike-triggered "
+                                "average (sta), the ridge-whitened estimate (whitened), or whitened when "
+                                "the stimulus pixels correlate (auto, the default); named in cells.csv")
         if name == "maps":
             p.add_argument("--no-fits", action="store_true",
                            help="maps and significance only: no model fits (centre = centroid of the "
@@ -197,6 +203,8 @@ def build_parser() -> argparse.ArgumentParser:
     bat.add_argument("--seed", type=_SEED, default=0, help="seed for shuffles and bootstraps (default 0)")
     bat.add_argument("--trace-decay", default="auto", dest="trace_decay", metavar="auto|off|SECONDS",
                      help="imaging traces: remove the indicator's decay before the maps (as for analyze)")
+    bat.add_argument("--dense-estimate", default="auto", choices=("auto", "sta", "whitened"),
+                     dest="dense_estimate", help="dense noise: the linear map's estimate (as for analyze)")
     bat.add_argument("--no-report", action="store_true",
                      help="leave report.html out of each session's folder (faster; tables, stacks and arrays "
                           "are still written)")
@@ -272,18 +280,21 @@ def _dispatch(args) -> int:
         return pipeline.run_simulate(args)
     if args.command == "maps":
         return pipeline.run_maps(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed, quiet=args.quiet,
-                                 fits=not args.no_fits, trace_decay=args.trace_decay, config=args.config)
+                                 fits=not args.no_fits, trace_decay=args.trace_decay, config=args.config,
+                                 dense_estimate=args.dense_estimate)
     if args.command == "gratings":
         return pipeline.run_gratings(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
                                      quiet=args.quiet, config=args.config)
     if args.command == "analyze":
         return pipeline.run_analyze(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
-                                    quiet=args.quiet, config=args.config, trace_decay=args.trace_decay)
+                                    quiet=args.quiet, config=args.config, trace_decay=args.trace_decay,
+                                    dense_estimate=args.dense_estimate)
     if args.command == "batch":
         return pipeline.run_batch(args.sessions, args.out, scheduler=args.scheduler, config=args.config,
                                   max_lag_s=args.max_lag_s, seed=args.seed, workers=args.workers,
                                   memory_limit=args.memory_limit, report=not args.no_report,
-                                  quiet=args.quiet, trace_decay=args.trace_decay)
+                                  quiet=args.quiet, trace_decay=args.trace_decay,
+                                  dense_estimate=args.dense_estimate)
     if args.command == "watch":
         return pipeline.run_watch(args)
     if args.command == "replay":

@@ -62,8 +62,8 @@ _BATCH = "Population table only"
 #: Every column, grouped; the first group is the results contract's, in its order.
 COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
     ("Contract columns (always first, in this order)", (
-        Column("cell", "id", "Cell id: the integers of the spike file's `cell` array, or the row of the traces.",
-               "session format"),
+        Column("cell", "id", "Cell id: the integers of the spike file's `cell` array, or the row of the traces "
+               "(or its id in `responses.cell_ids`; the ROI id for NWB imaging).", "session format"),
         Column("responsive", "bool", "The sparse-noise map is significant: a max-statistic test over pixels x lags x "
                "map kinds, family-wise alpha 0.01, null from circular-shift shuffles (Gumbel fit to block maxima).",
                "Nichols & Holmes 2002; Coles 2001"),
@@ -108,6 +108,13 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("snr", "1", "Largest |z| of the linear map at the peak lag."),
         Column("trace_decay_tau_s", "s", "Imaging only: the indicator decay time constant removed from the trace "
                "before the maps.", "Vogelstein et al. 2010"),
+        Column("dense_estimate", "text", "Dense (real-valued) noise only: how the linear map was estimated: `sta` "
+               "(spike-triggered average) or `whitened` (ridge-regularised whitening; chosen by `--dense-estimate "
+               "auto` when the stimulus pixels correlate above 0.05 + 5/sqrt(frames)).",
+               "Chichilnisky 2001 (STA); Theunissen et al. 2001 (whitening)"),
+        Column("dense_ridge_penalty", "1", "Dense noise, whitened estimate only: the cross-validated ridge penalty "
+               "divided by the mean eigenvalue of the stimulus Gram matrix; larger values shrink fine structure "
+               "more (a Gabor's SF then reads low).", "Hastie et al. 2009, sections 3.4.1 and 7.10"),
     )),
     (_FIT, (
         Column("model", "text", "The spatial model: the best by BIC among `gaussian`, `dog` and `gabor` that passed "

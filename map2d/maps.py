@@ -52,9 +52,14 @@ from .align import interval_responses, spikes_in_intervals
 from .contract import SparseNoise, Spikes, Traces
 from .geometry import Grid
 
+#: ``dense_method='auto'`` whitens when the largest pixel correlation exceeds
+#: ``WHITEN_CORRELATION + WHITEN_CHANCE / sqrt(frames)`` (ours; see ``MapResult.whiten_threshold``).
+WHITEN_CORRELATION = 0.05
+WHITEN_CHANCE = 5.0
+
 __all__ = ["MapResult", "compute_maps", "frame_responses", "map_lags", "dense_sta", "whitened_sta",
-           "map_centroid_deg", "KINDS", "MapChoice", "choose_maps", "region_threshold_z", "region_centre",
-           "LINEAR_SHARE_THRESHOLD"]
+           "dense_estimate_note", "dense_columns", "map_centroid_deg", "KINDS", "MapChoice", "choose_maps",
+           "region_threshold_z", "region_centre", "LINEAR_SHARE_THRESHOLD"]
 
 #: Map kinds, in the order used by every ``kind`` axis.
 KINDS = ("on", "off", "linear")
@@ -126,6 +131,20 @@ class MapResult:
         'sparse', 'sta' or 'whitened'.
     ridge_lambda : ndarray (C,)
         Cross-validated ridge penalty (whitened dense noise), NaN otherwise.
+    ridge_penalty : ndarray (C,)
+        The same penalty relative to the stimulus: ``ridge_lambda`` divided by the mean eigenvalue of
+        the frames' Gram matrix (the mean pixel variance times the frames used). 0 would be plain
+        least squares; near 1 and above the estimate is shrunk strongly toward the smooth, low-SF
+        part of the kernel. NaN for the STA and sparse noise.
+    pixel_correlation : float
+        Dense noise: the largest absolute correlation between two pixels of the stimulus (NaN for
+        sparse noise); with ``dense_method='auto'`` the whitened estimate is used when it exceeds
+        ``whiten_threshold``.
+    whiten_threshold : float
+        ``0.05 + 5 / sqrt(frames used)`` (:data:`WHITEN_CORRELATION`, :data:`WHITEN_CHANCE`): 0.05 is
+        where whitening starts to matter; 5 / sqrt(F) is 5 standard errors of a sample correlation of
+        F frames, which white noise exceeds somewhere in about 2 % of 16 x 16 grids (32,640 pixel
+        pairs x 5.7e-7, the normal tail beyond 5). NaN for sparse noise.
     """
 
     grid: Grid
@@ -156,6 +175,9 @@ class MapResult:
     alpha: float
     method: str = "sparse"
     ridge_lambda: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    ridge_penalty: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    pixel_correlation: float = float("nan")
+    whiten_threshold: float = float("nan")
 
     @property
     def n_cells(self) -> int:
@@ -1350,12 +1372,14 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
         raise ValueError(f"dense_method must be 'auto', 'sta' or 'whitened', got {dense_method!r}")
     cross0, G = _dense_cross(frames, X, [0], mu, circular=True, n_blocks=1, gram=True, layout=layout)
     G = G[0]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        d = np.sqrt(np.diag(G))
+        corr = G / np.outer(d, d)
+    off = np.abs(corr[~np.eye(P, dtype=bool)])
+    pixel_corr = float(np.nanmax(off)) if off.size and np.isfinite(off).any() else float("nan")
+    threshold = WHITEN_CORRELATION + WHITEN_CHANCE / np.sqrt(Fv)
     if dense_method == "auto":
-        with np.errstate(invalid="ignore", divide="ignore"):
-            d = np.sqrt(np.diag(G))
-            corr = G / np.outer(d, d)
-        off = np.abs(corr[~np.eye(P, dtype=bool)])
-        method = "whitened" if off.size and np.nanmax(off) > 0.05 + 5 / np.sqrt(Fv) else "sta"
+        method = "whitened" if pixel_corr > threshold else "sta"
     else:
         method = dense_method
     # with gaps: pairs used at each lag, and pairs with a response in a circular shift by s rows
@@ -1426,8 +1450,53 @@ def _compute_dense(R, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, min_s
 
     offsets = _shift_offsets(X.shape[0], K, L, min_shift, rng)
     plan = _null_plan(P, L, K, 1, _effective_lags(X, sd, L, _ok_cells(sd, n_valid, lags)))
-    return _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
-                   unit, alpha, kinds_used=(2,), stimulus="dense", method=method, ridge=ridge, plan=plan)
+    res = _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
+                  unit, alpha, kinds_used=(2,), stimulus="dense", method=method, ridge=ridge, plan=plan)
+    mean_eig = float(np.trace(G)) / P
+    res.ridge_penalty = np.asarray(ridge, dtype=np.float64) / mean_eig if mean_eig > 0 else np.full(C, np.nan)
+    res.pixel_correlation, res.whiten_threshold = pixel_corr, float(threshold)
+    return res
+
+
+def dense_columns(result: MapResult) -> dict:
+    """``cells.csv`` columns naming the dense-noise estimate of each cell: ``dense_estimate`` ('sta' or
+    'whitened') and ``dense_ridge_penalty`` (``MapResult.ridge_penalty``; empty for the STA)."""
+    C = result.n_cells
+    pen = np.asarray(result.ridge_penalty, dtype=float)
+    return {"dense_estimate": [result.method] * C,
+            "dense_ridge_penalty": list(pen) if pen.size == C else [np.nan] * C}
+
+
+def dense_estimate_note(result: MapResult) -> str | None:
+    """One sentence saying how the dense-noise maps of ``result`` were estimated (None for sparse noise):
+    the estimate, why (the pixel correlation against the rule), the penalty, and the units.
+
+    Examples
+    --------
+    >>> r = MapResult.__new__(MapResult)
+    >>> r.stimulus, r.method, r.pixel_correlation, r.whiten_threshold = "dense", "sta", 0.02, 0.09
+    >>> r.ridge_penalty = np.array([np.nan])
+    >>> dense_estimate_note(r)[:62]
+    'dense noise: linear maps by the spike-triggered average (STA);'
+    """
+    if result.stimulus != "dense":
+        return None
+    why = (f"largest pixel correlation {result.pixel_correlation:.3g}, "
+           f"{'above' if result.pixel_correlation > result.whiten_threshold else 'at or below'} the "
+           f"whitening threshold 0.05 + 5/sqrt(frames) = {result.whiten_threshold:.3g}")
+    if result.method == "whitened":
+        pen = np.asarray(result.ridge_penalty, dtype=float)
+        pen = pen[np.isfinite(pen)]
+        what = ("the ridge-whitened estimate (penalty chosen per cell by cross-validation over blocks of "
+                f"time; relative penalty median {np.median(pen):.3g}, range {pen.min():.3g}-{pen.max():.3g}, "
+                "column dense_ridge_penalty; the penalty shrinks fine structure, so a Gabor's SF reads a few "
+                "per cent low, more for weak cells)" if pen.size else "the ridge-whitened estimate")
+    else:
+        what = "the spike-triggered average (STA"
+        what += ("; the stimulus is correlated, so the map is the kernel blurred by the stimulus correlation)"
+                 if result.pixel_correlation > result.whiten_threshold else ")")
+    return (f"dense noise: linear maps by {what}; {why}; ON/OFF maps are not estimated (NaN); the linear "
+            f"map is in response units per unit of stimulus contrast")
 
 
 # ----------------------------------------------------------------------------------------------

@@ -465,8 +465,15 @@ def _check_max_lag(max_lag_s, sn) -> None:
                                           f"of {sn.frame_interval_s:.4g} s (at most a quarter of them)")
 
 
+def _dense_estimate_option(value):
+    """``--dense-estimate`` checked: 'auto', 'sta' or 'whitened' (else BadInput)."""
+    if value not in ("auto", "sta", "whitened"):
+        raise BadInput("--dense-estimate", None, f"must be auto, sta or whitened, got {value!r}")
+    return value
+
+
 def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, trace_decay="auto",
-             config=None) -> int:
+             config=None, dense_estimate="auto") -> int:
     """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``.
 
     ``maps.npz`` holds ``on, off, linear`` and ``on_z, off_z, linear_z`` (float32, cells x lags x ny x nx,
@@ -485,7 +492,10 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
     removed before the maps (:func:`map2d.traces.decay_corrected`); spikes are never filtered.
 
     ``session_path`` and ``config`` are read as by :func:`run_analyze` (a session folder, one pointing
-    at an NWB file, or an ``.nwb`` file with its mapping).
+    at an NWB file, or an ``.nwb`` file with its mapping). ``dense_estimate`` ('auto', 'sta' or
+    'whitened'; ``--dense-estimate``): the linear map's estimate for dense noise
+    (:func:`map2d.maps.compute_maps`), named in ``cells.csv`` (``dense_estimate``,
+    ``dense_ridge_penalty``) and in the printed note.
     """
     import dataclasses
 
@@ -497,6 +507,7 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
 
     trace_decay = _trace_decay_option(trace_decay)
     results_target(out)                       # refuse a bad --out before the work
+    dense_estimate = _dense_estimate_option(dense_estimate)
     session = load_source(session_path, config)
     if session.sparse_noise is None:
         raise BadInput(_manifest_of(session_path, config), "sparse_noise",
@@ -505,18 +516,18 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
     _check_max_lag(max_lag_s, sn)
     if fits:
         an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed,
-                             trace_decay=trace_decay)
+                             trace_decay=trace_decay, dense_estimate=dense_estimate)
         res, spatial, model = an.maps, an.spatial_maps, _model_maps(an).get("model_maps", an.model_maps)
         table = {k: v for k, v in an.cells.items() if k not in GRATING_ONLY_COLUMNS}
     else:
         from .contract import Traces
-        from .maps import compute_maps, map_centroid_deg
+        from .maps import compute_maps, dense_columns, map_centroid_deg
         from .traces import decay_corrected
         responses, decay = session.responses, None
         if isinstance(responses, Traces):
             responses, decay = decay_corrected(responses, trace_decay, skip_s=sn.frame_interval_s,
                                                span_s=(sn.times_s[0], sn.frame_ends_s()[-1]))
-        res = compute_maps(responses, sn, max_lag_s=max_lag_s, rng=seed)
+        res = compute_maps(responses, sn, max_lag_s=max_lag_s, rng=seed, dense_method=dense_estimate)
         spatial = model = np.full((res.n_cells,) + res.grid.shape, np.nan, dtype=np.float32)
         centres = np.array([map_centroid_deg(res, c) for c in range(res.n_cells)], dtype=float)
         table = {"cell": res.cell_ids, "responsive": res.responsive, "center_x_deg": centres[:, 0],
@@ -524,6 +535,8 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
                  "polarity": res.polarity, "onoff_overlap": res.onoff_overlap, "snr": res.snr}
         if decay is not None:
             table["trace_decay_tau_s"] = decay.tau_s
+        if res.stimulus == "dense":
+            table.update(dense_columns(res))
     g = res.grid
     with results_folder(out) as tmp:
         np.savez(  # not compressed: float maps shrink ~15 % for seconds of zlib on large sessions
@@ -537,6 +550,9 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
     if not quiet:
         print(f"map2d maps: {int(res.responsive.sum())} of {res.n_cells} cells responsive; "
               f"wrote {Path(out) / 'maps.npz'} and cells.csv")
+        from .maps import dense_estimate_note
+        if res.stimulus == "dense":
+            print(f"map2d: note: {dense_estimate_note(res)}")
     return 0
 
 
@@ -710,23 +726,25 @@ def write_analysis(folder, analysis, session, report=True) -> list:
     return written
 
 
-def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None, trace_decay="auto") -> int:
+def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None, trace_decay="auto",
+                dense_estimate="auto") -> int:
     """``map2d analyze``: everything, the results contract, written atomically into ``out``.
 
     ``session_path`` is a session folder, a folder whose ``session.json`` points at an NWB file, or an
-    ``.nwb`` file with its mapping ``config`` (see :func:`map2d.nwb.load_source`). ``trace_decay``:
-    see :func:`run_maps`.
+    ``.nwb`` file with its mapping ``config`` (see :func:`map2d.nwb.load_source`). ``trace_decay`` and
+    ``dense_estimate``: see :func:`run_maps`.
     """
     from .analysis import analyze_session
     from .nwb import load_source
     trace_decay = _trace_decay_option(trace_decay)
     results_target(out)                       # refuse a bad --out before the work
+    dense_estimate = _dense_estimate_option(dense_estimate)
     session = load_source(session_path, config)
     _check_max_lag(max_lag_s, session.sparse_noise)
     bar = _StageBar(quiet)
     try:
         analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, progress=bar,
-                                   trace_decay=trace_decay)
+                                   trace_decay=trace_decay, dense_estimate=dense_estimate)
         bar("writing")
         with results_folder(out) as tmp:
             write_analysis(tmp, analysis, session)

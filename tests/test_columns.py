@@ -33,6 +33,16 @@ def written_columns(tmp_path_factory):
         write_session(tmp / kind, session)
         run_maps(tmp / kind, tmp / f"maps_{kind}", fits=False, quiet=True)
         found[f"maps --no-fits {kind}"] = read_table(tmp / f"maps_{kind}" / "cells.csv")[0]
+    # dense noise (the sparse frames as real values): the columns naming the dense estimate
+    import dataclasses
+
+    import numpy as np
+    sn = session.sparse_noise
+    dense = dataclasses.replace(session, gratings=None,
+                                sparse_noise=dataclasses.replace(sn, frames=sn.frames.astype(np.float32)))
+    write_session(tmp / "dense", dense)
+    run_maps(tmp / "dense", tmp / "maps_dense", fits=False, quiet=True)
+    found["maps --no-fits dense"] = read_table(tmp / "maps_dense" / "cells.csv")[0]
     run_gratings(tmp / "spikes", tmp / "gratings", quiet=True)
     found["gratings"] = read_table(tmp / "gratings" / "cells.csv")[0]
     return found
