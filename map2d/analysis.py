@@ -116,7 +116,7 @@ def _map_time_course(maps, patterns):
         return np.where(pp[:, None] > 0, np.einsum("clp,cp->cl", lin, p) / pp[:, None], 0.0)
 
 
-def flashed_noise(responses, table, flashed, max_lag_s=0.2):
+def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
     """Noise variance of each cell's measured flashed-grating surface, from single presentations.
 
     ``flashed.harmonic_combined`` is the first harmonic over phase of the condition means of the
@@ -142,11 +142,15 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2):
         The analysis of the same table.
     max_lag_s : float
         As for ``flashed``.
+    phase_mean : bool
+        Also return the noise variance of the phase-invariant part (``phase_mean_combined``, the plain
+        mean over the phases shown: ``sum_p var_p / n^2``).
 
     Returns
     -------
     numpy.ndarray (C, O, S) or None
-        NaN where it cannot be estimated; None when the sequence does not match ``flashed``.
+        NaN where it cannot be estimated; None when the sequence does not match ``flashed``. With
+        ``phase_mean``, a pair (harmonic, phase-invariant part), or None.
     """
     from .align import interval_responses
     from .gratings import _frame_windows, flashed_rows, fold_static
@@ -210,7 +214,13 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2):
         v = np.sum(np.where(avail, gain * var_mean, 0.0), axis=-1)
         v = np.where(np.all(~avail | np.isfinite(var_mean), axis=-1) & good, v, np.nan)
         v = v / np.asarray(flashed.condition_contrast, float)[None] ** 2
-    return v
+    if not phase_mean:
+        return v
+    n_av = avail.sum(axis=-1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        vp = np.where(n_av > 0, np.sum(np.where(avail, var_mean, 0.0), axis=-1) / np.maximum(n_av, 1) ** 2, np.nan)
+        vp = np.where(np.all(~avail | np.isfinite(var_mean), axis=-1), vp, np.nan)
+    return v, vp
 
 
 def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
@@ -336,7 +346,10 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         if has_flashed(g):
             step("flashed gratings")
             an.flashed = analyze_flashed(flashed_responses, g, max_lag_s=max_lag_s, rng=rng, alpha=alpha)
-            an.measured_noise = flashed_noise(flashed_responses, g, an.flashed, max_lag_s)
+            noise = flashed_noise(flashed_responses, g, an.flashed, max_lag_s, phase_mean=True)
+            if noise is not None:   # selectivity from responses with the noise floor removed
+                an.measured_noise, an.flashed.phase_mean_noise_var = noise
+                an.flashed.harmonic_noise_var = an.measured_noise
         if has_drifting(g):
             step("drifting gratings")
             an.drifting = analyze_drifting(session.responses, g, alpha=alpha, trace_tau_s=cell_tau)

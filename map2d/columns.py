@@ -207,10 +207,18 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("pref_sf_ci_high_cpd", "cpd", "Upper end of the 95 % interval of `pref_sf_cpd`."),
         Column("sf_bandwidth_oct", "oct", "Full SF bandwidth at half height above the baseline.", "common practice"),
         Column("sf_bandwidth_ci_halfwidth_oct", "oct", "Half-width of the 95 % interval of `sf_bandwidth_oct`."),
-        Column("circular_variance", "1", "Circular variance of the orientation curve (0 one orientation, 1 untuned).",
+        Column("circular_variance", "1", "Circular variance of the orientation curve (0 one orientation, 1 untuned; "
+               "flashed gratings: the noise floor of |H| removed).",
                "Ringach, Shapley & Hawken 2002"),
+        Column("circular_variance_ci_low", "1", "Lower end of the 95 % interval of `circular_variance` "
+               "(flashed gratings: the measured noise of each condition resampled).", "Davison & Hinkley 1997"),
+        Column("circular_variance_ci_high", "1", "Upper end of the 95 % interval of `circular_variance`.",
+               "Davison & Hinkley 1997"),
         Column("osi", "1", "Orientation selectivity index (R_pref - R_orth) / (R_pref + R_orth).",
                "common practice (e.g. Niell & Stryker 2008)"),
+        Column("osi_ci_low", "1", "Lower end of the 95 % interval of `osi` (as `circular_variance_ci_low`).",
+               "Davison & Hinkley 1997"),
+        Column("osi_ci_high", "1", "Upper end of the 95 % interval of `osi`.", "Davison & Hinkley 1997"),
         Column("pref_direction_deg", "deg", "Preferred drift direction in [0, 360) (direction the wave vector "
                "points; two-peaked von Mises fit).", "common practice"),
         Column("dsi", "1", "Direction selectivity index (R_pref - R_opposite) / (R_pref + R_opposite).",

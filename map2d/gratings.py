@@ -189,6 +189,10 @@ class FlashedResult:
         signal-to-noise ratio (on simulated traces with a 0.4 s decay, the correlation of the measured
         magnitude surface with the kernel's rose from about 0.8 to 0.98); the phase convention is that
         of ``harmonic``. Used for tuning and the agreement with the map.
+    harmonic_noise_var, phase_mean_noise_var : (cells, O, S) or None  noise variances of the lag-pooled
+        surfaces, from single presentations (:func:`map2d.analysis.flashed_noise`; set by
+        :func:`map2d.analysis.analyze_session`): ``peak_response`` removes the noise floor with the
+        first, and the selectivity intervals resample both.
     """
 
     cell_ids: np.ndarray
@@ -217,6 +221,8 @@ class FlashedResult:
     phase_mean_combined: np.ndarray = None
     temporal_profile: np.ndarray = None
     lag_noise_cov: np.ndarray = None
+    harmonic_noise_var: np.ndarray = None
+    phase_mean_noise_var: np.ndarray = None
 
     def _at_peak(self, a):
         idx = self.peak_lag_index[:, None, None, None]
@@ -239,8 +245,19 @@ class FlashedResult:
         This is the response measure used for tuning: it serves simple cells (carried by ``|H|``)
         and complex cells (carried by the phase-invariant part) alike. Computed from the lag-pooled
         surfaces (``harmonic_combined``, ``phase_mean_combined``). Shape (cells, O, S).
+
+        ``|H|`` of a noisy measurement has a floor: ``E|H_meas|^2 = |H|^2 + v`` with ``v`` the noise
+        variance of the condition, the same at every orientation, which flattens the tuning and makes
+        every selectivity index depend on the recording's length. When ``harmonic_noise_var`` is set
+        (:func:`map2d.analysis.flashed_noise`), ``|H|`` is replaced by ``sqrt(max(|H_meas|^2 - v, 0))``
+        (the noise power removed; a condition whose ``v`` is NaN keeps ``|H_meas|``).
         """
-        return self.phase_mean_combined + self.condition_contrast[None] * np.abs(self.harmonic_combined)
+        amp = np.abs(self.harmonic_combined)
+        v = self.harmonic_noise_var
+        if v is not None:
+            v = np.asarray(v, float)
+            amp = np.where(np.isfinite(v), np.sqrt(np.maximum(amp**2 - np.where(np.isfinite(v), v, 0.0), 0.0)), amp)
+        return self.phase_mean_combined + self.condition_contrast[None] * amp
 
     def full_plane(self, values=None):
         """Values on both halves of the (kx, ky) plane: ``(kx, ky, v)`` each (cells?, 2 O, S).

@@ -497,3 +497,37 @@ def test_weak_but_clean_drifting_orientation_tuning_is_kept():
     width = {"log_gaussian": "sf_fit_sigma_oct", "gaussian": "sf_fit_sigma_cpd", "dog": "sf_fit_rc_deg"}
     assert cols[width[curve]][0] > 0
     assert all(np.isnan(cols[w][0]) for k, w in width.items() if k != curve)
+
+
+def test_flashed_selectivity_does_not_drift_with_recording_length():
+    """Issue 14, effect 5. A simple, a second simple and a complex cell (seed 3) recorded with 3, 10
+    and 100 minutes of flashed gratings. Before, |H| entered the tuning response with its noise floor
+    and the first cell's circular variance read 0.465, 0.421 and 0.393: the 3-minute value lies far
+    outside the 100-minute interval (0.376-0.400). With the noise power removed it reads 0.409, 0.394 and
+    0.388, and every 100-minute value (circular variance and OSI, all three cells) lies inside the 3- and
+    10-minute intervals (resampling the measured noise)."""
+    from map2d.analysis import flashed_noise
+    from map2d.gratings import analyze_flashed
+    from map2d.simulate import simulate_session
+
+    out = {}
+    for minutes in (3.0, 10.0, 100.0):
+        s, _ = simulate_session(n_cells=3, minutes=0, responses="spikes", seed=3, flashed_minutes=minutes,
+                                repeats=0, cell_types=["simple", "simple", "complex"])
+        fl = analyze_flashed(s.responses, s.gratings, rng=0, n_shuffles=0)
+        fl.responsive[:] = True
+        raw = grating_tuning_columns(fl, None, n_jobs=1)["circular_variance"]
+        fl.harmonic_noise_var, fl.phase_mean_noise_var = flashed_noise(s.responses, s.gratings, fl,
+                                                                       phase_mean=True)
+        cols = grating_tuning_columns(fl, None, n_jobs=1)
+        out[minutes] = (np.asarray(raw, float), cols)
+    raw3, raw100 = out[3.0][0], out[100.0][0]
+    assert raw3[0] == pytest.approx(0.465, abs=0.005) and raw100[0] == pytest.approx(0.393, abs=0.005)
+    long = out[100.0][1]
+    assert raw3[0] > long["circular_variance_ci_high"][0]          # the old estimate drifted out
+    for minutes in (3.0, 10.0):
+        c = out[minutes][1]
+        for k in ("circular_variance", "osi"):
+            lo, hi = np.asarray(c[k + "_ci_low"], float), np.asarray(c[k + "_ci_high"], float)
+            assert np.all((lo <= np.asarray(long[k])) & (np.asarray(long[k]) <= hi)), (minutes, k, lo, hi, long[k])
+    assert out[3.0][1]["circular_variance"][0] == pytest.approx(0.409, abs=0.005)
