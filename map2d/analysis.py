@@ -368,15 +368,14 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         fl = an.flashed
         grid = an.maps.grid
         origin = an.phase_origin_deg
-        # the fitted model of the map predicts the gratings (the raw map's pixel noise would spread
-        # over every wave vector); the measured surface pools the lags like the map does
-        # the maps see the kernel through the pixel box, the gratings see it bare: divide by the box's
-        # transfer (a 0-16 % factor on the default grid; it changes the agreement by < 1 % in
-        # practice, since the gain absorbs its mean, but it is the right prediction)
-        # closed-form spectrum of the fitted kernel (any SF); the sampled map only inside its Nyquist
-        # band (reconcile.forward_prediction)
+        # the closed-form spectrum of an accepted fit (any SF; the raw map's pixel noise would spread
+        # over every wave vector); a linear map without an accepted fit predicts nothing; other maps
+        # (ON + OFF cells) are summed on the grid, only inside its Nyquist band
+        # (reconcile.forward_prediction); the measured surface pools the lags like the map does
+        fitted = (an.map_kind == "linear") & (np.asarray(fit_cols["center_method"], object) == "model")
+        sampled = np.where(((an.map_kind == "linear") & ~fitted)[:, None, None], np.nan, an.model_maps)
         an.predicted_h, an.predicted_h_sampled = reconcile.forward_prediction(
-            fit_cols, an.map_kind == "linear", an.model_maps, grid, fl.orientations_deg, fl.sfs_cpd, origin)
+            fit_cols, fitted, sampled, grid, fl.orientations_deg, fl.sfs_cpd, origin)
         # both experiments' patterns referred to the same latency (reconcile.time_course_sign)
         an.time_course_sign = reconcile.time_course_sign(
             _map_time_course(an.maps, linear_spatial), an.maps.lags_s, fl.temporal_profile, fl.lags_s)
@@ -387,7 +386,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         sig = np.asarray(an.forward["signal_p"], float) < reconcile.SIGNAL_ALPHA
         grating_response = np.asarray(fl.responsive, bool) | sig
         no_pred = an.maps.responsive & ~np.all(np.isfinite(an.predicted_h), axis=(1, 2))
-        no_agreement_reason = np.where(no_pred, "no prediction (no fitted model)", "no flashed gratings")
+        no_agreement_reason = np.where(no_pred, "no prediction (no accepted fit)", "no flashed gratings")
         if len(fl.orientations_deg) > 1 and len(fl.sfs_cpd) > 1:
             an.inverse = reconcile.inverse_comparison(an.measured_h, np.nan_to_num(an.spatial_maps), grid,
                                                       fl.orientations_deg, fl.sfs_cpd, origin)
@@ -465,5 +464,9 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         for k in TUNING_COLUMNS:
             if k not in cells:
                 cells[k] = list(tuning[k])
+    if an.maps is not None:   # sizes, SFs, orientations in locally isotropic degrees at the centre
+        local = reconcile.local_angle_columns(fit_cols["center_y_deg"], fit_cols, tuning)
+        for k in reconcile.LOCAL_ANGLE_COLUMNS:
+            cells[k] = list(local[k])
     an.cells = cells
     return an

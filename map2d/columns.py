@@ -255,6 +255,24 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "Enroth-Cugell & Robson 1966"),
         Column("sf_fit_r2", "1", "Variance of the SF curve explained by that fit."),
     )),
+    ("Local visual angle", (
+        Column("size_local_deg", "deg", "`size_deg` in locally isotropic degrees at the centre's elevation e "
+               "(azimuth extents scaled by cos e): size_deg x sqrt(cos e).", "common practice (Marshel et al. 2011)"),
+        Column("sigma_major_local_deg", "deg", "Envelope major-axis sd in local degrees (covariance J S J, "
+               "J = diag(cos e, 1)).", "common practice (Marshel et al. 2011)"),
+        Column("sigma_minor_local_deg", "deg", "Envelope minor-axis sd in local degrees.",
+               "common practice (Marshel et al. 2011)"),
+        Column("theta_local_deg", "deg", "Envelope major-axis angle in local degrees, [0, 180).",
+               "common practice (Marshel et al. 2011)"),
+        Column("gabor_sf_local_cpd", "cpd", "The Gabor's SF in cycles per local degree (wave vector "
+               "(kx / cos e, ky)).", "common practice (Marshel et al. 2011)"),
+        Column("gabor_orientation_local_deg", "deg", "The Gabor's wave-vector angle in local degrees, [0, 180).",
+               "common practice (Marshel et al. 2011)"),
+        Column("pref_sf_local_cpd", "cpd", "`pref_sf_cpd` in cycles per local degree at the map centre.",
+               "common practice (Marshel et al. 2011)"),
+        Column("pref_orientation_local_deg", "deg", "`pref_orientation_deg` in local degrees at the map centre.",
+               "common practice (Marshel et al. 2011)"),
+    )),
     (_BATCH, (
         Column("session", "text", "`sessions.csv` of `map2d batch` only: the session's folder name (first column)."),
     )),

@@ -60,6 +60,8 @@ __all__ = [
     "MIN_CONDITIONS",
     "SIGNAL_ALPHA",
     "pixel_box_transfer",
+    "local_angle_columns",
+    "LOCAL_ANGLE_COLUMNS",
 ]
 
 #: Forward agreement at or above which the map and the gratings are called consistent (ours: halfway
@@ -891,3 +893,91 @@ def linearity_call(agreement, f1_f0=None, onoff_overlap=None, responsive=None,
         linear[c] = not failed
         reason[c] = "; ".join(failed) if failed else ", ".join(passed)
     return linear, reason.astype(str)
+
+
+# ----------------------------------------------------------------------------------------------------
+# locally isotropic visual angle
+# ----------------------------------------------------------------------------------------------------
+
+#: The extra ``cells.csv`` columns of :func:`local_angle_columns`, in order.
+LOCAL_ANGLE_COLUMNS = ("size_local_deg", "sigma_major_local_deg", "sigma_minor_local_deg", "theta_local_deg",
+                       "gabor_sf_local_cpd", "gabor_orientation_local_deg", "pref_sf_local_cpd",
+                       "pref_orientation_local_deg")
+
+#: Below this cos(elevation) (about 87 deg) local angles are not reported.
+_MIN_COS_ELEVATION = 0.05
+
+
+def _local_wave(ori_deg, sf_cpd, c):
+    th = np.deg2rad(np.asarray(ori_deg, float))
+    kx, ky = np.asarray(sf_cpd, float) * np.cos(th) / c, np.asarray(sf_cpd, float) * np.sin(th)
+    return np.hypot(kx, ky), np.mod(np.degrees(np.arctan2(ky, kx)), 180.0)
+
+
+def local_angle_columns(center_y_deg, fits=None, tuning=None) -> dict:
+    """Sizes, SFs and orientations in locally isotropic degrees at each cell's elevation.
+
+    Grid coordinates are azimuth and elevation (:mod:`map2d.geometry`). On the sphere a step of ``d``
+    degrees of azimuth at elevation ``e`` spans ``d cos(e)`` degrees of visual angle, a step of
+    elevation ``d`` degrees: near the horizon the two agree, at 60 deg elevation azimuth extents are
+    halved. Spherical corrections of this kind are common practice in mouse work, whose fields reach
+    high elevations (e.g. Marshel et al. 2011, Neuron 72:1040, cited from memory). With
+    ``J = diag(cos e, 1)`` at the cell's centre elevation ``e``, a kernel of covariance ``S`` (grid
+    degrees) has covariance ``J S J`` in local degrees, and a wave vector ``(kx, ky)`` (cycles per grid
+    degree) is ``(kx / cos e, ky)`` in cycles per local degree (the transpose inverse). Linear to first
+    order around the centre: a local description, not a re-mapping of the whole field.
+
+    Parameters
+    ----------
+    center_y_deg : array_like (C,)
+        Elevation of each cell's centre (NaN: nothing reported).
+    fits : mapping, optional
+        :func:`map2d.fit.spatial.fit_maps` columns (``size_deg``, ``sigma_major_deg``,
+        ``sigma_minor_deg``, ``theta_deg``, ``gabor_sf_cpd``, ``gabor_orientation_deg``).
+    tuning : mapping, optional
+        Grating tuning columns (``pref_sf_cpd``, ``pref_orientation_deg``).
+
+    Returns
+    -------
+    dict of column -> numpy.ndarray (C,)
+        :data:`LOCAL_ANGLE_COLUMNS`: ``size_local_deg`` (``size_deg * sqrt(cos e)``: the geometric mean
+        of the local widths), the local envelope (major, minor sd and major-axis angle in [0, 180)), the
+        Gabor's and the gratings' preferred SF and orientation (wave-vector angle) in local terms. NaN
+        where an input is missing or ``cos e < 0.05``.
+
+    Examples
+    --------
+    >>> c = local_angle_columns([60.0], {"size_deg": [2.0], "sigma_major_deg": [4.0], "sigma_minor_deg": [2.0],
+    ...                                  "theta_deg": [0.0]}, {"pref_sf_cpd": [0.05], "pref_orientation_deg": [0.0]})
+    >>> [round(float(c[k][0]), 3) for k in ("sigma_major_local_deg", "sigma_minor_local_deg", "pref_sf_local_cpd")]
+    [2.0, 2.0, 0.1]
+    """
+    e = np.asarray(center_y_deg, float).ravel()
+    n = e.size
+    c = np.cos(np.deg2rad(e))
+    ok = np.isfinite(c) & (c >= _MIN_COS_ELEVATION)
+    c = np.where(ok, c, np.nan)
+    out = {k: np.full(n, np.nan) for k in LOCAL_ANGLE_COLUMNS}
+
+    def col(src, name):
+        return _col(src, name, n) if src is not None else np.full(n, np.nan)
+
+    out["size_local_deg"] = col(fits, "size_deg") * np.sqrt(c)
+    a, b, th = col(fits, "sigma_major_deg"), col(fits, "sigma_minor_deg"), np.deg2rad(col(fits, "theta_deg"))
+    # J S J with S = R diag(a^2, b^2) R^T, J = diag(c, 1)
+    sxx = c**2 * (a**2 * np.cos(th) ** 2 + b**2 * np.sin(th) ** 2)
+    syy = a**2 * np.sin(th) ** 2 + b**2 * np.cos(th) ** 2
+    sxy = c * (a**2 - b**2) * np.sin(th) * np.cos(th)
+    mean, diff = (sxx + syy) / 2, np.sqrt(((sxx - syy) / 2) ** 2 + sxy**2)
+    out["sigma_major_local_deg"] = np.sqrt(mean + diff)
+    out["sigma_minor_local_deg"] = np.sqrt(np.maximum(mean - diff, 0.0))
+    out["theta_local_deg"] = np.mod(np.degrees(0.5 * np.arctan2(2 * sxy, sxx - syy)), 180.0)
+    out["gabor_sf_local_cpd"], out["gabor_orientation_local_deg"] = _local_wave(
+        col(fits, "gabor_orientation_deg"), col(fits, "gabor_sf_cpd"), c)
+    out["pref_sf_local_cpd"], out["pref_orientation_local_deg"] = _local_wave(
+        col(tuning, "pref_orientation_deg"), col(tuning, "pref_sf_cpd"), c)
+    for k in ("theta_local_deg", "gabor_orientation_local_deg", "pref_orientation_local_deg"):
+        src = {"theta_local_deg": th, "gabor_orientation_local_deg": col(fits, "gabor_orientation_deg"),
+               "pref_orientation_local_deg": col(tuning, "pref_orientation_deg")}[k]
+        out[k] = np.where(np.isfinite(src) & ok, out[k], np.nan)
+    return out

@@ -468,3 +468,30 @@ def test_forward_prediction_above_the_grid_nyquist_uses_the_model_spectrum():
     fits["gabor_sf_cpd"] = [np.nan]
     none, _ = forward_prediction(fits, [True], np.full((1,) + g.shape, np.nan), g, ori, sf, (0.0, 0.0))
     assert np.isnan(none).all()
+
+
+def test_local_visual_angle_columns_scale_azimuth_by_cos_elevation():
+    """Issue 14, item 7. At elevation 60 deg a step of azimuth spans cos 60 = 1/2 as much visual angle
+    (spherical azimuth-elevation grid; common practice in mouse work, Marshel et al. 2011, cited from
+    memory): a field of sd 4 deg of azimuth and 2 deg of elevation is round in local degrees (sd 2), a
+    grating of 0.05 cycles per azimuth degree has 0.1 cycles per local degree, and at the horizon
+    nothing changes. Oblique wave vectors turn toward the azimuth axis: (kx / cos e, ky)."""
+    from map2d.reconcile import local_angle_columns
+    fits = {"size_deg": [np.sqrt(8.0)] * 3, "sigma_major_deg": [4.0] * 3, "sigma_minor_deg": [2.0] * 3,
+            "theta_deg": [0.0] * 3, "gabor_sf_cpd": [0.05, 0.05, np.nan], "gabor_orientation_deg": [0.0, 45.0, 0.0]}
+    tuning = {"pref_sf_cpd": [0.05, 0.05, 0.05], "pref_orientation_deg": [90.0, 45.0, 0.0]}
+    c = local_angle_columns([60.0, 0.0, 89.0], fits, tuning)
+    assert c["sigma_major_local_deg"][0] == pytest.approx(2.0) and c["sigma_minor_local_deg"][0] == pytest.approx(2.0)
+    assert c["size_local_deg"][0] == pytest.approx(2.0)          # sqrt(8) * sqrt(1/2)
+    assert c["gabor_sf_local_cpd"][0] == pytest.approx(0.1)
+    assert c["pref_sf_local_cpd"][0] == pytest.approx(0.05) and c["pref_orientation_local_deg"][0] == pytest.approx(90.0)
+    # horizon: unchanged
+    assert c["sigma_major_local_deg"][1] == pytest.approx(4.0) and c["theta_local_deg"][1] == pytest.approx(0.0)
+    assert c["gabor_sf_local_cpd"][1] == pytest.approx(0.05) and c["gabor_orientation_local_deg"][1] == pytest.approx(45.0)
+    # against a direct computation at e = 60 for the oblique grating: kx = ky = 0.05 / sqrt(2)
+    c60 = local_angle_columns([60.0], {}, {"pref_sf_cpd": [0.05], "pref_orientation_deg": [45.0]})
+    k = 0.05 / np.sqrt(2)
+    assert c60["pref_sf_local_cpd"][0] == pytest.approx(np.hypot(2 * k, k))
+    assert c60["pref_orientation_local_deg"][0] == pytest.approx(np.degrees(np.arctan(0.5)))
+    # too close to the pole, or a missing input: NaN
+    assert np.isnan(c["size_local_deg"][2]) and np.isnan(c["gabor_sf_local_cpd"][2])
