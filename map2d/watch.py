@@ -508,8 +508,8 @@ def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0
     write_live_page(page, page_data[0], refresh_s=refresh_s, version=version, final=True)
     if not quiet:
         print_fn(f"map2d watch: wrote the session ({MANIFEST}, {MEASURED_TIMES_FILE}, {RECORDED_SPIKES_FILE}) "
-                 f"and the offline maps into {out}; live and offline maps differ by at most {diff:.2g} "
-                 f"{result.unit} (largest map value {scale:.3g})")
+                 f"and the offline maps into {out} ({n_off} of {len(rows)} cells responsive offline); live "
+                 f"and offline maps differ by at most {diff:.2g} {result.unit} (largest map value {scale:.3g})")
         if aperture is not None:
             print_fn(f"map2d watch: gratings next: {aperture.command()}")
     return {"result": result, "follower": follower, "aperture": aperture, "page": page, "out": out,
