@@ -516,6 +516,7 @@ def check_times(times, file, field, expected=None) -> np.ndarray:
     if expected is not None and times.size != expected:
         raise BadInput(file, field, f"has {times.size} entries but {expected} were expected")
     _refuse_first(~np.isfinite(times), file, field, "is not finite")
+    check_range(times, "time_s", file, field)
     _refuse_first(np.diff(times) <= 0, file, field, "times are not strictly increasing", first_row=1)
     return times
 
@@ -1036,6 +1037,7 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
             raise BadInput(path, "time_s", f"must be numeric, got {t.dtype}")
         t = t.astype(np.float64, copy=False)
         _refuse_first(~np.isfinite(t), path, "time_s", "is not finite")
+        check_range(t, "time_s", path, "time_s")
         if c.dtype.kind == "f":
             _refuse_first(~np.isfinite(c) | (c != np.round(c)) | (np.abs(c) > 2.0**53), path, "cell",
                           "must hold integers")
@@ -1247,8 +1249,13 @@ def load_session(folder) -> Session:
             for key, limit in (("width_cm", "display_cm"), ("height_cm", "display_cm"),
                                ("distance_cm", "display_cm"), ("width_px", "display_px"),
                                ("height_px", "display_px")):
-                check_range(float(d[key]), limit, mpath, f"display.{key}")
-            check_range([float(eye[0]), float(eye[1])], "eye_cm", mpath, "display.eye_cm")
+                v = d[key]
+                if isinstance(v, bool) or not isinstance(v, (int, float)):     # not "52" nor true
+                    raise BadInput(mpath, f"display.{key}", f"must be a number, got {v!r}"[:120])
+                if key.endswith("_px") and v != int(v):
+                    raise BadInput(mpath, f"display.{key}", f"must be whole pixels, got {v!r}")
+                check_range(float(v), limit, mpath, f"display.{key}")
+            eye = _pair(eye, mpath, "display.eye_cm", "eye_cm")
             display = Display(width_cm=float(d["width_cm"]), height_cm=float(d["height_cm"]),
                               width_px=int(d["width_px"]), height_px=int(d["height_px"]),
                               distance_cm=float(d["distance_cm"]), eye_x_cm=float(eye[0]), eye_y_cm=float(eye[1]))

@@ -743,8 +743,8 @@ def load_source(source, config=None) -> Session:
     manifest = None
     if mpath.is_file():
         try:
-            manifest = json.loads(mpath.read_text(encoding="utf-8"))
-        except (json.JSONDecodeError, UnicodeDecodeError):
+            manifest = _read_json_object(mpath)   # bounded size, depth and numbers
+        except BadInput:
             manifest = None  # load_session reports it
     if not (isinstance(manifest, dict) and manifest.get("nwb") is not None):
         return load_session(source)

@@ -99,6 +99,21 @@ def _spike_cells(value):
     return edit
 
 
+def _spike_time(i, value):
+    def edit(folder):
+        with np.load(folder / "spikes.npz") as z:
+            t, c = z["time_s"].copy(), z["cell"]
+        t[i] = value
+        np.savez(folder / "spikes.npz", time_s=t, cell=c)
+    return edit
+
+
+def _scaled(name, factor):
+    def edit(folder):
+        np.save(folder / name, np.load(folder / name) * factor)
+    return edit
+
+
 # (case, edit of a valid session folder, words the one-line refusal must hold)
 CASES = [
     ("JSON 100000 levels deep", lambda f: _json_text(f, "[" * 100000 + "]" * 100000), ["session.json", "nests"]),
@@ -124,6 +139,9 @@ CASES = [
     ("onset 1e300", lambda f: _csv(f, "onset_s", "-1e300"), ["onset_s", "1e+10"]),
     ("presentation of a year", lambda f: _csv(f, "offset_s", "3.2e7"), ["offset_s", "86400 s"]),
     ("duplicate column", _dup_column, ["gratings.csv", "sf_cpd", "more than once"]),
+    ("spike time 1e300", _spike_time(-1, 1e300), ["spikes.npz", "field time_s", "1e+10 s"]),
+    ("frame times times 1e300", _scaled("sparse_noise_times.npy", 1e300), ["sparse_noise_times.npy", "field times",
+                                                                           "row 1", "1e+10 s"]),
     ("spacing 1e-300", lambda f: _set(f, "sparse_noise", "grid", "spacing_deg", value=[1e-300, 1e-300]),
      ["sparse_noise.grid.spacing_deg", "0.0001"]),
     ("spacing 1e300", lambda f: _set(f, "sparse_noise", "grid", "spacing_deg", value=[1e300, 1]),
@@ -137,6 +155,9 @@ CASES = [
     ("display 1e300 px", lambda f: _set(f, "display", value={"width_cm": 50, "height_cm": 30, "width_px": 1e300,
                                                               "height_px": 1080, "distance_cm": 30}),
      ["display.width_px", "1e+06"]),
+    ("display width as text", lambda f: _set(f, "display", value={"width_cm": "5_2", "height_cm": 30, "width_px": 1920,
+                                                                   "height_px": 1080, "distance_cm": 30}),
+     ["display.width_cm", "must be a number"]),
     ("ROI label negative", _rois(np.array([[0, -3], [1, 2]], np.int32)), ["rois.tif", "label -3", "(0, 1)"]),
     ("ROI label above 2^62", _rois(np.array([[0, 2 ** 62], [1, 2]], np.int64)), ["rois.tif", "label 4611686"]),
     ("ROI label_offset 2^70", _rois(np.array([[0, 1], [1, 2]], np.int32), offset=2 ** 70),
@@ -334,3 +355,19 @@ def test_two_frame_sparse_noise_is_refused_naming_max_lag(copy, tmp_path, capsys
     code = map2d.cli.main([command, str(copy), "--out", str(tmp_path / "o"), "--quiet"])
     err = [ln for ln in capsys.readouterr().err.splitlines() if "warning" not in ln]
     assert code == 2 and len(err) == 1 and "--max-lag" in err[0] and "2 sparse-noise frames" in err[0], err
+
+
+@pytest.mark.parametrize("text,words", [("[" * 100000 + "]" * 100000, "nests 100000 levels"),
+                                        ('{"x": ' + "9" * 5000 + "}", "5000 characters")])
+@pytest.mark.parametrize("command", ["maps", "analyze"])
+def test_hostile_json_through_the_command_line(copy, tmp_path, capsys, command, text, words):
+    (copy / "session.json").write_text(text)
+    code = map2d.cli.main([command, str(copy), "--out", str(tmp_path / "o"), "--quiet"])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1 and "session.json" in err and words in err, err
+
+
+def test_json_larger_than_the_bound_is_refused(copy, monkeypatch):
+    monkeypatch.setattr(contract, "MAX_JSON_BYTES", 64)
+    with pytest.raises(BadInput, match="bytes"):
+        load_session(copy)
