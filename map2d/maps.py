@@ -61,8 +61,10 @@ __all__ = ["MapResult", "compute_maps", "frame_responses", "map_lags", "dense_st
            "dense_estimate_note", "dense_columns", "map_centroid_deg", "KINDS", "MapChoice", "choose_maps",
            "region_threshold_z", "region_centre", "LINEAR_SHARE_THRESHOLD"]
 
-#: Map kinds, in the order used by every ``kind`` axis.
+#: Map kinds, in the order used by every ``kind`` axis of the stored maps (TIFF channels).
 KINDS = ("on", "off", "linear")
+#: Kinds of the sparse-noise max-statistic test: the three above and ON + OFF (either contrast excites).
+N_KINDS_SPARSE = 4
 
 _CHUNK_FRAMES = 8192
 _CHUNK_VALUES = 8192 * 300     # responses per block of the streamed products (frames x cells)
@@ -109,7 +111,7 @@ class MapResult:
     peak_lag_s : ndarray (C,)
         NaN when not responsive.
     polarity : ndarray str (C,)
-        'ON-centre', 'OFF-centre', 'mixed', or '' when not responsive (see :func:`compute_maps`).
+        'ON-centre', 'OFF-centre', 'mixed', 'ON-OFF', or '' when not responsive (see :func:`compute_maps`).
     onoff_overlap : ndarray (C,)
         Overlap (0-1) of the excitatory ON and OFF regions at the peak lag; NaN when not responsive
         or not estimable (dense noise).
@@ -124,8 +126,9 @@ class MapResult:
     n_shuffles : ndarray int (C,)
         Shuffles drawn for each cell (a few for every cell, more for cells whose p-value is near
         ``alpha``; see :func:`compute_maps`).
-    null_scale : ndarray (C, 3)
-        Ratio of the shuffle sd to the analytic sd per kind (about 1 for spikes).
+    null_scale : ndarray (C, K)
+        Ratio of the shuffle sd to the analytic sd per kind (about 1 for spikes); K = 4 kinds (ON, OFF,
+        linear, ON + OFF) for sparse noise, 3 for dense noise (only the linear one used).
     alpha : float
     method : str
         'sparse', 'sta' or 'whitened'.
@@ -145,6 +148,9 @@ class MapResult:
         where whitening starts to matter; 5 / sqrt(F) is 5 standard errors of a sample correlation of
         F frames, which white noise exceeds somewhere in about 2 % of 16 x 16 grids (32,640 pixel
         pairs x 5.7e-7, the normal tail beyond 5). NaN for sparse noise.
+    both, both_z : ndarray float32 (C, L, ny, nx) or None
+        The ON + OFF map (excitation by either contrast) and its z-scores, the fourth kind of the
+        max-statistic test for sparse noise; None for dense noise.
     """
 
     grid: Grid
@@ -178,18 +184,20 @@ class MapResult:
     ridge_penalty: np.ndarray = field(default_factory=lambda: np.zeros(0))
     pixel_correlation: float = float("nan")
     whiten_threshold: float = float("nan")
+    both: np.ndarray | None = None
+    both_z: np.ndarray | None = None
 
     @property
     def n_cells(self) -> int:
         return int(self.cell_ids.size)
 
     def maps(self, kind: str) -> np.ndarray:
-        """The map of one kind ('on', 'off', 'linear'), ``(C, L, ny, nx)``."""
-        return {"on": self.on, "off": self.off, "linear": self.linear}[kind]
+        """The map of one kind ('on', 'off', 'linear', 'on+off'), ``(C, L, ny, nx)``."""
+        return {"on": self.on, "off": self.off, "linear": self.linear, "on+off": self.both}[kind]
 
     def zmaps(self, kind: str) -> np.ndarray:
         """The z-map of one kind, ``(C, L, ny, nx)``."""
-        return {"on": self.on_z, "off": self.off_z, "linear": self.linear_z}[kind]
+        return {"on": self.on_z, "off": self.off_z, "linear": self.linear_z, "on+off": self.both_z}[kind]
 
     def peak_kind_index(self) -> np.ndarray:
         """For each cell, the kind index (0 on, 1 off, 2 linear) of the largest ``|z|`` at the peak lag
@@ -522,12 +530,14 @@ def _center(R: np.ndarray):
     return X, valid, mean, sd, n_valid
 
 
-def _analytic_sd(sd, n_frames, n_on, n_off):
+def _analytic_sd(sd, n_frames, n_on, n_off, both=False):
     """Null sd of the mean-map value for random disjoint event sets (sampling without replacement).
 
-    ``sd`` (C,), ``n_frames`` (C,), ``n_on``/``n_off`` (C, P) or (P,). Returns (3, C, P) for on/off/linear.
+    ``sd`` (C,), ``n_frames`` (C,), ``n_on``/``n_off`` (C, P) or (P,). Returns (3, C, P) for on/off/linear
+    (with ``both``, (4, C, P): on/off/linear/on+off).
     For ``n`` of ``F`` values of population variance ``s^2``: ``var(mean) = s^2 (F/n - 1)/(F - 1)``, and
-    two disjoint samples have ``cov = -s^2/(F - 1)``, so ``var(mean_a - mean_b) = s^2 F/(F - 1) (1/n_a + 1/n_b)``.
+    two disjoint samples have ``cov = -s^2/(F - 1)``, so ``var(mean_a - mean_b) = s^2 F/(F - 1) (1/n_a + 1/n_b)``
+    and ``var(mean_a + mean_b) = s^2 / (F - 1) (F/n_a + F/n_b - 4)``.
     """
     s2 = (sd.astype(np.float64) ** 2)[:, None]
     F = n_frames.astype(np.float64)[:, None]
@@ -537,19 +547,23 @@ def _analytic_sd(sd, n_frames, n_on, n_off):
         v_on = s2 * (F / n_on - 1) / (F - 1)
         v_off = s2 * (F / n_off - 1) / (F - 1)
         v_lin = s2 * F / (F - 1) * (1 / n_on + 1 / n_off)
-        out = np.sqrt(np.stack([v_on, v_off, v_lin]))
+        parts = [v_on, v_off, v_lin]
+        if both:
+            parts.append(s2 / (F - 1) * (F / n_on + F / n_off - 4))
+        out = np.sqrt(np.stack(parts))
     out[~np.isfinite(out) | (out <= 0)] = np.nan
     return out
 
 
-def _sparse_maps_one(sums, n_on, n_off, P):
-    """(2P, C) sums + counts (C, P) -> (3, C, P) mean maps (NaN where a pixel was never shown)."""
+def _sparse_maps_one(sums, n_on, n_off, P, both=False):
+    """(2P, C) sums + counts (C, P) -> (3, C, P) mean maps (NaN where a pixel was never shown); with
+    ``both``, (4, C, P): on, off, linear, on + off."""
     with np.errstate(divide="ignore", invalid="ignore"):
         on = sums[:P].T / n_on
         off = sums[P:].T / n_off
     on = np.where(n_on > 0, on, np.nan)
     off = np.where(n_off > 0, off, np.nan)
-    return np.stack([on, off, on - off])
+    return np.stack([on, off, on - off, on + off] if both else [on, off, on - off])
 
 
 def _gumbel_fit(x, w):
@@ -670,7 +684,12 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     z-scores of unresponsive cells have sd 1 +- 0.05 for spikes and for calcium-like traces.
 
     **responsive.** The max-statistic ``T = max |z|`` over pixels x lags x kinds (Nichols & Holmes
-    2002) controls the family-wise error over everything tested for the cell. Its null distribution
+    2002) controls the family-wise error over everything tested for the cell. For sparse noise the
+    kinds are ON, OFF, linear and ON + OFF: the last is excitation by either contrast at the same place
+    (an ON-OFF or complex cell), whose ON and OFF maps may each stay below the critical value while
+    their sum does not (null variance of the sum of two disjoint means: ``s^2 / (F - 1) (F/n_on +
+    F/n_off - 4)``, calibrated by the same shuffles). It is tested, not stored in the TIFF stacks
+    (``MapResult.both``, ``both_z``). Its null distribution
     comes from the same circular shifts, but not from hundreds of shuffles per cell (each costs as
     much as the maps themselves): every shuffle is cut into ``N`` blocks of pixels, each block holding
     all lags and kinds of its pixels (about 288 values, more pixels when the responses are
@@ -687,12 +706,13 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     lies within ``[alpha/10, 3 alpha]`` draws more (256 block maxima) and is fitted again, so calls
     near the threshold rest on a tight fit. ``p`` is not limited to ``1/(1 + n_shuffles)``.
 
-    **Peak lag** = the lag with the largest ``|z|`` over pixels and kinds. **Polarity** (responsive
-    cells): with ``e_on``/``e_off`` the largest positive z of the ON/OFF map at the peak lag (the
-    strongest excitation by a bright/dark spot), the cell is 'mixed' when both reach ``z_critical``
-    and the weaker is at least half the stronger; otherwise the sign of the linear map at its
-    largest ``|z|`` pixel: positive 'ON-centre', negative 'OFF-centre'. A simple cell with separate
-    ON and OFF subregions, or an ON-OFF cell, is therefore 'mixed'; the overlap tells them apart.
+    **Peak lag** = the lag with the largest ``|z|`` over pixels and the ON, OFF and linear kinds.
+    **Polarity** (responsive cells): 'ON-OFF' when the ON + OFF map carries the cell
+    (:func:`choose_maps`: bright and dark spots excite the same places) and is positive there;
+    otherwise, with ``e_on``/``e_off`` the largest positive z of the ON/OFF map at the peak lag (the
+    strongest excitation by a bright/dark spot), 'mixed' when both reach ``z_critical`` and the weaker
+    is at least half the stronger (a simple cell with separate ON and OFF subregions), else the sign of
+    the linear map at its largest ``|z|`` pixel: positive 'ON-centre', negative 'OFF-centre'.
     **ON/OFF overlap** = cosine similarity of the soft-thresholded excitatory z-maps
     ``max(z_on - 2, 0)`` and ``max(z_off - 2, 0)`` at the peak lag (1 = same pixels, 0 = disjoint or
     one polarity absent; NaN when neither has an excitatory region). **SNR** = the largest
@@ -813,10 +833,10 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
     frac = n_valid / F
     n_on_null = cnt_all[None, :P] * frac[:, None]
     n_off_null = cnt_all[None, P:] * frac[:, None]
-    asd_null = _analytic_sd(sd, n_valid, n_on_null, n_off_null)    # (3, C, P)
+    asd_null = _analytic_sd(sd, n_valid, n_on_null, n_off_null, both=True)    # (4, C, P)
 
     def null_stats(active, offs):
-        """Yield the (3, Ca, L, P) analytic-z maps of each shuffle offset, for the active cells
+        """Yield the (4, Ca, L, P) analytic-z maps of each shuffle offset, for the active cells
         (responses circularly shifted by the offset, block by block of frames)."""
         Ca = active.size
         pa = prov.subset(active)
@@ -827,8 +847,9 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
             f_on = (1.0 / (n_on_null[active] * asd_null[0, active])).astype(np.float32)
             f_off = (1.0 / (n_off_null[active] * asd_null[1, active])).astype(np.float32)
             f_lin = (1.0 / asd_null[2, active]).astype(np.float32)
+            f_both = (1.0 / asd_null[3, active]).astype(np.float32)
         for o in offs:
-            out = np.empty((3, Ca, L, P), dtype=np.float32)
+            out = np.empty((N_KINDS_SPARSE, Ca, L, P), dtype=np.float32)
             Yall = _correlate(ch, pa, int(o), lags, circular=True)           # (L, 2P, Ca)
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
                 for li in range(L):
@@ -836,6 +857,7 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
                     out[0, :, li] = on * f_on
                     out[1, :, li] = off * f_off
                     out[2, :, li] = (on * inv_on - off * inv_off) * f_lin
+                    out[3, :, li] = (on * inv_on + off * inv_off) * f_both
             yield out
 
     # the first shuffles of every cell run in a child process (second core) while this one
@@ -843,15 +865,15 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
     offsets = _shift_offsets(F, K, L, min_shift, rng)
     ok = _ok_cells(sd, n_valid, lags)
     cells = np.flatnonzero(ok)
-    plan = _null_plan(P, L, K, 3, _effective_lags(prov.rows(0, min(F, 5000), False), sd, L, ok))
+    plan = _null_plan(P, L, K, N_KINDS_SPARSE, _effective_lags(prov.rows(0, min(F, 5000), False), sd, L, ok))
     n_sub, starts, n_a, _ = plan
     if n_jobs is None:
         n_jobs = 2 if F * C * L >= _FORK_MIN_WORK and (os.cpu_count() or 1) > 1 else 1
-    child = ForkedCall(lambda: _first_stage(null_stats, cells, offsets[:n_a], C, L, starts),
+    child = ForkedCall(lambda: _first_stage(null_stats, cells, offsets[:n_a], C, L, starts, N_KINDS_SPARSE),
                        enabled=n_jobs > 1)
 
-    maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
-    asd = np.full((3, C, L, P), np.nan, dtype=np.float32)
+    maps = np.full((N_KINDS_SPARSE, C, L, P), np.nan, dtype=np.float32)
+    asd = np.full((N_KINDS_SPARSE, C, L, P), np.nan, dtype=np.float32)
     Yobs = _correlate(chunks, prov, 0, lags, circular=False)            # (L, 2P, C)
     for li, lag in enumerate(lags):
         sums = Yobs[li]
@@ -862,13 +884,13 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
             cnt = cor.counts(int(lag))
             n_on = np.broadcast_to(cnt[:P], (C, P))
             n_off = np.broadcast_to(cnt[P:], (C, P))
-        maps[:, :, li] = _sparse_maps_one(sums, n_on, n_off, P)
-        asd[:, :, li] = _analytic_sd(sd, n_valid, n_on, n_off)
-    z_an = np.divide(maps, asd, out=asd)                            # (3, C, L, P), in place
+        maps[:, :, li] = _sparse_maps_one(sums, n_on, n_off, P, both=True)
+        asd[:, :, li] = _analytic_sd(sd, n_valid, n_on, n_off, both=True)
+    z_an = np.divide(maps, asd, out=asd)                            # (4, C, L, P), in place
 
     del Yobs
     return _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, noise.grid, lags, frame_s,
-                   unit, alpha, kinds_used=(0, 1, 2), stimulus="sparse", method="sparse",
+                   unit, alpha, kinds_used=(0, 1, 2, 3), stimulus="sparse", method="sparse",
                    ridge=np.full(C, np.nan), first=child.result(), plan=plan)
 
 
@@ -925,12 +947,12 @@ def _block_max(zn, starts):
     return np.maximum.reduceat(a, starts, axis=3).max(axis=2)
 
 
-def _first_stage(null_stats, cells, offs, C, L, starts):
+def _first_stage(null_stats, cells, offs, C, L, starts, n_kinds=3):
     """The first shuffles for every cell: sums of squared z and counts per kind (for the scale), and
     the block maxima of ``|z|`` per shuffle, kind, cell, lag and block (-inf where none)."""
-    sumsq = np.zeros((3, C))
-    nsq = np.zeros((3, C))
-    kmax = np.full((len(offs), 3, C, starts.size), -np.inf, dtype=np.float32)
+    sumsq = np.zeros((n_kinds, C))
+    nsq = np.zeros((n_kinds, C))
+    kmax = np.full((len(offs), n_kinds, C, starts.size), -np.inf, dtype=np.float32)
     if cells.size:
         for k, zn in enumerate(null_stats(cells, offs)):
             fin = np.isfinite(zn)
@@ -955,7 +977,7 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
     cells = np.flatnonzero(ok_cell)
     n_sub, starts, n_a, n_b = plan
     if first is None:
-        first = _first_stage(null_stats, cells, offsets[:n_a], C, L, starts)
+        first = _first_stage(null_stats, cells, offsets[:n_a], C, L, starts, maps.shape[0])
     sumsq, nsq, kmax_a = first
 
     def block_max(zn):
@@ -975,7 +997,7 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
         return np.moveaxis(m, 1, 0).reshape(idx.size, -1).astype(np.float64)
 
     # largest |z| over used kinds and pixels per cell and lag (NaN pixels ignored; -inf: none)
-    zk = z[ku] if len(ku) < 3 else z
+    zk = z[ku] if len(ku) < z.shape[0] else z
     per_lag = np.fmax(np.fmax.reduce(np.fmax.reduce(zk, axis=3), axis=0),          # max |z| per (C, L)
                       -np.fmin.reduce(np.fmin.reduce(zk, axis=3), axis=0))
     per_lag[np.isnan(per_lag)] = -np.inf
@@ -999,8 +1021,16 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
     p = np.where(ok_cell & np.isfinite(T), p, np.nan)
     responsive = np.isfinite(p) & (p <= alpha)
 
-    # peak lag, polarity, overlap, snr
-    best_lag = np.argmax(per_lag, axis=1)
+    # peak lag (over the ON, OFF and linear maps: the ON + OFF kind takes part in the test only),
+    # polarity, overlap, snr
+    if z.shape[0] > len(KINDS):
+        z3 = z[[k for k in ku if k < len(KINDS)]]
+        per_lag3 = np.fmax(np.fmax.reduce(np.fmax.reduce(z3, axis=3), axis=0),
+                           -np.fmin.reduce(np.fmin.reduce(z3, axis=3), axis=0))
+        per_lag3[np.isnan(per_lag3)] = -np.inf
+        best_lag = np.argmax(per_lag3, axis=1)
+    else:
+        best_lag = np.argmax(per_lag, axis=1)
     peak_idx = np.where(responsive, best_lag, -1)
     peak_s = np.where(responsive, lags[best_lag] * frame_s, np.nan)
     polarity = np.full(C, "", dtype=object)
@@ -1034,7 +1064,8 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
             overlap[c] = 0.0
 
     shape = (C, L, ny, nx)
-    return MapResult(
+    four = maps.shape[0] == N_KINDS_SPARSE
+    res = MapResult(
         grid=grid, lags_s=np.round(lags * frame_s, 9),  # to the ns: no float noise in files
         lag_frames=lags, cell_ids=cell_ids, unit=unit, stimulus=stimulus,
         on=maps[0].reshape(shape), off=maps[1].reshape(shape), linear=maps[2].reshape(shape),
@@ -1042,7 +1073,23 @@ def _finish(maps, z_an, null_stats, offsets, sd, n_valid, cell_ids, grid, lags, 
         responsive=responsive, p_value=p, max_abs_z=T, z_critical=zcrit, peak_lag_index=peak_idx,
         peak_lag_s=peak_s, polarity=np.asarray(polarity, dtype=str), onoff_overlap=overlap, snr=snr,
         n_frames_used=n_valid.astype(int), frame_s=float(frame_s), n_shuffles=drawn,
-        null_scale=g.T.copy(), alpha=float(alpha), method=method, ridge_lambda=ridge)
+        null_scale=g.T.copy(), alpha=float(alpha), method=method, ridge_lambda=ridge,
+        both=maps[3].reshape(shape) if four else None, both_z=z[3].reshape(shape) if four else None)
+    if stimulus == "sparse" and responsive.any():
+        res.polarity = _either_polarity(res)
+    return res
+
+
+def _either_polarity(result: MapResult) -> np.ndarray:
+    """``result.polarity`` with 'ON-OFF' for every cell that the ON + OFF map carries
+    (:func:`choose_maps`) and that both contrasts excite (positive ON + OFF map at its largest ``|z|``)."""
+    pol = np.asarray(result.polarity, dtype=object).copy()
+    ch = choose_maps(result)
+    for c in np.flatnonzero(ch.kind == "on+off"):
+        z = np.nan_to_num(ch.z[c])
+        if z.max() > 0 and z.max() >= -z.min():
+            pol[c] = "ON-OFF"
+    return np.asarray(pol, dtype=str)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1569,8 +1616,11 @@ class MapChoice:
 
 
 def _both_maps(result: MapResult, c: int):
-    """ON + OFF map of cell ``c`` over lags ``(L, P)``, and its z-map (null sd from the kinds' sds)."""
+    """ON + OFF map of cell ``c`` over lags ``(L, P)``, and its z-map (the engine's, or with the null sd
+    from the ON and OFF sds when the result holds no ON + OFF map)."""
     L = result.lag_frames.size
+    if result.both is not None and result.both_z is not None:
+        return (result.both[c].reshape(L, -1).astype(float), result.both_z[c].reshape(L, -1).astype(float))
     on, off = result.on[c].reshape(L, -1).astype(float), result.off[c].reshape(L, -1).astype(float)
     with np.errstate(invalid="ignore", divide="ignore"):
         sd_on = np.abs(on / result.on_z[c].reshape(L, -1))

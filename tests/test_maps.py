@@ -154,8 +154,25 @@ def test_mixed_polarity_for_on_off_cell(noise):
     rates = (5 + 40 * lagged)[None]
     res = compute_maps(_spikes_from_rates(noise, rates, 6), noise, max_lag_s=0.15, n_shuffles=100, rng=2)
     assert res.responsive[0]
-    assert res.polarity[0] == "mixed"
+    assert res.polarity[0] == "ON-OFF"                     # the ON + OFF map carries it (issue 13)
     assert res.onoff_overlap[0] > 0.7                      # same pixels excite for bright and dark
+
+
+def test_on_off_cell_found_by_the_either_polarity_map(noise):
+    # an ON-OFF cell too weak for the ON or the OFF map alone: neither reaches the max-statistic's
+    # critical value, the ON + OFF map (excitation by either contrast, the fourth kind) does
+    x0, y0 = GRID.point_of(4, 5)
+    k = _kernel(GRID, x0, y0, 2.0, +1).ravel()
+    S = noise.frames.reshape(noise.n_frames, -1).astype(float)
+    lagged = np.r_[np.zeros(2), np.abs(S @ k)[:-2]]
+    res = compute_maps(_spikes_from_rates(noise, (5 + 8 * lagged)[None], 6), noise, max_lag_s=0.15,
+                       n_shuffles=100, rng=2)
+    assert res.responsive[0] and res.polarity[0] == "ON-OFF"
+    assert max(np.nanmax(res.on_z[0]), np.nanmax(res.off_z[0])) < res.z_critical[0]    # measured 4.58 < 4.82
+    assert np.nanmax(res.both_z[0]) >= res.z_critical[0]                              # measured 6.42
+    li = res.peak_lag_index[0]
+    i, j = np.unravel_index(np.nanargmax(res.both_z[0, li]), GRID.shape)
+    assert abs(i - 4) <= 1 and abs(j - 5) <= 1
 
 
 def test_traces_position_and_polarity(noise):
@@ -177,7 +194,7 @@ def test_traces_position_and_polarity(noise):
 # null statistics (Chichilnisky 2001, Network 12:199; max-statistic: Nichols & Holmes 2002)
 # ----------------------------------------------------------------------------------------------
 def _null_check(res, alpha):
-    z = np.concatenate([res.on_z.ravel(), res.off_z.ravel(), res.linear_z.ravel()])
+    z = np.concatenate([res.on_z.ravel(), res.off_z.ravel(), res.linear_z.ravel(), res.both_z.ravel()])
     z = z[np.isfinite(z)]
     assert abs(z.std() - 1) < 0.05                         # issue 3: null z sd 1 +- 0.05
     assert abs(z.mean()) < 0.05

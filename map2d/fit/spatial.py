@@ -1058,8 +1058,9 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
 MAX_ASPECT = 5.0
 #: Smallest fitted width (sd, or a DoG centre's ``rc / sqrt(2)``), as a share of the pixel.
 MIN_WIDTH_PIXELS = 1.0 / 3.0
-#: How far (in pixels) beyond the grid's outer pixel edges a fitted centre may lie.
-CENTRE_MARGIN_PIXELS = 1.0
+#: How far (in pixels) beyond the grid's outer pixel edges a fitted centre may lie (one pixel let a
+#: difference of two near-equal Gaussians fitted to a field cut by the edge place it 4 deg off).
+CENTRE_MARGIN_PIXELS = 0.5
 #: Smallest ``sf x sigma_u`` of an accepted Gabor: below it the carrier does not change sign within the
 #: envelope's sd (``2 pi sf sigma_u < 0.63``), the fit is a blob with a phase ramp and its envelope centre
 #: is not the field's (measured on thresholded fields; fitted 0.005-0.015 cpd with 1-2 deg widths).

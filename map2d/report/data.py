@@ -259,8 +259,12 @@ def _tuning(an, r, flashed_se=None):
 def _map_part(an, r, pack_maps):
     m = an.maps
     li, significant = F._map_lag_index(m, r)
-    z = np.abs(np.nan_to_num(np.asarray(m.linear_z[r, li], float)))
-    i, j = np.unravel_index(int(np.argmax(z)), z.shape)
+    fp = getattr(an, "fields", None)
+    if fp is not None and fp.field_pixel[r, 0] >= 0:     # the cell's own field (map2d.fit.spatial)
+        i, j = (int(v) for v in fp.field_pixel[r])
+    else:
+        z = np.abs(np.nan_to_num(np.asarray(m.linear_z[r, li], float)))
+        i, j = np.unravel_index(int(np.argmax(z)), z.shape)
     x, y = m.grid.point_of(i, j)
     tc = np.stack([np.asarray(a[r, :, i, j], float) for a in (m.on, m.off, m.linear)])
     out = {"li": li, "sig": bool(significant), "maps": pack_maps(r, li), "tc": [_list(t) for t in tc],
