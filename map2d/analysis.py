@@ -421,7 +421,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     f1f0 = np.asarray([np.nan if v is None else v for v in cells["f1_f0"]], float)
     if tuning is not None:   # F1/F0 counts only where its interval excludes 1 (a grating_class)
         f1f0 = np.where(np.asarray(tuning["grating_class"], object) != "", f1f0, np.nan)
-    overlap = None if an.maps is None else np.asarray(an.maps.onoff_overlap, float)
+    overlap = None if an.maps is None else np.asarray(an.fields.onoff_overlap, float)
     # no sparse noise: no map, so the call is empty with the reason "no map"
     responsive = np.full(C, None, object) if an.maps is None else np.asarray(an.maps.responsive, bool)
     # criteria that are missing (no map, no flashed gratings) are skipped or leave the call empty
@@ -437,7 +437,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["p_value"] = list(m.p_value)
         cells["polarity"] = list(m.polarity)
         cells["fitted_map"] = list(an.map_kind)
-        cells["onoff_overlap"] = list(m.onoff_overlap)
+        cells["onoff_overlap"] = list(an.fields.onoff_overlap)
         cells["linear_share"] = list(an.fields.choice.linear_share)
         cells["snr"] = list(m.snr)
         if an.trace_decay is not None:

@@ -94,13 +94,16 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("linear_reason", "text", "Which criteria decided `linear`, or why it is empty (no map, not "
                "responsive, no flashed gratings, no prediction, no grating response)."),
         Column("p_value", "1", "P-value of the sparse-noise `responsive` test.", "Nichols & Holmes 2002"),
-        Column("polarity", "text", "`ON-centre`, `OFF-centre` or `mixed` (ON and OFF both significant, the weaker "
-               "at least half the stronger); empty when not responsive."),
+        Column("polarity", "text", "`ON-OFF` (the ON + OFF map carries the cell and both contrasts excite it), "
+               "`ON-centre`, `OFF-centre` or `mixed` (ON and OFF both significant, the weaker at least half the "
+               "stronger); empty when not responsive."),
         Column("fitted_map", "text", "Which map carries the cell and was fitted: `linear` (ON - OFF) or `on+off` "
                "(bright and dark spots excite the same places: `linear_share` < 0.25 and a significant ON + OFF "
                "map)."),
-        Column("onoff_overlap", "1", "Cosine similarity of the excitatory parts of the ON and OFF z-maps at the "
-               "peak lag (0 segregated, 1 coextensive).", "ours; after Hubel & Wiesel 1962"),
+        Column("onoff_overlap", "1", "Overlap (normalised inner product) of 2-D Gaussians fitted to the strongest "
+               "excitatory lobe of the ON and of the OFF map at the peak lag (0 segregated, 1 coextensive; 0 when "
+               "only one contrast excites, empty when a subfield fit is not sane).",
+               "ours; after Schiller et al. 1976; Mata & Ringach 2005"),
         Column("linear_share", "1", "Share (0-1) of the signal power, noise power subtracted, that the linear map "
                "holds against the ON + OFF map over every pixel and lag where a map passes a Bonferroni-corrected "
                "threshold: near 0 when bright and dark spots excite the same places (complex, ON-OFF), 0.5 for a "

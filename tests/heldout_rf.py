@@ -274,5 +274,6 @@ def score(cells, truth, spacing_deg, peak_z):
                         polarity=str(cells.get("polarity", [""] * len(truth["cells"]))[i]),
                         center_method=str(cells.get("center_method", [""] * len(truth["cells"]))[i]),
                         model=str(cells.get("model", [""] * len(truth["cells"]))[i]),
+                        overlap=float(cells["onoff_overlap"][i]) if "onoff_overlap" in cells else np.nan,
                         size_err=size / true_size - 1 if resp and np.isfinite(size) else np.nan))
     return out

@@ -384,3 +384,44 @@ def test_remove_pixel_box_leaves_unresolvable_widths_empty():
     assert np.isfinite(f0.params["rs_deg"])
     # the interval keeps what the data allow: any width from 0 up to sqrt(0.9^2 - 8/12)
     assert f0.ci["rc_deg"] == pytest.approx((0.0, np.sqrt(0.81 - 8 / 12)))
+
+
+# ----------------------------------------------------------------------------------------------
+# ON/OFF overlap from fitted subfields (issue 13)
+# ----------------------------------------------------------------------------------------------
+def _blob(grid, x0, y0, sd):
+    X, Y = grid.mesh_deg()
+    return np.exp(-((X - x0) ** 2 + (Y - y0) ** 2) / (2 * sd ** 2))
+
+
+def test_subfield_overlap_does_not_grow_with_signal_to_noise():
+    # ON and OFF maps excited at the same place (a complex cell), unit noise, peak z 5 and 20: a cosine
+    # of thresholded z-maps reads very different values (the issue measured 0.58 and 0.98); the overlap
+    # of the fitted envelopes does not
+    from map2d.fit.spatial import subfield_overlap
+    g = Grid(ny=16, nx=20, center_x_deg=0.0, center_y_deg=0.0, dx_deg=2.0, dy_deg=2.0)
+    rng = np.random.default_rng(3)
+    k = _blob(g, 1.0, -2.0, 3.0)
+    got = {}
+    for peak in (5.0, 20.0):
+        vals = []
+        for _ in range(5):
+            on = peak * k + rng.standard_normal(k.shape)
+            off = peak * k + rng.standard_normal(k.shape)
+            vals.append(subfield_overlap(on, off, on, off, g, 3.9))
+        got[peak] = np.median(vals)
+    assert got[5.0] > 0.85 and got[20.0] > 0.95 and abs(got[20.0] - got[5.0]) < 0.12, got
+
+
+def test_subfield_overlap_of_segregated_subfields_is_small():
+    from map2d.fit.spatial import envelope_overlap, subfield_overlap
+    g = Grid(ny=16, nx=20, center_x_deg=0.0, center_y_deg=0.0, dx_deg=2.0, dy_deg=2.0)
+    rng = np.random.default_rng(4)
+    on = 12 * _blob(g, -4.0, 0.0, 2.0) + rng.standard_normal(g.shape)
+    off = 12 * _blob(g, 4.0, 0.0, 2.0) + rng.standard_normal(g.shape)
+    v = subfield_overlap(on, off, on, off, g, 3.9)
+    # two unit-variance-per-axis envelopes 8 deg apart with sd 2: exp(-64 / (4 * 4)) = 0.018 (closed form)
+    assert v < 0.05
+    assert envelope_overlap((-4, 0), 4 * np.eye(2), (4, 0), 4 * np.eye(2)) == pytest.approx(np.exp(-4), rel=1e-9)
+    # one polarity without any significant pixel: no overlap
+    assert subfield_overlap(on, rng.standard_normal(g.shape), on, rng.standard_normal(g.shape) * 0.5, g, 3.9) == 0.0
