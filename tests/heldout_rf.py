@@ -254,7 +254,8 @@ def score(cells, truth, spacing_deg, peak_z):
     ``spacing_deg``: ``(dx, dy)``; ``peak_z``: (cells,) largest ``|z|`` of any map of the cell.
     Returns a list of dicts: ``id, kind, cls, weak, responsive, err_deg, err_px`` (error over the larger
     pixel side), ``peak_z``, ``fitted_map``, ``polarity``, ``center_method``, ``size_err`` (fitted size
-    over the true envelope sd, minus 1; NaN without a fitted size).
+    over the true envelope sd, minus 1: Gabor, DoG centre and ON-OFF blob sd, an energy cell's squared
+    envelope; NaN without a fitted size).
     """
     out = []
     pixel = max(spacing_deg)
@@ -264,7 +265,8 @@ def score(cells, truth, spacing_deg, peak_z):
         cx, cy = float(cells["center_x_deg"][i]), float(cells["center_y_deg"][i])
         err = float(np.hypot(cx - c["cx"], cy - c["cy"])) if cls != "none" and resp else np.nan
         true_size = {"gabor": np.sqrt(c.get("sa", np.nan) * c.get("sb", np.nan)),
-                     "energy": np.sqrt(c.get("sa", np.nan) * c.get("sb", np.nan)),
+                     # energy: the map is the squared envelope, whose sd is the envelope's / sqrt 2
+                     "energy": np.sqrt(c.get("sa", np.nan) * c.get("sb", np.nan) / 2),
                      "dog_on": c.get("sc", np.nan), "dog_off": c.get("sc", np.nan),
                      "onoff": c.get("sc", np.nan), "none": np.nan}[c["kind"]]
         size = float(cells["size_deg"][i]) if "size_deg" in cells else np.nan
