@@ -1,7 +1,7 @@
 """The session folder: load, validate and write (the only module that knows the file names).
 
-See ``shared/contract.md`` for the contract and the README for the optional keys map2d adds
-(``display``, ``rois``).
+``docs/session-format.md`` describes the format (every key and file, units and conventions); keep it
+true when this module changes (``tests/test_session_format.py`` runs its example).
 """
 
 from __future__ import annotations

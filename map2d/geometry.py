@@ -4,7 +4,7 @@ Every other module takes grid positions, wave vectors and grating images from he
 contract's conventions (row 0 at the top, orientation = wave-vector angle counter-clockwise from +x,
 phase origin, stimulus formula) are written exactly once.
 
-Conventions (``shared/contract.md``)
+Conventions (``docs/session-format.md``)
 ------------------------------------
 - ``x`` = azimuth in degrees (positive right), ``y`` = elevation in degrees (positive up).
 - A grid of ``ny`` rows and ``nx`` columns; row 0 is the TOP. Pixel ``(i, j)`` has its centre at
