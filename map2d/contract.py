@@ -1309,9 +1309,75 @@ def _session_name(manifest: dict, folder: Path, mpath) -> str:
     return os.fsencode(Path(os.path.abspath(folder)).name).decode("utf-8", "replace")[:MAX_NAME_CHARS]
 
 
+#: The units guard (:func:`check_overlap`): responses are refused when fewer than this share of them
+#: fall within the stimulus span while their own span is more than ``_SPAN_RATIO`` times longer (and
+#: spikes fire below ``_LOW_RATE_HZ`` per cell there, or traces are sampled slower than ``_SLOW_DT_S``),
+#: or when they cover less than ``_MIN_COVER`` of the stimulus span. Ours: a recording in milliseconds
+#: gives 0.1 % inside, a ratio of 1000 and rates 1000 times too low; one long recording with a short
+#: mapping block (hours around 10 minutes) stays well above these.
+_MIN_INSIDE, _SPAN_RATIO, _LOW_RATE_HZ, _SLOW_DT_S, _MIN_COVER = 0.01, 100.0, 0.1, 1.0, 0.1
+
+
+def _scale_word(ratio: float, whose: str) -> str | None:
+    """'<whose> times in milliseconds' when ``ratio`` (response span / stimulus span) is near a power of
+    1000, else None."""
+    for factor, unit in ((1e3, "milliseconds"), (1e6, "microseconds"), (1e9, "nanoseconds")):
+        if factor / 5 <= ratio <= factor * 5:
+            return f"{whose} times in {unit}? (map2d needs seconds)"
+        if factor / 5 <= 1 / ratio <= factor * 5:
+            return f"stimulus times in {unit}? (map2d needs seconds on the recording's clock)"
+    return None
+
+
+def _clock_cause(t0, t1, lo, hi, whose) -> str:
+    """The likely cause of responses and stimuli that do not line up: units, else a clock offset."""
+    span_r, span_s = max(t1 - t0, 1e-12), max(hi - lo, 1e-12)
+    units = _scale_word(span_r / span_s, whose)
+    if units:
+        return units
+    off = lo - t0
+    hours = f" ({off / 3600:.3g} h)" if abs(off) >= 3600 else ""
+    return (f"the stimulus times and the recording seem to use different clocks, offset by about {off:.6g} s"
+            f"{hours}: convert the stimulus times to the recording's clock (map2d assemble does this with "
+            f"measured frame times)")
+
+
+def _timing_problem(r, lo, hi) -> str | None:
+    """Why responses cannot be analysed against stimuli spanning ``lo``-``hi`` s, or None."""
+    spikes = isinstance(r, Spikes)
+    t = r.time_s if spikes else r.times_s
+    if t.size < 2:
+        return None
+    t0, t1 = float(np.min(t)), float(np.max(t))
+    whose = "spike" if spikes else "sample"
+    span_s = hi - lo
+    if not span_s > 0:
+        return None
+    inside = float(np.count_nonzero((t >= lo) & (t <= hi))) / t.size
+    ratio = (t1 - t0) / span_s
+    if spikes:
+        n_cells = max(int(np.size(r.cell_ids)), 1)
+        implausible = inside * t.size / (n_cells * span_s) < _LOW_RATE_HZ
+        what = f"{inside * t.size / (n_cells * span_s):.3g} spikes/s per cell"
+    else:
+        dt = float(np.median(np.diff(t)))
+        implausible = dt > _SLOW_DT_S
+        what = f"one sample every {dt:.3g} s"
+    if inside < _MIN_INSIDE and ratio > _SPAN_RATIO and implausible:
+        cause = _scale_word(ratio, whose) or f"{whose} times in another unit than seconds?"
+        return (f"the {whose} times ({t0:.6g} to {t1:.6g}) span {ratio:.3g} times the stimulus span ({lo:.6g} to "
+                f"{hi:.6g} s), only {100 * inside:.2g} % of them fall within it, at {what}: {cause}")
+    cover = max(0.0, min(t1, hi) - max(t0, lo)) / span_s
+    if cover < _MIN_COVER and (not spikes or t.size >= 20):
+        return (f"the {whose} times ({t0:.6g} to {t1:.6g} s) cover only {100 * cover:.2g} % of the stimulus span "
+                f"({lo:.6g} to {hi:.6g} s): {_clock_cause(t0, t1, lo, hi, whose)}")
+    return None
+
+
 def check_overlap(session: Session, at, notes: list, where: str) -> None:
-    """Refuse responses that share no time with the stimuli (wrong units or another clock: every
-    analysis would silently come out empty); note spikes that fall outside every stimulus window.
+    """Refuse responses that share no time with the stimuli, or only a sliver of it (the units guard:
+    times in milliseconds, or stimuli on another clock: every analysis would come out empty), naming
+    the likely cause; note spikes that fall outside every stimulus window.
 
     Parameters
     ----------
@@ -1331,14 +1397,19 @@ def check_overlap(session: Session, at, notes: list, where: str) -> None:
         lo, hi = float(starts.min()), float(ends.max())
         if isinstance(r, Spikes):
             if r.time_s.size and n_out == r.time_s.size:
-                raise BadInput(*at, f"no spike falls in any stimulus window (spikes {r.time_s[0]:.6g} to "
-                                    f"{r.time_s[-1]:.6g} s, stimuli {lo:.6g} to {hi:.6g} s): check time units "
-                                    f"and clock")
+                t0, t1 = float(r.time_s.min()), float(r.time_s.max())
+                raise BadInput(*at, f"no spike falls in any stimulus window (spikes {t0:.6g} to "
+                                    f"{t1:.6g} s, stimuli {lo:.6g} to {hi:.6g} s): check time units "
+                                    f"and clock; likely cause: {_clock_cause(t0, t1, lo, hi, 'spike')}")
         else:
             t = r.times_s
             if not np.any((starts < t[-1]) & (ends > t[0])):
                 raise BadInput(*at, f"the samples ({t[0]:.6g} to {t[-1]:.6g} s) overlap no stimulus window "
-                                    f"({lo:.6g} to {hi:.6g} s): check time units and clock")
+                                    f"({lo:.6g} to {hi:.6g} s): check time units and clock; likely cause: "
+                                    f"{_clock_cause(float(t[0]), float(t[-1]), lo, hi, 'sample')}")
+        problem = _timing_problem(r, lo, hi)
+        if problem:
+            raise BadInput(*at, problem)
     if n_out:
         _note(notes, f"{where}: {n_out} of {r.time_s.size} spikes fall outside every stimulus window "
                      f"(sparse-noise frames, grating presentations); they are ignored", stacklevel=4)
