@@ -151,6 +151,28 @@ def build_parser() -> argparse.ArgumentParser:
     sim.add_argument("--overwrite", action="store_true", help="replace an existing session folder")
     _add_common(sim)
 
+    # -- assemble ---------------------------------------------------------------------------------
+    asm = sub.add_parser("assemble", help="make a session from stimulus files, a recording and measured frame times",
+                         description="Turn a folder written by map2d stimulus into a session: add the spikes or "
+                                     "traces and, from the measured onsets of the displayed frames, the times on "
+                                     "the recording's clock (clock offset and drift fitted; late, dropped or "
+                                     "untimed frames and extra pulses found). Writes session.json with a timing "
+                                     "summary; the nominal files are kept (docs/session-format.md).")
+    asm.add_argument("folder", type=Path, metavar="DIR", help="stimulus folder (holding stimulus.json)")
+    asm.add_argument("--spikes", type=Path, default=None,
+                     help=".npz with time_s and cell, or a CSV/TSV of time (s) and cell (default: none)")
+    asm.add_argument("--traces", type=Path, default=None, help=".npy, cells x samples (default: none)")
+    asm.add_argument("--trace-times", type=Path, default=None,
+                     help="sample times (s) of --traces: .npy or one number per line (default: none)")
+    asm.add_argument("--frame-times", type=Path, default=None,
+                     help="measured onset (s, recording clock) of every displayed frame and grating "
+                          "presentation: .npy or one number per line (default: none, the nominal times are used "
+                          "as they are)")
+    asm.add_argument("--rois", type=Path, default=None, help="ROI label image, label = cell id + 1 (default: none)")
+    asm.add_argument("--name", default=None, help="session name (default: the folder name)")
+    asm.add_argument("--overwrite", action="store_true", help="replace a session already assembled in DIR")
+    _add_common(asm)
+
     # -- analysis ---------------------------------------------------------------------------------
     for name, helptext in (("maps", "spatial maps from sparse noise"),
                            ("gratings", "grating response surfaces and tuning"),
@@ -278,6 +300,10 @@ def _dispatch(args) -> int:
         return pipeline.run_stimulus(args)
     if args.command == "simulate":
         return pipeline.run_simulate(args)
+    if args.command == "assemble":
+        return pipeline.run_assemble(args.folder, frame_times=args.frame_times, spikes=args.spikes,
+                                     traces=args.traces, trace_times=args.trace_times, rois=args.rois,
+                                     name=args.name, overwrite=args.overwrite, quiet=args.quiet)
     if args.command == "maps":
         return pipeline.run_maps(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed, quiet=args.quiet,
                                  fits=not args.no_fits, trace_decay=args.trace_decay, config=args.config,

@@ -34,9 +34,9 @@ __all__ = [
 MANIFEST = "session.json"
 GRATING_COLUMNS = ("onset_s", "offset_s", "orientation_deg", "sf_cpd", "phase_deg", "contrast", "tf_hz")
 KNOWN_TOP_KEYS = {"sparse_noise", "gratings", "responses", "display", "rois", "name", "notes", "generator",
-                  "nwb"}
+                  "nwb", "timing"}
 KNOWN_SUB_KEYS = {
-    "sparse_noise": {"frames", "times", "grid", "exclude_gaps", "luminance"},
+    "sparse_noise": {"frames", "times", "grid", "exclude_gaps", "luminance", "untimed"},
     "sparse_noise.grid": {"center_deg", "spacing_deg"},
     "gratings": {"table", "phase_origin_deg"},
     "responses.spikes": {"kind", "file", "cell_ids"},
@@ -184,6 +184,7 @@ class Session:
     path: Path | None = None
     name: str = "session"
     notes: list = field(default_factory=list)
+    timing: dict | None = None  # how measured frame times were matched (map2d assemble), for the report
 
     @property
     def cell_ids(self) -> np.ndarray:
@@ -911,6 +912,16 @@ def _load_sparse_noise(folder: Path, spec, notes) -> SparseNoise:
     times = check_times(_load_npy(folder, times_rel, "times"), tpath, "times", expected=frames.shape[0])
     grid = Grid(ny=frames.shape[1], nx=frames.shape[2], center_x_deg=cx, center_y_deg=cy, dx_deg=dx, dy_deg=dy)
     valid = frame_gap_mask(times, exclude_gaps, notes, f"{tpath}: field times", "in session.json")
+    if spec.get("untimed") is not None:   # frames whose onset could not be measured (map2d assemble)
+        rel = _rel(spec, "untimed", mpath, "sparse_noise")
+        idx = _load_npy(folder, rel, "untimed")
+        if idx.ndim != 1 or (idx.size and idx.dtype.kind not in "iu"):
+            raise BadInput(folder / rel, "untimed", f"must be a 1-D array of frame indices, got {idx.dtype} "
+                                                    f"{idx.shape}")
+        _refuse_first((idx < 0) | (idx >= times.size), folder / rel, "untimed",
+                      f"is not a frame index (0 to {times.size - 1})")
+        valid = np.ones(times.size, dtype=bool) if valid is None else valid
+        valid[np.asarray(idx, dtype=np.int64)] = False
     return SparseNoise(frames=frames, times_s=times, grid=grid, valid=valid)
 
 
@@ -1284,7 +1295,8 @@ def load_session(folder) -> Session:
         rois = _load_rois(folder, rel)
     session = Session(responses=responses, sparse_noise=sparse, gratings=gratings, display=display,
                       rois=rois, roi_label_offset=roi_offset, path=folder,
-                      name=_session_name(manifest, folder, mpath), notes=notes)
+                      name=_session_name(manifest, folder, mpath), notes=notes,
+                      timing=manifest["timing"] if isinstance(manifest.get("timing"), dict) else None)
     spec = manifest["responses"]
     spike_file = folder / spec["file"]
     at = (spike_file, "time_s") if isinstance(responses, Spikes) else (folder / spec["times"], "times")

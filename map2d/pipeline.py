@@ -472,6 +472,23 @@ def _dense_estimate_option(value):
     return value
 
 
+def run_assemble(folder, frame_times=None, spikes=None, traces=None, trace_times=None, rois=None, name=None,
+                 overwrite=False, quiet=False) -> int:
+    """``map2d assemble``: :func:`map2d.assemble.assemble_session`, then say what was matched."""
+    from .assemble import assemble_session
+
+    path, timing = assemble_session(folder, frame_times=frame_times, spikes=spikes, traces=traces,
+                                    trace_times=trace_times, rois=rois, name=name, overwrite=overwrite)
+    if not quiet:
+        if timing is None:
+            print("map2d assemble: no --frame-times: the nominal stimulus times are used as they are "
+                  "(stimulus and recording must share one clock)")
+        else:
+            print(f"map2d assemble: {timing.summary()}")
+        print(f"map2d assemble: wrote {Path(path) / 'session.json'}; next: map2d analyze {path} --out RESULTS")
+    return 0
+
+
 def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, trace_decay="auto",
              config=None, dense_estimate="auto") -> int:
     """``map2d maps``: spatial maps and fits -> ``maps.npz`` and ``cells.csv``.

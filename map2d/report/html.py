@@ -139,6 +139,16 @@ def _table(rows, header=None, cls=""):
 # ----------------------------------------------------------------------------------------------
 # sections
 # ----------------------------------------------------------------------------------------------
+def _timing_text(t):
+    """The timing summary of ``map2d assemble`` (``session.json`` key ``timing``) in one line."""
+    def g(k):
+        v = t.get(k)
+        return v if isinstance(v, (int, float)) else float("nan")
+    return (f"clock offset {g('offset_s'):.6g} s, drift {g('drift'):.3g}, residual jitter {g('jitter_ms'):.3g} ms; "
+            f"{g('matched'):.0f} of {g('onsets'):.0f} onsets timed, {g('late'):.0f} late (frame repeated), "
+            f"{g('slips'):.0f} slips, {g('untimed'):.0f} untimed (left out), {g('extra_pulses'):.0f} extra pulses")
+
+
 def _session_facts(an, session):
     rows = [("cells", str(len(an.cell_ids))), ("responses", an.unit)]
     if session is not None:
@@ -166,6 +176,9 @@ def _session_facts(an, session):
         rows.append(("drifting gratings", f"{_n(len(dr.directions_deg), 'direction')} x "
                                           f"{_n(len(dr.sfs_cpd), 'SF')} x {_n(len(dr.tfs_hz), 'TF')}, "
                                           f"{_n(len(dr.trial_onset_s), 'trial')}"))
+    timing = getattr(session, "timing", None) if session is not None else None
+    if timing:
+        rows.append(("frame timing (measured)", _timing_text(timing)))
     if an.phase_origin_deg is not None:
         rows.append(("grating phase origin", f"({an.phase_origin_deg[0]:g}, {an.phase_origin_deg[1]:g}) deg"))
     if an.flashed is None and an.drifting is None:
