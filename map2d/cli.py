@@ -79,7 +79,8 @@ def build_parser() -> argparse.ArgumentParser:
     stim_sub = p_stim.add_subparsers(dest="stimulus_kind", metavar="KIND")
     sn = stim_sub.add_parser("sparse-noise", help="bright and dark spots on a grid",
                              description="Sparse noise: a few bright and dark spots per frame on a grid. " + CAUTION)
-    sn.add_argument("--out", required=True, type=Path, help="folder to write sparse_noise.npy and times into")
+    sn.add_argument("--out", required=True, type=Path,
+                    help="folder to add sparse_noise.npy and its times to (other stimulus files are kept)")
     sn.add_argument("--ny", type=_number(1, 4096, integer=True), default=16, help="grid rows (default 16)")
     sn.add_argument("--nx", type=_number(1, 4096, integer=True), default=24, help="grid columns (default 24)")
     sn.add_argument("--spacing-deg", type=_number(1e-4, 180.0), nargs=2, default=(2.0, 2.0), metavar=("DX", "DY"),
@@ -93,14 +94,19 @@ def build_parser() -> argparse.ArgumentParser:
                     help="frames per second (default 20)")
     sn.add_argument("--minutes", type=_number(0.0, 10080.0, above=True), default=10.0,
                     help="duration in minutes (default 10)")
+    sn.add_argument("--start-s", type=_number(0.0, 1e10), default=0.0,
+                    help="onset of the first frame in seconds (default 0)")
     sn.add_argument("--seed", type=_SEED, default=0, help="random seed (default 0)")
+    sn.add_argument("--overwrite", action="store_true",
+                    help="replace the sparse noise (and frames.tif) already in --out (default: refuse)")
     _add_render_args(sn)
     _add_common(sn)
 
     gr = stim_sub.add_parser("gratings", help="flashed or drifting sinusoidal gratings",
                              description="Gratings: a flashed sequence (one grating per frame, random "
                                          "orientation x SF x phase) or drifting trials. " + CAUTION)
-    gr.add_argument("--out", required=True, type=Path, help="folder to write gratings.csv into")
+    gr.add_argument("--out", required=True, type=Path,
+                    help="folder whose gratings.csv the presentations are appended to (created if absent)")
     gr.add_argument("--mode", choices=("flashed", "drifting"), default="flashed",
                     help="flashed sequence or drifting trials (default flashed)")
     gr.add_argument("--orientations", type=_number(1, 3600, integer=True), default=12,
@@ -132,6 +138,9 @@ def build_parser() -> argparse.ArgumentParser:
                     help="show the gratings only in this circle (centre azimuth, elevation and diameter in "
                          "degrees; grey outside) when rendering; stored in stimulus.json (default: full screen)")
     gr.add_argument("--seed", type=_SEED, default=0, help="random seed (default 0)")
+    gr.add_argument("--overwrite", action="store_true",
+                    help="replace gratings.csv (and frames.tif) in --out instead of appending to it "
+                         "(default: append, refuse to replace frames.tif)")
     _add_render_args(gr)
     _add_common(gr)
 

@@ -12,6 +12,7 @@ import json
 import math
 import os
 import re
+import shutil
 import warnings
 import zipfile
 from dataclasses import dataclass, field
@@ -24,7 +25,7 @@ from .geometry import Display, Grid
 
 __all__ = [
     "SparseNoise", "GratingTable", "Spikes", "Traces", "Session", "InputWarning",
-    "load_session", "write_session", "write_table", "read_table", "GRATING_COLUMNS",
+    "load_session", "write_session", "write_table", "read_table", "GRATING_COLUMNS", "add_stimulus",
     "write_stimulus", "load_stimulus", "STIMULUS_MANIFEST", "count_spikes_outside", "find_frame_gaps",
     "GAP_FACTOR", "check_times", "check_frames", "frame_gap_mask", "check_traces", "check_spikes",
     "check_grating_columns", "check_overlap", "StoredFrames", "check_luminance", "parse_number", "check_range",
@@ -1324,7 +1325,8 @@ def _session_name(manifest: dict, folder: Path, mpath) -> str:
 #: The units guard (:func:`check_overlap`): responses are refused when fewer than this share of them
 #: fall within the stimulus span while their own span is more than ``_SPAN_RATIO`` times longer (and
 #: spikes fire below ``_LOW_RATE_HZ`` per cell there, or traces are sampled slower than ``_SLOW_DT_S``),
-#: or when they cover less than ``_MIN_COVER`` of the stimulus span. Ours: a recording in milliseconds
+#: or when a recording at least half as long as the stimulus span covers less than ``_MIN_COVER`` of it
+#: (a displaced clock; a short recording is not one). Ours: a recording in milliseconds
 #: gives 0.1 % inside, a ratio of 1000 and rates 1000 times too low; one long recording with a short
 #: mapping block (hours around 10 minutes) stays well above these.
 _MIN_INSIDE, _SPAN_RATIO, _LOW_RATE_HZ, _SLOW_DT_S, _MIN_COVER = 0.01, 100.0, 0.1, 1.0, 0.1
@@ -1380,7 +1382,7 @@ def _timing_problem(r, lo, hi) -> str | None:
         return (f"the {whose} times ({t0:.6g} to {t1:.6g}) span {ratio:.3g} times the stimulus span ({lo:.6g} to "
                 f"{hi:.6g} s), only {100 * inside:.2g} % of them fall within it, at {what}: {cause}")
     cover = max(0.0, min(t1, hi) - max(t0, lo)) / span_s
-    if cover < _MIN_COVER and (not spikes or t.size >= 20):
+    if cover < _MIN_COVER and (t1 - t0) >= 0.5 * span_s and (not spikes or t.size >= 20):
         return (f"the {whose} times ({t0:.6g} to {t1:.6g} s) cover only {100 * cover:.2g} % of the stimulus span "
                 f"({lo:.6g} to {hi:.6g} s): {_clock_cause(t0, t1, lo, hi, whose)}")
     return None
@@ -1618,6 +1620,125 @@ def write_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: Gr
     tmp.write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
     os.replace(tmp, folder / STIMULUS_MANIFEST)
     return folder
+
+
+def _span_overlap(a0, a1, onsets, offsets):
+    """Index of the first interval ``[onsets, offsets)`` that overlaps ``[a0, a1)``, or None."""
+    hit = np.flatnonzero((np.asarray(onsets) < a1) & (np.asarray(offsets) > a0))
+    return int(hit[0]) if hit.size else None
+
+
+def add_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: GratingTable | None = None,
+                 display: Display | None = None, info: dict | None = None, overwrite: bool = False,
+                 files: dict | None = None) -> list:
+    """Add a stimulus block to a folder, so that several ``map2d stimulus`` calls build one protocol.
+
+    Sparse noise is written as ``sparse_noise.npy`` and ``sparse_noise_times.npy``; an existing one is
+    refused unless ``overwrite``. Gratings are appended to ``gratings.csv`` (same phase origin, no
+    overlap in time with what is there), or replace it with ``overwrite``. A block that overlaps
+    another in time is refused. ``stimulus.json`` and the stimulus part of ``session.json`` (its
+    ``sparse_noise``, ``gratings``, ``display`` and ``generator`` keys; others are kept) are rewritten;
+    ``generator`` lists the calls in order. ``files`` maps further file names (e.g. rendered frames)
+    to functions ``write(path)``; an existing one is refused unless ``overwrite``. Everything is
+    written beside the folder's files first and moved into place at the end (manifests last), so a
+    refusal or failure changes nothing.
+
+    Returns
+    -------
+    list of str
+        The file names written.
+    """
+    from .stimuli.gratings import combine_tables
+
+    folder = Path(folder)
+    if folder.exists() and not folder.is_dir():
+        raise BadInput(folder, "--out", "exists and is not a folder")
+    folder.mkdir(parents=True, exist_ok=True)
+    mpath = folder / STIMULUS_MANIFEST
+    manifest = _read_json_object(mpath) if mpath.is_file() else {}
+    old_sn, old_g = (None, None)
+    if manifest:
+        old_sn, old_g, _ = load_stimulus(folder)
+    spath = folder / MANIFEST
+    session = _read_json_object(spath) if spath.is_file() else {}
+    if session.get("timing") is not None:
+        raise BadInput(spath, "timing", "this folder holds an assembled session, whose measured times would no "
+                                        "longer match a changed stimulus; use a new folder")
+    hint = "add --overwrite to replace it (the other stimulus files are kept)"
+    for name in (files or {}):
+        if (folder / name).exists() and not overwrite:
+            raise BadInput(folder / name, None, f"exists; {hint}")
+    sn, g = old_sn, old_g
+    if sparse_noise is not None:
+        if (old_sn is not None or (folder / "sparse_noise.npy").exists()) and not overwrite:
+            raise BadInput(folder / "sparse_noise.npy", None, f"exists; {hint}")
+        sn = sparse_noise
+    if gratings is not None:
+        if old_g is None or overwrite:
+            g = gratings
+        else:
+            if tuple(map(float, old_g.phase_origin_deg)) != tuple(map(float, gratings.phase_origin_deg)):
+                raise BadInput(folder / "gratings.csv", "phase_origin_deg",
+                               f"the gratings there use the phase origin {list(old_g.phase_origin_deg)}, these "
+                               f"{list(gratings.phase_origin_deg)}; one table has one origin (--phase-origin-deg)")
+            hit = _span_overlap(float(gratings.onset_s.min()), float(gratings.offset_s.max()),
+                                old_g.onset_s, old_g.offset_s)
+            if hit is not None:
+                raise BadInput(folder / "gratings.csv", "onset_s", f"the new gratings ({gratings.onset_s.min():.6g} "
+                                                                   f"to {gratings.offset_s.max():.6g} s) overlap this "
+                                                                   f"presentation; start them after "
+                                                                   f"{old_g.offset_s.max():.6g} s (--start-s)",
+                               row=hit + 1)
+            g = combine_tables(old_g, gratings)
+    if sn is not None and g is not None and (sparse_noise is not None or gratings is not None):
+        t0, t1 = float(sn.times_s[0]), float(sn.frame_ends_s()[-1])
+        hit = _span_overlap(t0, t1, g.onset_s, g.offset_s)
+        if hit is not None:
+            raise BadInput(folder / "gratings.csv", "onset_s", f"the sparse noise ({t0:.6g} to {t1:.6g} s) and the "
+                                                               f"gratings overlap in time (at {g.onset_s[hit]:.6g} s); "
+                                                               f"give the later block a later --start-s")
+    # the generator records: earlier calls of the kind replaced are dropped
+    records = manifest.get("generator") or []
+    records = list(records) if isinstance(records, list) else [records]
+    if info is not None:
+        kind = str(info.get("command", ""))
+        replaced = ("sparse-noise" in kind) or ("gratings" in kind and (overwrite or old_g is None))
+        if replaced:
+            records = [r for r in records if not (isinstance(r, dict) and str(r.get("command", "")) == kind)]
+        records.append(info)
+    tmp = folder / ".map2d-stimulus-tmp"
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir()
+    written = []
+    try:
+        new = {k: v for k, v in manifest.items() if k not in ("sparse_noise", "gratings", "display", "generator")}
+        if sn is not None:
+            new["sparse_noise"] = (_write_sparse_noise(tmp, sn) if sparse_noise is not None
+                                   else manifest["sparse_noise"])
+            if sparse_noise is not None:
+                written += ["sparse_noise.npy", "sparse_noise_times.npy"]
+        if g is not None:
+            new["gratings"] = _write_gratings(tmp, g) if gratings is not None else manifest["gratings"]
+            if gratings is not None:
+                written.append("gratings.csv")
+        disp = display.to_manifest() if display is not None else manifest.get("display")
+        if disp is not None:
+            new["display"] = disp
+        if records:
+            new["generator"] = records
+        for name, write in (files or {}).items():
+            write(tmp / name)
+            written.append(name)
+        session.update({k: new[k] for k in ("sparse_noise", "gratings", "display", "generator") if k in new})
+        for name in written:
+            os.replace(tmp / name, folder / name)
+        for path, content in ((mpath, new), (spath, session)):
+            part = tmp / path.name
+            part.write_text(json.dumps(content, indent=2) + "\n", encoding="utf-8")
+            os.replace(part, path)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return written + [STIMULUS_MANIFEST, MANIFEST]
 
 
 def load_stimulus(folder) -> tuple[SparseNoise | None, GratingTable | None, dict]:

@@ -284,16 +284,20 @@ def _swap_into_place(tmp: Path, dest: Path, check: bool) -> Path | None:
 def run_stimulus(args) -> int:
     """``map2d stimulus sparse-noise|gratings``: seeded stimulus files (and rendered frames) in ``--out``.
 
-    Writes ``sparse_noise.npy`` + ``sparse_noise_times.npy`` or ``gratings.csv`` (the files a session
-    uses) and ``stimulus.json`` (grid, phase origin, generator arguments); with ``--render`` also
-    ``frames.tif``, frames ``--render-start`` .. ``+ --render-frames`` at display resolution. The folder
-    is written atomically (see :func:`results_folder`). Bad arguments raise :class:`BadInput`.
+    Adds to ``--out`` (:func:`map2d.contract.add_stimulus`): ``sparse_noise.npy`` +
+    ``sparse_noise_times.npy``, or grating rows appended to ``gratings.csv`` (the files a session
+    uses), and rewrites ``stimulus.json`` and the stimulus part of ``session.json`` (grid, phase origin,
+    the generator calls in order); with ``--render`` also ``frames.tif``, frames ``--render-start`` ..
+    ``+ --render-frames`` at display resolution, with frame rate and degrees per pixel in its metadata.
+    An existing sparse noise or ``frames.tif`` is refused, and gratings are appended rather than
+    replaced, unless ``--overwrite``; blocks that overlap in time are refused. Nothing is changed on a
+    refusal. Bad arguments raise :class:`BadInput`.
     """
     import math
 
     import numpy as np
 
-    from .contract import write_stimulus
+    from .contract import add_stimulus
     from .geometry import Display, Grid
     from .stimuli import render as rnd
     from .stimuli.gratings import make_drifting_gratings, make_flashed_gratings
@@ -302,7 +306,7 @@ def run_stimulus(args) -> int:
     kind = args.stimulus_kind
     info = {"command": f"stimulus {kind}"}
     for k, v in sorted(vars(args).items()):
-        if k in ("command", "stimulus_kind", "debug", "quiet", "out") or callable(v):
+        if k in ("command", "stimulus_kind", "debug", "quiet", "out", "overwrite") or callable(v):
             continue
         info[k.replace("_", "-")] = list(v) if isinstance(v, (tuple, list)) else v
     display = None
@@ -330,7 +334,7 @@ def run_stimulus(args) -> int:
                         dx_deg=args.spacing_deg[0], dy_deg=args.spacing_deg[1])
             sparse = make_sparse_noise(grid, duration_s=args.minutes * 60.0, rate_hz=args.rate_hz,
                                        spots_per_frame=args.spots, min_distance_deg=args.min_distance_deg,
-                                       rng=args.seed)
+                                       start_s=args.start_s, rng=args.seed)
         elif args.mode == "flashed":
             if args.orientations < 1 or args.phases < 1:
                 raise ValueError("--orientations and --phases must be >= 1")
@@ -370,11 +374,14 @@ def run_stimulus(args) -> int:
         info["rendered"] = {"file": rnd.FRAMES_FILE, "first_frame": int(first), "frames": int(frames.shape[0]),
                             "scale": int(args.render_scale), "shape": list(frames.shape),
                             "times_s": [float(t) for t in times]}
-    with results_folder(args.out) as tmp:
-        write_stimulus(tmp, sparse_noise=sparse, gratings=table, display=display, info=info)
-        if frames is not None:
-            rnd.write_frames_tiff(tmp, frames)
-        written = sorted(p.name for p in tmp.iterdir())
+    files = {}
+    if frames is not None:
+        rate = args.rate_hz if sparse is not None else args.render_rate_hz
+        files[rnd.FRAMES_FILE] = lambda path: rnd.write_frames_tiff(
+            path.parent, frames, name=path.name, rate_hz=rate, display=display, scale=args.render_scale,
+            times_s=times)
+    written = add_stimulus(args.out, sparse_noise=sparse, gratings=table, display=display, info=info,
+                           overwrite=bool(getattr(args, "overwrite", False)), files=files)
     if not args.quiet:
         if sparse is not None:
             what = (f"{sparse.n_frames} sparse-noise frames of {sparse.grid.ny} x {sparse.grid.nx} "

@@ -330,8 +330,11 @@ def test_cli_sparse_noise_writes_loadable_reproducible_files(tmp_path, capsys):
     assert code == 0
     for name in ("sparse_noise.npy", "sparse_noise_times.npy"):
         assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes()
-    # a second run into a map2d folder replaces it
-    code, _, _ = _run(args[:-1] + [5, "--out", tmp_path / "a"], capsys)
+    # a second sparse noise into the same folder is refused (exit 2, nothing changed) unless --overwrite
+    code, _, err = _run(args[:-1] + [5, "--out", tmp_path / "a"], capsys)
+    assert code == 2 and "--overwrite" in err
+    assert (tmp_path / "a" / "sparse_noise.npy").read_bytes() == (tmp_path / "b" / "sparse_noise.npy").read_bytes()
+    code, _, _ = _run(args[:-1] + [5, "--out", tmp_path / "a", "--overwrite"], capsys)
     assert code == 0
     assert (tmp_path / "a" / "sparse_noise.npy").read_bytes() != (tmp_path / "b" / "sparse_noise.npy").read_bytes()
 
@@ -364,8 +367,55 @@ def test_cli_render_writes_a_uint8_stack(tmp_path, capsys):
     sn, _, manifest = load_stimulus(tmp_path / "r")
     expect = render_sparse_noise(sn, SCREEN_DEFAULT, frames=[2, 3, 4], scale=16)
     np.testing.assert_array_equal(stack, expect)
-    assert manifest["generator"]["rendered"]["first_frame"] == 2
+    assert manifest["generator"][-1]["rendered"]["first_frame"] == 2
+    # frame rate and degrees per pixel (at the screen centre, 16 screen pixels per rendered one) in
+    # the stack's metadata: 52 cm / 1920 px seen from 30 cm is atan(0.02708 / 30) = 0.0517 deg a pixel
+    with tifffile.TiffFile(tmp_path / "r" / "frames.tif") as tif:
+        meta = tif.imagej_metadata
+        xres = tif.pages[0].tags["XResolution"].value
+    assert meta["finterval"] == pytest.approx(1 / 20.0) and meta["unit"] == "deg"
+    assert float(meta["Properties"]["frame_rate_hz"]) == 20.0
+    deg_px = 16 * np.degrees(np.arctan(52.0 / 1920 / 30.0))
+    assert float(meta["Properties"]["deg_per_px_x"]) == pytest.approx(deg_px, rel=1e-6)
+    assert xres[1] / xres[0] == pytest.approx(deg_px, rel=1e-6)
     assert manifest["display"]["distance_cm"] == 30.0
+
+
+def test_stimulus_commands_add_to_one_protocol(tmp_path, capsys):
+    """Sparse noise, then flashed, then drifting gratings into one folder: one protocol, one
+    gratings.csv, session.json's stimulus part kept current; overlap and replacement refused."""
+    d = tmp_path / "rig"
+    sn = ["stimulus", "sparse-noise", "--ny", 4, "--nx", 6, "--minutes", 0.1, "--spots", 1, "--out", d]
+    fl = ["stimulus", "gratings", "--orientations", 4, "--sf-cpd", 0.05, 0.1, "--phases", 2, "--minutes", 0.1,
+          "--out", d]
+    dr = ["stimulus", "gratings", "--mode", "drifting", "--orientations", 4, "--sf-cpd", 0.05, "--repeats", 1,
+          "--out", d]
+    assert _run(sn, capsys)[0] == 0
+    code, _, err = _run(fl, capsys)                      # starts at 0: overlaps the sparse noise
+    assert code == 2 and "overlap" in err
+    assert _run(fl + ["--start-s", 7], capsys)[0] == 0
+    code, _, err = _run(dr + ["--start-s", 8], capsys)   # overlaps the flashed block (7-13 s)
+    assert code == 2 and "overlap" in err and "gratings.csv" in err
+    assert _run(dr + ["--start-s", 14], capsys)[0] == 0
+    _, g, manifest = load_stimulus(d)
+    assert (d / "sparse_noise.npy").is_file()
+    assert len(g) == 60 + 4 and np.all(np.diff(g.onset_s) > 0)
+    assert np.count_nonzero(g.tf_hz == 0) == 60 and np.count_nonzero(g.tf_hz == 2.0) == 4
+    assert [r["command"] for r in manifest["generator"]] == ["stimulus sparse-noise", "stimulus gratings",
+                                                           "stimulus gratings"]
+    session = json.loads((d / "session.json").read_text())
+    assert {k: session[k] for k in ("sparse_noise", "gratings")} == {k: manifest[k] for k in ("sparse_noise",
+                                                                                             "gratings")}
+    # adding responses to session.json makes the folder a session (what was shown is what is analysed)
+    np.savez(d / "spikes.npz", time_s=np.array([0.5, 7.5, 14.5]), cell=np.array([0, 0, 1]))
+    session["responses"] = {"kind": "spikes", "file": "spikes.npz"}
+    (d / "session.json").write_text(json.dumps(session))
+    s = load_session(d)
+    assert s.sparse_noise.n_frames == 120 and len(s.gratings) == 64
+    # gratings --overwrite replaces the table; the sparse noise stays; responses stay in session.json
+    assert _run(fl + ["--start-s", 7, "--overwrite"], capsys)[0] == 0
+    assert len(load_stimulus(d)[1]) == 60 and (d / "sparse_noise.npy").is_file()
+    assert json.loads((d / "session.json").read_text())["responses"]["file"] == "spikes.npz"
 
 
 SCREEN_DEFAULT = Display(width_cm=52.0, height_cm=29.25, width_px=1920, height_px=1080, distance_cm=30.0)

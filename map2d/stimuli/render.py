@@ -152,10 +152,37 @@ def render_gratings(table: GratingTable, display: Display, times_s, scale: int =
     return out
 
 
-def write_frames_tiff(folder, frames: np.ndarray, name: str = FRAMES_FILE) -> Path:
-    """Write rendered frames as a uint8 TIFF stack ``folder/frames.tif`` (one page per frame)."""
+def write_frames_tiff(folder, frames: np.ndarray, name: str = FRAMES_FILE, rate_hz: float | None = None,
+                      display: Display | None = None, scale: int = 1, times_s=None) -> Path:
+    """Write rendered frames as a uint8 ImageJ TIFF stack ``folder/frames.tif`` (one page per frame).
+
+    With ``rate_hz`` the stack's frame interval (ImageJ ``finterval``, seconds) is ``1 / rate_hz``; with
+    ``display`` the pixel size is the degrees per rendered pixel at the screen centre (unit ``deg``;
+    flat-screen geometry makes it smaller towards the edges). The page description also holds, as
+    ImageJ properties, ``frame_rate_hz``, ``deg_per_px_x`` and ``deg_per_px_y`` at the centre,
+    ``render_scale`` and the first frame's onset ``first_onset_s``.
+    """
     import tifffile
 
     path = Path(folder) / name
-    tifffile.imwrite(path, np.ascontiguousarray(frames, dtype=np.uint8), photometric="minisblack")
+    frames = np.ascontiguousarray(frames, dtype=np.uint8)
+    metadata: dict = {"axes": "TYX"}
+    props: dict = {"render_scale": str(int(scale))}
+    kwargs: dict = {}
+    if rate_hz is not None and rate_hz > 0:
+        metadata["finterval"] = 1.0 / float(rate_hz)
+        props["frame_rate_hz"] = f"{float(rate_hz):.9g}"
+    if display is not None:
+        cx, cy = display.width_px / 2.0, display.height_px / 2.0
+        x0, y0 = display.px_to_deg(cx - 0.5, cy - 0.5)
+        x1, _ = display.px_to_deg(cx + 0.5, cy - 0.5)
+        _, y1 = display.px_to_deg(cx - 0.5, cy + 0.5)
+        dx, dy = abs(float(x1 - x0)) * scale, abs(float(y1 - y0)) * scale
+        kwargs["resolution"] = (1.0 / dx, 1.0 / dy)
+        metadata["unit"] = "deg"
+        props["deg_per_px_x"], props["deg_per_px_y"] = f"{dx:.9g}", f"{dy:.9g}"
+    if times_s is not None and len(times_s):
+        props["first_onset_s"] = f"{float(times_s[0]):.9g}"
+    metadata["Properties"] = props
+    tifffile.imwrite(path, frames, imagej=True, metadata=metadata, **kwargs)
     return path
