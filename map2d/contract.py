@@ -1653,6 +1653,9 @@ def add_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: Grat
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
         raise BadInput(folder, "--out", "exists and is not a folder")
+    if (folder.is_dir() and any(folder.iterdir()) and not (folder / STIMULUS_MANIFEST).is_file()
+            and not (folder / MANIFEST).is_file()):
+        raise BadInput(folder, "--out", "is a non-empty folder that holds no stimulus or session; choose another")
     folder.mkdir(parents=True, exist_ok=True)
     mpath = folder / STIMULUS_MANIFEST
     manifest = _read_json_object(mpath) if mpath.is_file() else {}
