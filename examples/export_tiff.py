@@ -15,7 +15,9 @@ from map2d.maps import compute_maps
 
 DEMO = Path(__file__).resolve().parent.parent / "data_demo"
 session = load_session(DEMO)
-maps = compute_maps(session.responses, session.sparse_noise, max_lag_s=0.1, n_shuffles=100, rng=0)
+# trace_decay="auto": the demo holds imaging traces; remove the indicator decay as map2d analyze does
+maps = compute_maps(session.responses, session.sparse_noise, max_lag_s=0.1, n_shuffles=100, rng=0,
+                    trace_decay="auto")
 
 stack = np.stack([maps.on, maps.off, maps.linear], axis=2).transpose(1, 0, 2, 3, 4)  # (T, Z, C, Y, X)
 write_maps_tiff("maps.tif", stack.astype(np.float32), maps.grid, maps.lags_s, maps.cell_ids,

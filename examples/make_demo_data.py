@@ -3,8 +3,8 @@
 
 The demo is a simulated two-photon imaging session of our own design: 24 model cells (centre-surround
 ON and OFF cells, Gabor simple cells, energy-model complex cells and a few unresponsive ones) imaged at
-30 Hz, each answering 12 minutes of sparse noise, 6 minutes of flashed gratings and a block of drifting
-gratings. A field-of-view label image puts one round ROI per cell, so the field-of-view maps have
+15 Hz, each answering 15 minutes of sparse noise (20 Hz frames), 6 minutes of flashed gratings and a
+block of drifting gratings (4 repeats). A field-of-view label image puts one round ROI per cell, so the field-of-view maps have
 something to show. The truth (each cell's model and its true tuning) goes to ``data_demo.truth.json``
 beside the folder, never inside it.
 

@@ -1,11 +1,11 @@
 """Many sessions: ``map2d batch SESSION... --out DIR``, one ``analyze`` per session on a Dask cluster.
 
-Each session is analysed by :func:`analyze_one` (the work of ``map2d analyze``) in a worker process and
+Each session is analyzed by :func:`analyze_one` (the work of ``map2d analyze``) in a worker process and
 written atomically to ``DIR/<session name>/``; a failure in one session is recorded with its name and
 does not stop the others. When every session has been tried, the combined tables and figure are written:
 
 ``DIR/sessions.csv``
-    Every analysed session's ``cells.csv``, one row per cell, with a ``session`` column first (sessions
+    Every analyzed session's ``cells.csv``, one row per cell, with a ``session`` column first (sessions
     in the order given; columns in order of first appearance; a column a session lacks is empty).
 ``DIR/population.png``
     Agreement distribution, preferred orientations and receptive-field centres of all cells.
@@ -45,7 +45,7 @@ DISTRIBUTED_HINT = "running on a cluster needs the optional package dask.distrib
 
 def analyze_one(source, out, config=None, max_lag_s: float = 0.2, seed: int = 0, n_jobs: int = 1,
                 report: bool = True, trace_decay="auto", dense_estimate="auto") -> dict:
-    """Analyse one session into the results folder ``out`` (what ``map2d analyze`` writes).
+    """Analyze one session into the results folder ``out`` (what ``map2d analyze`` writes).
 
     Runs in a batch worker; never raises for a session's own failure.
 
@@ -332,7 +332,7 @@ def _run_on_cluster(jobs, scheduler, workers, memory_limit, bar, cluster, result
 def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0.2, seed: int = 0,
               workers: int = LOCAL_WORKERS, memory_limit: str = LOCAL_MEMORY_LIMIT, report: bool = True,
               quiet: bool = False, trace_decay="auto", dense_estimate="auto") -> int:
-    """``map2d batch``: analyse every session, then write ``sessions.csv``, ``population.png``, ``batch.csv``.
+    """``map2d batch``: analyze every session, then write ``sessions.csv``, ``population.png``, ``batch.csv``.
 
     Parameters
     ----------
@@ -418,13 +418,13 @@ def run_batch(sources, out, *, scheduler=None, config=None, max_lag_s: float = 0
         _write_atomic(out / "sessions.csv", lambda p: write_table(p, {c: [r[k] for r in rows]
                                                                       for k, c in enumerate(header)}))
         _write_atomic(out / "population.png", lambda p: population_figure(p, header, rows))
-    else:   # nothing analysed this time: combined files of an earlier run would be misleading
+    else:   # nothing analyzed this time: combined files of an earlier run would be misleading
         for stale in ("sessions.csv", "population.png"):
             (out / stale).unlink(missing_ok=True)
     failed = [n for n in names if results[n]["status"] != "ok"]
     if not quiet:
         n_cells = sum(results[n]["cells"] or 0 for n in ok)
-        print(f"map2d batch: {len(ok)} of {len(names)} sessions analysed ({n_cells} cells) in "
+        print(f"map2d batch: {len(ok)} of {len(names)} sessions analyzed ({n_cells} cells) in "
               f"{time.perf_counter() - t0:.1f} s; results in {out}")
         if ok:
             print(f"map2d batch: combined table {out / 'sessions.csv'}, figure {out / 'population.png'}")

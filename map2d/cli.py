@@ -20,6 +20,12 @@ class _ArgumentError(Exception):
 
 
 class _Parser(argparse.ArgumentParser):
+    """Errors raise (exit 2 with one line); help shows every default (:class:`_HelpFormatter`)."""
+
+    def __init__(self, *args, **kwargs):
+        kwargs.setdefault("formatter_class", _HelpFormatter)
+        super().__init__(*args, **kwargs)
+
     def error(self, message):
         raise _ArgumentError(f"{self.prog}: {message}")
 
@@ -62,15 +68,31 @@ CAUTION = ("Caution: flashing and high-contrast patterns can trigger seizures in
            "Follow local guidance and your local animal-care approvals when presenting these stimuli.")
 
 
+class _HelpFormatter(argparse.HelpFormatter):
+    """Every option's help ends with its default (unless the text already gives it)."""
+
+    def _get_help_string(self, action):
+        text = action.help or ""
+        if ("default" in text or not action.option_strings or action.required or action.default is argparse.SUPPRESS
+                or isinstance(action, (argparse._StoreTrueAction, argparse._HelpAction, argparse._VersionAction))):
+            return text
+        d = action.default
+        shown = "none" if d is None else " ".join(map(str, d)) if isinstance(d, (list, tuple)) else "%(default)s"
+        return f"{text} (default {shown})"
+
+
 def _add_common(p):
     p.add_argument("--debug", action="store_true", help="show the full traceback of any error")
     p.add_argument("--quiet", action="store_true", help="no progress bars or progress messages")
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from . import __version__
+
     parser = _Parser(
         prog="map2d",
         description="Map 2-D receptive fields from sparse noise and gratings, and check that the two agree.")
+    parser.add_argument("--version", action="version", version=f"map2d {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
     # -- stimulus ---------------------------------------------------------------------------------
@@ -275,7 +297,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_common(rp)
 
     demo = sub.add_parser("demo", help="run the whole job on the shipped demo session",
-                          description="Analyse data_demo/ (simulated) and write a report.")
+                          description="Analyze data_demo/ (simulated) and write a report.")
     demo.add_argument("--out", type=Path, default=Path("map2d_demo_results"),
                       help="results folder (default ./map2d_demo_results)")
     _add_common(demo)

@@ -1077,7 +1077,7 @@ def _load_responses(folder: Path, spec, notes) -> Spikes | Traces:
         spikes = check_spikes(t, c, ids, notes, f"{path}: field cell")
         if spikes.cell_ids.size == 0:
             raise BadInput(path, "time_s", "holds no spikes and responses.cell_ids names no cells: "
-                                           "there is no cell to analyse")
+                                           "there is no cell to analyze")
         return spikes
     values = _load_npy(folder, rel, "file")
     if values.ndim != 2:
@@ -1357,7 +1357,7 @@ def _clock_cause(t0, t1, lo, hi, whose) -> str:
 
 
 def _timing_problem(r, lo, hi) -> str | None:
-    """Why responses cannot be analysed against stimuli spanning ``lo``-``hi`` s, or None."""
+    """Why responses cannot be analyzed against stimuli spanning ``lo``-``hi`` s, or None."""
     spikes = isinstance(r, Spikes)
     t = r.time_s if spikes else r.times_s
     if t.size < 2:
@@ -1601,7 +1601,7 @@ def write_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: Gr
     ``stimulus.json`` has the layout of a session's ``session.json`` without ``responses``:
     ``sparse_noise`` (frames, times, grid), ``gratings`` (table, phase_origin_deg), optionally
     ``display`` and ``generator``. Adding a ``responses`` entry (and renaming it ``session.json``)
-    turns the folder into a session, so what was shown and what is analysed are the same files.
+    turns the folder into a session, so what was shown and what is analyzed are the same files.
     """
     if sparse_noise is None and gratings is None:
         raise ValueError("write_stimulus: give sparse_noise or gratings (or both)")

@@ -627,7 +627,7 @@ def _shift_offsets(F: int, n: int, L: int, min_shift: int, rng) -> np.ndarray:
 # ----------------------------------------------------------------------------------------------
 def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffles: int = 200,
                  alpha: float = 0.01, rng=None, min_shift_s: float = 10.0, n_jobs: int | None = None,
-                 dense_method: str = "auto", n_folds: int = 5) -> MapResult:
+                 dense_method: str = "auto", n_folds: int = 5, trace_decay="off") -> MapResult:
     """ON, OFF and linear maps at every lag for every cell, with z-scores and the responsive call.
 
     Parameters
@@ -660,6 +660,13 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
         the pixels of the stimulus are correlated beyond chance).
     n_folds : int
         Folds (contiguous blocks of time) for choosing the ridge penalty.
+
+    trace_decay : 'off', 'auto' or float
+        Traces only: remove the indicator's first-order decay before the maps
+        (:func:`map2d.traces.decay_corrected`: 'auto' estimates it per cell, a number is the time
+        constant in seconds). ``map2d maps`` and ``map2d analyze`` use 'auto' by default; pass 'auto'
+        here to get the maps they compute. Default 'off' (the traces as given). Spikes are never
+        filtered.
 
     Returns
     -------
@@ -751,6 +758,10 @@ def compute_maps(responses, noise: SparseNoise, max_lag_s: float = 0.2, n_shuffl
     """
     if not isinstance(noise, SparseNoise):
         raise TypeError("noise must be a SparseNoise")
+    if isinstance(responses, Traces) and trace_decay is not None and trace_decay != "off":
+        from .traces import decay_corrected          # as map2d maps / analyze do
+        responses, _ = decay_corrected(responses, trace_decay, skip_s=noise.frame_interval_s,
+                                       span_s=(noise.times_s[0], noise.frame_ends_s()[-1]))
     if not (0 < alpha < 1):
         raise ValueError(f"alpha must be in (0, 1), got {alpha}")
     if int(n_shuffles) < 1 or 1.0 / (1 + int(n_shuffles)) > alpha:

@@ -181,7 +181,7 @@ def _read_spikes(nwbfile, spec, nwb_path, where, notes) -> Spikes:
         raise BadInput(nwb_path, f"{upath}.spike_times", "column is missing (the units table holds no spike times)")
     ids = np.asarray(units.id[:])
     if ids.size == 0:
-        raise BadInput(nwb_path, upath, "holds no units: there is no cell to analyse")
+        raise BadInput(nwb_path, upath, "holds no units: there is no cell to analyze")
     if ids.dtype.kind not in "iu":
         raise BadInput(nwb_path, f"{upath}.id", f"must hold integers, got {ids.dtype}")
     ids = ids.astype(np.int64)

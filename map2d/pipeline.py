@@ -775,15 +775,27 @@ def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=No
     finally:
         bar.close()
     if not quiet:
-        n_resp = sum(1 for v in analysis.cells.get("responsive", []) if v is True)
-        print(f"map2d: {len(analysis.cell_ids)} cells, {n_resp} responsive; results in {Path(out)}")
+        print(f"map2d: {analysis_summary(analysis)}; results in {Path(out)}")
         for note in analysis.notes:
             print(f"map2d: note: {note}")
+        print(f"map2d: report: {Path(out) / 'report.html'}")
     return 0
 
 
+def analysis_summary(analysis) -> str:
+    """'24 cells, 20 responsive to sparse noise, 18 to gratings': what each stimulus found."""
+    def count(name):
+        return sum(1 for v in analysis.cells.get(name, []) if v is True)
+    parts = []
+    if analysis.maps is not None:
+        parts.append(f"{count('responsive')} responsive to sparse noise")
+    if analysis.flashed is not None or analysis.drifting is not None:
+        parts.append(f"{count('grating_responsive')} {'to' if parts else 'responsive to'} gratings")
+    return ", ".join([f"{len(analysis.cell_ids)} cells"] + parts)
+
+
 def run_batch(sources, out, **kwargs) -> int:
-    """``map2d batch``: :func:`map2d.batch.run_batch` (every session analysed on a Dask cluster or in
+    """``map2d batch``: :func:`map2d.batch.run_batch` (every session analyzed on a Dask cluster or in
     process, then ``sessions.csv``, ``population.png`` and ``batch.csv``)."""
     from .batch import run_batch as _run_batch
     return _run_batch(sources, out, **kwargs)
@@ -825,7 +837,7 @@ def run_demo(out, quiet=False) -> int:
     t0 = time.perf_counter()
     session = demo_session_path()
     if not quiet:
-        print(f"map2d: analysing the demo session {session} (simulated; truth in "
+        print(f"map2d: analyzing the demo session {session} (simulated; truth in "
               f"{session.parent / (session.name + '.truth.json')})")
     run_analyze(session, out, quiet=quiet)
     report = Path(out).absolute() / "report.html"

@@ -114,7 +114,7 @@ def test_scheduler_on_loopback_runs_a_batch(sessions, sync_run, tmp_path, capsys
         assert rc == 0, capsys.readouterr().err
         with distributed.Client(address) as client:    # the work ran on that scheduler's worker
             assert len(client.scheduler_info()["workers"]) == 1
-    assert "2 of 2 sessions analysed" in capsys.readouterr().out
+    assert "2 of 2 sessions analyzed" in capsys.readouterr().out
     for name in (NAMES[0], NAMES[2]):
         assert (out / name / "cells.csv").read_bytes() == (sync_out / name / "cells.csv").read_bytes()
 
@@ -123,7 +123,7 @@ def test_cli_batch_writes_the_full_results_folder(sessions, tmp_path, capsys):
     out = tmp_path / "one"
     assert map2d.cli.main(["batch", str(sessions / NAMES[1]), "--out", str(out), "--scheduler", "sync"]) == 0
     assert (out / NAMES[1] / "report.html").is_file() and (out / NAMES[1] / ".map2d-results").is_file()
-    assert "1 of 1 sessions analysed" in capsys.readouterr().out
+    assert "1 of 1 sessions analyzed" in capsys.readouterr().out
     # a second run into the same folder replaces the session's results (the batch mark allows it)
     assert map2d.cli.main(["batch", str(sessions / NAMES[1]), "--out", str(out), "--scheduler", "sync",
                            "--no-report", "--quiet"]) == 0
@@ -143,7 +143,7 @@ def test_internal_error_in_one_session_gives_exit_code_1(sessions, tmp_path, mon
     assert rc == 1
     assert f"session {NAMES[0]} failed (error)" in err and "RuntimeError: simulated failure" in err
     assert "session d_broken failed (bad input)" in err
-    assert not (out / "sessions.csv").exists()       # nothing analysed: no combined table
+    assert not (out / "sessions.csv").exists()       # nothing analyzed: no combined table
 
 
 def test_bad_arguments_are_refused_before_anything_runs(sessions, tmp_path, capsys):

@@ -247,3 +247,22 @@ def test_a_cell_without_data_shows_no_decay_constant():
         tr, d = decay_corrected(Traces(values=x, times_s=t), mode)
         assert np.all(np.isfinite(d.tau_s[:2])) and np.isnan(d.tau_s[2]) and d.source[2] == "none"
         assert not np.isfinite(tr.values[2]).any()
+
+
+def test_python_api_gives_the_cli_maps_for_traces(simulated, tmp_path):
+    """compute_maps(..., trace_decay="auto") gives the maps `map2d maps` writes (the CLI removes the
+    indicator decay by default); without it the maps differ."""
+    from map2d.contract import write_session
+    from map2d.maps import compute_maps
+    from map2d.pipeline import run_maps
+
+    session, _ = simulated(responses="traces", minutes=3.0, n_cells=4, calcium_tau_s=0.4, flashed_minutes=0.0,
+                           repeats=0)
+    write_session(tmp_path / "s", session)
+    run_maps(tmp_path / "s", tmp_path / "o", fits=False, quiet=True, seed=0)
+    cli = np.load(tmp_path / "o" / "maps.npz")
+    api = compute_maps(session.responses, session.sparse_noise, rng=0, trace_decay="auto")
+    np.testing.assert_allclose(api.linear, cli["linear"], rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(api.linear_z, cli["linear_z"], rtol=1e-4, atol=1e-5)
+    raw = compute_maps(session.responses, session.sparse_noise, rng=0)
+    assert not np.allclose(raw.linear, cli["linear"], rtol=1e-3, atol=1e-6)
