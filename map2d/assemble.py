@@ -23,6 +23,7 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -186,8 +187,8 @@ def assemble_session(folder, frame_times=None, spikes=None, traces=None, trace_t
     -------
     (Path, FrameTiming or None)
     """
-    from .contract import (STIMULUS_MANIFEST, _fmt_exact, _read_json_object, _save_npz, load_session,
-                           load_stimulus, write_table)
+    from .contract import (STIMULUS_MANIFEST, InputWarning, _fmt_exact, _read_json_object, _save_npz,
+                           load_session, load_stimulus, write_table)
     from .timing import match_frame_times
 
     folder = Path(folder)
@@ -299,7 +300,9 @@ def assemble_session(folder, frame_times=None, spikes=None, traces=None, trace_t
         if timing is not None:
             manifest["timing"] = {"frame_times": Path(frame_times).name, **timing.report()}
         (tmp / "session.json").write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
-        load_session(tmp)                       # validated as map2d analyze will read it
+        with warnings.catch_warnings(record=True) as caught:     # validated as map2d analyze will read it
+            warnings.simplefilter("always", InputWarning)
+            load_session(tmp)
         # move into place: the files first, session.json last (without ../ in its paths)
         final = json.loads(json.dumps(manifest))
         for key, sub in (("sparse_noise", ("frames", "times")), ("gratings", ("table",))):
@@ -315,4 +318,6 @@ def assemble_session(folder, frame_times=None, spikes=None, traces=None, trace_t
         os.replace(part, mpath)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
+    for w in caught:                            # what the loader noted, naming the files in place
+        warnings.warn(str(w.message).replace(str(tmp), str(folder)), InputWarning, stacklevel=2)
     return folder, timing

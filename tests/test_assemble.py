@@ -97,8 +97,11 @@ def rig(small_spikes_session, tmp_path_factory):
 @pytest.fixture(scope="module")
 def assembled(rig):
     folder, csv_path, ft, _, _ = rig
-    code = _quiet(main, ["assemble", str(folder), "--spikes", str(csv_path), "--frame-times", str(ft), "--quiet"])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        code = main(["assemble", str(folder), "--spikes", str(csv_path), "--frame-times", str(ft), "--quiet"])
     assert code == 0
+    assert not any(".map2d-assemble-tmp" in str(w.message) for w in caught)   # notes name the files in place
     return _quiet(load_session, folder)
 
 
