@@ -174,3 +174,24 @@ def test_a_player_that_falls_behind_is_followed():
     t = match_frame_times(nominal, 2.5 + (1 - 3e-5) * shown)
     assert t.n_untimed == 0 and t.n_extra == 0 and t.n_slips == 2
     assert t.offset_s == pytest.approx(2.5, abs=1e-3) and t.drift == pytest.approx(-3e-5, abs=2e-6)
+
+
+def test_traces_and_rois_without_frame_times(tmp_path, capsys):
+    """--traces/--trace-times/--rois: the nominal times are kept (one clock), the folder loads as a
+    traces session with its ROI image; the command says the nominal times were used."""
+    from map2d.simulate import roi_label_image, simulate_session
+
+    session, _ = simulate_session(n_cells=3, minutes=1.0, responses="traces", seed=2, flashed_minutes=0.5,
+                                  repeats=0)
+    write_stimulus(tmp_path / "stim", sparse_noise=session.sparse_noise, gratings=session.gratings)
+    np.save(tmp_path / "traces.npy", session.responses.values)
+    (tmp_path / "times.txt").write_text("t_s\n" + "\n".join(repr(float(t)) for t in session.responses.times_s))
+    import tifffile
+    tifffile.imwrite(tmp_path / "rois.tif", roi_label_image(session.cell_ids, shape=(40, 40), radius_px=4.0, rng=0))
+    assert main(["assemble", str(tmp_path / "stim"), "--traces", str(tmp_path / "traces.npy"),
+                 "--trace-times", str(tmp_path / "times.txt"), "--rois", str(tmp_path / "rois.tif")]) == 0
+    assert "nominal stimulus times are used" in capsys.readouterr().out
+    s = _quiet(load_session, tmp_path / "stim")
+    assert s.responses.values.shape == session.responses.values.shape and s.rois is not None
+    np.testing.assert_array_equal(s.sparse_noise.times_s, session.sparse_noise.times_s)
+    assert s.timing is None and len(s.gratings) == len(session.gratings)
