@@ -1639,9 +1639,9 @@ def add_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: Grat
     another in time is refused. ``stimulus.json`` and the stimulus part of ``session.json`` (its
     ``sparse_noise``, ``gratings``, ``display`` and ``generator`` keys; others are kept) are rewritten;
     ``generator`` lists the calls in order. ``files`` maps further file names (e.g. rendered frames)
-    to functions ``write(path)``; an existing one is refused unless ``overwrite``. Everything is
-    written beside the folder's files first and moved into place at the end (manifests last), so a
-    refusal or failure changes nothing.
+    to functions ``write(path)``; an existing one is refused unless ``overwrite``. Every check comes
+    before any write; the files are written in place (``map2d stimulus`` runs this on a copy of
+    ``--out`` that replaces it atomically, :func:`map2d.pipeline.results_folder`).
 
     Returns
     -------
@@ -1653,8 +1653,8 @@ def add_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: Grat
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
         raise BadInput(folder, "--out", "exists and is not a folder")
-    if (folder.is_dir() and any(folder.iterdir()) and not (folder / STIMULUS_MANIFEST).is_file()
-            and not (folder / MANIFEST).is_file()):
+    if (folder.is_dir() and any(p for p in folder.iterdir() if not p.name.startswith("."))
+            and not (folder / STIMULUS_MANIFEST).is_file() and not (folder / MANIFEST).is_file()):
         raise BadInput(folder, "--out", "is a non-empty folder that holds no stimulus or session; choose another")
     folder.mkdir(parents=True, exist_ok=True)
     mpath = folder / STIMULUS_MANIFEST
@@ -1693,7 +1693,7 @@ def add_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: Grat
                                                                    f"{old_g.offset_s.max():.6g} s (--start-s)",
                                row=hit + 1)
             g = combine_tables(old_g, gratings)
-    if sn is not None and g is not None and (sparse_noise is not None or gratings is not None):
+    if sn is not None and g is not None:
         t0, t1 = float(sn.times_s[0]), float(sn.frame_ends_s()[-1])
         hit = _span_overlap(t0, t1, g.onset_s, g.offset_s)
         if hit is not None:
@@ -1705,42 +1705,32 @@ def add_stimulus(folder, sparse_noise: SparseNoise | None = None, gratings: Grat
     records = list(records) if isinstance(records, list) else [records]
     if info is not None:
         kind = str(info.get("command", ""))
-        replaced = ("sparse-noise" in kind) or ("gratings" in kind and (overwrite or old_g is None))
-        if replaced:
+        if "sparse-noise" in kind or overwrite or old_g is None:
             records = [r for r in records if not (isinstance(r, dict) and str(r.get("command", "")) == kind)]
         records.append(info)
-    tmp = folder / ".map2d-stimulus-tmp"
-    shutil.rmtree(tmp, ignore_errors=True)
-    tmp.mkdir()
-    written = []
-    try:
-        new = {k: v for k, v in manifest.items() if k not in ("sparse_noise", "gratings", "display", "generator")}
-        if sn is not None:
-            new["sparse_noise"] = (_write_sparse_noise(tmp, sn) if sparse_noise is not None
-                                   else manifest["sparse_noise"])
-            if sparse_noise is not None:
-                written += ["sparse_noise.npy", "sparse_noise_times.npy"]
-        if g is not None:
-            new["gratings"] = _write_gratings(tmp, g) if gratings is not None else manifest["gratings"]
-            if gratings is not None:
-                written.append("gratings.csv")
-        disp = display.to_manifest() if display is not None else manifest.get("display")
-        if disp is not None:
-            new["display"] = disp
-        if records:
-            new["generator"] = records
-        for name, write in (files or {}).items():
-            write(tmp / name)
-            written.append(name)
-        session.update({k: new[k] for k in ("sparse_noise", "gratings", "display", "generator") if k in new})
-        for name in written:
-            os.replace(tmp / name, folder / name)
-        for path, content in ((mpath, new), (spath, session)):
-            part = tmp / path.name
-            part.write_text(json.dumps(content, indent=2) + "\n", encoding="utf-8")
-            os.replace(part, path)
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
+    # writes: the new data files, further files, then the manifests
+    write_stimulus(folder, sparse_noise=sparse_noise, gratings=None if gratings is None else g)
+    written = (["sparse_noise.npy", "sparse_noise_times.npy"] if sparse_noise is not None else []) + (
+        ["gratings.csv"] if gratings is not None else [])
+    new = {k: v for k, v in manifest.items() if k not in ("sparse_noise", "gratings", "display", "generator")}
+    if sn is not None:
+        new["sparse_noise"] = {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy",
+                               "grid": sn.grid.to_manifest()}
+    if g is not None:
+        new["gratings"] = {"table": "gratings.csv", "phase_origin_deg": list(map(float, g.phase_origin_deg))}
+    disp = display.to_manifest() if display is not None else manifest.get("display")
+    if disp is not None:
+        new["display"] = disp
+    if records:
+        new["generator"] = records
+    for name, write in (files or {}).items():
+        write(folder / name)
+        written.append(name)
+    session.update({k: new[k] for k in ("sparse_noise", "gratings", "display", "generator") if k in new})
+    for path, content in ((mpath, new), (spath, session)):
+        part = path.with_name(path.name + ".tmp")
+        part.write_text(json.dumps(content, indent=2) + "\n", encoding="utf-8")
+        os.replace(part, path)
     return written + [STIMULUS_MANIFEST, MANIFEST]
 
 

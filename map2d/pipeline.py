@@ -380,8 +380,10 @@ def run_stimulus(args) -> int:
         files[rnd.FRAMES_FILE] = lambda path: rnd.write_frames_tiff(
             path.parent, frames, name=path.name, rate_hz=rate, display=display, scale=args.render_scale,
             times_s=times)
-    written = add_stimulus(args.out, sparse_noise=sparse, gratings=table, display=display, info=info,
-                           overwrite=bool(getattr(args, "overwrite", False)), files=files)
+    with results_folder(args.out) as tmp:      # a copy of --out with the block added replaces it atomically
+        _copy_folder(args.out, tmp)
+        written = add_stimulus(tmp, sparse_noise=sparse, gratings=table, display=display, info=info,
+                               overwrite=bool(getattr(args, "overwrite", False)), files=files)
     if not args.quiet:
         if sparse is not None:
             what = (f"{sparse.n_frames} sparse-noise frames of {sparse.grid.ny} x {sparse.grid.nx} "
@@ -393,6 +395,20 @@ def run_stimulus(args) -> int:
             print(f"map2d: rendered {frames.shape[0]} frames of {frames.shape[2]} x {frames.shape[1]} px "
                   f"into {rnd.FRAMES_FILE}")
     return 0
+
+
+def _copy_folder(src, dst) -> None:
+    """Copy the files and folders of ``src`` (if it is a folder) into the existing folder ``dst``."""
+    src = Path(src)
+    if not src.is_dir():
+        return
+    for p in src.iterdir():
+        if p.name == RESULTS_MARK:
+            continue
+        if p.is_dir() and not p.is_symlink():
+            shutil.copytree(p, dst / p.name, symlinks=True)
+        else:
+            shutil.copy2(p, dst / p.name, follow_symlinks=False)
 
 
 def run_simulate(args) -> int:

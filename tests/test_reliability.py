@@ -174,8 +174,9 @@ def test_forked_call_cancel_ends_the_child_and_result_still_answers():
 
 # -- results folders -----------------------------------------------------------------------------
 def _stimulus(out, *extra):
+    # --overwrite: a second sparse noise replaces the first (without it, it is refused: map2d stimulus adds)
     return map2d.cli.main(["stimulus", "sparse-noise", "--out", str(out), "--minutes", "0.05", "--quiet",
-                           *extra])
+                           "--overwrite", *extra])
 
 
 def _siblings(out):
