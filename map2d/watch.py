@@ -193,7 +193,7 @@ def load_stimulus_noise(folder) -> tuple[SparseNoise, dict]:
                 sparse, _ = _load_stimuli(folder, {"sparse_noise": manifest["sparse_noise"]}, [])
                 if not np.issubdtype(sparse.frames.dtype, np.integer):
                     raise BadInput(folder / manifest["sparse_noise"]["frames"], "frames",
-                                   "watch follows sparse noise (+1/-1/0 frames); dense noise is analysed offline")
+                                   "watch follows sparse noise (+1/-1/0 frames); dense noise is analyzed offline")
                 return sparse, manifest
     raise BadInput(folder / STIMULUS_MANIFEST, "sparse_noise",
                    "no sparse-noise stimulus found (write it first with map2d stimulus sparse-noise --out "
