@@ -753,7 +753,7 @@ def write_analysis(folder, analysis, session, report=True) -> list:
         from .export.fov import write_fov
         props = {k: np.asarray([np.nan if v is None else float(v) for v in an.cells[k]], float)
                  for k in ("center_x_deg", "center_y_deg", "pref_orientation_deg", "pref_sf_cpd",
-                           "agreement", "responsive")}
+                           "agreement", "responsive", "linear") if k in an.cells}
         written += write_fov(folder, session.rois, an.cell_ids, props,
                              label_offset=int(getattr(session, "roi_label_offset", 0)))
     if report:

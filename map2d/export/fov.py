@@ -8,9 +8,12 @@ Given the label image of an imaging session (``(H, W)`` integers; label 0 is bac
   the property and its unit), each ROI's pixels carrying its cell's value and NaN elsewhere (background,
   labels of no listed cell, and cells whose value is NaN). The planes have the shape and orientation
   of the label image (row 0 at the top), so they line up with the imaging frames.
-- ``fov_<property>.png``: one overlay per property (matplotlib ``Figure`` rendered by Agg; pyplot is
-  not used) with a colour bar in the
-  property's unit; preferred orientation uses a cyclic colour map over 0-180 deg.
+- ``fov_<property>.png``: one overlay per property (matplotlib ``Figure`` rendered by Agg at 200 dpi;
+  pyplot is not used) with a colour bar in the property's unit and each ROI numbered with its cell id
+  (up to :data:`MAX_NUMBERED` ROIs);
+  preferred orientation uses a cyclic colour map of constant lightness over 0-180 deg
+  (:mod:`map2d.report.colours`, readable on the dark background at every orientation), yes/no columns
+  two categorical colours; ROIs without a value are grey.
 """
 
 from __future__ import annotations
@@ -191,7 +194,7 @@ def write_fov(folder, labels, cell_ids, properties, *, label_offset=0, backgroun
     for p, name in enumerate(names):
         path = folder / f"fov_{name}.png"
         _overlay_png(path, planes[p], labels_arr, name, *titles[name], is_bool=props[name][1],
-                     background=background)
+                     background=background, label_offset=label_offset)
         paths.append(path)
     return paths
 
@@ -209,27 +212,52 @@ def read_fov(path) -> dict:
     return {"planes": arr, "labels": labels, "info": ij.get("Info")}
 
 
-def _overlay_png(path, plane, labels, name, title, unit, *, is_bool, background):
+#: Colours of the yes / no maps (categorical, the report's; NaN ROIs are grey, background dark).
+YES_NO_COLOURS = ("#7d8b99", "#d9822b")
+_BACKGROUND = "#26282c"
+#: Most ROIs numbered in a PNG.
+MAX_NUMBERED = 120
+_NO_VALUE = "#787a80"
+
+
+def _is_yes_no(name, plane, is_bool):
+    """Booleans, or a yes/no column (:data:`PROPERTY_INFO`) passed as 0.0 / 1.0 / NaN."""
+    if is_bool:
+        return True
+    if PROPERTY_INFO.get(name, ("", ""))[1] != "yes/no":
+        return False
+    v = plane[np.isfinite(plane)]
+    return bool(np.all((v == 0) | (v == 1)))
+
+
+def _overlay_png(path, plane, labels, name, title, unit, *, is_bool, background, label_offset=0):
     import matplotlib
     from matplotlib import colors
     from matplotlib.figure import Figure
     from skimage.segmentation import find_boundaries
 
+    from ..report.colours import cyclic_colormap
+
     h, w = plane.shape
-    width = 6.0
-    fig = Figure(figsize=(width, max(2.5, width * h / w * 0.85)), dpi=100)
+    width = 6.4
+    fig = Figure(figsize=(width, max(2.8, width * h / w * 0.82)), dpi=100)
     ax = fig.add_subplot(1, 1, 1)
+    ax.set_facecolor(_BACKGROUND)
     if background is not None:
         lo, hi = np.nanpercentile(background, [1, 99]) if np.isfinite(background).any() else (0, 1)
         ax.imshow(background, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1,
-                  interpolation="nearest")
+                  interpolation="nearest", alpha=0.55)
     else:
-        ax.imshow(np.zeros((h, w)), cmap="gray", vmin=0, vmax=1, interpolation="nearest")
+        ax.imshow(np.zeros((h, w)), cmap=colors.ListedColormap([_BACKGROUND]), interpolation="nearest")
+    in_roi = labels > 0
+    ax.imshow(np.ma.masked_where(~(in_roi & ~np.isfinite(plane)), np.ones((h, w))),
+              cmap=colors.ListedColormap([_NO_VALUE]), interpolation="nearest")
     data = np.ma.masked_invalid(plane)
+    yes_no = _is_yes_no(name, plane, is_bool)
     if _is_orientation(name):
-        cmap, norm = matplotlib.colormaps["twilight"], colors.Normalize(0.0, 180.0)
-    elif is_bool:
-        cmap = colors.ListedColormap(["#7f7f7f", "#e6a100"])
+        cmap, norm = cyclic_colormap(), colors.Normalize(0.0, 180.0)
+    elif yes_no:
+        cmap = colors.ListedColormap(list(YES_NO_COLOURS))
         norm = colors.BoundaryNorm([-0.5, 0.5, 1.5], 2)
     else:
         finite = plane[np.isfinite(plane)]
@@ -239,22 +267,36 @@ def _overlay_png(path, plane, labels, name, title, unit, *, is_bool, background)
         if hi <= lo:
             lo, hi = lo - 0.5, hi + 0.5
         cmap, norm = matplotlib.colormaps["viridis"], colors.Normalize(lo, hi)
-    im = ax.imshow(data, cmap=cmap, norm=norm, interpolation="nearest", alpha=0.9)
+    im = ax.imshow(data, cmap=cmap, norm=norm, interpolation="nearest")
     edges = find_boundaries(labels, mode="outer") & (labels == 0)   # ring just outside each ROI
     if edges.any():
-        ax.imshow(np.ma.masked_where(~edges, np.ones((h, w))), cmap=colors.ListedColormap(["white"]),
-                  alpha=0.6, interpolation="nearest")
+        ax.imshow(np.ma.masked_where(~edges, np.ones((h, w))), cmap=colors.ListedColormap(["#d0d0d0"]),
+                  alpha=0.5, interpolation="nearest")
+    # ROI numbers (cell ids) at the ROI centroids, white on a dark outline; up to MAX_NUMBERED ROIs
+    # (text is most of a PNG's drawing time; report.html numbers every ROI)
+    ids = np.unique(labels[labels > 0])
+    if 0 < ids.size <= MAX_NUMBERED:
+        import matplotlib.patheffects as pe
+        from scipy import ndimage
+        cen = ndimage.center_of_mass(np.ones_like(labels), labels, ids)
+        size = 7 if ids.size <= 60 else 5.5
+        for lab, (cy, cx) in zip(ids, cen):
+            ax.text(cx, cy, str(int(lab) - int(label_offset)), ha="center", va="center", fontsize=size,
+                    color="white", path_effects=[pe.withStroke(linewidth=1.6, foreground="black")])
     cb = fig.colorbar(im, ax=ax, fraction=0.046, pad=0.04)
-    if is_bool:
+    cb.ax.tick_params(labelsize=9)
+    if yes_no:
         cb.set_ticks([0, 1])
         cb.set_ticklabels(["no", "yes"])
-        cb.set_label(title)
+        cb.set_label(f"{title} (grey ROI: no value)", fontsize=10)
     else:
-        cb.set_label(f"{title} ({unit})")
+        cb.set_label(f"{title} ({unit}; grey ROI: no value)", fontsize=10)
         if _is_orientation(name):
             cb.set_ticks([0, 45, 90, 135, 180])
-    ax.set_title(f"{title}, field of view")
-    ax.set_xlabel("imaging x (pixels)")
-    ax.set_ylabel("imaging y (pixels, row 0 at top)")
-    fig.tight_layout()
-    fig.savefig(path)
+    numbered = 0 < ids.size <= MAX_NUMBERED
+    ax.set_title(f"{title}, field of view" + (" (numbers: cell ids)" if numbered else ""), fontsize=11)
+    ax.set_xlabel("imaging x (pixels)", fontsize=10)
+    ax.set_ylabel("imaging y (pixels, row 0 at top)", fontsize=10)
+    ax.tick_params(labelsize=9)
+    fig.subplots_adjust(left=0.11, right=0.93, bottom=0.12, top=0.92)   # fixed: no layout pass (a whole draw)
+    fig.savefig(path, dpi=200)

@@ -259,10 +259,19 @@ def _tuning(an, r, flashed_se=None):
 def _map_part(an, r, pack_maps):
     m = an.maps
     li, significant = F._map_lag_index(m, r)
+    # the time course at the cell's own field pixel (map2d.fit.spatial), else at the pixel of the fitted
+    # centre, else at the largest |z| of the linear map
+    g = m.grid
     fp = getattr(an, "fields", None)
-    if fp is not None and fp.field_pixel[r, 0] >= 0:     # the cell's own field (map2d.fit.spatial)
+    i = j = -1
+    if fp is not None and fp.field_pixel[r, 0] >= 0:
         i, j = (int(v) for v in fp.field_pixel[r])
     else:
+        cx, cy = F._vfloat(an, "center_x_deg", r), F._vfloat(an, "center_y_deg", r)
+        if math.isfinite(cx) and math.isfinite(cy):
+            j = int(round((cx - g.center_x_deg) / g.dx_deg + (g.nx - 1) / 2.0))
+            i = int(round((g.ny - 1) / 2.0 - (cy - g.center_y_deg) / g.dy_deg))
+    if not (0 <= i < g.ny and 0 <= j < g.nx):
         z = np.abs(np.nan_to_num(np.asarray(m.linear_z[r, li], float)))
         i, j = np.unravel_index(int(np.argmax(z)), z.shape)
     x, y = m.grid.point_of(i, j)
@@ -287,14 +296,16 @@ def _surface_part(an, r):
     reason = ""
     if an.predicted_h is not None and an.maps is not None:
         ok_map = bool(an.maps.responsive[r])
-        gain = float(an.forward["gain"][r]) if an.forward is not None else float("nan")
+        g = complex(an.forward["gain"][r]) if an.forward is not None else complex(np.nan)
+        gain = abs(g)
         if not ok_map:
             reason = "no significant map to predict from"
         elif not (math.isfinite(gain) and gain > 0):
-            reason = "no positive gain between map and gratings"
-        else:
+            reason = "no gain between map and gratings (no grating response)"
+        else:                     # magnitudes: |gain| (a negative gain flips the sign, not |H|)
             pred = np.abs(np.asarray(an.predicted_h[r])) * gain
             out["gain"] = _r(gain)
+            out["gain_negative"] = bool(g.imag == 0 and g.real < 0)
     both = np.stack([meas, pred if pred is not None else np.full(meas.shape, np.nan)])
     out["h"] = pack(both)
     out["has_pred"] = pred is not None

@@ -245,12 +245,36 @@ def _cell_facts(an, r):
                  ("preferred orientation", ori), ("preferred SF", sf),
                  ("F1/F0", _num(f("f1_f0"), "{:.2f}")),
                  ("drifting class", F._vtext(an, "grating_class", r) or "–")]
+        rows += _levels(an, r)
     if an.forward is not None:
         rows += [("agreement", _num(f("agreement"), "{:.2f}")),
                  ("gratings -> map similarity", _num(f("inverse_similarity"), "{:.2f}"))]
     reason = F._vtext(an, "linear_reason", r)
     rows.append(("linear", _yes_no(F._vbool(an, "linear", r)) + (f" ({reason})" if reason else "")))
     return rows
+
+
+def _levels(an, r):
+    """The reference levels the tuning curves are measured from: blank (flashed) and spontaneous (drifting)."""
+    out = []
+    cid = int(an.cell_ids[r])
+    fl = an.flashed
+    if fl is not None:
+        k = np.flatnonzero(np.asarray(fl.cell_ids) == cid)
+        if k.size:
+            k = int(k[0])
+            pl = int(fl.peak_lag_index[k])
+            bm = np.asarray(fl.blank_mean[k], float)
+            if 0 <= pl < bm.size:
+                out.append(("blank level (flashed)", _num(bm[pl], "{:.3g}", an.unit)))
+    dr = an.drifting
+    if dr is not None:
+        k = np.flatnonzero(np.asarray(dr.cell_ids) == cid)
+        if k.size:
+            src = getattr(dr, "spontaneous_source", "")
+            out.append(("spontaneous level (drifting)", _num(dr.spontaneous[int(k[0])], "{:.3g}", an.unit)
+                        + (f" (from {src})" if src and src != "none" else "")))
+    return out
 
 
 def _all_cells_table(an):

@@ -172,7 +172,13 @@ Plot.prototype.text = function (x, y, t, o) {
 };
 Plot.prototype.note = function (t, col) {
   var cx = (this.m.l + this.w - this.m.r) / 2, cy = (this.m.t + this.h - this.m.b) / 2;
-  var lines = String(t).split("\n"), s = "";
+  var width = this.w - this.m.l - this.m.r, per = Math.max(12, Math.floor((width - 10) / 7.2));
+  var lines = [], s = "";
+  String(t).split("\n").forEach(function (ln) { wrap(ln, per).split("\n").forEach(function (x) { lines.push(x); }); });
+  var wmax = 0;
+  lines.forEach(function (ln) { wmax = Math.max(wmax, ln.length * 7.2); });
+  s += '<rect x="' + (cx - wmax / 2 - 5) + '" y="' + (cy - lines.length * 7.5 - 6) + '" width="' + (wmax + 10) + '" height="' +
+    (lines.length * 15 + 6) + '" fill="#fff" opacity="0.8" rx="2"/>';
   lines.forEach(function (ln, i) {
     s += '<text x="' + cx + '" y="' + (cy + (i - (lines.length - 1) / 2) * 15) + '" text-anchor="middle" class="note"' +
       (col ? ' fill="' + col + '"' : "") + ">" + esc(ln) + "</text>";
@@ -283,7 +289,7 @@ function mapPlot(ext, url, title, o) {
 function drawMaps(d, c) {
   var g = S.grid, ny = g.ny, nx = g.nx, ext = g.ext, m = d.map, out = [];
   var v = unpack(m.maps), lim = m.maps.m, lagms = S.lags_ms[m.li];
-  var names = ["bright spots (ON)", "dark spots (OFF)", "linear (ON \u2212 OFF)"];
+  var names = ["ON", "OFF", "linear (ON \u2212 OFF)"];
   for (var k = 0; k < 3; k++) {
     var url = mapURL(v, ny, nx, k * ny * nx, LUT.signed, -lim, lim);
     var p = mapPlot(ext, url, names[k], {bar: k === 2});
@@ -291,7 +297,7 @@ function drawMaps(d, c) {
     if (o && fin(o[2])) { p.ellipse(o[0], o[1], o[2], o[3], o[4], "#111"); }
     if (o) p.add('<path d="M' + (p.X(o[0]) - 5) + " " + p.Y(o[1]) + "h10M" + p.X(o[0]) + " " + (p.Y(o[1]) - 5) + 'v10" stroke="#111" stroke-width="1.5"/>');
     if (k === 2) p.add('<circle cx="' + p.X(m.px[0]) + '" cy="' + p.Y(m.px[1]) + '" r="4" fill="none" stroke="#fff" stroke-width="1.5"/>');
-    p.axes({xl: "azimuth (deg)", yl: "elevation (deg)", title: names[k] + ", " + fmt(lagms, 3) + " ms" + (m.sig ? "" : " (n.s.)"), nx: 3, ny: 3});
+    p.axes({xl: "azimuth (deg)", yl: "elevation (deg)", title: names[k] + ", " + fmt(lagms, 3) + " ms" + (m.sig ? "" : ", n.s."), nx: 3, ny: 3});
     out.push(finish(p, k === 2 ? [LUT.signed, -lim, lim, "map (" + UNIT + ")"] : null));
   }
   /* time course at the strongest pixel */
@@ -301,7 +307,7 @@ function drawMaps(d, c) {
   q.vline(lags[m.li], "#999", {dash: "3 3"});
   var cols = [["ON", "#d9822b"], ["OFF", "#5b4a9b"], ["linear", "#222", "5 3"]];
   for (var j = 0; j < 3; j++) { q.line(lags, m.tc[j], cols[j][1], {dash: cols[j][2]}); q.pts(lags, m.tc[j], cols[j][1], {r: 2.4}); }
-  q.legend(cols, "left");
+  q.legend(cols, m.li < lags.length / 2 ? "right" : "left");
   if (m.last) q.note("peak at the last lag:\nthe lag window may be too short", "#b03a2e");
   q.axes({xl: "lag (ms)", yl: "map (" + UNIT + ")", title: "time course at (" + fmt(m.px[0], 3) + ", " + fmt(m.px[1], 3) + ") deg"});
   out.push(q.svg());
@@ -341,8 +347,8 @@ function drawSurfaces(d, c) {
   var why = s.has_pred ? (lin === true ? "" : "not drawn as a prediction: " + (lin === false ? "cell not linear" : "no linearity call") +
       (S.col.linear_reason[ROW_OF[c]] ? "\n(" + S.col.linear_reason[ROW_OF[c]] + ")" : "")) : (s.pred_reason || "no prediction");
   if (S.lags_ms) {
-    var p2 = surfPlot(h, no * ns, 0, hi, LUT.magnitude, s.has_pred ? "predicted (map \u00d7 " + fmt(s.gain, 3) + ")" : "predicted from map",
-      {bar: true, grey: !!why, note: why ? wrap(why, 34) : ""});
+    var p2 = surfPlot(h, no * ns, 0, hi, LUT.magnitude, s.has_pred ? "predicted (map \u00d7 " + (s.gain_negative ? "\u2212" : "") + fmt(s.gain, 3) + ")" : "predicted from map",
+      {bar: true, grey: !!why, note: why});
     out.push(finish(p2, [LUT.magnitude, 0, hi, "|H| (" + UNIT + " / contrast)"]));
   } else {
     out[0] = finish(p1, [LUT.magnitude, 0, hi, "|H| (" + UNIT + " / contrast)"]);
@@ -355,6 +361,7 @@ function drawSurfaces(d, c) {
     var g = S.grid, ny = g.ny, nx = g.nx;
     var a = unpack(s.inv.g), ma = s.inv.g.m;
     var pa = mapPlot(g.ext, mapURL(a, ny, nx, 0, LUT.signed, -ma, ma), "");
+    if (lin !== true) { pa.shade(0.72); pa.note("a linear prediction: " + (lin === false ? "cell not linear" : "no linearity call"), "#333"); }
     pa.axes({xl: "azimuth (deg)", yl: "elevation (deg)", title: "map rebuilt from gratings", nx: 3, ny: 3});
     out.push(pa.svg());
     if (s.inv.m) {
@@ -438,7 +445,7 @@ function drawTuning(d, c) {
     z.legend([["disk (radius)", "#1f7a8c"], ["annulus (hole radius)", "#c0392b", "5 3"]]);
     var noVals = !d.size.disk.some(fin);
     if (noVals) z.note("no fitted centre");
-    else if (lin !== true) { z.shade(0.75); z.note(wrap("prediction holds for linear cells only; " + (lin === false ? "this cell is not linear" : "no linearity call"), 34), "#333"); }
+    else if (lin !== true) { z.shade(0.75); z.note("prediction holds for linear cells only; " + (lin === false ? "this cell is not linear" : "no linearity call"), "#333"); }
     z.axes({xl: "radius (deg)", yl: "response (" + UNIT + " \u00d7 deg\u00b2)", title: "size tuning (from the map)"});
     out.push(z.svg());
   }
@@ -466,8 +473,10 @@ function openCell(c, how) {
   var d = CELLS[c], box = document.getElementById("viewer");
   var figs = [];
   try {
-    if (d.map) figs.push(["maps at the peak lag and their time course", drawMaps(d, c)]);
-    if (d.surf) figs.push(["flashed gratings: orientation \u00d7 spatial frequency", drawSurfaces(d, c)]);
+    if (d.map) figs.push(["maps at the peak lag (ON: after a bright spot, OFF: after a dark spot) and their time course", drawMaps(d, c)]);
+    var f1f0 = S.col.f1_f0[ROW_OF[c]];
+    if (d.surf) figs.push(["flashed gratings: orientation \u00d7 spatial frequency" + (fin(f1f0) && f1f0 < S.thr.f1_f0 ?
+      " \u2014 F1/F0 " + fmt(f1f0, 2) + " < " + S.thr.f1_f0 + ": little phase dependence, the mean over phase carries the tuning" : ""), drawSurfaces(d, c)]);
     if (d.tun !== undefined || d.size || (d.surf && d.surf.lag)) figs.push(["tuning (" + (d.tun ? d.tun.src + " gratings" : "gratings") + ") and size", drawTuning(d, c)]);
   } catch (e) {
     figs.push(["error", ['<p class="absent">could not draw this cell: ' + esc(e.message) + "</p>"]]);
