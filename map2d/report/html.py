@@ -81,7 +81,7 @@ svg text.small { font-size: 11.5px; } svg text.note { font-size: 12.5px; font-we
 .figrow { display: flex; flex-wrap: wrap; gap: 6px; margin-bottom: 10px; background: #fff;
           border: 1px solid #e4e0d4; padding: 4px; }
 .rowtitle { flex: 0 0 100%; font-size: 13px; color: #555; }
-.flagged { margin-top: 6px; }
+.flagged { margin-top: 6px; flex: 0 0 100%; }
 .scroll { overflow: auto; max-height: 560px; border: 1px solid #ddd8ca; background: #ffffff; }
 .scroll table th { position: sticky; top: 0; white-space: nowrap; }
 .scroll td { white-space: nowrap; max-width: 260px; overflow: hidden; text-overflow: ellipsis; }

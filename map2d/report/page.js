@@ -342,16 +342,14 @@ function drawSurfaces(d, c) {
   if (!s) return out;
   var h = unpack(s.h), no = S.ori.length, ns = S.sfs.length, hi = s.h.m;
   var lin = S.col.linear[ROW_OF[c]];
-  var p1 = surfPlot(h, 0, 0, hi, LUT.magnitude, "measured |H|");
-  out.push(finish(p1, null));
+  var p1 = surfPlot(h, 0, 0, hi, LUT.magnitude, "measured |H|", {bar: !S.lags_ms});
+  out.push(finish(p1, S.lags_ms ? null : [LUT.magnitude, 0, hi, "|H| (" + UNIT + " / contrast)"]));
   var why = s.has_pred ? (lin === true ? "" : "not drawn as a prediction: " + (lin === false ? "cell not linear" : "no linearity call") +
       (S.col.linear_reason[ROW_OF[c]] ? "\n(" + S.col.linear_reason[ROW_OF[c]] + ")" : "")) : (s.pred_reason || "no prediction");
   if (S.lags_ms) {
     var p2 = surfPlot(h, no * ns, 0, hi, LUT.magnitude, s.has_pred ? "predicted (map \u00d7 " + (s.gain_negative ? "\u2212" : "") + fmt(s.gain, 3) + ")" : "predicted from map",
       {bar: true, grey: !!why, note: why});
     out.push(finish(p2, [LUT.magnitude, 0, hi, "|H| (" + UNIT + " / contrast)"]));
-  } else {
-    out[0] = finish(p1, [LUT.magnitude, 0, hi, "|H| (" + UNIT + " / contrast)"]);
   }
   var pm = unpack(s.pm), lim = s.pm.m;
   var cls = S.col.grating_class[ROW_OF[c]];
@@ -360,10 +358,10 @@ function drawSurfaces(d, c) {
   if (s.inv) {
     var g = S.grid, ny = g.ny, nx = g.nx;
     var a = unpack(s.inv.g), ma = s.inv.g.m;
-    var pa = mapPlot(g.ext, mapURL(a, ny, nx, 0, LUT.signed, -ma, ma), "");
+    var pa = mapPlot(g.ext, mapURL(a, ny, nx, 0, LUT.signed, -ma, ma), "", {bar: !s.inv.m});
     if (lin !== true) { pa.shade(0.72); pa.note("a linear prediction: " + (lin === false ? "cell not linear" : "no linearity call"), "#333"); }
     pa.axes({xl: "azimuth (deg)", yl: "elevation (deg)", title: "map rebuilt from gratings", nx: 3, ny: 3});
-    out.push(pa.svg());
+    out.push(finish(pa, s.inv.m ? null : [LUT.signed, -1, 1, "fraction of peak (1)"]));
     if (s.inv.m) {
       var b = unpack(s.inv.m), mb = s.inv.m.m;
       var pb = mapPlot(g.ext, mapURL(b, ny, nx, 0, LUT.signed, -mb, mb), "", {bar: true});
@@ -477,7 +475,8 @@ function openCell(c, how) {
     var f1f0 = S.col.f1_f0[ROW_OF[c]];
     if (d.surf) figs.push(["flashed gratings: orientation \u00d7 spatial frequency" + (fin(f1f0) && f1f0 < S.thr.f1_f0 ?
       " \u2014 F1/F0 " + fmt(f1f0, 2) + " < " + S.thr.f1_f0 + ": little phase dependence, the mean over phase carries the tuning" : ""), drawSurfaces(d, c)]);
-    if (d.tun !== undefined || d.size || (d.surf && d.surf.lag)) figs.push(["tuning (" + (d.tun ? d.tun.src + " gratings" : "gratings") + ") and size", drawTuning(d, c)]);
+    if (d.tun !== undefined || d.size || (d.surf && d.surf.lag)) figs.push([[d.tun !== undefined ? "tuning (" + (d.tun ? d.tun.src + " gratings" : "no grating curve") + ")" : "",
+      d.size ? "size tuning predicted from the map" : "", d.surf && d.surf.lag ? "flashed response over lag" : ""].filter(Boolean).join("; "), drawTuning(d, c)]);
   } catch (e) {
     figs.push(["error", ['<p class="absent">could not draw this cell: ' + esc(e.message) + "</p>"]]);
     if (window.console) console.warn("map2d: cell " + c + ": " + e.message);
@@ -741,9 +740,12 @@ function drawFov(key) {
     img.data[4 * i] = rgb[0]; img.data[4 * i + 1] = rgb[1]; img.data[4 * i + 2] = rgb[2]; img.data[4 * i + 3] = 255;
   }
   ctx.putImageData(img, 0, 0);
-  var big = document.createElement("canvas"); big.width = w * scale; big.height = h * scale;
+  var dpr = Math.max(1, Math.min(3, window.devicePixelRatio || 1));     /* sharp on high-density screens */
+  var big = document.createElement("canvas"); big.width = Math.round(w * scale * dpr); big.height = Math.round(h * scale * dpr);
+  big.style.width = (w * scale) + "px"; big.style.height = (h * scale) + "px";
   big.id = "fov-canvas";
   var g = big.getContext("2d");
+  g.setTransform(dpr, 0, 0, dpr, 0, 0);
   g.imageSmoothingEnabled = false;
   g.drawImage(cv, 0, 0, w * scale, h * scale);
   g.font = "11px system-ui, sans-serif"; g.textAlign = "center"; g.textBaseline = "middle";
