@@ -283,3 +283,27 @@ def test_bad_fov_inputs_raise_value_error_naming_the_argument(tmp_path, kwargs, 
     with pytest.raises(ValueError, match=word):
         write_fov(tmp_path / "fov", **args)
     assert not (tmp_path / "fov" / "fov.tif").exists()
+
+
+def test_fov_png_yes_no_columns_are_categorical_and_orientation_cyclic(tmp_path):
+    """A yes/no column passed as 0/1/NaN floats (as the pipeline does) gets the two categorical colours,
+    not a continuous bar; orientation uses the constant-lightness cyclic map (0 deg = 180 deg)."""
+    from matplotlib.image import imread
+
+    from map2d.export.fov import YES_NO_COLOURS, _is_yes_no
+    from map2d.report.colours import cyclic_colormap
+
+    plane = np.array([[np.nan, 1.0], [0.0, 1.0]])
+    assert _is_yes_no("responsive", plane, False) and _is_yes_no("linear", plane, False)
+    assert not _is_yes_no("agreement", plane, False) and not _is_yes_no("responsive", plane * 0.5, False)
+    cm = cyclic_colormap()
+    np.testing.assert_allclose(cm(0.0), cm(1.0 - 1e-9), atol=0.05)
+    # big square ROIs: the PNG shows exactly the two categorical colours inside them
+    labels = np.zeros((60, 90), int)
+    labels[10:50, 5:40], labels[10:50, 50:85] = 1, 2
+    paths = write_fov(tmp_path, labels, [1, 2], {"responsive": np.array([1.0, 0.0])})
+    img = imread(paths[1])[..., :3]
+    colours = {tuple(int(round(255 * v)) for v in px) for px in img.reshape(-1, 3)}
+    for hexc in YES_NO_COLOURS:
+        rgb = tuple(int(hexc[i:i + 2], 16) for i in (1, 3, 5))
+        assert rgb in colours

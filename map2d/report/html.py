@@ -76,7 +76,7 @@ svg text.small { font-size: 11.5px; } svg text.note { font-size: 12.5px; font-we
 .vhead { display: flex; align-items: center; gap: 10px; margin-bottom: 8px; }
 .vhead .hint { color: #666; font-size: 12.5px; }
 .vbody { display: flex; gap: 14px; align-items: flex-start; }
-.facts-box { flex: 0 0 300px; } .facts-box table { width: 300px; }
+.facts-box { flex: 0 0 280px; } .facts-box table { width: 280px; }
 .figs { flex: 1 1 auto; min-width: 0; }
 .figrow { display: flex; flex-wrap: wrap; gap: 6px; margin-bottom: 10px; background: #fff;
           border: 1px solid #e4e0d4; padding: 4px; }

@@ -278,7 +278,7 @@ function finish(p, bar) {
 /* ---------- the cell panel ---------- */
 function mapPlot(ext, url, title, o) {
   o = o || {};
-  var pw = 180, ph = Math.max(110, Math.min(250, pw * (ext[3] - ext[2]) / (ext[1] - ext[0])));
+  var pw = 170, ph = Math.max(110, Math.min(250, pw * (ext[3] - ext[2]) / (ext[1] - ext[0])));
   var r = o.bar ? 88 : 14;
   var p = new Plot(58 + pw + r, 26 + ph + 44, {x: [ext[0], ext[1]], y: [ext[2], ext[3]], r: r, equal: true});
   p.add('<rect x="0" y="0" width="' + p.w + '" height="' + p.h + '" fill="#d6d6d6"/>');
