@@ -15,9 +15,11 @@ the response ``R = m + c |H|`` (``m`` the phase-averaged response, ``H`` the fir
 the orientations nearest the preference. The noise variance of ``H`` per condition is measured from
 single presentations (``Analysis.measured_noise``, :func:`map2d.analysis.flashed_noise`). With phases
 spread evenly over the cycle, a least-squares fit of ``a0 + a1 cos + a2 sin`` has ``var a0 = var a1 / 2
-= var a2 / 2`` (error propagation through the linear estimator, e.g. Bevington & Robinson, Data
-Reduction and Error Analysis, ch. 7), so ``var m = c^2 E|dH|^2 / 4`` and ``var (c |H|) ~ c^2 E|dH|^2 / 2``
-(the component along ``H``), and ``var R ~ 3/4 c^2 E|dH|^2``. The rank-1 profiles' standard errors are
+= var a2 / 2`` (error propagation through the linear estimator; Bevington & Robinson, Data
+Reduction and Error Analysis, quoted from memory), so ``var m = c^2 E|dH|^2 / 4`` and ``var (c |H|) ~ c^2 E|dH|^2 / 2``
+(the component along ``H``), and ``var R ~ 3/4 c^2 E|dH|^2``; when the analysis measured the variance of
+``m`` itself (``FlashedResult.phase_mean_noise_var``) that replaces ``c^2 E|dH|^2 / 4``. The rank-1
+profiles' standard errors are
 their spread over 200 noisy copies of the surface (parametric bootstrap, seeded); the average of the
 rows nearest the preference, a fixed weighted sum, has the variance ``sum w^2 var R / (sum w)^2``.
 Drifting-grating curves use the standard errors over trials (``f0_sem``, ``f1_sem``).
@@ -149,13 +151,23 @@ def _outline_params(an, r):
     return [_r(cx), _r(cy), _r(p[0]), _r(p[1]), _r(p[2])]
 
 
-def _flashed_variance(an, c):
-    """``var R`` per (orientation, SF) of cell row ``c`` (module notes), or None."""
+def _response_variance(an):
+    """``var R`` per cell and (orientation, SF), (C, O, S), or None (module notes): the measured noise
+    variance of the phase-averaged part when the analysis has it (``phase_mean_noise_var``), else
+    ``c^2 E|dH|^2 / 4``, plus ``c^2 E|dH|^2 / 2`` for ``c |H|``."""
     if an.measured_noise is None or an.flashed is None:
         return None
-    noise = np.asarray(an.measured_noise[c], float)
-    con = np.asarray(an.flashed.condition_contrast, float)
-    return 0.75 * con ** 2 * noise
+    noise = np.asarray(an.measured_noise, float)
+    c2 = np.asarray(an.flashed.condition_contrast, float)[None] ** 2
+    vm = getattr(an.flashed, "phase_mean_noise_var", None)
+    vm = c2 * noise / 4.0 if vm is None else np.asarray(vm, float)
+    return vm + c2 * noise / 2.0
+
+
+def _flashed_variance(an, c):
+    """``var R`` of flashed cell ``c`` (see :func:`_response_variance`), or None."""
+    v = _response_variance(an)
+    return None if v is None else v[c]
 
 
 def _rank1_se(surface, var, n_draws=200, rng=0, chunk=64):
@@ -337,8 +349,8 @@ def cell_payloads(analysis):
             return pack(np.stack([m.on[r, li], m.off[r, li], m.linear[r, li]]).astype(float))
     has_g = an.flashed is not None or an.drifting is not None
     flashed_se = None
-    if an.flashed is not None and an.measured_noise is not None:    # all cells at once (module notes)
-        var = 0.75 * np.asarray(an.flashed.condition_contrast, float)[None] ** 2 * np.asarray(an.measured_noise, float)
+    var = _response_variance(an)
+    if var is not None:                                   # all cells at once (module notes)
         flashed_se = _rank1_se(np.asarray(an.flashed.peak_response, float), var)
     out = {}
     for r in range(n):
