@@ -360,7 +360,7 @@ function drawSurfaces(d, c) {
     var a = unpack(s.inv.g), ma = s.inv.g.m;
     var pa = mapPlot(g.ext, mapURL(a, ny, nx, 0, LUT.signed, -ma, ma), "", {bar: !s.inv.m});
     if (lin !== true) { pa.shade(0.72); pa.note("a linear prediction: " + (lin === false ? "cell not linear" : "no linearity call"), "#333"); }
-    pa.axes({xl: "azimuth (deg)", yl: "elevation (deg)", title: "map rebuilt from gratings", nx: 3, ny: 3});
+    pa.axes({xl: "azimuth (deg)", yl: "elevation (deg)", title: "map from gratings", nx: 3, ny: 3});
     out.push(finish(pa, s.inv.m ? null : [LUT.signed, -1, 1, "fraction of peak (1)"]));
     if (s.inv.m) {
       var b = unpack(s.inv.m), mb = s.inv.m.m;
