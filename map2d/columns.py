@@ -226,6 +226,9 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "points; two-peaked von Mises fit).", "common practice"),
         Column("dsi", "1", "Direction selectivity index (R_pref - R_opposite) / (R_pref + R_opposite).",
                "common practice"),
+        Column("dsi_ci_low", "1", "Lower end of the 95 % interval of `dsi` (trials of both directions resampled).",
+               "Davison & Hinkley 1997"),
+        Column("dsi_ci_high", "1", "Upper end of the 95 % interval of `dsi`.", "Davison & Hinkley 1997"),
         Column("f1_f0_ci_low", "1", "Lower end of the 95 % bootstrap interval of `f1_f0` (trials of the preferred "
                "condition resampled).", "Efron & Tibshirani 1993"),
         Column("f1_f0_ci_high", "1", "Upper end of the 95 % bootstrap interval of `f1_f0`.",

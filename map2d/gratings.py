@@ -595,7 +595,10 @@ class DriftingResult:
         ``F0`` for complex cells (common practice)
     pref_direction_deg : (cells,)  direction of the largest ``response`` at the preferred SF/TF
     dsi : (cells,)  ``(R_pref - R_opp) / (R_pref + R_opp)`` with ``R_opp`` (opposite direction,
-        same SF/TF) clipped at 0; NaN if the opposite direction was not shown
+        same SF/TF) clipped at 0; NaN if the opposite direction was not shown. ``R`` is F0 or the
+        noise-bias-corrected F1 (a modulated cell's F1 otherwise carries a noise floor that is the same
+        in both directions and pulls the DSI toward 0 in short recordings)
+    dsi_ci_low, dsi_ci_high : (cells,)  95 % interval of ``dsi``, trials resampled (``_dsi_bootstrap``)
     p_value : (cells,)  ``min(1, k min(p_F0, p_F1, p_spont))`` (Bonferroni over the ``k`` tests that
         could be done): one-way ANOVA of the trial F0 across conditions; (Bonferroni over conditions)
         the F test of a non-zero vector-mean F1 against the pooled within-condition scatter; and the
@@ -637,6 +640,8 @@ class DriftingResult:
     f1_f0_ci_high: np.ndarray = None
     f1_f0_p_simple: np.ndarray = None
     grating_class: np.ndarray = None
+    dsi_ci_low: np.ndarray = None
+    dsi_ci_high: np.ndarray = None
     cell_tau_s: np.ndarray = None
     skip_cycles: int = 0
     latency_s: float = 0.0
@@ -1088,6 +1093,7 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         ratio = np.where(pf0 > 0, pf1 / pf0, np.nan)
     simple = np.isfinite(pf1) & (pf1 > np.where(np.isfinite(pf0), pf0, np.inf))
     ci_lo, ci_hi, p_simple = _f1_f0_bootstrap(trial_f0, trial_f1, cond, pref, int(n_boot), rng)
+    rng = np.random.default_rng(rng).integers(2**32)      # a separate stream for the DSI intervals
     response = np.where(simple[:, None], f1a, m0)
 
     pref_idx = np.full((n_cells, 3), -1, dtype=np.int64)
@@ -1100,6 +1106,8 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     resp4 = response.reshape(shape)
     pref_dir = np.full(n_cells, np.nan)
     dsi = np.full(n_cells, np.nan)
+    dsi_lo, dsi_hi = np.full(n_cells, np.nan), np.full(n_cells, np.nan)
+    rng_boot = np.random.default_rng(rng)
     for c in np.flatnonzero(ok):
         curve = resp4[c, :, pref_idx[c, 1], pref_idx[c, 2]]
         if not np.isfinite(curve).any():
@@ -1110,6 +1118,10 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         if opp.size and np.isfinite(curve[opp[0]]) and curve[i] > 0:
             rn = max(float(curve[opp[0]]), 0.0)
             dsi[c] = (curve[i] - rn) / (curve[i] + rn)
+            st = pref_idx[c, 1] * n_t + pref_idx[c, 2]
+            dsi_lo[c], dsi_hi[c] = _dsi_bootstrap(trial_f0[c], trial_f1[c], cond, i * n_s * n_t + st,
+                                                  int(opp[0]) * n_s * n_t + st, bool(simple[c]), dsi[c],
+                                                  int(n_boot), rng_boot)
 
     # significance: F0 ANOVA and F1 vector-mean F test
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -1150,7 +1162,46 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         pref_index=pref_idx, f1_f0=ratio, simple=simple, response=resp4, pref_direction_deg=pref_dir,
         dsi=dsi, p_value=p_value, responsive=responsive, alpha=float(alpha), trace_tau_s=float(tau),
         f1_f0_ci_low=ci_lo, f1_f0_ci_high=ci_hi, f1_f0_p_simple=p_simple, grating_class=grating_class,
+        dsi_ci_low=dsi_lo, dsi_ci_high=dsi_hi,
         cell_tau_s=cell_tau, skip_cycles=int(skip_cycles), latency_s=float(latency_s))
+
+
+def _dsi_bootstrap(f0, f1, cond, pref, opp, use_f1, estimate, n_boot, rng, level=0.95):
+    """95 % interval of the DSI, resampling the trials of the preferred and the opposite direction.
+
+    Each resample recomputes both responses as the point estimate does (mean F0, or the noise-bias-
+    corrected F1 for a cell whose preferred response is modulated) and the DSI with the opposite
+    response clipped at 0; the interval is the union of the percentile and the basic bootstrap
+    intervals (conservative, as for the circular variance; Davison & Hinkley 1997, sec. 5.2), clipped
+    to [0, 1]. NaN with fewer than 3 trials on a side or ``n_boot = 0``."""
+    if n_boot <= 0 or not np.isfinite(estimate):
+        return np.nan, np.nan
+    rs = []
+    for k in (pref, opp):
+        idx = np.flatnonzero(cond == k)
+        a0, a1 = f0[idx], f1[idx]
+        ok = np.isfinite(a0) & np.isfinite(a1)
+        a0, a1 = a0[ok], a1[ok]
+        n = a0.size
+        if n < 3:
+            return np.nan, np.nan
+        pick = rng.integers(0, n, (n_boot, n))
+        if use_f1:
+            z = a1[pick]
+            v = (z.real.var(axis=1, ddof=1) + z.imag.var(axis=1, ddof=1)) / n
+            rs.append(np.sqrt(np.maximum(np.abs(z.mean(axis=1)) ** 2 - v, 0.0)))
+        else:
+            rs.append(a0[pick].mean(axis=1))
+    rp, rn = rs[0], np.maximum(rs[1], 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        d = np.where(rp > 0, (rp - rn) / (rp + rn), np.nan)
+    d = d[np.isfinite(d)]
+    if d.size < n_boot // 2:
+        return np.nan, np.nan
+    a = (1.0 - level) / 2.0
+    q_lo, q_hi = np.quantile(d, [a, 1.0 - a])
+    lo, hi = min(q_lo, 2 * estimate - q_hi), max(q_hi, 2 * estimate - q_lo)
+    return float(min(max(lo, 0.0), 1.0)), float(min(max(hi, 0.0), 1.0))
 
 
 def _f1_f0_bootstrap(trial_f0, trial_f1, cond, pref, n_boot, rng, level=0.95):

@@ -373,7 +373,8 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_
             sum |meas|^2`` in [0, 1]. The reference is zero, not the surface mean: a cell with no linear
             component has a first harmonic of zero at every wave vector. With the least-squares gain this
             equals ``c^2``, ``c = sum Re(conj(pred) meas) / (||pred|| ||meas||)``, the squared cosine
-            between the two surfaces as real vectors (the sign of ``c`` is the sign of ``gain``). Noise in the measured surface
+            between the two surfaces as real vectors (the sign of ``c`` is the sign of ``gain``).
+            Noise in the measured surface
             lowers it even for a perfect prediction: its expectation is then ``P / (P + N)``, with
             ``P`` the signal and ``N = sum noise_var`` the noise power of the surface.
         ``agreement``

@@ -377,3 +377,16 @@ def test_biphasic_cell_agrees_and_silence_gets_no_verdict():
     assert c["phase_error_deg"][0] <= 15.0
     assert c["linear"][0] is True
     assert c["linear"][1] is None and c["linear_reason"][1] == "no grating response"
+
+
+def test_one_indicator_decay_per_cell_for_maps_flashed_and_drifting(traces):
+    """Issue 14, item 4: the per-cell decay the maps remove is the one the drifting fit uses (a cell
+    without its own estimate takes the session's), and the flashed gratings see the same corrected
+    traces (the analysis notes one decay, not two)."""
+    an = traces[0]
+    tau = np.asarray(an.trace_decay.tau_s, float)
+    assert np.isfinite(tau).any()
+    used = np.asarray(an.drifting.cell_tau_s, float)
+    fin = np.isfinite(tau)
+    np.testing.assert_allclose(used[fin], tau[fin])
+    assert sum("decay" in n.lower() for n in an.notes) == 1

@@ -725,3 +725,37 @@ def test_unmodulated_and_unresponsive_cells_are_not_called_simple():
     # the point estimate's noise bias is removed: the ratio the interval surrounds
     fin = np.isfinite(dr.f1_f0) & np.isfinite(lo)
     assert np.all((lo[fin] <= dr.f1_f0[fin] + 1e-9) & (dr.f1_f0[fin] <= hi[fin] + 1e-9))
+
+
+def _direction_selective_spikes(repeats, seed=4):
+    """Drifting trials at 4 directions (2 s at 2 Hz, 1-s gaps, spontaneous 2 spikes/s) and one cell
+    whose rate is [5 + 15 cos]+ at direction 0 and an unmodulated 5 spikes/s at the others: a simple
+    response in one direction only (true DSI of F1 = 1)."""
+    rng = np.random.default_rng(seed)
+    dirs = np.tile([0.0, 90.0, 180.0, 270.0], repeats)
+    n = dirs.size
+    on = 1.0 + np.arange(n) * 3.0
+    table = GratingTable.from_columns(onset_s=on, offset_s=on + 2.0, orientation_deg=dirs, sf_cpd=np.full(n, 0.05),
+                                      phase_deg=np.zeros(n), contrast=np.ones(n), tf_hz=np.full(n, 2.0))
+    dt = 0.001
+    t = np.arange(0, on[-1] + 4.0, dt)
+    k = np.clip(np.searchsorted(on, t, side="right") - 1, 0, None)
+    inside = (t >= on[k]) & (t < on[k] + 2.0)
+    mod = np.where(dirs[k] == 0.0, 15.0 * np.cos(2 * np.pi * 2.0 * (t - on[k])), 0.0)
+    cnt = rng.poisson(np.where(inside, 5.0 + mod.clip(-5.0), 2.0) * dt)
+    b = np.repeat(np.flatnonzero(cnt), cnt[cnt > 0])
+    st = np.sort((b + rng.random(b.size)) * dt)
+    return Spikes(time_s=st, cell=np.zeros(st.size, int)), table
+
+
+def test_dsi_uses_the_noise_corrected_f1_and_has_an_interval():
+    """Issue 14, effect 5 (DSI). |F1| of the unmodulated opposite direction has a noise floor that
+    pulled the DSI below its true value 1 by an amount set by the number of trials: 0.72, 0.79 and 0.94
+    with 3, 6 and 30 repeats before. With the noise-bias-corrected F1: 1.00, 0.91, 1.00, and the
+    30-repeat value lies inside the 3- and 6-repeat intervals (trials resampled)."""
+    res = {r: analyze_drifting(*_direction_selective_spikes(r)) for r in (3, 6, 30)}
+    assert [bool(res[r].simple[0]) for r in res] == [True, True, True]
+    assert res[3].dsi[0] >= 0.9 and res[30].dsi[0] >= 0.95
+    for r in (3, 6):
+        assert res[r].dsi_ci_low[0] <= res[30].dsi[0] <= res[r].dsi_ci_high[0]
+    assert res[30].dsi_ci_high[0] - res[30].dsi_ci_low[0] < res[3].dsi_ci_high[0] - res[3].dsi_ci_low[0]

@@ -1044,7 +1044,8 @@ TUNING_COLUMNS = (
     "orientation_hwhh_deg", "orientation_hwhh_ci_halfwidth_deg", "pref_sf_cpd", "pref_sf_ci_low_cpd",
     "pref_sf_ci_high_cpd", "sf_bandwidth_oct", "sf_bandwidth_ci_halfwidth_oct", "circular_variance",
     "circular_variance_ci_low", "circular_variance_ci_high", "osi", "osi_ci_low", "osi_ci_high",
-    "pref_direction_deg", "dsi", "f1_f0", "f1_f0_ci_low", "f1_f0_ci_high", "f1_f0_simple_p_value",
+    "pref_direction_deg", "dsi", "dsi_ci_low", "dsi_ci_high", "f1_f0", "f1_f0_ci_low", "f1_f0_ci_high",
+    "f1_f0_simple_p_value",
     "grating_class", "flashed_peak_lag_s", "flashed_p_value",
     "drifting_p_value", "ori_fit_baseline", "ori_fit_amplitude", "ori_fit_kappa", "ori_fit_r2",
     "sf_model", "sf_fit_curve", "sf_fit_baseline", "sf_fit_amplitude", "sf_fit_sigma_oct", "sf_fit_sigma_cpd",
@@ -1206,7 +1207,8 @@ def _may_start_processes():
 _FLASHED_FIELDS = ("cell_ids", "p_value", "responsive", "peak_lag_s", "peak_response", "harmonic_combined",
                    "phase_mean_combined", "harmonic_noise_var", "phase_mean_noise_var")
 _DRIFTING_FIELDS = ("cell_ids", "p_value", "responsive", "f1_f0", "simple", "dsi", "pref_direction_deg",
-                    "pref_index", "response", "f1_f0_ci_low", "f1_f0_ci_high", "f1_f0_p_simple", "grating_class")
+                    "pref_index", "response", "f1_f0_ci_low", "f1_f0_ci_high", "f1_f0_p_simple", "grating_class",
+                    "dsi_ci_low", "dsi_ci_high")
 
 
 def _flashed_view(fl):
@@ -1222,7 +1224,8 @@ def _flashed_view(fl):
 def _drifting_view(dr):
     n = np.asarray(dr.cell_ids).size
     defaults = {"f1_f0_ci_low": np.full(n, np.nan), "f1_f0_ci_high": np.full(n, np.nan),
-                "f1_f0_p_simple": np.full(n, np.nan), "grating_class": np.full(n, "", object)}
+                "f1_f0_p_simple": np.full(n, np.nan), "grating_class": np.full(n, "", object),
+                "dsi_ci_low": np.full(n, np.nan), "dsi_ci_high": np.full(n, np.nan)}
     v = SimpleNamespace(**{k: np.asarray(getattr(dr, k) if getattr(dr, k, None) is not None else defaults[k])
                            for k in _DRIFTING_FIELDS})
     v.directions_deg, v.sfs_cpd = np.asarray(dr.directions_deg), np.asarray(dr.sfs_cpd)
@@ -1338,6 +1341,8 @@ def _tuning_chunk(flashed, drifting, cell_ids):
             # a class only when the bootstrap interval of F1/F0 excludes the criterion 1
             row["grating_class"] = str(drifting.grating_class[di])
             row["dsi"] = float(drifting.dsi[di])
+            row["dsi_ci_low"] = float(drifting.dsi_ci_low[di])
+            row["dsi_ci_high"] = float(drifting.dsi_ci_high[di])
             dc = _drifting_curves(drifting, di)
             if dc is not None:
                 dfit = fit_direction(dc[5], dc[6])
