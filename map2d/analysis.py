@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .contract import Session, Traces
+from .contract import Session, Spikes, Traces
 
 __all__ = ["Analysis", "analyze_session", "flashed_noise", "CONTRACT_COLUMNS"]
 
@@ -289,7 +289,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     from .fit.spatial import locate_fields
     from .fit.tuning import TUNING_COLUMNS, grating_tuning_columns
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
-    from .maps import compute_maps, dense_columns, dense_estimate_note
+    from .maps import compute_maps, dense_columns, dense_estimate_note, spike_latency
     from .traces import decay_corrected
 
     rng = np.random.default_rng(rng)
@@ -439,6 +439,9 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["fitted_map"] = list(an.map_kind)
         cells["onoff_overlap"] = list(an.fields.onoff_overlap)
         cells["linear_share"] = list(an.fields.choice.linear_share)
+        # sub-frame latency from spike times (peak_lag_s is whole frames); traces have no spike times
+        cells["latency_s"] = (list(spike_latency(session.responses, session.sparse_noise, m))
+                              if isinstance(session.responses, Spikes) else [np.nan] * C)
         cells["snr"] = list(m.snr)
         if an.trace_decay is not None:
             cells["trace_decay_tau_s"] = list(an.trace_decay.tau_s)

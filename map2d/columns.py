@@ -108,6 +108,11 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "holds against the ON + OFF map over every pixel and lag where a map passes a Bonferroni-corrected "
                "threshold: near 0 when bright and dark spots excite the same places (complex, ON-OFF), 0.5 for a "
                "half-wave rectified linear cell, near 1 for a linear cell with a maintained discharge."),
+        Column("latency_s", "s", "Spikes only: delay from a frame's onset at which the spike-triggered drive "
+               "of the cell's own field first reaches half its maximum, at a tenth of a frame's resolution (`peak_lag_s` "
+               "is whole frames: lag l counts the response in the window [l T, (l + 1) T) after the onset, so it "
+               "understates the latency by up to a frame); empty for traces and cells that are not responsive.",
+               "ours; after Chichilnisky 2001"),
         Column("snr", "1", "Largest |z| of the linear map at the peak lag."),
         Column("trace_decay_tau_s", "s", "Imaging only: the indicator decay time constant removed from the trace "
                "before the maps.", "Vogelstein et al. 2010"),
