@@ -150,5 +150,7 @@ def heldout_matrix(tmp_path_factory):
         m = an.maps
         peak_z = np.nanmax(np.abs(np.stack([m.on_z, m.off_z, m.linear_z])), axis=(0, 2, 3, 4))
         out[name] = {"rows": heldout_rf.score(an.cells, truth, (m.grid.dx_deg, m.grid.dy_deg), peak_z),
-                     "spacing": (m.grid.dx_deg, m.grid.dy_deg), "alpha": m.alpha}
+                     "spacing": (m.grid.dx_deg, m.grid.dy_deg), "alpha": m.alpha,
+                     "latency_s": truth["latency_s"], "frame_s": truth["frame_s"],
+                     "spikes": regime.get("responses", "spikes") == "spikes"}
     return out

@@ -277,5 +277,7 @@ def score(cells, truth, spacing_deg, peak_z):
                         center_method=str(cells.get("center_method", [""] * len(truth["cells"]))[i]),
                         model=str(cells.get("model", [""] * len(truth["cells"]))[i]),
                         overlap=float(cells["onoff_overlap"][i]) if "onoff_overlap" in cells else np.nan,
+                        latency_s=float(cells["latency_s"][i]) if "latency_s" in cells else np.nan,
+                        peak_lag_s=float(cells["peak_lag_s"][i]),
                         size_err=size / true_size - 1 if resp and np.isfinite(size) else np.nan))
     return out
