@@ -43,9 +43,10 @@ from .geometry import Grid
 from .maps import (KINDS, MapResult, _analytic_sd, _component, _block_max, _finish, _null_plan, _ok_cells, _sparse_maps_one,
                    _SparseCorrelator, map_lags)
 
-__all__ = ["LiveSparseMaps", "Aperture", "suggest_aperture", "field_region"]
+__all__ = ["LiveSparseMaps", "LiveTraceMaps", "Aperture", "suggest_aperture", "field_region"]
 
 _UNIT = "spikes/s"
+_TRACE_UNIT = "trace units"
 
 
 class LiveSparseMaps:
@@ -77,6 +78,8 @@ class LiveSparseMaps:
     >>> res.on.shape
     (3, 3, 4, 5)
     """
+
+    unit = _UNIT
 
     def __init__(self, frames, grid: Grid, max_lag_s: float = 0.2, frame_s: float = 0.05, alpha: float = 0.01,
                  min_shift_s: float = 10.0):
@@ -207,23 +210,24 @@ class LiveSparseMaps:
         self.spikes_used += int(dn.sum())
         self._add_sums(kk, cc, w * dn)
 
-    def _add_sums(self, kk, cc, val):
+    def _add_sums(self, kk, cc, val, S=None):
         """``S[o] += val * B[kk - o]`` in the column of each cell, for every offset ``o``.
 
         ``(kk, cc)`` pairs are unique. The recent frames (a block of at most 4 times as many frames as
         hold spikes) go through small dense products, the pixels they touch times the cells; older
         frames (late spikes) are scattered one event at a time.
         """
+        S = self.S if S is None else S
         if kk.size == 0:
             return
         n_frames = np.unique(kk).size
         lo = max(int(kk.max()) + 1 - 4 * n_frames - 8, 0)
         old = kk < lo
         if old.any():
-            self._scatter(kk[old], cc[old], val[old])
+            self._scatter(kk[old], cc[old], val[old], S)
             kk, cc, val = kk[~old], cc[~old], val[~old]
         a, b = int(kk.min()), int(kk.max()) + 1
-        D = np.zeros((b - a, self.S.shape[2]))
+        D = np.zeros((b - a, S.shape[2]))
         D[kk - a, cc] = val
         ip, ix = self._indptr, self._indices
         for oi, o in enumerate(self.offsets.tolist()):
@@ -233,11 +237,12 @@ class LiveSparseMaps:
             uq, inv = np.unique(ix[ip[s0]:ip[s1]], return_inverse=True)
             M = np.zeros((uq.size, s1 - s0))                          # events of those frames, touched pixels
             M[inv, np.repeat(np.arange(s1 - s0), np.diff(ip[s0:s1 + 1]))] = 1.0
-            self.S[oi, uq] += M @ D[s0 + o - a:]
+            S[oi, uq] += M @ D[s0 + o - a:]
 
-    def _scatter(self, kk, cc, val):
+    def _scatter(self, kk, cc, val, S=None):
         """The event-by-event form of :meth:`_add_sums` (for a few spikes in old frames)."""
-        O, P2, Ccap = self.S.shape
+        S = self.S if S is None else S
+        O, P2, Ccap = S.shape
         t = kk[:, None] - self.offsets[None, :]                        # stimulus frame of each pair
         ok = t >= 0
         oi = np.broadcast_to(np.arange(O)[None, :], t.shape)[ok]
@@ -250,7 +255,7 @@ class LiveSparseMaps:
         pos = np.arange(rep.size) - np.repeat(np.cumsum(n) - n, n) + a[rep]
         q = self._indices[pos].astype(np.int64)
         flat = (oi[rep] * P2 + q) * Ccap + ci[rep]
-        np.add.at(self.S.reshape(-1), flat, vv[rep])
+        np.add.at(S.reshape(-1), flat, vv[rep])
 
     def _rebuild(self, lmax: int):
         """Sums for a new longest lag, from the stored counts (only when the measured frame interval
@@ -319,6 +324,12 @@ class LiveSparseMaps:
                 m = _sparse_maps_one(sums, n_on, n_off, P)
             return m, _analytic_sd(sd, n_valid, n_on, n_off)
 
+        ids = np.asarray(self.ids, dtype=np.int64)[order]
+        return self._assemble(F, C, lags, frame_s, sd, n_valid, centred_maps, ids)
+
+    def _assemble(self, F, C, lags, frame_s, sd, n_valid, centred_maps, ids) -> MapResult:
+        """Maps, analytic z, the live null and the responsive call from ``centred_maps(offset)``."""
+        L, P = lags.size, self.P
         maps = np.full((3, C, L, P), np.nan, dtype=np.float32)
         z_an = np.full((3, C, L, P), np.nan, dtype=np.float32)
         for li, lag in enumerate(lags):
@@ -350,10 +361,9 @@ class LiveSparseMaps:
             sumsq[:], nsq[:] = 1.0, 1.0
             kmax = np.full((1, 3, C, self.n_sub), -np.inf, dtype=np.float32)
         plan = (self.n_sub, starts, max(n_used, 1), max(n_used, 1))
-        ids = np.asarray(self.ids, dtype=np.int64)[order]
         with warnings.catch_warnings(), np.errstate(all="ignore"):
             warnings.simplefilter("ignore", RuntimeWarning)
-            res = _finish(maps, z_an, None, None, sd, n_valid, ids, self.grid, lags, frame_s, _UNIT,
+            res = _finish(maps, z_an, None, None, sd, n_valid, ids, self.grid, lags, frame_s, self.unit,
                           self.alpha, kinds_used=(0, 1, 2), stimulus="sparse", method="sparse",
                           ridge=np.full(C, np.nan), first=(sumsq, nsq, kmax), plan=plan)
         res.n_shuffles[:] = np.where(ok, n_used, 0)
@@ -361,6 +371,215 @@ class LiveSparseMaps:
 
     def pending_spikes(self) -> int:
         return int(self._pend_t.size)
+
+
+AUTO_DECAY_LIVE = ("the indicator decay cannot be estimated live ('auto' estimates it from the whole "
+                   "trace); give your indicator's decay time constant, e.g. --trace-decay 0.4 (seconds; "
+                   "the trace_decay_tau_s column of an earlier map2d maps run on the same preparation), "
+                   "or --trace-decay off")
+
+
+class LiveTraceMaps(LiveSparseMaps):
+    """Running ON/OFF/linear sums fed with frame onsets and imaging samples as they arrive.
+
+    A frame's value is the time average of the trace over the frame (:func:`map2d.maps.frame_responses`),
+    final only once the next onset (its end) and a sample at or after that end have arrived: it then
+    enters the sums for good. Frames not yet final (the last ones) are computed at each
+    :meth:`snapshot` from the samples so far, as the offline engine computes them on the same data,
+    without being stored. NaN samples count as offline: no weight in the time average; a frame without
+    a valid sample is NaN for that cell and left out of its sums, counts, mean and sd.
+
+    ``decay``: 'off' (the trace as it is) or a time constant in seconds: the indicator's first-order
+    decay is removed sample by sample as :func:`map2d.traces.remove_decay` does with that constant
+    (``decay_corrected(traces, tau, resmooth=False)``); the per-cell moving average that the offline
+    analysis adds after the inversion needs the whole trace and is not applied live. 'auto' is refused
+    (:data:`AUTO_DECAY_LIVE`). The interval that marks a gap (1.5 times the median sample interval) uses
+    the median of the intervals so far.
+    """
+
+    unit = _TRACE_UNIT
+
+    def __init__(self, frames, grid: Grid, n_cells: int, max_lag_s: float = 0.2, frame_s: float = 0.05,
+                 alpha: float = 0.01, min_shift_s: float = 10.0, decay="off"):
+        from .traces import parse_trace_decay
+
+        super().__init__(frames, grid, max_lag_s=max_lag_s, frame_s=frame_s, alpha=alpha, min_shift_s=min_shift_s)
+        decay = parse_trace_decay(decay)
+        if decay == "auto":
+            raise ValueError(AUTO_DECAY_LIVE)
+        self.tau = None if decay == "off" else float(decay)
+        C = int(n_cells)
+        if C < 1:
+            raise ValueError("traces need at least one cell")
+        self.ids = list(range(C))
+        self._col = {i: i for i in range(C)}
+        self.S = np.zeros((self.offsets.size, 2 * self.P, C))
+        self.SW = np.zeros_like(self.S)
+        self.sum_r, self.sum_r2 = np.zeros(C), np.zeros(C)
+        self.n_valid = np.zeros(C, dtype=np.int64)
+        self.counts = np.zeros((0, C), dtype=np.int32)
+        self.R = np.full((self.n_total, C), np.nan, dtype=np.float32)   # final frame values
+        self.K = 0                                                       # frames final
+        self._raw_t = np.zeros(1024)
+        self._raw_v = np.zeros((1024, C))
+        self.n_raw = 0
+        self._pt = np.zeros(1024)                                        # samples the maps use
+        self._pv = np.zeros((1024, C))
+        self.n_proc = 0
+        self.samples_used = 0
+
+    @staticmethod
+    def _append(buf_t, buf_v, n, t, v):
+        if n + t.size > buf_t.size:
+            cap = max(2 * buf_t.size, n + t.size)
+            buf_t = np.concatenate([buf_t, np.zeros(cap - buf_t.size)])
+            buf_v = np.concatenate([buf_v, np.zeros((cap - buf_v.shape[0], buf_v.shape[1]))])
+        buf_t[n:n + t.size] = t
+        buf_v[n:n + t.size] = v
+        return buf_t, buf_v, n + t.size
+
+    def add_spikes(self, time_s, cell) -> None:
+        raise TypeError("LiveTraceMaps takes samples (add_samples), not spikes")
+
+    def add_frame_times(self, onsets_s) -> None:
+        super().add_frame_times(onsets_s)
+        self._finalise()
+
+    def add_samples(self, time_s, values) -> None:
+        """Samples ``(n,)`` at increasing times after the last one, values ``(n, cells)`` (NaN allowed)."""
+        t = np.asarray(time_s, dtype=np.float64).reshape(-1)
+        v = np.asarray(values, dtype=np.float64).reshape(t.size, -1)
+        if t.size == 0:
+            return
+        if v.shape[1] != self.n_cells:
+            raise ValueError(f"{v.shape[1]} values per sample for {self.n_cells} cells")
+        prev = self._raw_t[self.n_raw - 1] if self.n_raw else -np.inf
+        if not np.all(np.isfinite(t)) or np.any(np.diff(np.r_[prev, t]) <= 0):
+            raise ValueError("sample times must be finite and strictly increasing")
+        n0 = self.n_raw
+        self._raw_t, self._raw_v, self.n_raw = self._append(self._raw_t, self._raw_v, n0, t, v)
+        self.samples_used += int(t.size)
+        if self.tau is None:
+            pt, pv = t, v
+        else:
+            pt, pv = self._invert(max(n0, 1), self.n_raw)
+        if pt.size:
+            self._pt, self._pv, self.n_proc = self._append(self._pt, self._pv, self.n_proc, pt, pv)
+        self._finalise()
+
+    def _invert(self, a, b):
+        """Decay removed from raw samples ``a .. b-1`` (``a >= 1``), at the midpoints of their
+        intervals (:func:`map2d.traces.remove_decay`); sample 0 (NaN) is emitted with sample 1."""
+        if b < 2 or a >= b:
+            return np.zeros(0), np.zeros((0, self.n_cells))
+        T = self._raw_t[:b]
+        med = float(np.median(np.diff(T)))
+        t, c = T[a:b], self._raw_v[a:b]
+        h = t - T[a - 1:b - 1]
+        prev = self._raw_v[a - 1:b - 1]
+        alpha = np.exp(-h / self.tau)[:, None]
+        with np.errstate(invalid="ignore"):
+            d = ((c - alpha * prev) / (1.0 - alpha)).astype(np.float32).astype(np.float64)
+        gap = h > 1.5 * med
+        d[gap] = np.nan
+        mid = np.where(gap, t - 0.5 * med, t - 0.5 * h)
+        if a == 1:                                              # the first sample: no difference
+            mid = np.r_[T[0] - 0.5 * med, mid]
+            d = np.concatenate([np.full((1, self.n_cells), np.nan), d])
+        return mid, d
+
+    def _samples(self):
+        return self._pt[:self.n_proc], self._pv[:self.n_proc]
+
+    def _frame_values(self, a, b, ends):
+        """Time averages (frames ``a .. b-1``, cells) float32 of the samples so far."""
+        from .align import _trace_means
+        from .contract import Traces
+
+        pt, pv = self._samples()
+        if pt.size < 2:
+            return np.full((b - a, self.n_cells), np.nan, dtype=np.float32)
+        i0 = max(int(np.searchsorted(pt, self.times[a], side="right")) - 1, 0)
+        tr = Traces(values=pv[i0:].T, times_s=pt[i0:])
+        return _trace_means(tr, self.times[a:b], np.asarray(ends, dtype=np.float64)).T
+
+    def _finalise(self):
+        """Frames whose end (the next onset) and a sample at or after it have arrived enter the sums."""
+        if self.n_proc == 0 or self.F < 2:
+            return
+        last = self._pt[self.n_proc - 1]
+        K2 = int(np.searchsorted(self.times[1:self.F], last, side="right"))
+        if K2 <= self.K:
+            return
+        a = self.K
+        Rb = self._frame_values(a, K2, self.times[a + 1:K2 + 1])
+        self.R[a:K2] = Rb
+        self._add_values(a, Rb)
+        self.K = K2
+
+    def _add_values(self, a, Rb):
+        valid = np.isfinite(Rb)
+        V = np.where(valid, Rb, 0).astype(np.float64)
+        self.sum_r += V.sum(axis=0)
+        self.sum_r2 += (V * V).sum(axis=0)
+        self.n_valid += valid.sum(axis=0)
+        n, C = V.shape
+        kk = np.repeat(np.arange(a, a + n), C)
+        cc = np.tile(np.arange(C), n)
+        self._add_sums(kk, cc, V.reshape(-1), self.S)
+        self._add_sums(kk, cc, valid.reshape(-1).astype(np.float64), self.SW)
+
+    def _rebuild(self, lmax: int):
+        self._setup_offsets(lmax)
+        self.S = np.zeros((self.offsets.size, 2 * self.P, self.n_cells))
+        self.SW = np.zeros_like(self.S)
+        self.sum_r[:], self.sum_r2[:], self.n_valid[:] = 0, 0, 0
+        if self.K:
+            self._add_values(0, self.R[:self.K])
+
+    @property
+    def finalised(self) -> int:
+        return self.K if hasattr(self, "K") else 0
+
+    def snapshot(self) -> MapResult | None:
+        """As :meth:`LiveSparseMaps.snapshot`, for the frames and samples so far."""
+        F, C, P = self.F, self.n_cells, self.P
+        if F < 3 or self.n_proc < 2:
+            return None
+        frame_s = self.frame_interval_s()
+        lags = map_lags(frame_s, self.max_lag_s)
+        if lags.size >= F:
+            return None
+        if lags[-1] > self.lmax:
+            self._rebuild(int(lags[-1]))
+        K = self.K
+        ends = np.r_[self.times[K + 1:F], self.times[F - 1] + frame_s]
+        Rt = self._frame_values(K, F, ends)                         # frames not final yet
+        Wt = np.isfinite(Rt)
+        Vt = np.where(Wt, Rt, 0).astype(np.float64)
+        n_valid = self.n_valid + Wt.sum(axis=0)
+        sum_r = self.sum_r + Vt.sum(axis=0)
+        sum_r2 = self.sum_r2 + (Vt * Vt).sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = sum_r / np.maximum(n_valid, 1)
+            sd = np.sqrt(np.maximum(sum_r2 / np.maximum(n_valid, 1) - mean ** 2, 0.0))
+
+        def centred_maps(o):
+            oi = int(np.flatnonzero(self.offsets == o)[0])
+            sums, cnt = self.S[oi].copy(), self.SW[oi].copy()
+            for j in range(F - K):
+                t = K + j - o
+                if t >= 0:
+                    q = self._indices[self._indptr[t]:self._indptr[t + 1]]
+                    sums[q] += Vt[j][None, :]
+                    cnt[q] += Wt[j][None, :]
+            sums -= cnt * mean[None, :]
+            n_on, n_off = cnt[:P].T, cnt[P:].T
+            with np.errstate(divide="ignore", invalid="ignore"):
+                m = _sparse_maps_one(sums, n_on, n_off, P)
+            return m, _analytic_sd(sd, n_valid, n_on, n_off)
+
+        return self._assemble(F, C, lags, frame_s, sd, n_valid, centred_maps, np.arange(C, dtype=np.int64))
 
 
 # ----------------------------------------------------------------------------------------------
