@@ -266,7 +266,7 @@ def build_parser() -> argparse.ArgumentParser:
     # -- live ------------------------------------------------------------------------------------
     w = sub.add_parser("watch", help="live maps while a recording appends to a session folder",
                        description="Follow DIR (sparse noise written by map2d stimulus; frame_times.txt and "
-                                   "spikes.txt appended by the recording, formats in docs/live.md), update "
+                                   "spikes.txt or traces.txt appended by the recording, formats in docs/live.md), update "
                                    "every cell's maps as data arrive, show them in DIR/live.html (reloads "
                                    "itself) and in the terminal, and suggest a grating aperture. When no data "
                                    "arrive for --idle-s seconds (or on Ctrl-C) write the session into DIR and "
@@ -286,11 +286,15 @@ def build_parser() -> argparse.ArgumentParser:
                    help="cells whose fields the aperture covers (default: every responsive cell)")
     w.add_argument("--seed", type=_SEED, default=0, help="seed for the final shuffles (default 0)")
     w.add_argument("--no-fits", action="store_true", help="final maps without model fits (faster)")
+    w.add_argument("--trace-decay", default="auto", dest="trace_decay", metavar="off|SECONDS",
+                   help="imaging traces (traces.txt): the indicator's decay time constant to remove live, or "
+                        "off; 'auto' (estimated from the whole trace) cannot run live and is refused")
     _add_common(w)
     rp = sub.add_parser("replay", help="write a session into a folder as a recording would (tests, demos)",
                         description="Write SESSION's sparse noise into DIR, then append its frame onsets and "
-                                    "spikes to DIR/frame_times.txt and DIR/spikes.txt at --speed times real time.")
-    rp.add_argument("session", type=Path, help="session folder with sparse noise and spikes")
+                                    "spikes (or trace samples) to DIR/frame_times.txt and DIR/spikes.txt (or "
+                                    "DIR/traces.txt) at --speed times real time.")
+    rp.add_argument("session", type=Path, help="session folder with sparse noise and spikes or traces")
     rp.add_argument("folder", type=Path, metavar="DIR", help="folder to write into (created)")
     rp.add_argument("--speed", type=float, default=1.0, help="times real time (default 1; inf = at once)")
     rp.add_argument("--seconds", type=float, default=None, help="replay only this much recording time")

@@ -830,7 +830,8 @@ def run_watch(args) -> int:
         raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {args.max_lag_s}")
     watch_folder(args.folder, out=args.out, page=args.page, max_lag_s=args.max_lag_s, seed=args.seed,
                  idle_s=args.idle_s, poll_s=args.poll_s, refresh_s=args.refresh_s, summary_s=args.summary_s,
-                 cells=args.cells, fits=not args.no_fits, quiet=args.quiet)
+                 cells=args.cells, fits=not args.no_fits, quiet=args.quiet,
+                 trace_decay=_trace_decay_option(args.trace_decay))
     return 0
 
 

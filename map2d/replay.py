@@ -15,9 +15,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .contract import SparseNoise, Spikes, load_session, write_stimulus
+from .contract import SparseNoise, Spikes, Traces, load_session, write_stimulus
 from .errors import BadInput
-from .watch import FRAME_TIMES_FILE, SPIKES_FILE
+from .watch import FRAME_TIMES_FILE, SPIKES_FILE, TRACES_FILE
 
 __all__ = ["replay_steps", "replay_session"]
 
@@ -28,6 +28,10 @@ def _frame_line(k, t) -> str:
 
 def _spike_line(t, c) -> str:
     return f"{float(t)!r} {int(c)}\n"
+
+
+def _sample_line(t, v) -> str:
+    return f"{float(t)!r} " + " ".join(repr(float(x)) for x in v) + "\n"
 
 
 def replay_steps(session, folder, step_s: float = 1.0, crash_at_s: float | None = None,
@@ -51,9 +55,12 @@ def replay_steps(session, folder, step_s: float = 1.0, crash_at_s: float | None 
     """
     sn = session.sparse_noise
     r = session.responses
-    if sn is None or not isinstance(r, Spikes):
+    if sn is None or not isinstance(r, (Spikes, Traces)):
         raise BadInput(getattr(session, "path", None) or "session", None,
-                       "replay needs a session with sparse noise and spikes")
+                       "replay needs a session with sparse noise and spikes or traces")
+    if isinstance(r, Traces):
+        yield from _replay_traces(sn, r, folder, step_s, crash_at_s, seconds)
+        return
     if not (np.isfinite(step_s) and step_s > 0):
         raise ValueError(f"step_s must be positive, got {step_s}")
     folder = Path(folder)
@@ -100,6 +107,60 @@ def replay_steps(session, folder, step_s: float = 1.0, crash_at_s: float | None 
     finally:
         ff.close()
         fs.close()
+
+
+def _replay_traces(sn, r, folder, step_s, crash_at_s, seconds):
+    """:func:`replay_steps` for imaging traces: ``traces.txt`` lines ``TIME_S v0 ... v(n-1)`` (every
+    cell's sample at that time, ``nan`` where it has none). A crash leaves half a sample line; the
+    restarted writer appends a ``#`` line and sends its last 3 sample lines and 5 frame lines again."""
+    if not (np.isfinite(step_s) and step_s > 0):
+        raise ValueError(f"step_s must be positive, got {step_s}")
+    if r.ids is not None and not np.array_equal(r.cell_ids, np.arange(r.cell_ids.size)):
+        raise BadInput("session", "responses.cell_ids", "replay writes traces of cells 0..n-1 (rows in order)")
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    for name in (FRAME_TIMES_FILE, TRACES_FILE):
+        if (folder / name).exists():
+            raise BadInput(folder / name, None, "exists already; replay into a new folder")
+    write_stimulus(folder, sparse_noise=SparseNoise(np.asarray(sn.frames), sn.times_s, sn.grid),
+                   info={"command": "replay"})
+    times, st = sn.times_s, np.asarray(r.times_s, dtype=np.float64)
+    vals = np.asarray(r.values)
+    t0 = float(times[0])
+    last = float(sn.frame_ends_s()[-1])
+    end = last if seconds is None else min(t0 + seconds, last)
+    ff = open(folder / FRAME_TIMES_FILE, "a", encoding="utf-8")
+    ft = open(folder / TRACES_FILE, "a", encoding="utf-8")
+    try:
+        ff.write("# frame onset_s (map2d replay)\n")
+        ft.write("# time_s value of cell 0, 1, ... (map2d replay)\n")
+        now, kf = t0, 0
+        ks = int(np.searchsorted(st, t0 - 1.0, side="left"))
+        crashed = crash_at_s is None
+        while now < end:
+            now = min(now + step_s, end)
+            kf2 = int(np.searchsorted(times, now, side="left"))
+            ks2 = int(np.searchsorted(st, now, side="left"))
+            ff.write("".join(_frame_line(k, times[k]) for k in range(kf, kf2)))
+            ft.write("".join(_sample_line(st[i], vals[:, i]) for i in range(ks, ks2)))
+            kf, ks = kf2, ks2
+            if not crashed and now >= t0 + crash_at_s and kf < times.size and ks < st.size:
+                crashed = True
+                ff.write(_frame_line(kf, times[kf])[:-4])
+                ft.write(_sample_line(st[ks], vals[:, ks])[:-5])
+                ff.flush()
+                ft.flush()
+                yield now - t0
+                ff.write("# writer restarted\n")
+                ft.write("# writer restarted\n")
+                ff.write("".join(_frame_line(k, times[k]) for k in range(max(kf - 5, 0), kf)))
+                ft.write("".join(_sample_line(st[i], vals[:, i]) for i in range(max(ks - 3, 0), ks)))
+            ff.flush()
+            ft.flush()
+            yield now - t0
+    finally:
+        ff.close()
+        ft.close()
 
 
 def replay_session(source, folder, speed: float = 1.0, step_s: float = 0.5, seconds: float | None = None,

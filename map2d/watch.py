@@ -35,17 +35,21 @@ import numpy as np
 
 from .contract import MANIFEST, STIMULUS_MANIFEST, SparseNoise, _read_json_object
 from .errors import BadInput
-from .live import LiveSparseMaps
+from .live import AUTO_DECAY_LIVE, LiveSparseMaps, LiveTraceMaps
 
-__all__ = ["FRAME_TIMES_FILE", "SPIKES_FILE", "AppendedFile", "Follower", "write_recorded_session",
+__all__ = ["FRAME_TIMES_FILE", "SPIKES_FILE", "TRACES_FILE", "parse_trace_lines", "AppendedFile", "Follower", "write_recorded_session",
            "parse_lines", "load_stimulus_noise"]
 
 FRAME_TIMES_FILE = "frame_times.txt"
 SPIKES_FILE = "spikes.txt"
+TRACES_FILE = "traces.txt"
+RECORDED_TRACES_FILE = "traces.npy"
+RECORDED_TRACE_TIMES_FILE = "trace_times.npy"
 RECORDED_FRAMES_FILE = "sparse_noise_recorded.npy"
 MEASURED_TIMES_FILE = "frame_times.npy"
 RECORDED_SPIKES_FILE = "spikes.npz"
 WATCH_NOTE = "written by map2d watch from frame_times.txt and spikes.txt"
+WATCH_NOTE_TRACES = "written by map2d watch from frame_times.txt and traces.txt"
 
 _SPLIT = re.compile(r"[ \t]+|[ \t]*,[ \t]*")
 _INT = re.compile(r"[+-]?\d+\Z")
@@ -177,6 +181,44 @@ def parse_lines(text: str, kinds, first_line: int = 1):
     return arrays, bad
 
 
+def parse_trace_lines(text: str, n_values: int | None, first_line: int = 1):
+    """Parse ``traces.txt`` lines: ``TIME_S v0 v1 ... v(n-1)``, one sample of every cell.
+
+    ``n_values``: the number of values per line (None: taken from the first good line). A value may be
+    ``nan`` (a sample without a valid value); the time must be finite. Returns ``(times (n,), values
+    (n, n_values), bad, n_values)``; ``bad`` lists ``(line number, reason)`` as :func:`parse_lines`.
+    """
+    times, rows, bad = [], [], []
+    for no, line in enumerate(text.split("\n"), start=first_line):
+        s = line.strip()
+        if not s or s.startswith("#"):
+            continue
+        if "#" in s:
+            bad.append((no, "torn line (a writer restarted in the middle of it)"))
+            continue
+        parts = _SPLIT.split(s)
+        if n_values is not None and len(parts) != n_values + 1:
+            bad.append((no, f"expected {n_values + 1} fields (time and {n_values} values), got {len(parts)}"))
+            continue
+        if len(parts) < 2:
+            bad.append((no, "expected a time and at least one value"))
+            continue
+        try:
+            vals = [float(p) for p in parts]
+        except ValueError:
+            bad.append((no, f"cannot read {s[:40]!r} as numbers"))
+            continue
+        if not np.isfinite(vals[0]) or any(np.isinf(v) for v in vals[1:]):
+            bad.append((no, "the time must be finite and values finite or nan"))
+            continue
+        n_values = len(parts) - 1
+        times.append(vals[0])
+        rows.append(vals[1:])
+    n = 0 if n_values is None else n_values
+    return (np.asarray(times, dtype=np.float64), np.asarray(rows, dtype=np.float64).reshape(len(rows), n),
+            bad, n_values)
+
+
 def load_stimulus_noise(folder) -> tuple[SparseNoise, dict]:
     """The sparse noise of a folder prepared for recording (``stimulus.json`` written by ``map2d
     stimulus sparse-noise``, or a ``session.json`` holding ``sparse_noise``) and that manifest."""
@@ -212,6 +254,8 @@ class FollowState:
     conflicting_frames: int = 0
     held_frames: int = 0                               # frame lines waiting for an earlier frame
     restarts: int = 0                                  # files replaced, maps rebuilt
+    samples_read: int = 0                              # imaging samples (traces.txt)
+    repeated_samples: int = 0
 
 
 class Follower:
@@ -223,7 +267,14 @@ class Follower:
     max_lag_s, alpha, min_shift_s : see :class:`map2d.live.LiveSparseMaps`.
     """
 
-    def __init__(self, folder, max_lag_s: float = 0.2, alpha: float = 0.01, min_shift_s: float = 10.0):
+    def __init__(self, folder, max_lag_s: float = 0.2, alpha: float = 0.01, min_shift_s: float = 10.0,
+                 trace_decay="auto"):
+        from .traces import parse_trace_decay
+
+        try:
+            self.trace_decay = parse_trace_decay(trace_decay)
+        except ValueError as exc:
+            raise BadInput("--trace-decay", None, str(exc)) from None
         self.folder = Path(folder)
         self.noise, self.manifest = load_stimulus_noise(self.folder)
         self.kw = dict(max_lag_s=max_lag_s, alpha=alpha, min_shift_s=min_shift_s)
@@ -234,6 +285,11 @@ class Follower:
             raise BadInput("--max-lag", None, f"{max_lag_s} s spans the whole stimulus")
         self.frames_file = AppendedFile(self.folder / FRAME_TIMES_FILE)
         self.spikes_file = AppendedFile(self.folder / SPIKES_FILE)
+        self.traces_file = AppendedFile(self.folder / TRACES_FILE)
+        self.mode = None                  # 'spikes' or 'traces', from the first response file that appears
+        self.n_values = None              # values per trace line
+        self.sample_t: list = []
+        self.sample_v: list = []
         self.state = FollowState()
         self._reset_maps()
         self.onsets = np.zeros(0)
@@ -242,8 +298,84 @@ class Follower:
         self.spike_c: list = []
 
     def _reset_maps(self):
-        self.live = LiveSparseMaps(self.noise.frames, self.noise.grid, frame_s=self.noise.frame_interval_s,
-                                   **self.kw)
+        if getattr(self, "mode", None) == "traces" and self.n_values:
+            self.live = LiveTraceMaps(self.noise.frames, self.noise.grid, self.n_values,
+                                      frame_s=self.noise.frame_interval_s, decay=self.trace_decay, **self.kw)
+        else:
+            self.live = LiveSparseMaps(self.noise.frames, self.noise.grid, frame_s=self.noise.frame_interval_s,
+                                       **self.kw)
+
+    def _choose_mode(self):
+        """Spikes or traces: whichever response file the recording writes (both: refused)."""
+        has_s = (self.folder / SPIKES_FILE).is_file()
+        has_t = (self.folder / TRACES_FILE).is_file()
+        if has_s and has_t:
+            raise BadInput(self.folder / TRACES_FILE, None, f"the folder holds both {SPIKES_FILE} and "
+                                                            f"{TRACES_FILE}; a recording appends one of them")
+        if has_t:
+            if self.trace_decay == "auto":
+                raise BadInput("--trace-decay", None, AUTO_DECAY_LIVE)
+            self.mode = "traces"
+        elif has_s:
+            self.mode = "spikes"
+
+    def _poll_traces(self) -> bool:
+        first, text, replaced = self.traces_file.read()
+        changed = False
+        if replaced:
+            self.state.restarts += 1
+            self.sample_t, self.sample_v, self.n_values = [], [], None
+            self._reset_maps()
+            self.live.add_frame_times(self.onsets)
+            changed = True
+        if not text:
+            return changed
+        t, v, bad, n = parse_trace_lines(text, self.n_values, first)
+        for no, why in bad:
+            self._bad(TRACES_FILE, no, why)
+        if t.size == 0:
+            return changed
+        if self.n_values is None:
+            if n < 1:
+                return changed
+            self.n_values = n
+            self._reset_maps()                                   # now a LiveTraceMaps
+            self.live.add_frame_times(self.onsets)
+        last = self.sample_t[-1][-1] if self.sample_t else -np.inf
+        keep = np.ones(t.size, dtype=bool)
+        for i in range(t.size):
+            if t[i] > last:
+                last = t[i]
+                continue
+            keep[i] = False
+            block = (t[:i][keep[:i]], v[:i][keep[:i]])
+            if self._is_repeat(float(t[i]), v[i], block):
+                self.state.repeated_samples += 1
+            else:
+                self._bad(TRACES_FILE, None, f"sample at {float(t[i])!r} s is not after the previous sample; "
+                                             f"skipped")
+        t, v = t[keep], v[keep]
+        if t.size:
+            self.sample_t.append(t)
+            self.sample_v.append(v)
+            self.live.add_samples(t, v)
+            self.state.samples_read += int(t.size)
+            changed = True
+        return changed
+
+    def _is_repeat(self, t, v, block) -> bool:
+        """A sample sent again by a restarted writer: same time and values as one already read."""
+        for tt, vv in zip(reversed(self.sample_t + [block[0]]), reversed(self.sample_v + [block[1]])):
+            if tt.size and tt[0] <= t:
+                i = int(np.searchsorted(tt, t))
+                return i < tt.size and tt[i] == t and np.array_equal(vv[i], v, equal_nan=True)
+        return False
+
+    def samples(self):
+        """All samples read: (time_s (n,), values (n, cells))."""
+        if not self.sample_t:
+            return np.zeros(0), np.zeros((0, self.n_values or 0))
+        return np.concatenate(self.sample_t), np.concatenate(self.sample_v)
 
     def _bad(self, file, no, reason):
         self.state.n_bad += 1
@@ -252,8 +384,12 @@ class Follower:
 
     def poll(self) -> bool:
         """Read what was appended since the last poll; True when anything new was used."""
+        if self.mode is None:
+            self._choose_mode()
+        if self.mode == "traces":
+            return self._poll_frames_only() | self._poll_traces()
         f_first, f_text, f_replaced = self.frames_file.read()
-        s_first, s_text, s_replaced = self.spikes_file.read()
+        s_first, s_text, s_replaced = self.spikes_file.read() if self.mode == "spikes" else (1, "", False)
         if f_replaced or s_replaced:
             self.state.restarts += 1
             if f_replaced:
@@ -283,6 +419,26 @@ class Follower:
         self.state.frames_read = int(self.onsets.size)
         self.state.held_frames = len(self.held)
         return bool(changed)
+
+    def _poll_frames_only(self) -> bool:
+        first, text, replaced = self.frames_file.read()
+        changed = False
+        if replaced:
+            self.state.restarts += 1
+            self.onsets, self.held = np.zeros(0), {}
+            self._reset_maps()
+            if self.sample_t:
+                t, v = self.samples()
+                self.live.add_samples(t, v)
+            changed = True
+        if text:
+            (k, t), bad = parse_lines(text, ("int", "float"), first)
+            for no, why in bad:
+                self._bad(FRAME_TIMES_FILE, no, why)
+            changed |= self._take_frames(k, t)
+        self.state.frames_read = int(self.onsets.size)
+        self.state.held_frames = len(self.held)
+        return changed
 
     def _take_frames(self, k, t) -> bool:
         F0 = self.onsets.size
@@ -343,7 +499,7 @@ def check_session_manifest(folder) -> None:
     if not path.is_file():
         return
     m = _read_json_object(path)
-    if m.get("responses") is not None and m.get("notes") != WATCH_NOTE:
+    if m.get("responses") is not None and m.get("notes") not in (WATCH_NOTE, WATCH_NOTE_TRACES):
         raise BadInput(path, "responses", "the folder already holds a recorded session; watch writes "
                                           "session.json at the end of a recording into a folder without one")
 
@@ -365,9 +521,15 @@ def write_recorded_session(follower: Follower) -> Path:
     check_session_manifest(folder)
     noise = follower.noise
     F = follower.onsets.size
-    t, c = follower.spikes()
-    if F < 2 or t.size == 0:
-        raise BadInput(folder, None, f"no recording to write ({F} frame onsets and {t.size} spikes read)")
+    traces = follower.mode == "traces"
+    if traces:
+        t, v = follower.samples()
+        what = "samples"
+    else:
+        t, c = follower.spikes()
+        what = "spikes"
+    if F < 2 or t.size < (2 if traces else 1):
+        raise BadInput(folder, None, f"no recording to write ({F} frame onsets and {t.size} {what} read)")
     base = dict(follower.manifest)
     spec = dict(base.get("sparse_noise", {}))
     frames_rel = spec.get("frames", "sparse_noise.npy")
@@ -382,10 +544,16 @@ def write_recorded_session(follower: Follower) -> Path:
         frames_rel = RECORDED_FRAMES_FILE
         put(RECORDED_FRAMES_FILE, lambda p: _save_npy(p, np.asarray(noise.frames[:F])))
     put(MEASURED_TIMES_FILE, lambda p: _save_npy(p, follower.onsets.astype(np.float64)))
-    put(RECORDED_SPIKES_FILE, lambda p: _save_npz(p, time_s=t.astype(np.float64), cell=c.astype(np.int64)))
+    if traces:
+        put(RECORDED_TRACES_FILE, lambda p: _save_npy(p, np.ascontiguousarray(v.T, dtype=np.float64)))
+        put(RECORDED_TRACE_TIMES_FILE, lambda p: _save_npy(p, t.astype(np.float64)))
+        responses = {"kind": "traces", "file": RECORDED_TRACES_FILE, "times": RECORDED_TRACE_TIMES_FILE}
+    else:
+        put(RECORDED_SPIKES_FILE, lambda p: _save_npz(p, time_s=t.astype(np.float64), cell=c.astype(np.int64)))
+        responses = {"kind": "spikes", "file": RECORDED_SPIKES_FILE}
     spec.update(frames=frames_rel, times=MEASURED_TIMES_FILE)
-    manifest = {"name": base.get("name", folder.name), "notes": WATCH_NOTE, "sparse_noise": spec,
-                "responses": {"kind": "spikes", "file": RECORDED_SPIKES_FILE}}
+    manifest = {"name": base.get("name", folder.name), "notes": WATCH_NOTE_TRACES if traces else WATCH_NOTE,
+                "sparse_noise": spec, "responses": responses}
     if base.get("display") is not None:
         manifest["display"] = base["display"]
     put(MANIFEST, lambda p: p.write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8"))
@@ -399,7 +567,8 @@ def summary_line(follower: Follower, result, aperture) -> str:
     st = follower.state
     on = follower.onsets
     rec = float(on[-1] - on[0]) if on.size > 1 else 0.0
-    text = f"{rec:7.1f} s, {on.size} frames, {st.spikes_read} spikes"
+    data = f"{st.samples_read} samples" if follower.mode == "traces" else f"{st.spikes_read} spikes"
+    text = f"{rec:7.1f} s, {on.size} frames, {data}"
     if result is not None:
         text += f"; {int(result.responsive.sum())} of {result.n_cells} cells responsive"
     if aperture is not None:
@@ -413,7 +582,7 @@ def summary_line(follower: Follower, result, aperture) -> str:
 
 def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0, poll_s=0.5,
                  refresh_s=2.0, summary_s=10.0, cells=None, fits=True, quiet=False, print_fn=print,
-                 clock=None, sleep=None, stop=None) -> dict:
+                 clock=None, sleep=None, stop=None, trace_decay="auto") -> dict:
     """Follow ``folder`` until no data arrived for ``idle_s`` seconds (or Ctrl-C), then write the
     session and the offline maps. Returns a dict with the final live result, the follower, the
     aperture and the paths written.
@@ -433,7 +602,7 @@ def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0
     started = clock()
     while True:        # the stimulus may be written a moment after watch starts
         try:
-            follower = Follower(folder, max_lag_s=max_lag_s)
+            follower = Follower(folder, max_lag_s=max_lag_s, trace_decay=trace_decay)
             break
         except BadInput:
             if any((folder / n).is_file() for n in (STIMULUS_MANIFEST, MANIFEST)) or clock() - started >= idle_s:
@@ -454,7 +623,10 @@ def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0
         aperture = suggest_aperture(result, cells=cells) if result is not None else None
         version += 1
         on = follower.onsets
-        info = {"folder": str(folder), "frames": int(on.size), "spikes": follower.state.spikes_read,
+        traces = follower.mode == "traces"
+        info = {"folder": str(folder), "frames": int(on.size),
+                "spikes": follower.state.samples_read if traces else follower.state.spikes_read,
+                "data_kind": "imaging samples" if traces else "spikes",
                 "recorded_s": float(on[-1] - on[0]) if on.size > 1 else 0.0, "alpha": follower.live.alpha,
                 "updated": datetime.now(timezone.utc).strftime("%H:%M:%S UTC")}
         if result is not None:
@@ -490,11 +662,13 @@ def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0
             for file, no, reason in follower.state.bad_lines[:5]:
                 print_fn(f"map2d watch: skipped {file}" + (f" line {no}" if no else "") + f": {reason}")
     if result is None:
-        raise BadInput(folder, None, f"no maps: {follower.onsets.size} frame onsets and "
-                                     f"{follower.state.spikes_read} spikes arrived")
+        what = (f"{follower.state.samples_read} imaging samples" if follower.mode == "traces"
+                else f"{follower.state.spikes_read} spikes")
+        raise BadInput(folder, None, f"no maps: {follower.onsets.size} frame onsets and {what} arrived")
     write_recorded_session(follower)
     from .pipeline import run_maps
-    run_maps(folder, out, max_lag_s=max_lag_s, seed=seed, quiet=True, fits=fits)
+    decay = follower.trace_decay if follower.mode == "traces" else "auto"
+    run_maps(folder, out, max_lag_s=max_lag_s, seed=seed, quiet=True, fits=fits, trace_decay=decay)
     with np.load(out / "maps.npz") as z:
         diff = max(float(np.nanmax(np.abs(np.asarray(getattr(result, k)) - z[k]), initial=0.0))
                    for k in ("on", "off", "linear"))
@@ -507,9 +681,15 @@ def watch_folder(folder, out=None, page=None, max_lag_s=0.2, seed=0, idle_s=60.0
                                     f"{len(rows)} cells responsive; results in {out}.")
     write_live_page(page, page_data[0], refresh_s=refresh_s, version=version, final=True)
     if not quiet:
-        print_fn(f"map2d watch: wrote the session ({MANIFEST}, {MEASURED_TIMES_FILE}, {RECORDED_SPIKES_FILE}) "
+        resp_files = (f"{RECORDED_TRACES_FILE}, {RECORDED_TRACE_TIMES_FILE}" if follower.mode == "traces"
+                      else RECORDED_SPIKES_FILE)
+        print_fn(f"map2d watch: wrote the session ({MANIFEST}, {MEASURED_TIMES_FILE}, {resp_files}) "
                  f"and the offline maps into {out} ({n_off} of {len(rows)} cells responsive offline); live "
                  f"and offline maps differ by at most {diff:.2g} {result.unit} (largest map value {scale:.3g})")
+        if follower.mode == "traces" and follower.trace_decay != "off":
+            print_fn(f"map2d watch: the offline maps also smooth each cell's decay-corrected trace by a noise-"
+                     f"dependent amount estimated from the whole trace (--trace-decay {follower.trace_decay:g}); "
+                     f"the live maps use the plain inversion, so the two differ by more than rounding")
         if aperture is not None:
             print_fn(f"map2d watch: gratings next: {aperture.command()}")
     return {"result": result, "follower": follower, "aperture": aperture, "page": page, "out": out,

@@ -198,7 +198,7 @@ def write_live_page(path, data: dict, refresh_s: float = 2.0, version: int = 0, 
 <body id="live" data-version="{int(version)}" data-state="{state}">
 <h1>{title}</h1>
 <div class="summary" id="summary">{state}: {info.get('recorded_s', 0):.1f} s recorded,
-{info.get('frames', 0)} frames, {info.get('spikes', 0)} spikes; <span id="n-responsive">{n_resp}</span> of
+{info.get('frames', 0)} frames, {info.get('spikes', 0)} {info.get('data_kind', 'spikes')}; <span id="n-responsive">{n_resp}</span> of
 {len(data['cells'])} cells responsive (live call, alpha {info.get('alpha', 0.01)}); updated
 {html.escape(str(info.get('updated', '')))} (update {int(version)}).{html.escape(str(info.get('note', '')))}</div>
 {apert}
