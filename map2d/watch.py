@@ -8,6 +8,9 @@ The folder holds the stimulus written beforehand by ``map2d stimulus sparse-nois
     ``sparse_noise.npy`` counted from 0, measured onset in seconds on the recording's clock).
 ``spikes.txt``
     one line per spike: ``TIME_S CELL`` (seconds on the same clock, integer cell id), in any order.
+``traces.txt`` (imaging, instead of ``spikes.txt``)
+    one line per sample: ``TIME_S V0 ... V(n-1)`` (one value per cell, ``nan`` allowed), times
+    increasing; followed with ``--trace-decay off`` or a fixed time constant (:class:`map2d.live.LiveTraceMaps`).
 
 Fields are separated by spaces, tabs or one comma. Empty lines and lines starting with ``#`` are
 skipped. A line is read only once its newline has arrived, so a half-written line waits for the next
