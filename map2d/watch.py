@@ -36,7 +36,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .contract import MANIFEST, STIMULUS_MANIFEST, SparseNoise, _read_json_object
+from .contract import LIMITS, MANIFEST, STIMULUS_MANIFEST, SparseNoise, _read_json_object
 from .errors import BadInput
 from .live import AUTO_DECAY_LIVE, LiveSparseMaps, LiveTraceMaps
 
@@ -54,6 +54,7 @@ RECORDED_SPIKES_FILE = "spikes.npz"
 WATCH_NOTE = "written by map2d watch from frame_times.txt and spikes.txt"
 WATCH_NOTE_TRACES = "written by map2d watch from frame_times.txt and traces.txt"
 
+_T_LOW, _T_HIGH = LIMITS["time_s"][:2]
 _SPLIT = re.compile(r"[ \t]+|[ \t]*,[ \t]*")
 _INT = re.compile(r"[+-]?\d+\Z")
 
@@ -211,8 +212,8 @@ def parse_trace_lines(text: str, n_values: int | None, first_line: int = 1):
         except ValueError:
             bad.append((no, f"cannot read {s[:40]!r} as numbers"))
             continue
-        if not np.isfinite(vals[0]) or any(np.isinf(v) for v in vals[1:]):
-            bad.append((no, "the time must be finite and values finite or nan"))
+        if not (_T_LOW <= vals[0] <= _T_HIGH) or any(np.isinf(v) for v in vals[1:]):
+            bad.append((no, f"the time must be within {_T_LOW:g}..{_T_HIGH:g} s and values finite or nan"))
             continue
         n_values = len(parts) - 1
         times.append(vals[0])

@@ -126,9 +126,9 @@ def test_half_written_trace_line_waits_and_torn_lines_are_never_misread(tmp_path
     t, v, bad, n = parse_trace_lines(text, None, first)
     assert t.tolist() == [1.0] and n == 2 and np.isnan(v[0, 1]) and v[0, 0] == 0.5 and bad == []
     with open(p, "a", encoding="utf-8") as fh:                # the rest of the line arrives
-        fh.write(" 0.75\n1.06# writer restarted\n1.066 1 2 3\n1.1 inf 2\n1.133 x 2\n1.166,0.5,0.5\n")
+        fh.write(" 0.75\n1.06# writer restarted\n1.066 1 2 3\n1.1 inf 2\n1.133 x 2\n1e12 1 2\n1.166,0.5,0.5\n")
     first, text, _ = f.read()
     t, v, bad, _ = parse_trace_lines(text, n, first)
     assert t.tolist() == [1.033, 1.166] and v.tolist() == [[0.25, 0.75], [0.5, 0.5]]
-    assert [no for no, _ in bad] == [4, 5, 6, 7]
+    assert [no for no, _ in bad] == [4, 5, 6, 7, 8]
     assert "torn" in bad[0][1] and "expected 3 fields" in bad[1][1]
