@@ -71,9 +71,16 @@ def _fork_context():
     return None
 
 
-def _stop_workers(ex) -> None:
-    """Kill the workers of ``ex`` now and drop its queued work (the caller failed or was stopped)."""
+def _stop_workers(ex, before=frozenset()) -> None:
+    """Kill the workers of ``ex`` now and drop its queued work (the caller failed or was stopped).
+
+    A worker forked but not yet registered (an interruption in the middle of the pool's start) is
+    found among this process's children not in ``before`` (their ids before the pool existed): left
+    alive, the exit handler of :mod:`multiprocessing` would wait for it forever."""
+    import multiprocessing
     procs = list((getattr(ex, "_processes", None) or {}).values())
+    with contextlib.suppress(Exception):
+        procs += [p for p in multiprocessing.active_children() if p.pid not in before and p not in procs]
     for p in procs:
         with contextlib.suppress(Exception):
             p.kill()
@@ -92,15 +99,17 @@ def worker_pool(n_jobs):
     exception (including KeyboardInterrupt or the CLI's SIGTERM handler) kills them and drops the
     queued work instead of waiting for it. A normal exit waits for the workers as usual.
     """
+    import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
+    before = frozenset(p.pid for p in multiprocessing.active_children())
     ex = ProcessPoolExecutor(max_workers=n_jobs, mp_context=_fork_context(), initializer=bind_to_parent,
                              initargs=(os.getpid(),))
     try:
         yield ex
+        ex.shutdown(wait=True)              # interrupted while waiting: the workers are killed too
     except BaseException:
-        _stop_workers(ex)
+        _stop_workers(ex, before)
         raise
-    ex.shutdown(wait=True)
 
 
 class ForkedCall:

@@ -370,3 +370,23 @@ def test_a_short_write_on_a_full_disk_is_named_as_such(tmp_path, monkeypatch, ca
     msg = capsys.readouterr().err
     assert f"{tmp_path / 'res'}: cannot write (No space left on device)" in msg
     assert sorted(p.name for p in tmp_path.iterdir()) == []
+
+
+@pytest.mark.skipif(not LINUX, reason="reads /proc")
+def test_worker_pool_interrupted_while_starting_leaves_no_worker(monkeypatch):
+    """An interruption between a worker's fork and its registration in the pool (SIGTERM at that
+    moment): the worker is still found and killed, so the exit handler never waits for it."""
+    import concurrent.futures.process as cfp
+    original = cfp.ProcessPoolExecutor._spawn_process
+    started = []
+
+    def spawn_then_stop(self):
+        original(self)
+        started.extend(self._processes)
+        self._processes.clear()                 # as if interrupted before the registration
+        raise KeyboardInterrupt
+    monkeypatch.setattr(cfp.ProcessPoolExecutor, "_spawn_process", spawn_then_stop)
+    with pytest.raises(KeyboardInterrupt):
+        with worker_pool(2) as ex:
+            ex.submit(_sleep_then, 0.0)
+    assert started and _wait_until(lambda: not any(_alive(p) for p in started), 10.0)
