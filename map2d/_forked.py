@@ -81,11 +81,15 @@ def _stop_workers(ex, before=frozenset()) -> None:
     procs = list((getattr(ex, "_processes", None) or {}).values())
     with contextlib.suppress(Exception):
         procs += [p for p in multiprocessing.active_children() if p.pid not in before and p not in procs]
+    manager = getattr(ex, "_executor_manager_thread", None)
     for p in procs:
         with contextlib.suppress(Exception):
             p.kill()
     with contextlib.suppress(Exception):
         ex.shutdown(wait=False, cancel_futures=True)
+    if manager is not None:      # let the pool's thread finish before the interpreter's exit handler
+        with contextlib.suppress(Exception):     # wakes it (a closing pipe there prints a traceback)
+            manager.join(timeout=10)
     for p in procs:
         with contextlib.suppress(Exception):
             p.join(timeout=5)
