@@ -377,7 +377,7 @@ def main(argv=None) -> int:
         parser.print_help()
         return 0
     from .contract import InputWarning
-    from .errors import BadInput, Terminated, environment_error
+    from .errors import BadInput, Terminated, environment_error, raise_if_stopped
 
     def show_warning(message, category, filename, lineno, file=None, line=None):
         if issubclass(category, InputWarning):
@@ -391,7 +391,9 @@ def main(argv=None) -> int:
             stream.reconfigure(errors="backslashreplace")
     previous = _catch_sigterm()
     try:
-        return int(_dispatch(args) or 0)
+        code = int(_dispatch(args) or 0)
+        raise_if_stopped()               # a SIGTERM whose exception some library swallowed
+        return code
     except BadInput as exc:
         if args.debug:
             raise
@@ -439,10 +441,10 @@ def _catch_sigterm():
     """SIGTERM raises :class:`map2d.errors.Terminated` in the main thread, so that a stopped run
     removes its temporary folder and ends its worker processes; returns the previous handler
     (None where no handler can be set, e.g. outside the main thread)."""
-    from .errors import Terminated
+    from .errors import request_stop
 
     def stop(signum, frame):
-        raise Terminated()
+        request_stop()
 
     try:
         return signal.signal(signal.SIGTERM, stop)

@@ -62,6 +62,25 @@ class Terminated(KeyboardInterrupt):
     (temporary folders removed, worker processes ended) like an interrupted one."""
 
 
+#: Set by the CLI's SIGTERM handler. An exception raised from a signal handler can be swallowed
+#: by library code that catches everything (seen once inside logging's lock release), so the
+#: results folder also checks this flag before it moves anything into place.
+STOP_REQUESTED = False
+
+
+def request_stop():
+    """Record a stop request (SIGTERM) and raise :class:`Terminated`."""
+    global STOP_REQUESTED
+    STOP_REQUESTED = True
+    raise Terminated()
+
+
+def raise_if_stopped():
+    """Raise :class:`Terminated` if a stop was requested earlier, even if its first exception was lost."""
+    if STOP_REQUESTED:
+        raise Terminated()
+
+
 def environment_error(exc, path=None, doing="write"):
     """A :class:`BadEnvironment` for the OSError ``exc`` if its errno is one of
     :data:`ENVIRONMENT_ERRNOS` (naming ``exc.filename``, else ``path``), else None.

@@ -14,7 +14,7 @@ import shutil
 import tempfile
 from pathlib import Path
 
-from .errors import BadInput
+from .errors import BadInput, raise_if_stopped
 
 RESULTS_MARK = ".map2d-results"
 
@@ -201,6 +201,7 @@ def results_folder(out, mark=True):
     try:
         os.chmod(tmp, 0o777 & ~_umask())     # mkdtemp makes it private; results are shared
         yield tmp
+        raise_if_stopped()                   # never move results into place after a SIGTERM
         if mark:
             (tmp / RESULTS_MARK).write_text("written by map2d\n", encoding="utf-8")
         replaced = _swap_into_place(tmp, dest, check=mark)

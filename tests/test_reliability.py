@@ -390,3 +390,22 @@ def test_worker_pool_interrupted_while_starting_leaves_no_worker(monkeypatch):
         with worker_pool(2) as ex:
             ex.submit(_sleep_then, 0.0)
     assert started and _wait_until(lambda: not any(_alive(p) for p in started), 10.0)
+
+
+def test_a_swallowed_sigterm_still_stops_before_results_move_into_place(tmp_path, monkeypatch):
+    """A stop request whose Terminated exception some library swallowed (seen once inside
+    logging's lock release) must still keep the results out of place."""
+    from map2d import errors
+    from map2d.pipeline import results_folder
+
+    out = tmp_path / "res"
+    monkeypatch.setattr(errors, "STOP_REQUESTED", False)
+    with pytest.raises(errors.Terminated):
+        with results_folder(out) as tmp:
+            (tmp / "cells.csv").write_text("cell\n0\n")
+            try:
+                errors.request_stop()
+            except errors.Terminated:
+                pass                       # swallowed, as a catch-all handler would
+    assert not out.exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == []
