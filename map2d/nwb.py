@@ -51,7 +51,7 @@ import numpy as np
 
 from .contract import (GRATING_COLUMNS, MANIFEST, GratingTable, Session, SparseNoise, Spikes, Traces, _load_npy,
                        _grid_place, _load_rois, _note, _pair, _read_json_object, _refuse_first, _section,
-                       check_frames, check_luminance,
+                       check_frames, check_luminance, check_range,
                        check_grating_columns, check_overlap, check_spikes, check_times, check_traces,
                        frame_gap_mask)
 from .errors import BadInput
@@ -199,6 +199,8 @@ def _read_spikes(nwbfile, spec, nwb_path, where, notes) -> Spikes:
         raise BadInput(nwb_path, f"{upath}.spike_times", f"must be numbers, got {t.dtype} {t.shape}")
     t = t.astype(np.float64)
     _refuse_first(~np.isfinite(t), nwb_path, f"{upath}.spike_times", "is not finite")
+    check_range(t, "time_s", nwb_path, f"{upath}.spike_times")
+    check_range(ids, "cell_id", nwb_path, f"{upath}.id")
     cell = np.repeat(ids, np.diff(np.concatenate([[0], ends])))
     return check_spikes(t, cell, np.unique(ids), notes, f"{nwb_path}: {upath}", unit="unit")
 

@@ -267,3 +267,15 @@ def test_responses_on_another_clock_are_refused(tmp_path, tiny):
     m = session_to_nwb(shifted, nwb)
     with pytest.raises(BadInput, match="check time units and clock"):
         _quiet(load_nwb, nwb, m)
+
+
+def test_spike_times_and_unit_ids_beyond_their_bounds_are_refused(tmp_path, tiny):
+    """NWB spike times and unit ids meet the same bounds as a session folder's (contract.LIMITS)."""
+    from dataclasses import replace
+    s = tiny["spikes"]
+    t = s.responses.time_s.copy()
+    t[-1] = 1e12                                  # a damaged or hostile value, far past any clock
+    nwb = tmp_path / "far.nwb"
+    m = session_to_nwb(replace(s, responses=replace(s.responses, time_s=t)), nwb)
+    with pytest.raises(BadInput, match=r"spike_times.*1e\+12 s is outside"):
+        _quiet(load_nwb, nwb, m)
