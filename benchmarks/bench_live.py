@@ -13,6 +13,10 @@ step by step:
 - **snapshot**: one :meth:`map2d.live.LiveSparseMaps.snapshot` (maps, z-scores, live responsive call)
   plus the aperture suggestion, as taken at each page refresh (every 2 s by default).
 
+With ``--traces`` the cells are imaged instead (``traces.txt``, 30 samples/s, one value per cell per
+line, Gaussian noise plus, for a third of the cells, a response to one pixel decaying with a 0.4-s
+time constant), followed with ``--trace-decay off`` or ``--decay SECONDS``.
+
 The update cost is reported per minute of data (target: under 1 s for 300 cells on 2 cores), as
 wall time and as the process's CPU time (all threads; on a machine shared with other work the CPU
 time is the steadier number). The process is pinned to 2 cores when the machine has more. At the end the live maps are checked against
@@ -32,7 +36,7 @@ from pathlib import Path
 
 import numpy as np
 
-from map2d.contract import Session, SparseNoise, Spikes
+from map2d.contract import Session, SparseNoise, Spikes, Traces
 from map2d.geometry import Grid
 from map2d.live import suggest_aperture
 from map2d.maps import compute_maps
@@ -58,6 +62,24 @@ def make_session(minutes, cells, rate_hz, seed=0):
     return Session(responses=Spikes(t, c), sparse_noise=SparseNoise(sn.frames, sn.times_s, grid))
 
 
+def make_trace_session(minutes, cells, seed=0, rate_hz=30.0, tau_s=0.4):
+    from scipy.signal import lfilter
+
+    rng = np.random.default_rng(seed)
+    grid = Grid(ny=16, nx=24, center_x_deg=0.0, center_y_deg=0.0, dx_deg=2.0, dy_deg=2.0)
+    sn = make_sparse_noise(grid, duration_s=minutes * 60.0, rate_hz=20.0, spots_per_frame=4, rng=seed)
+    t = np.arange(0.0, sn.times_s[-1] + 1.0, 1.0 / rate_hz)
+    v = rng.normal(0.0, 0.1, (cells, t.size))
+    flat = sn.frames.reshape(sn.n_frames, -1)
+    a = np.exp(-1.0 / rate_hz / tau_s)
+    for i in range(0, cells, 3):                       # a third of the cells: one pixel drives them
+        hit = np.flatnonzero(flat[:, rng.integers(flat.shape[1])] == rng.choice([-1, 1]))
+        kick = np.zeros(t.size)
+        np.add.at(kick, np.minimum(np.searchsorted(t, sn.times_s[hit] + 0.075), t.size - 1), 1.0)
+        v[i] += lfilter([1.0], [1.0, -a], kick)
+    return Session(responses=Traces(v, t), sparse_noise=SparseNoise(sn.frames, sn.times_s, grid))
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--minutes", type=float, default=10.0)
@@ -65,16 +87,19 @@ def main(argv=None):
     ap.add_argument("--rate-hz", type=float, default=10.0, help="mean background rate per cell")
     ap.add_argument("--step-s", type=float, default=1.0, help="recording time per read (default 1)")
     ap.add_argument("--json", type=Path, default=None, help="write the numbers here")
+    ap.add_argument("--traces", action="store_true", help="imaging traces (traces.txt) instead of spikes")
+    ap.add_argument("--decay", default="off", help="with --traces: the live --trace-decay (off or seconds)")
     args = ap.parse_args(argv)
     if hasattr(os, "sched_setaffinity") and len(os.sched_getaffinity(0)) > 2:
         os.sched_setaffinity(0, sorted(os.sched_getaffinity(0))[:2])
-    session = make_session(args.minutes, args.cells, args.rate_hz)
-    n_spikes = session.responses.time_s.size
+    session = (make_trace_session(args.minutes, args.cells) if args.traces
+               else make_session(args.minutes, args.cells, args.rate_hz))
+    n_spikes = session.responses.times_s.size if args.traces else session.responses.time_s.size
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp) / "rec"
         steps = replay_steps(session, folder, step_s=args.step_s)
         next(steps)
-        fol = Follower(folder)
+        fol = Follower(folder, trace_decay=args.decay if args.traces else "auto")
         update = cpu = 0.0
         snaps = []
         written = args.step_s
@@ -99,11 +124,18 @@ def main(argv=None):
         sn = session.sparse_noise
         F = fol.onsets.size
         sp = session.responses
+        if args.traces:                                # the replay writes samples from 1 s before the noise
+            keep = (sp.times_s >= sn.times_s[0] - 1.0) & (sp.times_s < sn.frame_ends_s()[-1])
+            sp = Traces(sp.values[:, keep], sp.times_s[keep])
+            if args.decay != "off":
+                from map2d.traces import decay_corrected
+                sp, _ = decay_corrected(sp, float(args.decay), resmooth=False)
         off = compute_maps(sp, SparseNoise(sn.frames[:F], sn.times_s[:F], sn.grid), rng=0)
         worst = max(float(np.nanmax(np.abs(res.maps(k) - off.maps(k)))) / float(np.nanmax(np.abs(off.maps(k))))
                     for k in ("on", "off", "linear"))
     minutes = args.minutes
-    out = {"minutes": minutes, "cells": args.cells, "spikes": int(n_spikes), "frames": int(F),
+    out = {"minutes": minutes, "cells": args.cells, "responses": "traces" if args.traces else "spikes",
+           ("samples" if args.traces else "spikes"): int(n_spikes), "frames": int(F),
            "lags": int(res.lags_s.size), "live_null_shifts": int(fol.live.n_null),
            "update_s_total": round(update, 3), "update_s_per_minute": round(update / minutes, 3),
            "update_cpu_s_per_minute": round(cpu / minutes, 3),

@@ -185,6 +185,27 @@ def parse_lines(text: str, kinds, first_line: int = 1):
     return arrays, bad
 
 
+def _parse_traces_fast(text, n_values):
+    """All lines at once when every line is a comment or a good sample line (None otherwise)."""
+    import io
+    import warnings
+
+    if ",," in text or ("#" in text and text.count("#") != text.count("\n#") + text.startswith("#")):
+        return None
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")                       # an empty block warns
+            a = np.loadtxt(io.StringIO(text.replace(",", " ")), dtype=np.float64, comments="#", ndmin=2)
+    except ValueError:
+        return None
+    if a.size == 0 or a.shape[1] < 2 or (n_values is not None and a.shape[1] != n_values + 1):
+        return None
+    t = a[:, 0]
+    if not np.all((t >= _T_LOW) & (t <= _T_HIGH)) or np.isinf(a[:, 1:]).any():
+        return None
+    return np.ascontiguousarray(t), np.ascontiguousarray(a[:, 1:]), [], a.shape[1] - 1
+
+
 def parse_trace_lines(text: str, n_values: int | None, first_line: int = 1):
     """Parse ``traces.txt`` lines: ``TIME_S v0 v1 ... v(n-1)``, one sample of every cell.
 
@@ -192,6 +213,9 @@ def parse_trace_lines(text: str, n_values: int | None, first_line: int = 1):
     ``nan`` (a sample without a valid value); the time must be finite. Returns ``(times (n,), values
     (n, n_values), bad, n_values)``; ``bad`` lists ``(line number, reason)`` as :func:`parse_lines`.
     """
+    fast = _parse_traces_fast(text, n_values)
+    if fast is not None:
+        return fast
     times, rows, bad = [], [], []
     for no, line in enumerate(text.split("\n"), start=first_line):
         s = line.strip()
