@@ -290,6 +290,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     from .fit.tuning import TUNING_COLUMNS, grating_tuning_columns
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
     from .maps import compute_maps, dense_columns, dense_estimate_note, spike_latency
+    from .quality import map_quality
     from .traces import decay_corrected
 
     rng = np.random.default_rng(rng)
@@ -301,6 +302,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
 
     # -- sparse noise: maps, significance, fits ----------------------------------------------------
     fit_cols = None
+    quality = None
     if session.sparse_noise is not None:
         step("maps")
         map_responses = session.responses
@@ -322,6 +324,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         an.spatial_maps, an.peak_maps, an.map_kind = ch.spatial, ch.peak, ch.kind
         linear_spatial = ch.linear_spatial
         fit_cols = an.fields.columns
+        quality = map_quality(map_responses, session.sparse_noise, max_lag_s,
+                              use_onoff=an.map_kind == "on+off")
         # what predicts the gratings: the accepted fit of a linear map; otherwise the separable linear
         # map itself (for a complex cell mostly noise: it should predict little); never a rejected fit
         fitted = (ch.kind == "linear") & (fit_cols["center_method"] == "model")
@@ -443,6 +447,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         cells["latency_s"] = (list(spike_latency(session.responses, session.sparse_noise, m))
                               if isinstance(session.responses, Spikes) else [np.nan] * C)
         cells["snr"] = list(m.snr)
+        for k, v in quality.items():
+            cells[k] = list(v)
         if an.trace_decay is not None:
             cells["trace_decay_tau_s"] = list(an.trace_decay.tau_s)
         if m.stimulus == "dense":

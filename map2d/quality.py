@@ -1,0 +1,312 @@
+"""Map quality you can rank cells by: split-half reliability and cross-validated prediction.
+
+Both statistics rest on one pass over the sparse-noise session that keeps, for each of ``2 m``
+consecutive blocks of time (default 16) and each lag, the sums of the centred response over the
+frames after a bright and after a dark spot at every pixel, and the number of such frames
+(:func:`block_sums`). A pair (stimulus frame ``t``, response frame ``t + l``) belongs to the block of its
+*response* frame, so a map made from some blocks used only those blocks' responses. Maps of any set of
+blocks are then sums and ratios, with no second pass over the data.
+
+- :func:`map_reliability`: correlation between the space-time maps (all pixels and lags) of the even
+  and the odd blocks (interleaved halves, so slow drifts of the cell's state fall into both), corrected
+  to the whole session's length with the Spearman-Brown formula ``2 r / (1 + r)`` (Spearman 1910;
+  Brown 1910), with a 95 % interval from a jackknife over the ``m`` pairs of neighbouring blocks on
+  Fisher's ``z = atanh r`` (Efron & Tibshirani 1993, chapter 11). The map is the linear map (ON - OFF)
+  or, for cells whose map is ON + OFF (coextensive ON and OFF regions), ON + OFF. For a cell with no
+  receptive field the two halves are independent noise: ``r`` is centred on 0.
+- :func:`prediction_r`: a linear-nonlinear model (Chichilnisky 2001) fitted on all blocks but one
+  fold, tested on the held-out fold: the generator signal of a frame is the sum, over lags and over
+  the spots shown ``l`` frames earlier, of the ON map (bright spot) or the OFF map (dark spot) at that
+  pixel and lag (the first-order model of a sparse design: linear in the spot indicators, so it covers
+  cells with coextensive ON and OFF regions too); the static nonlinearity is the mean response in
+  deciles of the training generator, interpolated linearly. ``prediction_r`` is Pearson's correlation
+  between the held-out predictions of all folds and the measured frame responses. It is bounded by
+  the response's own trial-to-trial noise (Poisson spiking in 50-ms frames keeps it well below 1 even
+  for a perfect model), so it ranks cells of one session; compare sessions with care.
+
+References
+----------
+Spearman C (1910) Correlation calculated from faulty data. Br J Psychol 3:271-295.
+Brown W (1910) Some experimental results in the correlation of mental abilities. Br J Psychol 3:296-322.
+Efron B, Tibshirani RJ (1993) An Introduction to the Bootstrap. Chapman & Hall (the jackknife, ch. 11).
+Chichilnisky EJ (2001) A simple white noise analysis of neuronal light responses. Network 12:199-213.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from .contract import SparseNoise
+
+__all__ = ["BlockSums", "block_sums", "map_reliability", "prediction_r", "spearman_brown", "map_quality",
+           "QUALITY_COLUMNS"]
+
+#: Columns :func:`map_quality` adds to ``cells.csv``.
+QUALITY_COLUMNS = ("map_reliability", "map_reliability_low", "map_reliability_high", "prediction_r")
+
+_CELL_CHUNK = 64           # cells per pass (bounds the memory of the per-block sums)
+
+
+@dataclass
+class BlockSums:
+    """Per-block sums of a sparse-noise session (see the module docstring).
+
+    Attributes
+    ----------
+    sums : ndarray float64 (n_blocks, L, 2P, C)  sums of the centred response; columns ``0..P-1`` bright
+        spots, ``P..2P-1`` dark spots
+    counts : ndarray float64 (n_blocks, L, 2P, C)  number of (spot, valid response) pairs
+    lags : ndarray int (L,)
+    block_of_row : ndarray int (rows,)  block of each response row
+    """
+
+    sums: np.ndarray
+    counts: np.ndarray
+    lags: np.ndarray
+    block_of_row: np.ndarray
+
+    @property
+    def n_blocks(self) -> int:
+        return int(self.sums.shape[0])
+
+    def maps(self, blocks):
+        """``(on, off)`` mean maps ``(L, P, C)`` over the given blocks (NaN where no pair)."""
+        s = self.sums[blocks].sum(axis=0)
+        n = self.counts[blocks].sum(axis=0)
+        P = s.shape[1] // 2
+        with np.errstate(invalid="ignore", divide="ignore"):
+            m = np.where(n > 0, s / n, np.nan)
+        return m[:, :P], m[:, P:]
+
+
+def spearman_brown(r, k=2.0):
+    """Reliability of a test ``k`` times as long: ``k r / (1 + (k - 1) r)`` (Spearman 1910; Brown 1910).
+
+    Examples
+    --------
+    >>> float(spearman_brown(0.5))
+    0.6666666666666666
+    >>> float(spearman_brown(0.0))
+    0.0
+    """
+    r = np.asarray(r, float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return k * r / (1.0 + (k - 1.0) * r)
+
+
+def _design(noise: SparseNoise, lmax: int):
+    """Sparse stimulus matrix on the (gap-padded) timeline and that timeline's layout."""
+    from .maps import _gap_layout, _SparseCorrelator, _valid_mask
+    valid = _valid_mask(noise)
+    layout = None if valid is None else (*_gap_layout(valid, lmax), valid)
+    cor = _SparseCorrelator(noise.frames, layout)
+    return cor.B.tocsr(), cor.P, layout
+
+
+def _padded(R, layout):
+    """(C, F) responses -> (rows, C) float32 on the padded timeline (NaN where no response)."""
+    R = np.asarray(R, np.float32)
+    if layout is None:
+        return np.ascontiguousarray(R.T)
+    row, n_rows, _, valid = layout
+    out = np.full((n_rows, R.shape[0]), np.nan, np.float32)
+    out[row[valid]] = R[:, valid].T
+    return out
+
+
+def block_sums(X, V, B, lags, n_blocks):
+    """Per-block, per-lag sums ``B[t]^T X[t + l]`` and counts ``B[t]^T V[t + l]`` (pairs assigned to the
+    block of the response row ``t + l``).
+
+    Parameters
+    ----------
+    X : ndarray (rows, C)  centred responses, 0 where invalid
+    V : ndarray (rows, C)  1.0 where the response is valid, else 0
+    B : scipy.sparse csr (rows, 2P)  spot indicators
+    lags : ndarray int (L,)
+    n_blocks : int
+
+    Returns
+    -------
+    BlockSums
+    """
+    F, C = X.shape
+    P2 = B.shape[1]
+    edges = np.linspace(0, F, n_blocks + 1).round().astype(int)
+    sums = np.zeros((n_blocks, lags.size, P2, C))
+    counts = np.zeros_like(sums)
+    for b in range(n_blocks):
+        a, e = edges[b], edges[b + 1]
+        for li, lag in enumerate(lags):
+            a0 = max(a, int(lag))
+            if e <= a0:
+                continue
+            Bt = B[a0 - lag:e - lag].T
+            sums[b, li] = Bt @ X[a0:e]
+            counts[b, li] = Bt @ V[a0:e]
+    block_of_row = np.repeat(np.arange(n_blocks), np.diff(edges))
+    return BlockSums(sums, counts, np.asarray(lags), block_of_row)
+
+
+def _corr_cols(a, b):
+    """Pearson correlation of matching columns of ``a``, ``b`` (N, C) over rows finite in both."""
+    ok = np.isfinite(a) & np.isfinite(b)
+    n = ok.sum(axis=0)
+    a = np.where(ok, a, 0.0)
+    b = np.where(ok, b, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ma, mb = a.sum(0) / n, b.sum(0) / n
+        da, db = np.where(ok, a - ma, 0.0), np.where(ok, b - mb, 0.0)
+        r = (da * db).sum(0) / np.sqrt((da * da).sum(0) * (db * db).sum(0))
+    return np.where(n >= 3, r, np.nan)
+
+
+def map_reliability(bs: BlockSums, use_onoff, level: float = 0.95):
+    """Split-half reliability of each cell's space-time map, Spearman-Brown corrected, with an interval.
+
+    Parameters
+    ----------
+    bs : BlockSums  with an even number of blocks (``2 m``, ``m >= 3``)
+    use_onoff : array of bool (C,)  True: correlate ON + OFF maps, False: linear (ON - OFF) maps
+    level : float  coverage of the interval
+
+    Returns
+    -------
+    rel, low, high : ndarray (C,)
+        ``2 r / (1 + r)`` for the correlation ``r`` between the maps of the even and the odd blocks
+        (all pixels and lags), and the interval's ends (jackknife over the ``m`` pairs of neighbouring
+        blocks on ``atanh r``, Student's t with ``m - 1`` degrees of freedom, carried through the
+        monotone Spearman-Brown formula).
+    """
+    nb = bs.n_blocks
+    if nb % 2 or nb < 6:
+        raise ValueError(f"map_reliability needs an even number of blocks >= 6, got {nb}")
+    use_onoff = np.asarray(use_onoff, bool)
+    m = nb // 2
+    even, odd = np.arange(0, nb, 2), np.arange(1, nb, 2)
+
+    def r_of(ev, od):
+        on_a, off_a = bs.maps(ev)
+        on_b, off_b = bs.maps(od)
+        sgn = np.where(use_onoff, 1.0, -1.0)
+        ma = (on_a + sgn * off_a).reshape(-1, on_a.shape[-1])
+        mb = (on_b + sgn * off_b).reshape(-1, on_b.shape[-1])
+        return _corr_cols(ma, mb)
+
+    r = r_of(even, odd)
+    zj = np.stack([np.arctanh(np.clip(r_of(np.delete(even, j), np.delete(odd, j)), -0.999999, 0.999999))
+                   for j in range(m)])
+    se = np.sqrt((m - 1) / m * np.sum((zj - zj.mean(0)) ** 2, axis=0))
+    t = stats.t.ppf(0.5 + level / 2, m - 1)
+    z = np.arctanh(np.clip(r, -0.999999, 0.999999))
+    lo, hi = np.tanh(z - t * se), np.tanh(z + t * se)
+    return spearman_brown(r), spearman_brown(lo), spearman_brown(hi)
+
+
+def _generator(B, W, lags, F):
+    """``g[t] = sum_l (B @ W_l)[t - l]`` -> (F, C); ``W`` (L, 2P, C)."""
+    g = np.zeros((F, W.shape[-1]))
+    for li, lag in enumerate(lags):
+        y = B @ W[li]
+        g[lag:] += y[:F - lag] if lag else y
+    return g
+
+
+def _fit_nonlinearity(g, y, n_bins=10):
+    """Decile means of ``y`` against ``g`` (one column): bin centres and means, for interpolation."""
+    edges = np.unique(np.quantile(g, np.linspace(0, 1, n_bins + 1)))
+    if edges.size < 3:
+        return np.array([np.mean(g)]), np.array([np.mean(y)])
+    idx = np.clip(np.searchsorted(edges, g, side="right") - 1, 0, edges.size - 2)
+    cnt = np.bincount(idx, minlength=edges.size - 1)
+    keep = cnt > 0
+    xc = np.bincount(idx, weights=g, minlength=edges.size - 1)[keep] / cnt[keep]
+    yc = np.bincount(idx, weights=y, minlength=edges.size - 1)[keep] / cnt[keep]
+    return xc, yc
+
+
+def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4):
+    """Cross-validated correlation between the measured responses and a linear-nonlinear prediction.
+
+    Fold ``k`` holds the blocks ``b`` with ``b % n_folds == k``; the ON and OFF maps of the other blocks
+    make the generator signal (module docstring), the nonlinearity is fitted on the other blocks'
+    frames, and the prediction of fold ``k``'s frames is compared with their responses. Returns
+    ``r`` (C,): NaN when a cell has fewer than 10 valid held-out frames or a constant response.
+    """
+    F, C = X.shape
+    lags = bs.lags
+    fold_of_row = bs.block_of_row % n_folds
+    pred = np.full((F, C), np.nan)
+    for k in range(n_folds):
+        train_blocks = np.flatnonzero(np.arange(bs.n_blocks) % n_folds != k)
+        on, off = bs.maps(train_blocks)                          # (L, P, C)
+        W = np.nan_to_num(np.concatenate([on, off], axis=1))     # (L, 2P, C)
+        # each coefficient shrunk by its own noise (positive-part James-Stein factor per coefficient):
+        # a mean of n responses of variance s^2 has noise variance s^2 / n
+        tr_rows = (fold_of_row != k)[:, None] & (V > 0)
+        s2 = (np.where(tr_rows, X, 0.0) ** 2).sum(0) / np.maximum(tr_rows.sum(0), 1)     # (C,)
+        n = bs.counts[train_blocks].sum(axis=0)                   # (L, 2P, C)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            W = W * np.clip(1.0 - s2 / (n * W ** 2), 0.0, 1.0)
+        W = np.nan_to_num(W)
+        g = _generator(B, W, lags, F)
+        test = fold_of_row == k
+        for c in range(C):
+            tr = (~test) & (V[:, c] > 0)
+            te = test & (V[:, c] > 0)
+            if tr.sum() < 20 or not te.any():
+                continue
+            xc, yc = _fit_nonlinearity(g[tr, c], X[tr, c])
+            pred[te, c] = np.interp(g[te, c], xc, yc) if xc.size > 1 else yc[0]
+    Xn = np.where(V > 0, X, np.nan)
+    r = _corr_cols(pred, Xn)
+    n = (np.isfinite(pred) & np.isfinite(Xn)).sum(axis=0)
+    return np.where(n >= 10, r, np.nan)
+
+
+def map_quality(responses, noise: SparseNoise, max_lag_s: float, use_onoff=None, n_blocks: int = 16,
+                n_folds: int = 4) -> dict:
+    """``map_reliability`` (with its interval) and ``prediction_r`` for every cell.
+
+    Parameters
+    ----------
+    responses : Spikes or Traces
+        The responses the maps were made from (for traces: after the indicator-decay step).
+    noise : SparseNoise
+        Sparse (int8) frames; for dense noise every value is NaN.
+    max_lag_s : float
+        As for :func:`map2d.maps.compute_maps` (same lags).
+    use_onoff : array of bool (C,), optional
+        Cells whose map is ON + OFF (default: none).
+    n_blocks, n_folds : int
+        Blocks of time (even, >= 6) and cross-validation folds (``n_blocks % n_folds == 0`` keeps folds
+        equal).
+
+    Returns
+    -------
+    dict of :data:`QUALITY_COLUMNS` -> ndarray (C,)
+    """
+    from .maps import frame_responses, map_lags
+    C = int(np.asarray(responses.cell_ids).size)
+    out = {k: np.full(C, np.nan) for k in QUALITY_COLUMNS}
+    if not np.issubdtype(noise.frames.dtype, np.integer):
+        return out
+    lags = map_lags(noise.frame_interval_s, max_lag_s)
+    B, P, layout = _design(noise, int(lags[-1]))
+    R = _padded(frame_responses(responses, noise), layout)        # (rows, C)
+    use_onoff = np.zeros(C, bool) if use_onoff is None else np.asarray(use_onoff, bool)
+    for a in range(0, C, _CELL_CHUNK):
+        sl = slice(a, min(C, a + _CELL_CHUNK))
+        Rc = R[:, sl].astype(np.float64)
+        V = np.isfinite(Rc).astype(np.float64)
+        with np.errstate(invalid="ignore"):
+            mean = np.nansum(Rc, axis=0) / np.maximum(V.sum(0), 1)
+        X = np.where(V > 0, Rc - mean, 0.0)
+        bs = block_sums(X, V, B, lags, n_blocks)
+        rel, lo, hi = map_reliability(bs, use_onoff[sl])
+        out["map_reliability"][sl], out["map_reliability_low"][sl], out["map_reliability_high"][sl] = rel, lo, hi
+        out["prediction_r"][sl] = prediction_r(bs, B, X, V, n_folds)
+    return out
