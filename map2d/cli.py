@@ -299,6 +299,43 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("--speed", type=float, default=1.0, help="times real time (default 1; inf = at once)")
     rp.add_argument("--seconds", type=float, default=None, help="replay only this much recording time")
     _add_common(rp)
+    # -- plan -------------------------------------------------------------------------------------
+    pl = sub.add_parser("plan", help="minutes of sparse noise (and flashed presentations) a cell needs",
+                        description="Without SESSION: predict the map's peak z and centre precision of a cell "
+                                    "after --minutes of a sparse-noise protocol, and the minutes for --target-z "
+                                    "(and --target-center-deg). With SESSION: per cell and for the population, "
+                                    "the minutes still needed to reach --target-z (and with --target-snr the "
+                                    "flashed-grating presentations per condition). How: README, map2d plan.")
+    pl.add_argument("session", type=Path, nargs="?", default=None,
+                    help="a recorded session folder (optional)")
+    pl.add_argument("--target-z", type=float, default=8.0, help="target peak z of the linear map (default 8)")
+    pl.add_argument("--target-center-deg", type=float, default=None,
+                    help="target sd of each fitted centre coordinate, deg (protocol mode)")
+    pl.add_argument("--target-snr", type=float, default=None,
+                    help="target |H| / noise of the flashed-grating surface at the preferred condition")
+    pl.add_argument("--minutes", type=float, default=10.0, help="minutes of sparse noise to predict for (default 10)")
+    pl.add_argument("--ny", type=int, default=16, help="grid rows (default 16)")
+    pl.add_argument("--nx", type=int, default=24, help="grid columns (default 24)")
+    pl.add_argument("--spacing-deg", type=float, nargs=2, default=(2.0, 2.0), metavar=("DX", "DY"),
+                    help="pixel spacing in degrees (default 2 2)")
+    pl.add_argument("--spots", type=int, default=4, help="spots per frame (default 4)")
+    pl.add_argument("--rate-hz", type=float, default=20.0, help="sparse-noise frames per second (default 20)")
+    pl.add_argument("--cell-rate-hz", type=float, default=None, help="the cell's mean firing rate, spikes/s")
+    pl.add_argument("--field-sd-deg", type=float, default=None, help="the field's Gaussian sd, deg")
+    pl.add_argument("--peak-hz", type=float, default=None,
+                    help="rate above baseline at the cell's optimal stimulus, spikes/s")
+    pl.add_argument("--latency-s", type=float, default=0.05, help="response latency (default 0.05)")
+    pl.add_argument("--temporal-sd-s", type=float, default=0.015, help="sd of the response in time (default 0.015)")
+    pl.add_argument("--phases", type=int, default=4, help="flashed gratings: phases per grating (default 4)")
+    pl.add_argument("--contrast", type=float, default=1.0, help="flashed gratings: contrast (default 1)")
+    pl.add_argument("--flashed-rate-hz", type=float, default=10.0,
+                    help="flashed gratings: presentations per second (default 10)")
+    pl.add_argument("--variance-factor", type=float, default=1.5,
+                    help="flashed gratings: frame-response variance over the Poisson value (default 1.5)")
+    pl.add_argument("--max-lag", type=float, default=0.2, dest="max_lag_s", help="longest lag (default 0.2)")
+    pl.add_argument("--seed", type=int, default=0, help="seed for the shuffles (default 0)")
+    pl.add_argument("--out", type=Path, default=None, help="with SESSION: also write the per-cell table here (CSV)")
+    _add_common(pl)
 
     demo = sub.add_parser("demo", help="run the whole job on the shipped demo session",
                           description="Analyze data_demo/ (simulated) and write a report.")
@@ -361,6 +398,8 @@ def _dispatch(args) -> int:
     if args.command == "replay":
         from .replay import replay_session
         return replay_session(args.session, args.folder, speed=args.speed, seconds=args.seconds, quiet=args.quiet)
+    if args.command == "plan":
+        return pipeline.run_plan(args)
     if args.command == "demo":
         return pipeline.run_demo(args.out, quiet=args.quiet)
     raise AssertionError(args.command)

@@ -836,6 +836,80 @@ def run_watch(args) -> int:
     return 0
 
 
+def _fmt_num(v, nd=1):
+    import math
+    return "" if v is None or (isinstance(v, float) and not math.isfinite(v)) else f"{v:.{nd}f}"
+
+
+def run_plan(args) -> int:
+    """``map2d plan``: the planner (:mod:`map2d.plan`); prints, and with SESSION and ``--out`` writes the
+    per-cell table as CSV (written whole after everything was computed)."""
+    import numpy as np
+
+    from . import plan
+    if args.session is None:
+        missing = [n for n in ("cell_rate_hz", "field_sd_deg", "peak_hz") if getattr(args, n) is None]
+        if missing:
+            raise BadInput("map2d plan", None, "without SESSION give the cell: " +
+                           ", ".join("--" + n.replace("_", "-") for n in missing))
+        try:
+            pr = plan.NoiseProtocol(args.ny, args.nx, args.spacing_deg[0], args.spacing_deg[1], args.spots,
+                                    args.rate_hz)
+            cell = plan.PlannedCell(args.cell_rate_hz, args.field_sd_deg, args.peak_hz, args.latency_s,
+                                    args.temporal_sd_s)
+            out = plan.predict_sparse_noise(pr, cell, args.minutes)
+        except ValueError as exc:
+            raise BadInput("map2d plan", None, str(exc)) from None
+        z, csd = float(out["z"]), float(out["center_sd_deg"])
+        print(f"after {args.minutes:g} min: peak z {z:.1f} (spot response {float(out['spot_response_hz']):.1f} "
+              f"spikes/s, map noise sd {float(out['map_sd_hz']):.2f}); centre sd {csd:.2f} deg per coordinate")
+        print(f"minutes for z {args.target_z:g}: {float(plan.minutes_for_z(z, args.minutes, args.target_z)):.1f}")
+        if args.target_center_deg is not None:
+            print(f"minutes for a centre sd of {args.target_center_deg:g} deg: "
+                  f"{args.minutes * (csd / args.target_center_deg) ** 2:.1f}")
+        if args.target_snr is not None:
+            w = plan.temporal_shares(1.0 / args.flashed_rate_hz, args.latency_s, args.temporal_sd_s)
+            n = plan.flashed_presentations(args.cell_rate_hz, args.peak_hz / 2.0, args.target_snr, args.phases,
+                                           args.contrast, args.flashed_rate_hz, w, args.variance_factor)
+            print(f"flashed gratings: {float(n):.1f} presentations per condition for |H| SNR {args.target_snr:g}")
+        return 0
+    from .contract import write_table
+    from .nwb import load_source
+    session = load_source(args.session)
+    res = plan.plan_session(session, args.target_z, max_lag_s=args.max_lag_s, target_snr=args.target_snr,
+                            rng=args.seed)
+    t, pop = res["cells"], res["population"]
+    if not args.quiet:
+        names = [k for k in ("cell", "responsive", "z_now", "minutes_needed", "minutes_more", "snr_now",
+                             "presentations_needed") if k in t]
+        print("  ".join(f"{n:>12}" for n in names))
+        for i in range(len(t["cell"])):
+            print("  ".join(f"{(_fmt_num(t[n][i]) if n not in ('cell', 'responsive') else str(t[n][i])):>12}"
+                            for n in names))
+    if "responsive" in pop:
+        print(f"population: {pop['responsive']} of {pop['cells']} cells responsive after "
+              f"{pop['minutes_now']:.1f} min, {pop['reached']} at z >= {args.target_z:g}"
+              + ("" if pop["responsive"] == 0 else
+                 f"; {pop['minutes_more_for_50pct_of_responsive']:.1f} more min bring half of the responsive "
+                 f"cells there, {pop['minutes_more_for_90pct_of_responsive']:.1f} more min 90 %"))
+    if "target_snr" in pop:
+        need = np.asarray(t["presentations_needed"], float)
+        fin = need[np.isfinite(need)]
+        print(f"flashed gratings: {pop['presentations_now']:.1f} presentations per condition now, "
+              f"{pop['snr_reached']} cells at |H| SNR >= {args.target_snr:g}"
+              + (f"; median {np.median(fin):.1f} per condition needed" if fin.size else ""))
+    if args.out is not None:
+        out = Path(args.out)
+        tmp = out.with_name(f".{out.name}.partial-{os.getpid()}")
+        try:
+            write_table(tmp, t)
+            os.replace(tmp, out)
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
+    return 0
+
+
 DEMO_FOLDER = "data_demo"
 
 
