@@ -115,6 +115,19 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "understates the latency by up to a frame); empty for traces and cells that are not responsive.",
                "ours; after Chichilnisky 2001"),
         Column("snr", "1", "Largest |z| of the linear map at the peak lag."),
+        Column("map_reliability", "1", "Split-half reliability of the space-time map (all pixels and lags; linear map, "
+               "or ON + OFF when `fitted_map` is on+off): correlation between the maps of the even and the odd of 16 "
+               "blocks of time, Spearman-Brown corrected to the whole session, 2r / (1 + r). Estimates the "
+               "correlation with the map of an independent repeat; about 0 for a cell without a field.",
+               "Spearman 1910; Brown 1910"),
+        Column("map_reliability_low", "1", "Lower end of the 95 % interval of `map_reliability` (jackknife over pairs "
+               "of blocks on Fisher's z).", "Efron & Tibshirani 1993"),
+        Column("map_reliability_high", "1", "Upper end of the 95 % interval of `map_reliability`.",
+               "Efron & Tibshirani 1993"),
+        Column("prediction_r", "1", "Cross-validated correlation between the measured frame responses and a "
+               "linear-nonlinear model (ON and OFF maps of the other folds, shrunk by their noise, then a static "
+               "nonlinearity from the training decile means), over 4 held-out folds; about 0 without a field.",
+               "Chichilnisky 2001"),
         Column("trace_decay_tau_s", "s", "Imaging only: the indicator decay time constant removed from the trace "
                "before the maps.", "Vogelstein et al. 2010"),
         Column("dense_estimate", "text", "Dense (real-valued) noise only: how the linear map was estimated: `sta` "
