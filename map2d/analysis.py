@@ -69,6 +69,8 @@ class Analysis:
     notes : list of str  what was skipped and why
     trace_decay : map2d.traces.TraceDecay or None  the indicator decay removed from traces before the maps
         (None for spikes, which are never filtered)
+    space_time : map2d.spacetime.SpaceTime or None  separability, direction, speed, slices and the
+        denoised space-time maps (None without sparse noise)
     """
 
     session_name: str
@@ -97,6 +99,7 @@ class Analysis:
     notes: list = field(default_factory=list)
     trace_decay: object | None = None
     fields: object | None = None
+    space_time: object | None = None
 
     @property
     def grid(self):
@@ -291,6 +294,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
     from .maps import compute_maps, dense_columns, dense_estimate_note, spike_latency
     from .quality import map_quality
+    from .spacetime import model_space_time, predict_flashed_st, space_time, st_columns
     from .traces import decay_corrected
 
     rng = np.random.default_rng(rng)
@@ -330,6 +334,10 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         # map itself (for a complex cell mostly noise: it should predict little); never a rejected fit
         fitted = (ch.kind == "linear") & (fit_cols["center_method"] == "model")
         an.model_maps = np.where(fitted[:, None, None], an.fields.model_maps, ch.linear_spatial)
+        # space-time fields: separability, direction, speed, slices (map2d.spacetime)
+        an.space_time = space_time(an.maps, an.map_kind,
+                                   np.column_stack([fit_cols["center_x_deg"], fit_cols["center_y_deg"]]),
+                                   np.asarray(fit_cols.get("size_deg", np.full(C, np.nan)), float))
     else:
         an.notes.append("no sparse noise: no maps, no fits, no reconciliation")
 
@@ -384,6 +392,15 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         an.time_course_sign = reconcile.time_course_sign(
             _map_time_course(an.maps, linear_spatial), an.maps.lags_s, fl.temporal_profile, fl.lags_s)
         an.measured_h = fl.harmonic_combined * an.time_course_sign[:, None, None]
+        # a tilted (inseparable) linear field: predicted lag by lag from its space-time model and pooled
+        # like the measured surface (map2d.spacetime.predict_flashed_st); that pooling carries both time
+        # courses' signs, so the prediction takes the sign the measured surface was given above
+        tilted = an.space_time.inseparable & (an.map_kind == "linear")
+        if tilted.any():
+            st_pred = predict_flashed_st(model_space_time(an.space_time, grid, tilted, n_jobs=n_jobs),
+                                         an.maps.lags_s, grid, fl, origin)
+            an.predicted_h = np.where(tilted[:, None, None], st_pred * an.time_course_sign[:, None, None],
+                                      an.predicted_h)
         pred = np.where(an.maps.responsive[:, None, None], an.predicted_h, np.nan)
         an.forward = reconcile.forward_agreement(pred, an.measured_h, noise_var=an.measured_noise)
         agreement = np.asarray(an.forward["agreement"], float)
@@ -448,6 +465,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
                               if isinstance(session.responses, Spikes) else [np.nan] * C)
         cells["snr"] = list(m.snr)
         for k, v in quality.items():
+            cells[k] = list(v)
+        for k, v in st_columns(an.space_time, (tuning or {}).get("pref_direction_deg")).items():
             cells[k] = list(v)
         if an.trace_decay is not None:
             cells["trace_decay_tau_s"] = list(an.trace_decay.tau_s)

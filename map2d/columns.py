@@ -44,6 +44,7 @@ class Column(NamedTuple):
 UNITS = {
     "deg": "degrees (of visual angle, or of angle for orientations and phases)",
     "s": "seconds",
+    "deg_s": "degrees of visual angle per second",
     "cpd": "cycles per degree",
     "oct": "octaves",
     "1": "a number without unit (p-value, index, ratio, score)",
@@ -124,6 +125,22 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "of blocks on Fisher's z).", "Efron & Tibshirani 1993"),
         Column("map_reliability_high", "1", "Upper end of the 95 % interval of `map_reliability`.",
                "Efron & Tibshirani 1993"),
+        Column("st_separability", "1", "Share of the space-time map's signal power (window around the cell, all "
+               "lags) in its first separable component, corrected for noise (spiked-matrix inversion of the top "
+               "singular value, noise power removed from the total): near 1 for a space-time separable cell at any "
+               "SNR, lower for a tilted (direction-selective) field.", "Benaych-Georges & Nadakuditi 2012"),
+        Column("st_inseparable", "bool", "A second space-time component is significant (its singular value "
+               "against the largest of pure noise of the same size, level 0.01).", "ours"),
+        Column("st_direction_deg", "deg", "Direction of motion the space-time map prefers, 0-360, wave-vector "
+               "convention of the drifting gratings (the maximum of the map's predicted drifting-grating response); "
+               "inseparable maps only.", "DeAngelis, Ohzawa & Freeman 1993"),
+        Column("st_speed_deg_s", "deg_s", "Preferred speed of the inseparable map, deg/s: TF / SF at that maximum, "
+               "the map's pixel box and frame blur divided out.", "Adelson & Bergen 1985"),
+        Column("st_dsi", "1", "Direction index of the map: (E_pref - E_opp) / (E_pref + E_opp), E the predicted "
+               "drifting-grating energy over all SFs and TFs along the preferred axis (0 for separable maps).",
+               "ours"),
+        Column("st_direction_diff_deg", "deg", "Angle (0-180) between `st_direction_deg` and the drifting "
+               "gratings' `pref_direction_deg`, when both exist.", "ours"),
         Column("prediction_r", "1", "Cross-validated correlation between the measured frame responses and a "
                "linear-nonlinear model (ON and OFF maps of the other folds, shrunk by their noise, then a static "
                "nonlinearity from the training decile means), over 4 held-out folds; about 0 without a field.",

@@ -733,6 +733,10 @@ def write_analysis(folder, analysis, session, report=True) -> list:
                       **_model_maps(an),
                       grid_center_deg=np.array([m.grid.center_x_deg, m.grid.center_y_deg]),
                       grid_spacing_deg=np.array([m.grid.dx_deg, m.grid.dy_deg]))
+    if getattr(an, "space_time", None) is not None:          # space-time slices (map2d.spacetime)
+        st = an.space_time
+        arrays.update(st_slice_across=st.slice_across, st_slice_along=st.slice_along,
+                      st_slice_positions_deg=st.slice_positions_deg, st_axis_deg=st.axis_deg)
     if an.flashed is not None:
         fl = an.flashed
         arrays.update(orientations_deg=fl.orientations_deg, sfs_cpd=fl.sfs_cpd, phases_deg=fl.phases_deg,
