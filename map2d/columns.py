@@ -130,7 +130,8 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "singular value, noise power removed from the total): near 1 for a space-time separable cell at any "
                "SNR, lower for a tilted (direction-selective) field.", "Benaych-Georges & Nadakuditi 2012"),
         Column("st_inseparable", "bool", "A second space-time component is significant (its singular value "
-               "against the largest of pure noise of the same size, level 0.01).", "ours"),
+               "against the largest of pure noise of the same size, level 0.01) and carries at least 15 % of the power "
+               "(`st_separability` <= 0.85).", "ours"),
         Column("st_direction_deg", "deg", "Direction of motion the space-time map prefers, 0-360, wave-vector "
                "convention of the drifting gratings (the maximum of the map's predicted drifting-grating response); "
                "inseparable maps only.", "DeAngelis, Ohzawa & Freeman 1993"),

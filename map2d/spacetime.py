@@ -18,7 +18,9 @@ window around the cell:
   of the z-map outside the window (1 when too few pixels lie outside).
 - **Inseparable call.** The second singular value against the largest singular value of pure noise of
   the residual's size (``(L - 1) x (P - 1)`` Gaussian matrices, 99th percentile of 400 draws, seeded):
-  a calibrated test at level 0.01 that a second component is present.
+  a calibrated test at level 0.01 that a second component is present; the map is called inseparable
+  when it is and ``st_separability <= 0.85`` (:data:`INSEPARABLE_MAX`, ours). A significant second
+  component is kept in the denoised map either way.
 - **Direction and speed.** The denoised map (the significant components inside the window, 1 or 2)
   predicts its response to drifting gratings: for direction ``theta``, SF ``f`` and TF ``w`` the
   amplitude is ``|sum_l exp(i 2 pi w tau_l) H(f n_theta, tau_l)|`` with
@@ -64,6 +66,11 @@ ST_COLUMNS = ("st_separability", "st_inseparable", "st_direction_deg", "st_speed
               "st_direction_diff_deg")
 
 _NULL_DRAWS = 400
+#: Largest ``st_separability`` of a map called inseparable (ours): besides being significant, the second
+#: component must carry at least 15 % of the signal power. At high SNR the rectification of a separable
+#: simple cell leaves a significant but tiny second component (separability 0.96 in the held-out
+#: check, against 0.59-0.69 for tilted cells and 0.91-1.0 for separable ones).
+INSEPARABLE_MAX = 0.85
 _ALPHA = 0.01
 
 
@@ -230,9 +237,10 @@ def space_time(maps, map_kind, centres_deg, sizes_deg=None, window_sd: float = 2
             out.separability[c] = min(max(th1 / total, 0.0), 1.0)
         else:
             continue
-        insep = S.size > 1 and S[1] ** 2 > noise_var * _null_top(L - 1, Pw - 1)
-        out.inseparable[c] = bool(insep)
-        k = 2 if insep else 1
+        second = S.size > 1 and S[1] ** 2 > noise_var * _null_top(L - 1, Pw - 1)
+        insep = bool(second and out.separability[c] <= INSEPARABLE_MAX)
+        out.inseparable[c] = insep
+        k = 2 if second else 1
         out.n_components[c] = k
         # denoised map in response units: the kept components of the z-map, rescaled pixel by pixel
         with np.errstate(invalid="ignore", divide="ignore"):

@@ -48,9 +48,9 @@ TAU = np.arange(0.0, 0.3, DT) + DT / 2           # kernel lags (bin centres)
 
 CELLS = [
     # id, centre, theta (deg), f (cpd), w (Hz), psi (deg); tilted cells have w > 0
-    dict(id=1, cx=-2.0, cy=2.0, theta=30.0, f=0.10, w=8.0, psi=20.0),
-    dict(id=2, cx=10.0, cy=-8.0, theta=200.0, f=0.12, w=8.0, psi=-60.0),
-    dict(id=3, cx=14.0, cy=1.0, theta=300.0, f=0.09, w=8.0, psi=100.0),
+    dict(id=1, cx=-2.0, cy=2.0, theta=30.0, f=0.10, w=6.0, psi=20.0),
+    dict(id=2, cx=10.0, cy=-8.0, theta=200.0, f=0.12, w=6.0, psi=-60.0),
+    dict(id=3, cx=14.0, cy=1.0, theta=300.0, f=0.09, w=6.0, psi=100.0),
     dict(id=4, cx=0.0, cy=-9.0, theta=70.0, f=0.10, w=0.0, psi=0.0),
     dict(id=5, cx=6.0, cy=0.0, theta=120.0, f=0.12, w=0.0, psi=90.0),
     dict(id=6, cx=16.0, cy=-6.0, theta=0.0, f=0.09, w=0.0, psi=200.0),
@@ -58,6 +58,8 @@ CELLS = [
 SIGMA_A, SIGMA_B = 3.0, 3.5          # envelope sds across / along the stripes (deg)
 T_PEAK, T_SD = 0.10, 0.04            # time course e(tau)
 GAIN, BASE = 150.0, 1.0              # spikes/s above baseline at the optimal drifting grating
+TILTED_GAIN = 250.0                  # tilted cells: a spot's response spreads over lags whose phases
+                                     # differ, so the same gain gives a weaker map; this evens the maps' SNR
 
 
 def pixel_centres():
@@ -183,7 +185,7 @@ def write_session(folder: Path, seed: int = 0) -> None:
         tt = np.arange(0, 2.0, DT)
         xb = np.real(zb[:, None] * np.exp(-2j * np.pi * tf * tt)[None, :])
         peak = np.max((np.convolve(xb[0], hc) - np.convolve(xb[1], hs))[TAU.size:tt.size])
-        rate = BASE + GAIN * np.maximum(drive, 0.0) / peak
+        rate = BASE + (TILTED_GAIN if c["w"] > 0 else GAIN) * np.maximum(drive, 0.0) / peak
         n = rng.poisson(rate * DT)
         bi = np.repeat(np.arange(nb), n)
         times.append((bi + rng.random(bi.size)) * DT)

@@ -26,15 +26,25 @@ def _maps(z):
 
 
 def _field(theta_deg, f, w_hz, amp):
-    """Gabor at the grid centre, sds 3 deg, Gaussian time course (peak 0.1 s, sd 0.04 s); with w > 0 the
-    carrier phase advances 2 pi w tau with the lag, so the stripes drift toward -theta as the lag
-    grows: the field prefers motion toward theta at w / f deg/s (DeAngelis et al. 1993)."""
-    X, Y = np.meshgrid(GRID.x_deg, GRID.y_deg)
+    """A Gabor at the grid centre (sds 3 deg) with a Gaussian time course (peak 0.1 s, sd 0.04 s), as a
+    sparse-noise map sees it: integrated over each pixel (5 x 5 points) and over the frame's triangle in
+    time (a one-frame spot, a one-frame response window). With w > 0 the carrier phase advances
+    2 pi w tau with the delay, so the stripes drift toward -theta as the lag grows: the field prefers
+    motion toward theta at w / f deg/s (DeAngelis et al. 1993)."""
+    off = ((np.arange(5) + 0.5) / 5 - 0.5) * GRID.dx_deg
+    X = (GRID.x_deg[None, :, None, None] + off[None, None, None, :]) + 0 * GRID.y_deg[:, None, None, None]
+    Y = (GRID.y_deg[:, None, None, None] - off[None, None, :, None]) + 0 * GRID.x_deg[None, :, None, None]
     th = np.deg2rad(theta_deg)
     a = X * np.cos(th) + Y * np.sin(th)
     env = np.exp(-(X ** 2 + Y ** 2) / (2 * 3.0 ** 2))
-    e = np.exp(-(LAGS - 0.1) ** 2 / (2 * 0.04 ** 2))
-    m = env[None] * e[:, None, None] * np.cos(2 * np.pi * f * a[None] + 2 * np.pi * w_hz * LAGS[:, None, None])
+    tau = np.linspace(0.0, LAGS[-1] + FRAME, 301)
+    e = np.exp(-(tau - 0.1) ** 2 / (2 * 0.04 ** 2))
+    tri = np.maximum(0.0, 1.0 - np.abs(tau[None, :] - LAGS[:, None]) / FRAME)            # (L, tau)
+    c_t = (tri * e * np.cos(2 * np.pi * w_hz * tau)).sum(1)
+    s_t = (tri * e * np.sin(2 * np.pi * w_hz * tau)).sum(1)
+    cos_p = (env * np.cos(2 * np.pi * f * a)).mean(axis=(2, 3))
+    sin_p = (env * np.sin(2 * np.pi * f * a)).mean(axis=(2, 3))
+    m = c_t[:, None, None] * cos_p[None] - s_t[:, None, None] * sin_p[None]
     return amp * m / np.abs(m).max()
 
 
@@ -71,7 +81,7 @@ def test_separable_maps_read_near_1_at_any_snr(peak_z):
     assert np.all(np.isnan(st.direction_deg[~st.inseparable]))
 
 
-@pytest.mark.parametrize("theta,f,w", [(30.0, 0.12, 6.0), (200.0, 0.1, 4.0), (300.0, 0.15, 8.0)])
+@pytest.mark.parametrize("theta,f,w", [(30.0, 0.12, 6.0), (200.0, 0.1, 4.0), (300.0, 0.15, 5.0)])
 def test_tilted_maps_give_direction_and_speed(theta, f, w):
     rng = np.random.default_rng(2)
     n = 10
@@ -81,7 +91,7 @@ def test_tilted_maps_give_direction_and_speed(theta, f, w):
     # noise-corrected: the estimate tracks the noiseless map's share S1^2 / sum S^2
     sv = np.linalg.svd(_field(theta, f, w, 12.0).reshape(LAGS.size, -1), compute_uv=False)
     truth = sv[0] ** 2 / np.sum(sv ** 2)
-    assert truth < 0.9
+    assert truth < 0.8
     assert np.median(st.separability) == pytest.approx(truth, abs=0.08)
     err = np.abs((st.direction_deg - theta + 180.0) % 360.0 - 180.0)
     assert np.all(err <= 15.0), st.direction_deg
