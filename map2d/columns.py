@@ -121,9 +121,9 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "blocks of time, Spearman-Brown corrected to the whole session, 2r / (1 + r). Estimates the "
                "correlation with the map of an independent repeat; about 0 for a cell without a field.",
                "Spearman 1910; Brown 1910"),
-        Column("map_reliability_low", "1", "Lower end of the 95 % interval of `map_reliability` (jackknife over pairs "
+        Column("map_reliability_ci_low", "1", "Lower end of the 95 % interval of `map_reliability` (jackknife over pairs "
                "of blocks on Fisher's z).", "Efron & Tibshirani 1993"),
-        Column("map_reliability_high", "1", "Upper end of the 95 % interval of `map_reliability`.",
+        Column("map_reliability_ci_high", "1", "Upper end of the 95 % interval of `map_reliability`.",
                "Efron & Tibshirani 1993"),
         Column("st_separability", "1", "Share of the space-time map's signal power (window around the cell, all "
                "lags) in its first separable component, corrected for noise (spiked-matrix inversion of the top "

@@ -45,7 +45,7 @@ __all__ = ["BlockSums", "block_sums", "map_reliability", "prediction_r", "spearm
            "QUALITY_COLUMNS"]
 
 #: Columns :func:`map_quality` adds to ``cells.csv``.
-QUALITY_COLUMNS = ("map_reliability", "map_reliability_low", "map_reliability_high", "prediction_r")
+QUALITY_COLUMNS = ("map_reliability", "map_reliability_ci_low", "map_reliability_ci_high", "prediction_r")
 
 _CELL_CHUNK = 64           # cells per pass (bounds the memory of the per-block sums)
 
@@ -307,6 +307,6 @@ def map_quality(responses, noise: SparseNoise, max_lag_s: float, use_onoff=None,
         X = np.where(V > 0, Rc - mean, 0.0)
         bs = block_sums(X, V, B, lags, n_blocks)
         rel, lo, hi = map_reliability(bs, use_onoff[sl])
-        out["map_reliability"][sl], out["map_reliability_low"][sl], out["map_reliability_high"][sl] = rel, lo, hi
+        out["map_reliability"][sl], out["map_reliability_ci_low"][sl], out["map_reliability_ci_high"][sl] = rel, lo, hi
         out["prediction_r"][sl] = prediction_r(bs, B, X, V, n_folds)
     return out

@@ -44,7 +44,7 @@ def test_unresponsive_cells_reliability_and_prediction_centred_on_zero(mixed):
     assert abs(np.mean(rel)) < 0.05
     assert np.all(np.abs(rel) < 0.2)
     # the interval covers 0 for (nearly) every null cell (95 % intervals)
-    covers = (q["map_reliability_low"][null] <= 0) & (q["map_reliability_high"][null] >= 0)
+    covers = (q["map_reliability_ci_low"][null] <= 0) & (q["map_reliability_ci_high"][null] >= 0)
     assert covers.mean() >= 0.8
     pr = q["prediction_r"][null]
     assert abs(np.mean(pr)) < 0.02 and np.all(np.abs(pr) < 0.05)
@@ -111,7 +111,7 @@ def test_quality_columns_in_the_cells_table(small_spikes_session):
     for k in QUALITY_COLUMNS:
         assert k in an.cells and len(an.cells[k]) == len(an.cell_ids)
     rel = np.asarray(an.cells["map_reliability"], float)
-    lo, hi = (np.asarray(an.cells[k], float) for k in ("map_reliability_low", "map_reliability_high"))
+    lo, hi = (np.asarray(an.cells[k], float) for k in ("map_reliability_ci_low", "map_reliability_ci_high"))
     assert np.all((lo <= rel) & (rel <= hi))
     kinds = {c["cell_id"]: c["kind"] for c in truth["cells"]}
     un = np.array([kinds[int(i)] == "unresponsive" for i in an.cell_ids])
