@@ -246,3 +246,15 @@ def test_tilted_cells_placed_and_called_linear_like_separable_ones(analysed):
         err = np.hypot(_f(row["center_x_deg"]) - c["cx"], _f(row["center_y_deg"]) - c["cy"])
         assert err < 1.5, (c["id"], err)
         assert row["linear"] == "true", (c["id"], row["agreement"], row["linear_reason"])
+
+
+def test_map_direction_agrees_with_the_drifting_gratings(analysed):
+    """Where both exist, the map's direction and direction index agree with the drifting gratings'."""
+    for c in CELLS:
+        row = analysed[c["id"]]
+        if c["w"] > 0:
+            assert _f(row["st_direction_diff_deg"]) < 30.0
+            assert _f(row["dsi"]) > 0.5 and _f(row["st_dsi"]) > 0.5
+        else:
+            assert np.isnan(_f(row["st_direction_diff_deg"]))      # no direction for a separable map
+            assert _f(row["dsi"]) < 0.3 and abs(_f(row["st_dsi"])) < 0.2
