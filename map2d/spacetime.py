@@ -54,6 +54,7 @@ Adelson EH, Bergen JR (1985) Spatiotemporal energy models for the perception of 
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -243,10 +244,11 @@ def space_time(maps, map_kind, centres_deg, sizes_deg=None, window_sd: float = 2
         k = 2 if second else 1
         out.n_components[c] = k
         # denoised map in response units: the kept components of the z-map, rescaled pixel by pixel
-        with np.errstate(invalid="ignore", divide="ignore"):
+        with np.errstate(invalid="ignore", divide="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)       # pixels never shown: all-NaN columns
             scale = np.where(np.abs(z[:, win]) > 0, v[:, win] / z[:, win], np.nan)
-        sc = np.nanmedian(scale, axis=0)
-        sc = np.where(np.isfinite(sc), sc, np.nanmedian(scale))
+            sc = np.nanmedian(scale, axis=0)
+            sc = np.where(np.isfinite(sc), sc, np.nanmedian(scale) if np.isfinite(scale).any() else 0.0)
         low = (U[:, :k] * S[:k]) @ Vt[:k]                                  # (L, Pw) in z units
         den = np.zeros((L, ny * nx))
         den[:, win] = low * sc[None, :]
