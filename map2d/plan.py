@@ -292,8 +292,8 @@ def plan_session(session, target_z: float, max_lag_s: float = 0.2, target_snr: f
         minutes_now = n_used * m.frame_s / 60.0
         # the z of the map map2d fits: the linear map's peak, or for cells fitted on ON + OFF (coextensive
         # ON and OFF regions) the largest |z| of any kind
-        from .analysis import spatial_maps
-        kind = spatial_maps(m)[3]
+        from .maps import choose_maps
+        kind = np.asarray(choose_maps(m).kind)
         z_now = np.where(m.responsive, np.where(kind == "on+off", m.max_abs_z, m.snr), np.nan)
         need = minutes_for_z(z_now, minutes_now, target_z)
         more = np.where(np.isfinite(need), np.maximum(need - minutes_now, 0.0), np.nan)

@@ -56,7 +56,6 @@ def test_planner_predicts_simulated_z_and_centre_precision_within_25_percent(set
     setting (z at the pixel holding the true centre and the true latency, averaged over cells; centre
     error of a Gaussian fit to the lag-pooled map, RMS over x and y). Measured: z within 1-5 %, centre
     sd within 1-18 %."""
-    from map2d.analysis import spatial_maps
     from map2d.fit.spatial import fit_maps
     from map2d.maps import compute_maps, frame_responses
     from map2d.simulate import simulate_responses
@@ -73,7 +72,8 @@ def test_planner_predicts_simulated_z_and_centre_precision_within_25_percent(set
     li = int(np.argmin(np.abs(m.lags_s - lat * T)))
     z = [m.linear_z[i, li, int(np.argmin(np.abs(grid.y_deg - c.center_y_deg))),
                     int(np.argmin(np.abs(grid.x_deg - c.center_x_deg)))] for i, c in enumerate(cells)]
-    lin_sp = spatial_maps(m)[1]
+    from map2d.maps import choose_maps
+    lin_sp = choose_maps(m).linear_spatial
     cols = fit_maps(np.nan_to_num(lin_sp), grid, np.ones(len(cells), bool), models=("gaussian",))
     err = np.concatenate([np.asarray(cols["center_x_deg"]) - [c.center_x_deg for c in cells],
                           np.asarray(cols["center_y_deg"]) - [c.center_y_deg for c in cells]])
