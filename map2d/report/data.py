@@ -98,6 +98,9 @@ INDEX_COLUMNS = (
     ("f1_f0", "F1/F0", "num", "modulation ratio of the drifting-grating response"),
     ("agreement", "agreement", "num", "map-grating agreement (fraction of variance)"),
     ("linear", "linear", "bool", "linearity call (empty: no call)"),
+    ("map_reliability", "reliability", "num", "split-half reliability of the space-time map"),
+    ("prediction_r", "pred. r", "num", "cross-validated LN-model prediction correlation"),
+    ("st_separability", "separability", "num", "space-time separability (noise-corrected)"),
 )
 
 
@@ -291,6 +294,14 @@ def _map_part(an, r, pack_maps):
     out = {"li": li, "sig": bool(significant), "maps": pack_maps(r, li), "tc": [_list(t) for t in tc],
            "px": [_r(float(x)), _r(float(y))], "outline": _outline_params(an, r),
            "last": bool(significant and li == len(m.lags_s) - 1 and len(m.lags_s) > 1)}
+    st = getattr(an, "space_time", None)                    # the x-t slice (map2d.spacetime)
+    if st is not None and np.isfinite(st.slice_across[r]).any():
+        sl = np.nan_to_num(np.asarray(st.slice_across[r], float))
+        used = np.flatnonzero(np.any(sl != 0, axis=0))
+        if used.size:
+            a, b = max(used[0] - 1, 0), min(used[-1] + 2, sl.shape[1])
+            out["st"] = {"s": pack(sl[::-1, a:b]), "pos": _list(st.slice_positions_deg[a:b]),
+                         "ax": _r(st.axis_deg[r]), "sep": _r(st.separability[r]), "dir": _r(st.direction_deg[r])}
     return out
 
 

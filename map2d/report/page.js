@@ -311,7 +311,21 @@ function drawMaps(d, c) {
   if (m.last) q.note("peak at the last lag:\nthe lag window may be too short", "#b03a2e");
   q.axes({xl: "lag (ms)", yl: "map (" + UNIT + ")", title: "time course at (" + fmt(m.px[0], 3) + ", " + fmt(m.px[1], 3) + ") deg"});
   out.push(q.svg());
+  if (m.st) out.push(drawSlice(m.st));
   return out;
+}
+
+/* the space-time slice: the map summed along the cell's stripes, position across them by lag
+   (rows packed from the last lag down, so the image's top row is the longest lag) */
+function drawSlice(st) {
+  var v = unpack(st.s), L = st.s.sh[0], B = st.s.sh[1], lim = st.s.m, pos = st.pos, lags = S.lags_ms;
+  var dp = B > 1 ? pos[1] - pos[0] : 1, dl = lags.length > 1 ? lags[1] - lags[0] : 1;
+  var ext = [pos[0] - dp / 2, pos[B - 1] + dp / 2, lags[0] - dl / 2, lags[L - 1] + dl / 2];
+  var p = new Plot(58 + 200 + 88, 26 + 170 + 44, {x: [ext[0], ext[1]], y: [ext[2], ext[3]], r: 88});
+  p.image(mapURL(v, L, B, 0, LUT.signed, -lim, lim), ext);
+  p.axes({xl: "across the stripes (deg; axis " + fmt(st.ax, 3) + " deg)", yl: "lag (ms)",
+          title: "x-t slice, separability " + fmt(st.sep, 2) + (fin(st.dir) ? ", to " + fmt(st.dir, 3) + "\u00b0" : "")});
+  return finish(p, [LUT.signed, -lim, lim, "summed map (" + UNIT + ")"]);
 }
 
 function surfPlot(vals, off, lo, hi, lut, title, o) {
@@ -471,7 +485,7 @@ function openCell(c, how) {
   var d = CELLS[c], box = document.getElementById("viewer");
   var figs = [];
   try {
-    if (d.map) figs.push(["maps at the peak lag (ON: after a bright spot, OFF: after a dark spot) and their time course", drawMaps(d, c)]);
+    if (d.map) figs.push(["maps at the peak lag (ON: after a bright spot, OFF: after a dark spot), their time course" + (d.map.st ? " and the x-t slice" : ""), drawMaps(d, c)]);
     var f1f0 = S.col.f1_f0[ROW_OF[c]];
     if (d.surf) figs.push(["flashed gratings: orientation \u00d7 spatial frequency" + (fin(f1f0) && f1f0 < S.thr.f1_f0 ?
       " \u2014 F1/F0 " + fmt(f1f0, 2) + " < " + S.thr.f1_f0 + ": little phase dependence, the mean over phase carries the tuning" : ""), drawSurfaces(d, c)]);
