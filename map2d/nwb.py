@@ -246,14 +246,50 @@ def _read_traces(nwbfile, spec, nwb_path, where, notes):
         if np.array_equal(ids, np.arange(ids.size)):
             ids = None                                                  # ids are the column numbers
     traces = check_traces(values, times, notes, f"{nwb_path}: {spath}", row_word="ROI", ids=ids)
-    labels = _roi_labels(table, rows, traces.cell_ids, nwb_path, notes) if table is not None else None
+    labels = (_roi_labels(table, rows, traces.cell_ids, nwb_path, notes, nwbfile=nwbfile)
+              if table is not None else None)
     return traces, labels
 
 
-def _roi_labels(table, rows, cell_ids, nwb_path, notes):
+def _plane_size(nwbfile, table):
+    """Size ``(nx, ny)`` of the imaging plane a PlaneSegmentation's masks apply to, as the file states it,
+    and where it was read: a TwoPhotonSeries over the same ``imaging_plane`` (its ``dimension``, number
+    of pixels on x, y; else its data's frame shape, ImageSeries data being (frame, x, y)), else the
+    segmentation's ``reference_images`` (dimension or frame shape). None when nothing states it."""
+    def size_of(series):
+        dim = getattr(series, "dimension", None)
+        if dim is not None:
+            d = np.asarray(dim[:] if hasattr(dim, "shape") else dim).reshape(-1)
+            if d.size >= 2 and d[0] > 0 and d[1] > 0:
+                return (int(d[0]), int(d[1])), "dimension"
+        shape = getattr(getattr(series, "data", None), "shape", None)
+        if shape is not None and len(shape) >= 3 and shape[1] > 0 and shape[2] > 0:
+            return (int(shape[1]), int(shape[2])), "data"
+        return None, None
+
+    plane = getattr(table, "imaging_plane", None)
+    if nwbfile is not None and plane is not None:
+        from pynwb.ophys import TwoPhotonSeries
+        for obj in nwbfile.objects.values():
+            if isinstance(obj, TwoPhotonSeries) and obj.imaging_plane is plane:
+                size, field = size_of(obj)
+                if size is not None:
+                    return size, f"{_file_path(nwbfile, obj)}.{field}"
+    refs = getattr(table, "reference_images", None)
+    for series in (refs.values() if isinstance(refs, dict) else refs or ()):
+        size, field = size_of(series)
+        if size is not None:
+            where = _file_path(nwbfile, series) if nwbfile is not None else series.name
+            return size, f"{where}.{field}"
+    return None, None
+
+
+def _roi_labels(table, rows, cell_ids, nwb_path, notes, nwbfile=None):
     """Label image ``(y, x)`` of the field of view from a PlaneSegmentation's ``image_mask`` (ROI, x, y)
     or ``pixel_mask`` (x, y, weight) rows: label = cell id + 1 (0 = no ROI); where masks overlap the
-    larger weight wins. None when the table has no masks or every mask is empty."""
+    larger weight wins. The image spans the whole imaging plane: an image mask's own shape, else the
+    plane's size as the file states it (``_plane_size``); only when nothing states it, the masks'
+    extent (with a note). None when the table has no masks or every mask is empty."""
     cols = set(getattr(table, "colnames", ()))
     masks = []
     if "image_mask" in cols:
@@ -280,6 +316,18 @@ def _roi_labels(table, rows, cell_ids, nwb_path, notes):
     if "image_mask" in cols:
         shape = np.asarray(table["image_mask"][int(rows[0])]).shape
         nx, ny = max(nx, shape[0]), max(ny, shape[1])
+    else:
+        tpath = _file_path(nwbfile, table) if nwbfile is not None else getattr(table, "name", "PlaneSegmentation")
+        size, stated = _plane_size(nwbfile, table)
+        if size is None:
+            _note(notes, f"{nwb_path}: {tpath}: the imaging plane's size is not stated (no TwoPhotonSeries "
+                         f"dimension or data over its imaging plane, no reference_images); the field-of-view "
+                         f"maps span the masks' extent ({ny} x {nx} pixels)")
+        elif nx > size[0] or ny > size[1]:
+            raise BadInput(nwb_path, f"{tpath}.pixel_mask", f"has pixels past the imaging plane's "
+                                                            f"{size[0]} x {size[1]} (x, y) pixels stated by {stated}")
+        else:
+            nx, ny = size
     labels = np.zeros((ny, nx), dtype=np.int64)
     best = np.zeros((ny, nx))
     for cid, (yy, xx, w) in zip(cell_ids, masks):

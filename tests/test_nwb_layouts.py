@@ -375,3 +375,104 @@ def test_converter_pixel_masks_and_roi_ids_come_back(tmp_path):
     assert s.roi_label_offset == 1
     np.testing.assert_array_equal(s.rois, session.rois[:s.rois.shape[0], :s.rois.shape[1]])
     assert not session.rois[s.rois.shape[0]:].any() and not session.rois[:, s.rois.shape[1]:].any()
+
+
+@pytest.mark.filterwarnings("ignore:The linked table:UserWarning")
+@pytest.mark.parametrize("stated", ["dimension", "frames", "reference_images", "nothing"])
+def test_pixel_mask_field_of_view_spans_the_imaging_plane(tmp_path, stated):
+    """ROIs as ``pixel_mask`` (x, y, weight) rows (NWB schema, PlaneSegmentation.pixel_mask: "Pixel
+    x-coordinate", "Pixel y-coordinate"), masks in one corner of a 48 x 36 (x, y) plane: the label image is
+    the whole plane, (rows = y, columns = x), as stated by the TwoPhotonSeries over the same imaging plane
+    (its ``dimension``, "Number of pixels on x, y", with the movie in an external file as acquisition
+    pipelines write it; or its (frame, x, y) data), or by the segmentation's reference image; each ROI
+    sits at its pixels. With nothing stated, the masks' extent, with a note saying so."""
+    from pynwb.ophys import Fluorescence, ImageSegmentation, OpticalChannel, RoiResponseSeries, TwoPhotonSeries
+    nx, ny = 48, 36
+    ids = np.array([4, 7, 9])
+    pixels = {4: [(2, 1), (3, 1), (2, 2)], 7: [(10, 5), (11, 5)], 9: [(0, 12), (1, 13), (20, 14)]}   # (x, y)
+    f = _new_file("px")
+    device = f.create_device("scope")
+    ch = OpticalChannel(name="green", description="green", emission_lambda=510.0)
+    plane = f.create_imaging_plane("plane0", ch, description="L2/3", device=device, excitation_lambda=920.0,
+                                   indicator="GCaMP", location="V1")
+    # a second plane of another size, so the reader must use the series over the segmentation's own plane
+    other = f.create_imaging_plane("plane1", ch, description="L4", device=device, excitation_lambda=920.0,
+                                   indicator="GCaMP", location="V1")
+    f.add_acquisition(TwoPhotonSeries(name="other_movie", imaging_plane=other, external_file=["other.tif"],
+                                      starting_frame=[0], format="external", dimension=[512, 512], rate=30.0,
+                                      num_samples=900))
+    if stated == "dimension":
+        f.add_acquisition(TwoPhotonSeries(name="movie", imaging_plane=plane, external_file=["movie.tif"],
+                                          starting_frame=[0], format="external", dimension=[nx, ny], rate=30.0,
+                                      num_samples=900))
+    elif stated == "frames":
+        f.add_acquisition(TwoPhotonSeries(name="movie", imaging_plane=plane, rate=30.0, unit="a.u.",
+                                          data=np.zeros((3, nx, ny), np.uint16)))        # (frame, x, y)
+    mod = f.create_processing_module("ophys", "processed imaging")
+    seg = ImageSegmentation()
+    mod.add(seg)
+    ref = None
+    if stated == "reference_images":
+        ref = ImageSeries(name="mean_image", data=np.zeros((1, nx, ny), np.float32), unit="a.u.", rate=1.0)
+        f.add_acquisition(ref)
+    ps = seg.create_plane_segmentation("cells", plane, name="PlaneSegmentation", reference_images=ref)
+    for cid in ids:
+        ps.add_roi(pixel_mask=[(x, y, 1.0) for x, y in pixels[cid]], id=int(cid))
+    region = ps.create_roi_table_region("all", region=[0, 1, 2])
+    rng = np.random.default_rng(2)
+    times = np.arange(200) / 30.0
+    mod.add(Fluorescence(roi_response_series=RoiResponseSeries(
+        name="dff", data=rng.normal(size=(200, 3)), rois=region, unit="dF/F", timestamps=times)))
+    f.add_stimulus(TimeSeries(name="noise", data=rng.choice(np.array([-1, 0, 1], np.int8), size=(200, 4, 5)),
+                              unit="n.a.", timestamps=times))
+    path = _write(f, tmp_path / "px.nwb")
+    m = {"responses": {"kind": "traces", "series": "dff"},
+         "sparse_noise": {"series": "noise", "axes": "yx", "first_row": "top",
+                          "grid": {"nx": 5, "ny": 4, "spacing_deg": [5.0, 5.0],
+                                   "center_deg": [0.0, 0.0]}}}
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", InputWarning)
+        s = load_nwb(path, m)
+    extent_notes = [str(w.message) for w in caught if "masks' extent" in str(w.message)]
+    np.testing.assert_array_equal(s.cell_ids, ids)
+    if stated == "nothing":
+        assert s.rois.shape == (15, 21)                                 # max y + 1, max x + 1
+        assert len(extent_notes) == 1 and "PlaneSegmentation" in extent_notes[0]
+    else:
+        assert s.rois.shape == (ny, nx) and not extent_notes
+    expected = np.zeros(s.rois.shape, np.int64)
+    for cid in ids:
+        for x, y in pixels[cid]:
+            expected[y, x] = cid + 1                                   # row = y, column = x
+    np.testing.assert_array_equal(s.rois, expected)
+
+
+@pytest.mark.filterwarnings("ignore:The linked table:UserWarning")
+def test_pixel_mask_past_the_stated_plane_is_refused(tmp_path):
+    """A pixel mask outside the plane the TwoPhotonSeries states is refused, naming the field."""
+    from pynwb.ophys import Fluorescence, ImageSegmentation, OpticalChannel, RoiResponseSeries, TwoPhotonSeries
+    f = _new_file("px2")
+    device = f.create_device("scope")
+    ch = OpticalChannel(name="green", description="green", emission_lambda=510.0)
+    plane = f.create_imaging_plane("plane0", ch, description="L2/3", device=device, excitation_lambda=920.0,
+                                   indicator="GCaMP", location="V1")
+    f.add_acquisition(TwoPhotonSeries(name="movie", imaging_plane=plane, external_file=["movie.tif"],
+                                      starting_frame=[0], format="external", dimension=[16, 8], rate=30.0,
+                                      num_samples=900))
+    mod = f.create_processing_module("ophys", "processed imaging")
+    seg = ImageSegmentation()
+    mod.add(seg)
+    ps = seg.create_plane_segmentation("cells", plane, name="PlaneSegmentation")
+    ps.add_roi(pixel_mask=[(3, 9, 1.0)], id=0)                                # y = 9 past 8 rows
+    region = ps.create_roi_table_region("all", region=[0])
+    times = np.arange(50) / 30.0
+    mod.add(Fluorescence(roi_response_series=RoiResponseSeries(
+        name="dff", data=np.zeros((50, 1)), rois=region, unit="dF/F", timestamps=times)))
+    f.add_stimulus(TimeSeries(name="noise", data=np.zeros((50, 4, 5), np.int8), unit="n.a.", timestamps=times))
+    path = _write(f, tmp_path / "px2.nwb")
+    m = {"responses": {"kind": "traces", "series": "dff"},
+         "sparse_noise": {"series": "noise", "axes": "yx", "first_row": "top",
+                          "grid": {"nx": 5, "ny": 4, "spacing_deg": [5.0, 5.0],
+                                   "center_deg": [0.0, 0.0]}}}
+    with pytest.raises(BadInput, match=r"pixel_mask.*16 x 8.*movie\.dimension"):
+        _quiet(load_nwb, path, m)
