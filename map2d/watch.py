@@ -110,8 +110,9 @@ class AppendedFile:
         return first, done.decode("utf-8", errors="replace"), replaced
 
 
-def _parse_fast(text, kinds):
-    """All lines at once when every line is a comment or a good record (None otherwise)."""
+def _load_block(text):
+    """All lines at once as a 2-D float array, or None when a line is torn, has an empty field or
+    does not read as numbers (the caller then parses line by line)."""
     import io
     import warnings
 
@@ -120,8 +121,15 @@ def _parse_fast(text, kinds):
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")                       # an empty block warns
-            a = np.loadtxt(io.StringIO(text.replace(",", " ")), dtype=np.float64, comments="#", ndmin=2)
+            return np.loadtxt(io.StringIO(text.replace(",", " ")), dtype=np.float64, comments="#", ndmin=2)
     except ValueError:
+        return None
+
+
+def _parse_fast(text, kinds):
+    """All lines at once when every line is a comment or a good record (None otherwise)."""
+    a = _load_block(text)
+    if a is None:
         return None
     if a.size == 0:
         return [np.zeros(0, np.int64 if k == "int" else np.float64) for k in kinds]
@@ -187,16 +195,8 @@ def parse_lines(text: str, kinds, first_line: int = 1):
 
 def _parse_traces_fast(text, n_values):
     """All lines at once when every line is a comment or a good sample line (None otherwise)."""
-    import io
-    import warnings
-
-    if ",," in text or ("#" in text and text.count("#") != text.count("\n#") + text.startswith("#")):
-        return None
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")                       # an empty block warns
-            a = np.loadtxt(io.StringIO(text.replace(",", " ")), dtype=np.float64, comments="#", ndmin=2)
-    except ValueError:
+    a = _load_block(text)
+    if a is None:
         return None
     if a.size == 0 or a.shape[1] < 2 or (n_values is not None and a.shape[1] != n_values + 1):
         return None
