@@ -63,13 +63,7 @@ def replay_steps(session, folder, step_s: float = 1.0, crash_at_s: float | None 
         return
     if not (np.isfinite(step_s) and step_s > 0):
         raise ValueError(f"step_s must be positive, got {step_s}")
-    folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
-    for name in (FRAME_TIMES_FILE, SPIKES_FILE):
-        if (folder / name).exists():
-            raise BadInput(folder / name, None, "exists already; replay into a new folder")
-    write_stimulus(folder, sparse_noise=SparseNoise(np.asarray(sn.frames), sn.times_s, sn.grid),
-                   info={"command": "replay"})
+    folder = _start_folder(folder, sn, SPIKES_FILE)
     times = sn.times_s
     t0 = float(times[0])
     end = float(sn.frame_ends_s()[-1]) if seconds is None else min(t0 + seconds, float(sn.frame_ends_s()[-1]))
@@ -109,6 +103,19 @@ def replay_steps(session, folder, step_s: float = 1.0, crash_at_s: float | None 
         fs.close()
 
 
+def _start_folder(folder, sn, responses_file):
+    """Create the replay folder (refusing one that already holds the frame-times or ``responses_file``
+    stream) and write the stimulus the streams refer to; returns the folder as a Path."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    for name in (FRAME_TIMES_FILE, responses_file):
+        if (folder / name).exists():
+            raise BadInput(folder / name, None, "exists already; replay into a new folder")
+    write_stimulus(folder, sparse_noise=SparseNoise(np.asarray(sn.frames), sn.times_s, sn.grid),
+                   info={"command": "replay"})
+    return folder
+
+
 def _replay_traces(sn, r, folder, step_s, crash_at_s, seconds):
     """:func:`replay_steps` for imaging traces: ``traces.txt`` lines ``TIME_S v0 ... v(n-1)`` (every
     cell's sample at that time, ``nan`` where it has none). A crash leaves half a sample line; the
@@ -117,13 +124,7 @@ def _replay_traces(sn, r, folder, step_s, crash_at_s, seconds):
         raise ValueError(f"step_s must be positive, got {step_s}")
     if r.ids is not None and not np.array_equal(r.cell_ids, np.arange(r.cell_ids.size)):
         raise BadInput("session", "responses.cell_ids", "replay writes traces of cells 0..n-1 (rows in order)")
-    folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
-    for name in (FRAME_TIMES_FILE, TRACES_FILE):
-        if (folder / name).exists():
-            raise BadInput(folder / name, None, "exists already; replay into a new folder")
-    write_stimulus(folder, sparse_noise=SparseNoise(np.asarray(sn.frames), sn.times_s, sn.grid),
-                   info={"command": "replay"})
+    folder = _start_folder(folder, sn, TRACES_FILE)
     times, st = sn.times_s, np.asarray(r.times_s, dtype=np.float64)
     vals = np.asarray(r.values)
     t0 = float(times[0])
