@@ -279,6 +279,17 @@ class LiveSparseMaps:
     def frame_interval_s(self) -> float:
         return float(np.median(np.diff(self.times[:self.F]))) if self.F > 1 else float("nan")
 
+    def _lags_now(self, frame_s: float, F: int):
+        """The map lags (in frames) for the measured frame interval, with the sums rebuilt when they
+        need a longer lag than the nominal interval gave; None while there are no more frames than
+        lags."""
+        lags = map_lags(frame_s, self.max_lag_s)
+        if lags.size >= F:
+            return None
+        if lags[-1] > self.lmax:
+            self._rebuild(int(lags[-1]))
+        return lags
+
     def snapshot(self) -> MapResult | None:
         """Maps, z-scores and the live responsive call of the data so far, as a :class:`MapResult`
         (cells sorted by id), or None while there are too few frames or no cells.
@@ -291,11 +302,9 @@ class LiveSparseMaps:
         if C == 0 or F < 3:
             return None
         frame_s = self.frame_interval_s()
-        lags = map_lags(frame_s, self.max_lag_s)
-        if lags.size >= F:
+        lags = self._lags_now(frame_s, F)
+        if lags is None:
             return None
-        if lags[-1] > self.lmax:
-            self._rebuild(int(lags[-1]))
         L, P = lags.size, self.P
         order = np.argsort(np.asarray(self.ids), kind="stable")
         cols = order                                                  # column of each output cell
@@ -547,11 +556,9 @@ class LiveTraceMaps(LiveSparseMaps):
         if F < 3 or self.n_proc < 2:
             return None
         frame_s = self.frame_interval_s()
-        lags = map_lags(frame_s, self.max_lag_s)
-        if lags.size >= F:
+        lags = self._lags_now(frame_s, F)
+        if lags is None:
             return None
-        if lags[-1] > self.lmax:
-            self._rebuild(int(lags[-1]))
         K = self.K
         ends = np.r_[self.times[K + 1:F], self.times[F - 1] + frame_s]
         Rt = self._frame_values(K, F, ends)                         # frames not final yet
