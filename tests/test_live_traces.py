@@ -21,17 +21,7 @@ from map2d.replay import replay_steps
 from map2d.traces import decay_corrected
 from map2d.watch import TRACES_FILE, AppendedFile, Follower, parse_trace_lines, watch_folder
 
-
-
-def assert_maps_equal(live, off):
-    assert live is not None
-    assert np.array_equal(live.cell_ids, off.cell_ids)
-    assert np.array_equal(live.lags_s, off.lags_s)
-    for k in ("on", "off", "linear"):
-        a, b = live.maps(k), off.maps(k)
-        assert np.array_equal(np.isnan(a), np.isnan(b)), k
-        scale = float(np.nanmax(np.abs(b)))
-        np.testing.assert_allclose(a, b, rtol=0, atol=1e-5 * scale, err_msg=k)
+from _live_check import assert_maps_equal
 
 TAU_S = 0.3          # the simulator's indicator decay (conftest TRACES)
 
