@@ -1,7 +1,8 @@
 """NWB files as acquisition and conversion pipelines write them (made here with pynwb directly, not
 with map2d's converter): image data in the schema's (frame, x, y) order, a response series over part
 of a PlaneSegmentation, stimulus columns with offsets and scales, flashed and drifting gratings in
-separate tables or in one mixed table, blanks without orientation, IndexSeries + Images templates.
+separate tables or in one mixed table, blanks without orientation, IndexSeries + Images templates
+(or an ImageSeries of templates, the older indexed_timeseries).
 Each reads into the arrays of the equivalent session folder (so the analysis is the folder's), or is
 refused naming the mapping key to set.
 
@@ -476,3 +477,52 @@ def test_pixel_mask_past_the_stated_plane_is_refused(tmp_path):
                                    "center_deg": [0.0, 0.0]}}}
     with pytest.raises(BadInput, match=r"pixel_mask.*16 x 8.*movie\.dimension"):
         _quiet(load_nwb, path, m)
+
+
+def test_index_series_with_indexed_timeseries_templates_analyses_like_the_folder(lab, tmp_path):
+    """The older way to store a template sequence (NWB schema 2.x, IndexSeries.indexed_timeseries: an
+    ImageSeries of templates, (template, x, y), in stimulus/templates; deprecated in favour of
+    indexed_images but still written and read): the lab's sparse noise as its frames in shuffled order
+    plus one index per frame reads into the folder session's frames and analyses into the same cells table."""
+    session, folder, _, lab_mapping = lab
+    sn = session.sparse_noise
+    frames = np.asarray(sn.frames)
+    perm = np.random.default_rng(8).permutation(frames.shape[0])
+    templates = frames[perm]                                                # (template, y, x), shuffled
+    idx = np.argsort(perm)                                                  # templates[idx] == frames
+    assert not np.array_equal(idx, np.arange(idx.size))                     # the index really indexes
+    f = _new_file("old_index")
+    r = session.responses
+    for cid in r.cell_ids:
+        f.add_unit(spike_times=r.time_s[r.cell == cid], id=int(cid))
+    stack = ImageSeries(name="noise_templates", data=np.ascontiguousarray(templates.transpose(0, 2, 1)),
+                        unit="n.a.", rate=1.0, description="sparse-noise templates, (template, x, y)")
+    f.add_stimulus_template(stack)
+    # current pynwb refuses to build a new IndexSeries with indexed_timeseries (it only reads them from
+    # older files); built the way its reader builds one, as older pynwb versions wrote it
+    seq = IndexSeries.__new__(IndexSeries, in_construct_mode=True)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        seq.__init__(name="noise_sequence", data=np.asarray(idx, np.uint32), indexed_timeseries=stack,
+                     unit="N/A", timestamps=sn.times_s)
+    seq._in_construct_mode = False
+    f.add_stimulus(seq)
+    g = session.gratings
+    flashed = _stim_table("flashed_gratings")
+    _grating_rows(flashed, g, np.flatnonzero(g.tf_hz == 0))
+    drifting = _stim_table("drifting_gratings")
+    _grating_rows(drifting, g, np.flatnonzero(g.tf_hz != 0))
+    f.add_time_intervals(flashed)
+    f.add_time_intervals(drifting)
+    path = _write(f, tmp_path / "old_index.nwb")
+    import h5py
+    with h5py.File(path, "r") as h5:                                         # the file holds the old link
+        group = h5["stimulus/presentation/noise_sequence"]
+        assert "indexed_timeseries" in group and "indexed_images" not in group
+    mapping = dict(lab_mapping, sparse_noise={"series": "noise_sequence", "grid": sn.grid.to_manifest()})
+    s = _quiet(load_nwb, path, mapping)
+    fs = _quiet(load_session, folder)
+    _same_arrays(fs, s)
+    a = analyze_session(fs, n_jobs=1)
+    b = analyze_session(s, n_jobs=1)
+    assert _text(a.cells) == _text(b.cells)
