@@ -926,9 +926,15 @@ def _build_nwbfile(session: Session, identifier, start):
         module = nwbfile.create_processing_module("ophys", "optical physiology (map2d export)")
         seg = ImageSegmentation()
         module.add(seg)
-        ps = seg.create_plane_segmentation("regions of interest", plane, name="rois")
         n = r.values.shape[0]
         offset = int(getattr(session, "roi_label_offset", 0))
+        ref = None
+        if session.rois is not None:                                      # states the plane's size (x, y)
+            from pynwb.image import ImageSeries
+            ref = ImageSeries(name="roi_labels", data=np.ascontiguousarray(np.asarray(session.rois).T[None]),
+                              unit="label", rate=1.0,
+                              description=f"ROI label image (1, x, y): label = cell id + {offset}, 0 = no ROI")
+        ps = seg.create_plane_segmentation("regions of interest", plane, name="rois", reference_images=ref)
         for k in range(n):
             cid = int(r.cell_ids[k])                                      # ROI id = cell id
             if session.rois is not None:
