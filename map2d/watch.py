@@ -159,14 +159,7 @@ def parse_lines(text: str, kinds, first_line: int = 1):
         return fast, []
     cols = [[] for _ in kinds]
     bad = []
-    for no, line in enumerate(text.split("\n"), start=first_line):
-        s = line.strip()
-        if not s or s.startswith("#"):
-            continue
-        if "#" in s:
-            bad.append((no, "torn line (a writer restarted in the middle of it)"))
-            continue
-        parts = _SPLIT.split(s)
+    for no, s, parts in _data_lines(text, first_line, bad):
         if len(parts) != len(kinds):
             bad.append((no, f"expected {len(kinds)} fields, got {len(parts)}"))
             continue
@@ -193,6 +186,20 @@ def parse_lines(text: str, kinds, first_line: int = 1):
     return arrays, bad
 
 
+def _data_lines(text, first_line, bad):
+    """``(line number, stripped line, fields)`` of each data line of ``text``: blank and comment lines
+    skipped, a line with a ``#`` after its start reported in ``bad`` as torn (a writer restarted in
+    the middle of it)."""
+    for no, line in enumerate(text.split("\n"), start=first_line):
+        s = line.strip()
+        if not s or s.startswith("#"):
+            continue
+        if "#" in s:
+            bad.append((no, "torn line (a writer restarted in the middle of it)"))
+            continue
+        yield no, s, _SPLIT.split(s)
+
+
 def _parse_traces_fast(text, n_values):
     """All lines at once when every line is a comment or a good sample line (None otherwise)."""
     a = _load_block(text)
@@ -217,14 +224,7 @@ def parse_trace_lines(text: str, n_values: int | None, first_line: int = 1):
     if fast is not None:
         return fast
     times, rows, bad = [], [], []
-    for no, line in enumerate(text.split("\n"), start=first_line):
-        s = line.strip()
-        if not s or s.startswith("#"):
-            continue
-        if "#" in s:
-            bad.append((no, "torn line (a writer restarted in the middle of it)"))
-            continue
-        parts = _SPLIT.split(s)
+    for no, s, parts in _data_lines(text, first_line, bad):
         if n_values is not None and len(parts) != n_values + 1:
             bad.append((no, f"expected {n_values + 1} fields (time and {n_values} values), got {len(parts)}"))
             continue
