@@ -411,12 +411,10 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
     # weighted against the noise covariance across lags (see _lag_weights)
     mat = np.where(np.isfinite(d), d, 0.0).reshape(n_cells, n_c, n_lags)
     profile = np.zeros((n_cells, n_lags))
-    for c in range(n_cells):
-        if not np.any(mat[c]):
-            continue
-        _, _, vt = np.linalg.svd(mat[c], full_matrices=False)
-        w = vt[0]
-        profile[c] = w / w[np.argmax(np.abs(w))]
+    some = np.flatnonzero(mat.any(axis=(1, 2)))
+    if some.size:
+        w = np.linalg.svd(mat[some], full_matrices=False)[2][:, 0, :]     # (cells, L), one SVD per cell
+        profile[some] = w / np.take_along_axis(w, np.argmax(np.abs(w), axis=1)[:, None], axis=1)
     noise_cov = _lag_noise_cov(r0, finite, onset, frame, cond, means, n_lags)
     weights = _lag_weights(profile, noise_cov)
     pooled = np.einsum("cospl,cl->cosp", np.where(np.isfinite(d), d, 0.0), weights)
@@ -427,34 +425,7 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
     p_value = np.full(n_cells, np.nan)
     if n_shuffles > 0:
         obs = np.nanmax(np.where(np.isfinite(share), share, -np.inf), axis=1)
-        exceed = np.zeros(n_cells)
-        done = 0
-        while done < n_shuffles:
-            b = min(int(shuffle_block), n_shuffles - done)
-            perms = np.argsort(rng.random((b, n)), axis=1)
-            null = np.full((n_cells, b), -np.inf)
-            for lag, (k, j) in enumerate(pairs):
-                if k.size == 0:
-                    continue
-                labels = (cond[perms[:, k]] + n_groups * np.arange(b)[:, None]).ravel()
-                m = k.size
-                v = np.tile(r0[:, j], (1, b))
-                s = _group_sums(v, labels, n_groups * b)
-                if no_nan:
-                    cnt = np.bincount(labels, minlength=n_groups * b).astype(float)[None, :]
-                else:
-                    cnt = _group_sums(np.tile(finite[:, j].astype(float), (1, b)), labels, n_groups * b)
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    s2n = np.where(cnt > 0, s * s / np.where(cnt > 0, cnt, 1), 0.0)
-                s2n = s2n.reshape(n_cells, b, n_groups).sum(axis=2)
-                s_tot = r0[:, j].sum(axis=1)
-                n_tot = finite[:, j].sum(axis=1) if not no_nan else np.full(n_cells, float(m))
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    ssb = s2n - (s_tot**2 / np.where(n_tot > 0, n_tot, 1))[:, None]
-                    sh = np.where(sst[:, lag:lag + 1] > 0, ssb / sst[:, lag:lag + 1], -np.inf)
-                null = np.maximum(null, sh)
-            exceed += (null >= obs[:, None] - 1e-12).sum(axis=1)
-            done += b
+        exceed = _shuffle_exceed(r0, finite, no_nan, pairs, cond, n_groups, sst, obs, n_shuffles, shuffle_block, rng)
         p_value = (1.0 + exceed) / (1.0 + n_shuffles)
         p_value[~np.isfinite(obs)] = 1.0
     responsive = np.isfinite(p_value) & (p_value < alpha)
@@ -468,6 +439,52 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
         kx_cpd=np.asarray(kx, float), ky_cpd=np.asarray(ky, float), n_shuffles=int(n_shuffles),
         alpha=float(alpha), temporal_weights=weights, harmonic_combined=h_comb[..., 0],
         phase_mean_combined=pm_comb[..., 0], temporal_profile=profile, lag_noise_cov=noise_cov)
+
+
+def _shuffle_exceed(r0, finite, no_nan, pairs, cond, n_groups, sst, obs, n_shuffles, block, rng):
+    """Shuffles of the condition sequence whose largest (over lags) between-condition share of variance
+    reaches ``obs``, per cell (the null distribution of :func:`analyze_flashed`'s test).
+
+    ``block`` shuffles at a time: their condition sums for all cells are one sparse product, the
+    (shuffle, condition) indicator of the presentations (``block * groups`` x presentations) times the
+    responses (presentations x cells, one contiguous copy for the whole test)."""
+    n_cells, n = r0.shape
+    r_t = np.ascontiguousarray(r0.T)                              # (n, cells)
+    f_t = None if no_nan else np.ascontiguousarray(finite.T, dtype=float)
+    exceed = np.zeros(n_cells)
+    done = 0
+    while done < n_shuffles:
+        b = min(int(block), n_shuffles - done)
+        perms = np.argsort(rng.random((b, n)), axis=1)
+        null = np.full((b, n_cells), -np.inf)
+        for lag, (k, j) in enumerate(pairs):
+            if k.size == 0:
+                continue
+            m = k.size
+            labels = (cond[perms[:, k]] + n_groups * np.arange(b)[:, None]).ravel()
+            onehot = sparse.csr_matrix((np.ones(b * m), (labels, np.tile(np.arange(m), b))),
+                                       shape=(n_groups * b, m))
+            s = onehot @ r_t[j]                                          # (b * groups, cells)
+            s *= s
+            if no_nan:      # the same counts for every cell: one weighted sum over conditions per shuffle
+                cnt = np.bincount(labels, minlength=n_groups * b).astype(float)
+                inv = np.where(cnt > 0, 1.0 / np.maximum(cnt, 1.0), 0.0).reshape(b, 1, n_groups)
+                s2n = np.matmul(inv, s.reshape(b, n_groups, n_cells))[:, 0, :]   # (b, cells)
+                n_tot = np.full(n_cells, float(m))
+            else:
+                cnt = onehot @ f_t[j]
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    s2n = np.where(cnt > 0, s / np.where(cnt > 0, cnt, 1), 0.0)
+                s2n = s2n.reshape(b, n_groups, n_cells).sum(axis=1)    # (b, cells)
+                n_tot = f_t[j].sum(axis=0)
+            s_tot = r_t[j].sum(axis=0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                ssb = s2n - (s_tot**2 / np.where(n_tot > 0, n_tot, 1))[None, :]
+                sh = np.where(sst[None, :, lag] > 0, ssb / sst[None, :, lag], -np.inf)
+            np.maximum(null, sh, out=null)
+        exceed += (null >= obs[None, :] - 1e-12).sum(axis=0)
+        done += b
+    return exceed
 
 
 def _lag_noise_cov(r0, finite, onset, frame, cond, means, n_lags, block=64):
@@ -508,18 +525,18 @@ def _lag_weights(profile, noise_cov):
     from the level during it; with spikes ``S`` is nearly diagonal and ``w`` is close to ``v``.
     Cells whose covariance cannot be estimated keep ``v``."""
     weights = np.array(profile, float)
-    for c in range(profile.shape[0]):
-        v = profile[c]
-        s = noise_cov[c]
-        if not np.any(v) or not np.all(np.isfinite(s)):
-            continue
-        tr = float(np.trace(s))
-        if not tr > 0:
-            continue
-        x = np.linalg.solve(s + 1e-6 * tr / v.size * np.eye(v.size), v)
-        vx = float(v @ x)
-        if vx > 0 and np.all(np.isfinite(x)):
-            weights[c] = x * float(v @ v) / vx
+    n_lags = profile.shape[1]
+    tr = np.trace(noise_cov, axis1=1, axis2=2) if n_lags else np.zeros(profile.shape[0])
+    with np.errstate(invalid="ignore"):
+        use = (profile != 0).any(axis=1) & np.isfinite(noise_cov).all(axis=(1, 2)) & (tr > 0)
+    c = np.flatnonzero(use)
+    if c.size == 0:
+        return weights
+    v = profile[c]
+    x = np.linalg.solve(noise_cov[c] + (1e-6 * tr[c] / n_lags)[:, None, None] * np.eye(n_lags), v[..., None])[..., 0]
+    vx = np.einsum("cl,cl->c", v, x)
+    keep = (vx > 0) & np.isfinite(x).all(axis=1)
+    weights[c[keep]] = x[keep] * (np.einsum("cl,cl->c", v, v)[keep] / vx[keep])[:, None]
     return weights
 
 
