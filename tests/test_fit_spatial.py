@@ -425,3 +425,22 @@ def test_subfield_overlap_of_segregated_subfields_is_small():
     assert envelope_overlap((-4, 0), 4 * np.eye(2), (4, 0), 4 * np.eye(2)) == pytest.approx(np.exp(-4), rel=1e-9)
     # one polarity without any significant pixel: no overlap
     assert subfield_overlap(on, rng.standard_normal(g.shape), on, rng.standard_normal(g.shape) * 0.5, g, 3.9) == 0.0
+
+
+def test_locate_fields_worker_pool_equals_serial(small_spikes_session):
+    """``locate_fields`` with a worker pool (what sessions of 50+ linear cells get by default) gives the
+    same columns and model maps as the serial path (common practice: parallel == serial)."""
+    from map2d.fit.spatial import locate_fields
+    from map2d.maps import compute_maps
+    session, _ = small_spikes_session
+    res = compute_maps(session.responses, session.sparse_noise, max_lag_s=0.15, rng=0)
+    one = locate_fields(res, n_jobs=1)
+    two = locate_fields(res, n_jobs=2)
+    assert (one.choice.kind == "linear").sum() >= 2          # the pool path is really taken
+    for k, a in one.columns.items():
+        b = two.columns[k]
+        if np.asarray(a).dtype == object:
+            assert list(a) == list(b), k
+        else:
+            assert np.allclose(np.asarray(a, float), np.asarray(b, float), equal_nan=True), k
+    assert np.allclose(one.model_maps, two.model_maps, equal_nan=True)

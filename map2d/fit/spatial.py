@@ -1282,7 +1282,7 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True) -> CellFields
         else:
             parts = [p for p in np.array_split(np.arange(idx.size), nj * 4) if p.size]
             rows, preds, why = [], [], []
-            with ProcessPoolExecutor(max_workers=nj) as ex:
+            with worker_pool(nj) as ex:
                 futs = [ex.submit(_fit_checked_chunk, maps[idx[p]], grid, check[idx[p]], ch.noise_sd[idx[p]],
                                   models, pixel_box, alpha) for p in parts]
                 for fu in futs:
