@@ -531,3 +531,119 @@ def test_flashed_selectivity_does_not_drift_with_recording_length():
             lo, hi = np.asarray(c[k + "_ci_low"], float), np.asarray(c[k + "_ci_high"], float)
             assert np.all((lo <= np.asarray(long[k])) & (np.asarray(long[k]) <= hi)), (minutes, k, lo, hi, long[k])
     assert out[3.0][1]["circular_variance"][0] == pytest.approx(0.409, abs=0.005)
+
+
+# ----------------------------------------------------------------------------------------------
+# all cells' fits advanced together (map2d.fit.tuning._levenberg_marquardt)
+# ----------------------------------------------------------------------------------------------
+def test_batched_tuning_columns_agree_with_scipy_fits_within_their_intervals():
+    """The columns from the batched fits against those from one-by-one ``scipy.optimize.least_squares``
+    fits of the same problems (same starts, bounds and models; scipy is the reference), on simulated
+    cells (von Mises x log-Gaussian surfaces, two-peaked direction curves, noise): every reported
+    preference and width lies within the reference's 95 % interval, and the decisions (tuned or not,
+    which SF model) are the same."""
+    from map2d.fit.tuning import _drifting_view, _flashed_view, _tuning_chunk
+    fl, dr = _fake_results(40, np.random.default_rng(23))
+    ids = np.sort(fl.cell_ids)
+    ref = _tuning_chunk(_flashed_view(fl), _drifting_view(dr), ids, solver="scipy")
+    got = _tuning_chunk(_flashed_view(fl), _drifting_view(dr), ids, solver="batch")
+    for k in ("tuning_source", "sf_model", "sf_fit_curve", "grating_class"):
+        assert got[k] == ref[k], k
+    col = {k: (np.array(ref[k], float), np.array(got[k], float)) for k in ref
+           if k not in ("tuning_source", "sf_model", "sf_fit_curve", "grating_class")}
+    for k, (a, b) in col.items():
+        np.testing.assert_array_equal(np.isnan(a), np.isnan(b), err_msg=k)
+    pairs = [("pref_orientation_deg", "pref_orientation_ci_halfwidth_deg"),
+             ("orientation_hwhh_deg", "orientation_hwhh_ci_halfwidth_deg"),
+             ("sf_bandwidth_oct", "sf_bandwidth_ci_halfwidth_oct")]
+    for value, half in pairs:
+        a, b = col[value]
+        ok = np.isfinite(a)
+        assert ok.sum() >= 10, value                                     # the fits did run
+        assert np.all(np.abs(b[ok] - a[ok]) <= col[half][0][ok]), value
+    a, b = col["pref_sf_cpd"]
+    ok = np.isfinite(a)
+    assert ok.sum() >= 10
+    assert np.all((b[ok] >= col["pref_sf_ci_low_cpd"][0][ok]) & (b[ok] <= col["pref_sf_ci_high_cpd"][0][ok]))
+    # and much closer than that on these well-determined cells
+    np.testing.assert_allclose(col["pref_orientation_deg"][1][np.isfinite(col["pref_orientation_deg"][0])],
+                               col["pref_orientation_deg"][0][np.isfinite(col["pref_orientation_deg"][0])],
+                               atol=0.05)
+
+
+def test_batched_direction_and_sf_fits_agree_with_scipy_within_their_intervals():
+    """Single fits of simulated curves, batched against scipy (the reference): direction preferences
+    within the reference's interval; SF curves of 7 SFs (free baseline, the DoG candidate; centre-surround
+    DoG spectra, Enroth-Cugell & Robson 1966, and log-Gaussian cells) with the preferred SF inside the
+    reference interval and the same model choice."""
+    from map2d.fit.tuning import _direction_job, _run_jobs, _sf_job
+    rng = np.random.default_rng(31)
+    th = np.arange(0.0, 360.0, 30.0)
+    f = np.geomspace(0.01, 0.32, 7)
+    d_jobs, s_jobs = [], []
+    for _ in range(30):
+        y = von_mises_direction(th, 0.5, 4.0, rng.uniform(0, 3), rng.uniform(0.8, 4), rng.uniform(0, 360))
+        d_jobs.append((th, y + 0.3 * rng.standard_normal(th.size)))
+        if rng.random() < 0.5:
+            rc = rng.uniform(0.5, 2.0)
+            s = dog_sf(f, 0.0, 5.0, rng.uniform(2.0, 4.5), rc, rc * rng.uniform(2.0, 4.0))
+        else:
+            s = log_gaussian_sf(f, 0.2, 4.0, np.log2(rng.uniform(0.03, 0.12)), rng.uniform(0.6, 1.4))
+        s_jobs.append((f, s + 0.08 * rng.standard_normal(f.size)))
+    for solver_jobs, make in ((d_jobs, _direction_job), (s_jobs, _sf_job)):
+        ref = _run_jobs([make(*j) for j in solver_jobs], "scipy")
+        got = _run_jobs([make(*j) for j in solver_jobs], "batch")
+        for r, g in zip(ref, got):
+            assert r.ok == g.ok
+            if make is _direction_job:
+                diff = abs((g.pref_deg - r.pref_deg + 180.0) % 360.0 - 180.0)
+                assert diff <= r.pref_ci95_deg
+            elif np.isfinite(r.pref_cpd):
+                assert r.model == g.model
+                assert r.pref_ci_low_cpd <= g.pref_cpd <= r.pref_ci_high_cpd
+                if np.isfinite(r.bandwidth_oct):
+                    assert abs(g.bandwidth_oct - r.bandwidth_oct) <= r.bandwidth_ci95_oct
+    assert sum(np.isfinite(r.pref_cpd) for r in ref) >= 20
+
+
+def test_batched_solver_holds_parameters_on_their_bounds_like_scipy():
+    """Fits whose minimum lies on a bound (a flat curve: amplitude 0; a needle-sharp peak: the
+    concentration at its upper bound 50): the same cost as scipy's bounded fit (the reference), and
+    every parameter inside the box."""
+    from map2d.fit.tuning import _orientation_job, _solve
+    th = np.arange(0.0, 180.0, 15.0)
+    rng = np.random.default_rng(2)
+    curves = [1.0 + 0.01 * rng.standard_normal(th.size),
+              np.where(np.isclose(th, 60.0), 5.0, 1.0) + 1e-3 * rng.standard_normal(th.size)]
+    for y in curves:
+        probs, _ = _orientation_job(th, y)
+        (r,), (g,) = _solve(probs, "scipy"), _solve(probs, "batch")
+        cost = [np.sum((von_mises_orientation(th, *x.params) - y) ** 2) for x in (r, g)]
+        assert cost[1] <= cost[0] * (1 + 1e-6) + 1e-12
+        assert np.all(g.params >= probs[0].lower) and np.all(g.params <= probs[0].upper)
+
+
+def test_vectorised_selectivity_indices_match_the_single_curve_ones():
+    """The row-wise circular variance, OSI and rank-1 profiles used for the resampled intervals against
+    :func:`circular_variance`, :func:`osi` and ``_rank1`` (the SVD, numpy.linalg.svd) curve by curve,
+    with negative and missing responses."""
+    from map2d.fit.tuning import _circular_variance_rows, _osi_rows, _rank1, _rank1_many
+    rng = np.random.default_rng(4)
+    th = np.arange(0.0, 180.0, 15.0)
+    r = rng.normal(1.0, 1.0, (200, th.size))
+    r[rng.random(r.shape) < 0.1] = np.nan
+    r[0] = -1.0                                                     # all zero after rectification
+    r[1, 2:] = np.nan                                               # too few points for the OSI
+    cv = _circular_variance_rows(th, r)
+    oi = _osi_rows(th, r)
+    for i in range(r.shape[0]):
+        np.testing.assert_allclose(cv[i], circular_variance(th, r[i])[0], atol=1e-12, equal_nan=True)
+        np.testing.assert_allclose(oi[i], osi(th, r[i]), atol=1e-12, equal_nan=True)
+    assert np.isnan(cv[0]) and np.isnan(oi[1]) and np.isfinite(cv[2:]).all()
+    for shape in ((30, th.size, 4), (30, 3, 7)):
+        s = rng.normal(0.0, 1.0, shape)
+        s[0] = 0.0
+        prof, some = _rank1_many(s)
+        assert not some[0] and np.all(prof[0] == 0)
+        for i in range(1, shape[0]):
+            np.testing.assert_allclose(prof[i], _rank1(s[i])[0], rtol=1e-9, atol=1e-9)

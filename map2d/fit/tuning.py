@@ -45,6 +45,7 @@ Vision Res 31:1079-1086.
 from __future__ import annotations
 
 import os
+from functools import lru_cache
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
 from types import SimpleNamespace
@@ -108,7 +109,7 @@ def _jac_orientation(theta_deg, b, a, kappa, theta0_deg):
     c2 = np.cos(2 * d) - 1.0
     e = np.exp(kappa * c2)
     ae = a * e
-    return np.column_stack([np.ones_like(d), e, ae * c2, ae * kappa * 2.0 * _RAD * np.sin(2 * d)])
+    return np.stack([np.ones_like(d), e, ae * c2, ae * kappa * 2.0 * _RAD * np.sin(2 * d)], axis=-1)
 
 
 def _jac_direction(theta_deg, b, a1, a2, kappa, theta0_deg):
@@ -117,8 +118,7 @@ def _jac_direction(theta_deg, b, a1, a2, kappa, theta0_deg):
     c1, c2 = np.cos(d) - 1.0, np.cos(d - np.pi) - 1.0
     e1, e2 = np.exp(kappa * c1), np.exp(kappa * c2)
     s = np.sin(d) * kappa * _RAD
-    return np.column_stack([np.ones_like(d), e1, e2, a1 * e1 * c1 + a2 * e2 * c2,
-                            a1 * e1 * s - a2 * e2 * s])
+    return np.stack([np.ones_like(d), e1, e2, a1 * e1 * c1 + a2 * e2 * c2, a1 * e1 * s - a2 * e2 * s], axis=-1)
 
 
 def _jac_gauss(u, b, a, centre, width):
@@ -127,7 +127,7 @@ def _jac_gauss(u, b, a, centre, width):
     z = (u - centre) / width
     g = np.exp(-0.5 * z * z)
     agz = a * g * z / width
-    return np.column_stack([np.ones_like(z), g, agz, agz * z])
+    return np.stack([np.ones_like(z), g, agz, agz * z], axis=-1)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -315,6 +315,7 @@ def _screen_gauss(u, y, centres, widths, free_b, a_hi, b_lo, b_hi):
     return [b, a, float(cc[i]), float(ww[i])]
 
 
+@lru_cache(maxsize=256)
 def _t95(dof):
     return float(stats.t.ppf(0.975, dof)) if dof > 0 else float("nan")
 
@@ -376,6 +377,11 @@ def fit_orientation(theta_deg, r) -> OrientationFit:
     >>> round(f.pref_deg, 3), round(f.hwhh_deg, 2)
     (40.0, 24.6)
     """
+    return _run_jobs([_orientation_job(theta_deg, r)])[0]
+
+
+def _orientation_job(theta_deg, r):
+    """The fit of :func:`fit_orientation` as a job for :func:`_run_jobs`: ``(problems, finish)``."""
     th = np.mod(np.asarray(theta_deg, float), 180.0)
     y = np.asarray(r, float)
     ok = np.isfinite(th) & np.isfinite(y)
@@ -383,7 +389,7 @@ def fit_orientation(theta_deg, r) -> OrientationFit:
     nan = float("nan")
     empty = OrientationFit(nan, nan, nan, nan, np.full(4, nan), nan, False)
     if th.size < 5 or np.ptp(y) <= 0:
-        return empty
+        return [], lambda fits: empty
     _, pref0 = circular_variance(th, y - y.min())
     if not np.isfinite(pref0):
         pref0 = float(th[np.argmax(y)])
@@ -394,30 +400,33 @@ def fit_orientation(theta_deg, r) -> OrientationFit:
     start = _screen_orientation(th, y, pref0, upper[1], lower[0], upper[0])
     starts = ([start] if start is not None else
               [[b0, a0, k, t] for k in (0.7, 2.0, 6.0) for t in (pref0, float(th[np.argmax(y)]))])
-    fit = _least_squares(von_mises_orientation, th, y, starts, lower, upper, jac=_jac_orientation)
-    if not fit.ok or not fit.params[1] > 0:
-        return empty
-    b, a, kappa, t0 = fit.params
-    t95 = _t95(th.size - 4)
-    se_t0 = np.sqrt(fit.cov[3, 3]) if np.isfinite(fit.cov[3, 3]) else nan
-    se_k = np.sqrt(fit.cov[2, 2]) if np.isfinite(fit.cov[2, 2]) else nan
-    hw = _hwhh_deg(kappa)
-    # delta method for the HWHH: d/dkappa of 0.5 arccos(1 - ln2 / kappa)
-    c = 1.0 - _LN2 / kappa
-    with np.errstate(invalid="ignore", divide="ignore"):
-        dhw = np.degrees(0.5 * (-1.0 / np.sqrt(1.0 - c * c)) * (_LN2 / kappa**2))
-    hw_ci = abs(dhw) * se_k * t95 if np.isfinite(hw) else nan
-    # nested-model F test: von Mises (4 parameters) against a constant (1)
-    ss1 = float(np.sum((von_mises_orientation(th, *fit.params) - y) ** 2))
-    ss0 = float(np.sum((y - y.mean()) ** 2))
-    dof = th.size - 4
-    if dof > 0 and ss1 > 0:
-        p_tuned = float(stats.f.sf(((ss0 - ss1) / 3.0) / (ss1 / dof), 3, dof))
-    else:
-        p_tuned = 0.0 if ss0 > 0 else nan
-    return OrientationFit(pref_deg=float(np.mod(t0, 180.0)), pref_ci95_deg=float(min(se_t0 * t95, 90.0)),
-                          hwhh_deg=hw, hwhh_ci95_deg=float(hw_ci), params=fit.params, r2=fit.r2, ok=True,
-                          p_tuned=p_tuned)
+
+    def finish(fits):
+        fit = fits[0]
+        if not fit.ok or not fit.params[1] > 0:
+            return empty
+        b, a, kappa, t0 = fit.params
+        t95 = _t95(th.size - 4)
+        se_t0 = np.sqrt(fit.cov[3, 3]) if np.isfinite(fit.cov[3, 3]) else nan
+        se_k = np.sqrt(fit.cov[2, 2]) if np.isfinite(fit.cov[2, 2]) else nan
+        hw = _hwhh_deg(kappa)
+        # delta method for the HWHH: d/dkappa of 0.5 arccos(1 - ln2 / kappa)
+        c = 1.0 - _LN2 / kappa
+        with np.errstate(invalid="ignore", divide="ignore"):
+            dhw = np.degrees(0.5 * (-1.0 / np.sqrt(1.0 - c * c)) * (_LN2 / kappa**2))
+        hw_ci = abs(dhw) * se_k * t95 if np.isfinite(hw) else nan
+        # nested-model F test: von Mises (4 parameters) against a constant (1)
+        ss1 = float(np.sum((von_mises_orientation(th, *fit.params) - y) ** 2))
+        ss0 = float(np.sum((y - y.mean()) ** 2))
+        dof = th.size - 4
+        if dof > 0 and ss1 > 0:
+            p_tuned = float(stats.f.sf(((ss0 - ss1) / 3.0) / (ss1 / dof), 3, dof))
+        else:
+            p_tuned = 0.0 if ss0 > 0 else nan
+        return OrientationFit(pref_deg=float(np.mod(t0, 180.0)), pref_ci95_deg=float(min(se_t0 * t95, 90.0)),
+                              hwhh_deg=hw, hwhh_ci95_deg=float(hw_ci), params=fit.params, r2=fit.r2, ok=True,
+                              p_tuned=p_tuned)
+    return [_Problem("orientation", th, y, starts, lower, upper)], finish
 
 
 @dataclass
@@ -492,6 +501,11 @@ def fit_direction(theta_deg, r) -> DirectionFit:
     >>> round(f.pref_deg, 3)
     200.0
     """
+    return _run_jobs([_direction_job(theta_deg, r)])[0]
+
+
+def _direction_job(theta_deg, r):
+    """The fit of :func:`fit_direction` as a job for :func:`_run_jobs`."""
     th = np.mod(np.asarray(theta_deg, float), 360.0)
     y = np.asarray(r, float)
     ok = np.isfinite(th) & np.isfinite(y)
@@ -499,7 +513,7 @@ def fit_direction(theta_deg, r) -> DirectionFit:
     nan = float("nan")
     empty = DirectionFit(nan, nan, np.full(5, nan), nan, False)
     if th.size < 6 or np.ptp(y) <= 0:
-        return empty
+        return [], lambda fits: empty
     i = int(np.argmax(y))
     t_start = float(th[i])
     b0, a0 = float(y.min()), float(np.ptp(y))
@@ -508,18 +522,21 @@ def fit_direction(theta_deg, r) -> DirectionFit:
     upper = [10 * span + 1e-9, 20 * span + 1e-9, 20 * span + 1e-9, 50.0, t_start + 180.0]
     starts = (_screen_direction(th, y, t_start, upper[1], lower[0], upper[0])
               or [[b0, a0, a2, k, t_start] for k in (1.0, 3.0) for a2 in (0.1 * a0, 0.8 * a0)])
-    fit = _least_squares(von_mises_direction, th, y, starts, lower, upper, jac=_jac_direction, probe_nfev=10)
-    if not fit.ok:
-        return empty
-    b, a1, a2, kappa, t0 = fit.params
-    if a2 > a1:
-        t0 = t0 + 180.0
-    if not max(a1, a2) > 0:
-        return empty
-    se = np.sqrt(fit.cov[4, 4]) if np.isfinite(fit.cov[4, 4]) else nan
-    return DirectionFit(pref_deg=float(np.mod(t0, 360.0)),
-                        pref_ci95_deg=float(min(se * _t95(th.size - 5), 180.0)),
-                        params=fit.params, r2=fit.r2, ok=True)
+
+    def finish(fits):
+        fit = fits[0]
+        if not fit.ok:
+            return empty
+        b, a1, a2, kappa, t0 = fit.params
+        if a2 > a1:
+            t0 = t0 + 180.0
+        if not max(a1, a2) > 0:
+            return empty
+        se = np.sqrt(fit.cov[4, 4]) if np.isfinite(fit.cov[4, 4]) else nan
+        return DirectionFit(pref_deg=float(np.mod(t0, 360.0)),
+                            pref_ci95_deg=float(min(se * _t95(th.size - 5), 180.0)),
+                            params=fit.params, r2=fit.r2, ok=True)
+    return [_Problem("direction", th, y, starts, lower, upper, probe_nfev=10)], finish
 
 
 def gaussian_sf(sf_cpd, b, a, f0_cpd, sigma_cpd):
@@ -647,6 +664,11 @@ def fit_sf(sf_cpd, r) -> SFFit:
     >>> s.model, round(s.pref_cpd, 4), round(s.bandwidth_oct, 3)
     ('log_gaussian', 0.1, 2.355)
     """
+    return _run_jobs([_sf_job(sf_cpd, r)])[0]
+
+
+def _sf_job(sf_cpd, r):
+    """The fits of :func:`fit_sf` as a job for :func:`_run_jobs`."""
     f = np.asarray(sf_cpd, float)
     y = np.asarray(r, float)
     ok = np.isfinite(f) & np.isfinite(y) & (f > 0)
@@ -654,7 +676,7 @@ def fit_sf(sf_cpd, r) -> SFFit:
     nan = float("nan")
     empty = SFFit(nan, nan, nan, nan, nan, np.full(4, nan), nan, False, "")
     if f.size < 3 or np.ptp(y) <= 0 or not y.max() > 0:
-        return empty
+        return [], lambda fits: empty
     lf = np.log2(f)
     lo, hi = float(lf.min()), float(lf.max())
     i_max = int(np.argmax(y))
@@ -673,37 +695,40 @@ def fit_sf(sf_cpd, r) -> SFFit:
     }
     # starts screened on grids of centres (quarter octaves) and widths, b and a solved exactly
     screens = {k: (v[0](f), v[1], v[2]) for k, v in shapes.items()}
-    jacs = {"log_gaussian": lambda x, *q: _jac_gauss(np.log2(x), *q), "gaussian": _jac_gauss}
-    fits = []
+    problems, models = [], []
     for name, (model, lower, upper, starts) in cands.items():
         u, centres, widths = screens[name]
         start = _screen_gauss(u, y, centres, widths, free_b, a_hi, b_lo, b_hi)
         if start is not None:
             starts = [start]
-        jac = jacs[name]
         if free_b:
-            fit = _least_squares(model, f, y, starts, lower, upper, jac=jac)
-            p = fit.params
-            cov = fit.cov
-        else:
-            def m3(x, a, c, w, model=model):
-                return model(x, 0.0, a, c, w)
+            problems.append(_Problem(name, f, y, starts, lower, upper))
+        else:               # the baseline fixed at 0
+            problems.append(_Problem(name + "_b0", f, y, [s[1:] for s in starts], lower[1:], upper[1:]))
+        models.append((name, model))
+    dog = _dog_job(f, y, lo, hi, span) if free_b else ([], None)   # the DoG has 4 parameters: only
+    problems += dog[0]                                               # beside the 4-parameter fits
+    t95 = _t95(f.size - (4 if free_b else 3))
 
-            def j3(x, a, c, w, jac=jac):
-                return jac(x, 0.0, a, c, w)[:, 1:]
-            fit = _least_squares(m3, f, y, [s[1:] for s in starts], lower[1:], upper[1:], jac=j3)
-            p = np.concatenate([[0.0], fit.params])
-            cov = np.full((4, 4), np.nan)
-            cov[1:, 1:] = fit.cov
-        if not fit.ok or not p[1] > 0:
-            continue
-        ssr = float(np.sum((model(f, *p) - y) ** 2))
-        fits.append(_sf_summary(name, p, cov, fit.r2, ssr, lo, hi, _t95(f.size - (4 if free_b else 3))))
-    if free_b:              # the DoG has 4 parameters: only beside the 4-parameter fits
-        dog = _fit_dog(f, y, lo, hi, span)
-        if dog is not None:
-            fits.append(dog)
-    return _combine_sf_fits(fits, f.size, empty)
+    def finish(fits):
+        out = []
+        for (name, model), fit in zip(models, fits):
+            if free_b:
+                p, cov = fit.params, fit.cov
+            else:
+                p = np.concatenate([[0.0], fit.params])
+                cov = np.full((4, 4), np.nan)
+                cov[1:, 1:] = fit.cov
+            if not fit.ok or not p[1] > 0:
+                continue
+            ssr = float(np.sum((model(f, *p) - y) ** 2))
+            out.append(_sf_summary(name, p, cov, fit.r2, ssr, lo, hi, t95))
+        if dog[1] is not None:
+            got = dog[1](fits[len(models):])
+            if got is not None:
+                out.append(got)
+        return _combine_sf_fits(out, f.size, empty)
+    return problems, finish
 
 
 def _combine_sf_fits(fits, n, empty):
@@ -792,8 +817,8 @@ def _jac_dog_internal(x, b, a_c, a_s, rc, t):
     f2 = (np.pi * np.asarray(x, float)) ** 2
     ec = np.exp(-f2 * rc * rc)
     es = np.exp(-f2 * rc * rc * t * t)
-    return np.column_stack([np.ones_like(ec), ec, -es, -2.0 * rc * f2 * (a_c * ec - a_s * t * t * es),
-                            2.0 * a_s * rc * rc * t * f2 * es])
+    return np.stack([np.ones_like(ec), ec, -es, -2.0 * rc * f2 * (a_c * ec - a_s * t * t * es),
+                     2.0 * a_s * rc * rc * t * f2 * es], axis=-1)
 
 
 def _dog_peak_cpd(a_c, a_s, rc, rs):
@@ -842,6 +867,11 @@ def _fit_dog(f, y, lo, hi, span):
     from two octaves below to three above the tested range. Starts: a grid of ``(rc, rs / rc)`` with the
     two amplitudes solved by linear least squares; the best grid point with both amplitudes
     non-negative is refined."""
+    return _run_jobs([_dog_job(f, y, lo, hi, span)])[0]
+
+
+def _dog_job(f, y, lo, hi, span):
+    """The fit of :func:`_fit_dog` as a job for :func:`_run_jobs`."""
     f_lo, f_hi = float(f.min()), float(f.max())
     rc_lo, rc_hi = 1.0 / (np.pi * 8.0 * f_hi), 1.0 / (np.pi * f_lo / 4.0)
     a_hi = 50.0 * span + 1e-9
@@ -867,9 +897,13 @@ def _fit_dog(f, y, lo, hi, span):
         i_max = int(np.argmax(y))
         start = [float(np.ptp(y)), 0.5 * float(np.ptp(y)), float(np.clip(0.3 / (np.pi * f[i_max]), rc_lo, rc_hi)),
                  2.0]
-    fit = _least_squares(lambda x, *q: _dog_internal(x, 0.0, *q), f, y, [start],
-                         [0.0, 0.0, rc_lo, _DOG_T_BOUNDS[0]], [a_hi, a_hi, rc_hi, _DOG_T_BOUNDS[1]],
-                         jac=lambda x, *q: _jac_dog_internal(x, 0.0, *q)[:, 1:])
+    problem = _Problem("dog", f, y, [start], [0.0, 0.0, rc_lo, _DOG_T_BOUNDS[0]],
+                       [a_hi, a_hi, rc_hi, _DOG_T_BOUNDS[1]])
+    return [problem], lambda fits: _dog_summary(fits[0], f, y, lo, hi)
+
+
+def _dog_summary(fit, f, y, lo, hi):
+    """The :func:`_sf_summary`-like dict of a DoG fit (:func:`_fit_dog`), or None."""
     if not fit.ok or not fit.params[0] > 0:
         return None
     q, cov = fit.params, fit.cov                                  # (a_c, a_s, rc, rs / rc)
@@ -898,6 +932,7 @@ def _fit_dog(f, y, lo, hi, span):
             "bandwidth_oct": bw,
             "bandwidth_ci95_oct": _delta_ci(bw_fun, q, cov, idx, t95) if np.isfinite(bw) else nan}
 
+
 def separable_surface(theta_deg, sf_cpd, b, a, kappa, theta0_deg, log2_f0, sigma_oct):
     """Orientation x SF surface separable in polar coordinates: von Mises on the doubled angle times a
     log-Gaussian in SF, ``b + a exp(kappa (cos 2(theta - theta0) - 1)) exp(-(log2(f/f0))^2 / (2 sigma^2))``."""
@@ -913,8 +948,8 @@ def _jac_separable(x, b, a, kappa, theta0_deg, log2_f0, sigma_oct):
     z = (np.log2(f) - log2_f0) / sigma_oct
     g = np.exp(kappa * c2 - 0.5 * z * z)
     ag = a * g
-    return np.column_stack([np.ones_like(g), g, ag * c2, ag * kappa * 2.0 * _RAD * np.sin(d2),
-                            ag * z / sigma_oct, ag * z * z / sigma_oct])
+    return np.stack([np.ones_like(g), g, ag * c2, ag * kappa * 2.0 * _RAD * np.sin(d2),
+                     ag * z / sigma_oct, ag * z * z / sigma_oct], axis=-1)
 
 
 def _wave_coords(th, f, theta0_deg):
@@ -943,8 +978,8 @@ def _jac_gabor_surface(x, b, a, theta0_deg, f0_cpd, sigma_u_cpd, sigma_v_cpd):
     ag = a * g
     # d ku / d theta0 = f sin d, d kv / d theta0 = -f cos d (per radian)
     dt0 = _RAD * (-ag * p / sigma_u_cpd * f * np.sin(d) + ag * q / sigma_v_cpd * f * np.cos(d))
-    return np.column_stack([np.ones_like(g), g, dt0, ag * p / sigma_u_cpd, ag * p * p / sigma_u_cpd,
-                            ag * q * q / sigma_v_cpd])
+    return np.stack([np.ones_like(g), g, dt0, ag * p / sigma_u_cpd, ag * p * p / sigma_u_cpd,
+                     ag * q * q / sigma_v_cpd], axis=-1)
 
 
 def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
@@ -976,6 +1011,11 @@ def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
     SFFit (``ok`` False when the surface cannot be fitted: fewer than 3 SFs or 8 points, no
     orientation fit).
     """
+    return _run_jobs([_sf_surface_job(theta_deg, sf_cpd, surface, ofit)])[0]
+
+
+def _sf_surface_job(theta_deg, sf_cpd, surface, ofit):
+    """The fits of :func:`fit_sf_surface` as a job for :func:`_run_jobs`."""
     th = np.asarray(theta_deg, float)
     f = np.asarray(sf_cpd, float)
     y2 = np.asarray(surface, float)
@@ -983,12 +1023,12 @@ def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
     empty = SFFit(nan, nan, nan, nan, nan, np.full(4, nan), nan, False, "")
     good_f = np.isfinite(f) & (f > 0)
     if good_f.sum() < 3 or not ofit.ok or y2.shape != (th.size, f.size):
-        return empty
+        return [], lambda fits: empty
     T, F = np.meshgrid(th, f, indexing="ij")
     ok = np.isfinite(y2) & good_f[None, :] & np.isfinite(T)
     T, F, y = T[ok], F[ok], y2[ok]
     if y.size < 8 or np.ptp(y) <= 0 or not y.max() > 0:
-        return empty
+        return [], lambda fits: empty
     lf = np.log2(f[good_f])
     lo, hi = float(lf.min()), float(lf.max())
     f_lo, f_hi = float(f[good_f].min()), float(f[good_f].max())
@@ -1000,7 +1040,7 @@ def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
     near = _sf_near(th, y2, ofit)
     fn = np.isfinite(near) & good_f
     i_max = int(np.argmax(y))
-    fits = []
+    problems, parts = [], []
     for name, (to_u, centres, widths, c_lim, w_lim) in _sf_shapes(f_lo, f_hi).items():
         with np.errstate(invalid="ignore", divide="ignore"):
             u = to_u(f)
@@ -1011,13 +1051,13 @@ def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
         b0, a0, c0, w0 = start
         c0, w0 = float(np.clip(c0, *c_lim)), float(np.clip(w0, *w_lim))
         if name == "log_gaussian":
-            model, jac = separable_surface, _jac_separable
+            model = separable_surface
             p0s = [[b0, a0, kappa0, t0, c0, w0]]
             lower = [b_lo, 0.0, 1e-3, t0 - 90.0, c_lim[0], w_lim[0]]
             upper = [b_hi, a_hi, 50.0, t0 + 90.0, c_lim[1], w_lim[1]]
             idx = [0, 1, 4, 5]
         else:
-            model, jac = gabor_spectrum_surface, _jac_gabor_surface
+            model = gabor_spectrum_surface
             # across-axis width: a row d off the preference falls as the von Mises fit does there
             hw = ofit.hwhh_deg if np.isfinite(ofit.hwhh_deg) else 30.0
             sv0 = float(np.clip(c0 * np.sin(np.deg2rad(hw)) / np.sqrt(2.0 * _LN2), *w_lim))
@@ -1025,15 +1065,286 @@ def fit_sf_surface(theta_deg, sf_cpd, surface, ofit) -> SFFit:
             lower = [b_lo, 0.0, t0 - 90.0, c_lim[0], w_lim[0], w_lim[0]]
             upper = [b_hi, a_hi, t0 + 90.0, c_lim[1], w_lim[1], w_lim[1]]
             idx = [0, 1, 3, 4]
-        fit = _least_squares(lambda x, *q, m=model: m(x[0], x[1], *q), (T, F), y, p0s, lower, upper,
-                             jac=jac)
-        if not fit.ok or not fit.params[1] > 0:
+        problems.append(_Problem("separable" if name == "log_gaussian" else "gabor_surface", (T, F), y, p0s,
+                                 lower, upper))
+        parts.append((name, model, idx))
+
+    def finish(fits):
+        out = []
+        for (name, model, idx), fit in zip(parts, fits):
+            if not fit.ok or not fit.params[1] > 0:
+                continue
+            p = fit.params
+            ssr = float(np.sum((model(T, F, *p) - y) ** 2))
+            out.append(_sf_summary(name, p[idx], fit.cov[np.ix_(idx, idx)], fit.r2, ssr, lo, hi,
+                                   _t95(y.size - len(p))))
+        return _combine_sf_fits(out, y.size, empty)
+    return problems, finish
+
+
+# ----------------------------------------------------------------------------------------------
+# many fits at once
+# ----------------------------------------------------------------------------------------------
+def _jac_log_gaussian(x, *q):
+    return _jac_gauss(np.log2(x), *q)
+
+
+def _log_gaussian_b0(x, a, c, w):
+    return log_gaussian_sf(x, 0.0, a, c, w)
+
+
+def _jac_log_gaussian_b0(x, a, c, w):
+    return _jac_gauss(np.log2(x), 0.0, a, c, w)[..., 1:]
+
+
+def _gaussian_b0(x, a, c, w):
+    return gaussian_sf(x, 0.0, a, c, w)
+
+
+def _jac_gaussian_b0(x, a, c, w):
+    return _jac_gauss(x, 0.0, a, c, w)[..., 1:]
+
+
+def _dog_b0(x, a_c, a_s, rc, t):
+    return _dog_internal(x, 0.0, a_c, a_s, rc, t)
+
+
+def _jac_dog_b0(x, a_c, a_s, rc, t):
+    return _jac_dog_internal(x, 0.0, a_c, a_s, rc, t)[..., 1:]
+
+
+def _separable_xy(x, *q):
+    return separable_surface(x[0], x[1], *q)
+
+
+def _gabor_surface_xy(x, *q):
+    return gabor_spectrum_surface(x[0], x[1], *q)
+
+
+#: The models fitted by :func:`_solve`: name -> (model(x, *params), analytic Jacobian(x, *params)),
+#: both broadcasting over a leading axis of problems (``x`` (problems, points) or a pair of such arrays,
+#: each parameter (problems, 1)).
+_KINDS = {
+    "orientation": (von_mises_orientation, _jac_orientation),
+    "direction": (von_mises_direction, _jac_direction),
+    "log_gaussian": (log_gaussian_sf, _jac_log_gaussian),
+    "log_gaussian_b0": (_log_gaussian_b0, _jac_log_gaussian_b0),
+    "gaussian": (gaussian_sf, _jac_gauss),
+    "gaussian_b0": (_gaussian_b0, _jac_gaussian_b0),
+    "dog": (_dog_b0, _jac_dog_b0),
+    "separable": (_separable_xy, _jac_separable),
+    "gabor_surface": (_gabor_surface_xy, _jac_gabor_surface),
+}
+
+
+@dataclass
+class _Problem:
+    """One bounded least-squares fit: model ``kind`` (:data:`_KINDS`) to ``y`` at ``x`` (an array, or a
+    pair of arrays for the surfaces), from each of ``starts``; ``probe_nfev`` as for :func:`_least_squares`."""
+
+    kind: str
+    x: object
+    y: np.ndarray
+    starts: list
+    lower: list
+    upper: list
+    probe_nfev: int | None = None
+
+
+def _pad(rows, n, fill_first=True):
+    """Rows of different lengths in an (m, n) array, each padded with its first value."""
+    out = np.empty((len(rows), n))
+    for i, r in enumerate(rows):
+        r = np.asarray(r, float)
+        out[i, :r.size] = r
+        out[i, r.size:] = r[0] if (fill_first and r.size) else 0.0
+    return out
+
+
+def _solve(problems, solver="batch"):
+    """The best fit (:class:`_Fit`) of each :class:`_Problem`.
+
+    ``solver="batch"`` (default) advances all problems of one model together with
+    :func:`_levenberg_marquardt`: every start is a row; a problem with several starts has them all
+    probed for :data:`_PROBE_ITERATIONS` iterations and only its lowest-cost row is then run to
+    convergence (as :func:`_least_squares` does with ``probe_nfev``). ``"scipy"`` fits the problems one
+    by one with :func:`_least_squares` (the reference)."""
+    fits = [None] * len(problems)
+    if solver == "scipy":
+        for i, pr in enumerate(problems):
+            model, jac = _KINDS[pr.kind]
+            fits[i] = _least_squares(model, pr.x, pr.y, pr.starts, pr.lower, pr.upper, jac=jac,
+                                     probe_nfev=pr.probe_nfev)
+        return fits
+    if solver != "batch":
+        raise ValueError(f"solver must be 'batch' or 'scipy', got {solver!r}")
+    by_kind = {}
+    for i, pr in enumerate(problems):
+        by_kind.setdefault(pr.kind, []).append(i)
+    for kind, idx in by_kind.items():
+        owner, p0, lo, hi, xs, ys = [], [], [], [], [], []
+        for n_pr, i in enumerate(idx):
+            pr = problems[i]
+            for st in pr.starts:
+                owner.append(n_pr)
+                p0.append(np.asarray(st, float))
+                lo.append(np.asarray(pr.lower, float))
+                hi.append(np.asarray(pr.upper, float))
+                xs.append(pr.x)
+                ys.append(np.asarray(pr.y, float))
+        owner = np.asarray(owner)
+        n = max(y.size for y in ys)
+        pair = isinstance(xs[0], tuple)
+        x = (tuple(_pad([xx[d] for xx in xs], n) for d in range(2)) if pair else _pad(xs, n))
+        mask = _pad([np.ones(y.size) for y in ys], n, fill_first=False) > 0
+        y = _pad(ys, n, fill_first=False)
+        lo, hi = np.array(lo), np.array(hi)
+        p = np.clip(np.array(p0), lo + 1e-9, hi - 1e-9)
+        if owner.size > len(idx):           # several starts: probe them all, keep the best of each problem
+            p, cost = _levenberg_marquardt(kind, x, y, mask, p, lo, hi, max_iter=_PROBE_ITERATIONS)
+            keep = _lowest_per_owner(owner, np.where(np.isfinite(cost), cost, np.inf))
+            x = tuple(xx[keep] for xx in x) if pair else x[keep]
+            y, mask, p, lo, hi, owner = y[keep], mask[keep], p[keep], lo[keep], hi[keep], owner[keep]
+        p, cost = _levenberg_marquardt(kind, x, y, mask, p, lo, hi)
+        for got, n_pr in zip(_fit_summaries(kind, x, y, mask, p, cost), owner):
+            fits[idx[n_pr]] = got
+    return fits
+
+
+#: Iterations every start of a multi-start problem gets before only the best one goes on (:func:`_solve`).
+_PROBE_ITERATIONS = 10
+
+
+def _lowest_per_owner(owner, cost):
+    """Row of the lowest cost (the first on ties) of each owner."""
+    order = np.lexsort((np.arange(owner.size), cost, owner))
+    first = np.ones(order.size, bool)
+    first[1:] = owner[order][1:] != owner[order][:-1]
+    return order[first]
+
+
+def _fit_summaries(kind, x, y, mask, p, cost):
+    """:class:`_Fit` of each row: R^2 and the covariance ``s^2 (J^T J)^-1`` (pseudo-inverse) with the
+    Jacobian at the solution, as :func:`_least_squares` computes them; not ok where the fit failed."""
+    _, jacf = _KINDS[kind]
+    m, k = p.shape
+    ok = np.isfinite(cost) & np.isfinite(p).all(axis=1)
+    w = mask.astype(float)
+    with np.errstate(all="ignore"):
+        jac = jacf(x, *(p[:, j:j + 1] for j in range(k))) * w[..., None]
+    n = mask.sum(axis=1)
+    ss_res = 2.0 * cost
+    ym = (y * w).sum(axis=1) / np.maximum(n, 1)
+    ss_tot = (((y - ym[:, None]) * w) ** 2).sum(axis=1)
+    cov = np.full((m, k, k), np.nan)
+    use = ok & (n > k) & np.isfinite(jac).all(axis=(1, 2))
+    if use.any():
+        jt = np.swapaxes(jac[use], 1, 2)
+        try:
+            cov[use] = np.linalg.pinv(jt @ jac[use]) * (ss_res[use] / (n[use] - k))[:, None, None]
+        except np.linalg.LinAlgError:
+            pass
+    out = []
+    for i in range(m):
+        if not ok[i]:
+            out.append(_Fit(params=np.full(k, np.nan), cov=np.full((k, k), np.nan)))
             continue
-        p = fit.params
-        ssr = float(np.sum((model(T, F, *p) - y) ** 2))
-        fits.append(_sf_summary(name, p[idx], fit.cov[np.ix_(idx, idx)], fit.r2, ssr, lo, hi,
-                                _t95(y.size - len(p))))
-    return _combine_sf_fits(fits, y.size, empty)
+        r2 = 1.0 - ss_res[i] / ss_tot[i] if ss_tot[i] > 0 else float("nan")
+        out.append(_Fit(params=p[i].copy(), cov=cov[i], r2=float(r2), ok=True))
+    return out
+
+
+def _levenberg_marquardt(kind, x, y, mask, p0, lower, upper, max_iter=200, ftol=1e-8, xtol=1e-8):
+    """Bounded nonlinear least squares for many problems at once (one per row), all advanced together.
+
+    Levenberg-Marquardt (Marquardt 1963) with the damping scaled by the diagonal of ``J^T J`` and
+    the update of the damping factor of Nielsen (1999; Madsen, Nielsen & Tingleff 2004, Methods for
+    Non-Linear Least Squares Problems, sec. 3.2, cited from memory), starting from a damping of 0.1
+    (the first steps short; a start far from the data's minimum otherwise jumps to a degenerate
+    corner of the box). Bounds: a parameter on a bound whose gradient points out of the box is held
+    there for the step (an active set), the others take the damped Gauss-Newton step, cut to go at
+    most 99 % of the way to any bound (the parameters stay inside the box, as in the interior
+    methods of :func:`scipy.optimize.least_squares`). A row
+    stops when a step lowers its cost by less than ``ftol`` of it (with the model's prediction
+    agreeing, as :func:`scipy.optimize.least_squares` tests ``ftol``) or moves the parameters by less
+    than ``xtol`` of their norm, or when no step lowers its cost however damped; ``max_iter``
+    iterations at most.
+    Every row's arithmetic is its own (the same answers in any batch).
+
+    Returns ``(params, cost)``, cost ``0.5 sum r^2`` (not finite where the fit failed).
+    """
+    model, jacf = _KINDS[kind]
+    w = mask.astype(float)
+    m, k = p0.shape
+    pair = isinstance(x, tuple)
+
+    def sub(a):
+        return tuple(xx[a] for xx in x) if pair else x[a]
+
+    def residual(a, p):
+        with np.errstate(all="ignore"):
+            return (model(sub(a), *(p[:, j:j + 1] for j in range(k))) - y[a]) * w[a]
+
+    p = p0.copy()
+    r = residual(np.arange(m), p)
+    cost = 0.5 * np.sum(r * r, axis=1)
+    lam = np.full(m, 0.1)
+    nu = np.full(m, 2.0)
+    live = np.isfinite(cost)
+    eye = np.eye(k)
+    for _ in range(max_iter):
+        a = np.flatnonzero(live)
+        if a.size == 0:
+            break
+        pa, ra = p[a], r[a]
+        with np.errstate(all="ignore"):
+            jac = jacf(sub(a), *(pa[:, j:j + 1] for j in range(k))) * w[a][..., None]     # (a, n, k)
+        jt = np.swapaxes(jac, 1, 2)
+        g = (jt @ ra[..., None])[..., 0]                                   # J^T r
+        h = jt @ jac                                                        # J^T J
+        bad = ~(np.isfinite(g).all(axis=1) & np.isfinite(h).all(axis=(1, 2)))
+        g[bad], h[bad] = 0.0, eye
+        # held: on a bound (to 1e-10 of the box) with the gradient pointing out of the box
+        tol = 1e-10 * (upper[a] - lower[a])
+        free = ~(((pa - lower[a] <= tol) & (g > 0)) | ((upper[a] - pa <= tol) & (g < 0)))
+        d = np.diagonal(h, axis1=1, axis2=2)
+        d = np.maximum(d, 1e-12 * d.max(axis=1, keepdims=True) + 1e-300)
+        lhs = np.where(free[:, :, None] & free[:, None, :], h + (lam[a, None] * d)[..., None] * eye, eye)
+        step = -np.linalg.solve(lhs, np.where(free, g, 0.0)[..., None])[..., 0]
+        # at most 99 % of the way to a bound in each coordinate: the fit stays inside the box (steps
+        # that land on a bound can strand a fit where the model no longer depends on some parameters)
+        pn = np.where(free, pa + np.clip(step, -0.99 * (pa - lower[a]), 0.99 * (upper[a] - pa)), pa)
+        dp = pn - pa
+        rn = residual(a, pn)
+        cn = 0.5 * np.sum(rn * rn, axis=1)
+        # the decrease the local quadratic model predicts for the step taken
+        pred = -(np.sum(g * dp, axis=1) + 0.5 * (dp[:, None, :] @ h @ dp[:, :, None])[:, 0, 0])
+        better = np.isfinite(cn) & (cn < cost[a]) & ~bad
+        gain = np.where(better & (pred > 0), (cost[a] - cn) / np.where(pred > 0, pred, 1.0), 0.0)
+        # converged: a small relative change of cost or of the parameters, or no step left
+        small_f = better & (cost[a] - cn <= ftol * cost[a]) & (gain > 0.25)
+        small_x = better & (np.sqrt(np.sum(dp * dp, axis=1)) <= xtol * (xtol + np.sqrt(np.sum(pa * pa, axis=1))))
+        ab = a[better]
+        p[ab], r[ab], cost[ab] = pn[better], rn[better], cn[better]
+        lam[ab] *= np.maximum(1.0 / 3.0, 1.0 - (2.0 * gain[better] - 1.0) ** 3)
+        nu[ab] = 2.0
+        worse = a[~better]
+        lam[worse] *= nu[worse]
+        nu[worse] *= 2.0
+        live[a[small_f | small_x | (lam[a] > 1e16) | (cost[a] == 0) | bad]] = False
+    return p, cost
+
+
+def _run_jobs(jobs, solver="batch"):
+    """Results of fit jobs, each ``(problems, finish)`` (e.g. :func:`_orientation_job`): the problems of
+    all jobs solved together (:func:`_solve`), then each job's ``finish(fits)``."""
+    problems = [p for probs, _ in jobs for p in probs]
+    fits = _solve(problems, solver)
+    out, i = [], 0
+    for probs, finish in jobs:
+        out.append(finish(fits[i:i + len(probs)]))
+        i += len(probs)
+    return out
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1100,11 +1411,23 @@ def _sf_near(theta_deg, surface, ofit):
 def table_sf_fit(theta_deg, sf_cpd, sf_curve, surface, ofit) -> SFFit:
     """The SF fit behind ``cells.csv``: :func:`fit_sf_surface` for an orientation-tuned cell with an
     (orientation x SF) surface, else (or when that fit fails) :func:`fit_sf` on ``sf_curve``."""
-    if surface is not None and ofit is not None and ofit.tuned:
-        sfit = fit_sf_surface(theta_deg, sf_cpd, surface, ofit)
+    return table_sf_fits([(theta_deg, sf_cpd, sf_curve, surface, ofit)])[0]
+
+
+def table_sf_fits(items, solver="batch"):
+    """:func:`table_sf_fit` of many cells at once: ``items`` a list of ``(theta_deg, sf_cpd, sf_curve,
+    surface, ofit)``; the surface fits of all cells together, then the SF-curve fits of the rest
+    (:func:`_run_jobs`). Returns a list of :class:`SFFit`."""
+    out = [None] * len(items)
+    first = [i for i, it in enumerate(items) if it[3] is not None and it[4] is not None and it[4].tuned]
+    got = _run_jobs([_sf_surface_job(items[i][0], items[i][1], items[i][3], items[i][4]) for i in first], solver)
+    for i, sfit in zip(first, got):
         if sfit.ok:
-            return sfit
-    return fit_sf(sf_cpd, sf_curve)
+            out[i] = sfit
+    rest = [i for i in range(len(items)) if out[i] is None]
+    for i, sfit in zip(rest, _run_jobs([_sf_job(items[i][1], items[i][2]) for i in rest], solver)):
+        out[i] = sfit
+    return out
 
 
 def _drifting_curves(dr, c):
@@ -1266,48 +1589,119 @@ def _selectivity_interval(fl, i, seed, estimates, n_draws=N_SELECTIVITY_DRAWS, l
     and their Application, sec. 5.2): conservative, clipped to [0, 1]. NaN when the noise variances
     are not known. Seeded by the cell id (the same with any number of worker processes).
     """
-    nan4 = (np.nan,) * 4
-    v = np.asarray(fl.harmonic_noise_var[i], float)
-    vp = np.asarray(fl.phase_mean_noise_var[i], float)
-    h = np.asarray(fl.harmonic_combined[i], complex)
-    pm = np.asarray(fl.phase_mean_combined[i], float)
-    if not (np.isfinite(v).any() and np.isfinite(vp).any()):
-        return nan4
-    v = np.where(np.isfinite(v), v, np.nanmean(v))
-    vp = np.where(np.isfinite(vp), vp, np.nanmean(vp))
-    rng = np.random.default_rng(int(seed))
-    shape = (n_draws,) + h.shape
-    hs = h + np.sqrt(v / 2) * (rng.standard_normal(shape) + 1j * rng.standard_normal(shape))
-    ps = pm + np.sqrt(vp) * rng.standard_normal(shape)
-    resp = ps + fl.condition_contrast[None] * np.sqrt(np.maximum(np.abs(hs) ** 2 - v, 0.0))
-    cvs, osis = np.full(n_draws, np.nan), np.full(n_draws, np.nan)
-    for d in range(n_draws):  # a small SVD per draw
-        prof = _rank1(resp[d])
-        if prof is None:
+    return tuple(_selectivity_intervals(fl, [i], [seed], [estimates], n_draws, level)[0])
+
+
+def _selectivity_intervals(fl, rows, seeds, estimates, n_draws=N_SELECTIVITY_DRAWS, level=0.95):
+    """:func:`_selectivity_interval` of the cells at ``rows`` of ``fl`` at once: each cell's draws from
+    its own seed, the rank-1 profiles of all draws of all cells in one stacked SVD, both indices for
+    all of them as array operations. Returns an array (cells, 4): circular variance low, high, OSI
+    low, high."""
+    out = np.full((len(rows), 4), np.nan)
+    draws, which = [], []
+    for n, (i, seed) in enumerate(zip(rows, seeds)):
+        v = np.asarray(fl.harmonic_noise_var[i], float)
+        vp = np.asarray(fl.phase_mean_noise_var[i], float)
+        h = np.asarray(fl.harmonic_combined[i], complex)
+        pm = np.asarray(fl.phase_mean_combined[i], float)
+        if not (np.isfinite(v).any() and np.isfinite(vp).any()):
             continue
-        cvs[d] = circular_variance(fl.orientations_deg, prof[0])[0]
-        osis[d] = osi(fl.orientations_deg, prof[0])
+        v = np.where(np.isfinite(v), v, np.nanmean(v))
+        vp = np.where(np.isfinite(vp), vp, np.nanmean(vp))
+        rng = np.random.default_rng(int(seed))
+        shape = (n_draws,) + h.shape
+        hs = h + np.sqrt(v / 2) * (rng.standard_normal(shape) + 1j * rng.standard_normal(shape))
+        ps = pm + np.sqrt(vp) * rng.standard_normal(shape)
+        draws.append(ps + fl.condition_contrast[None] * np.sqrt(np.maximum(np.abs(hs) ** 2 - v, 0.0)))
+        which.append(n)
+    if not draws:
+        return out
+    resp = np.stack(draws)                                   # (cells, draws, O, S)
+    prof, some = _rank1_many(resp)
+    th = np.asarray(fl.orientations_deg, float)
+    cvs = np.where(some, _circular_variance_rows(th, prof), np.nan)
+    osis = np.where(some, _osi_rows(th, prof), np.nan)
     a = (1 - level) / 2
-    out = []
-    for x, t in zip((cvs, osis), estimates):
-        x = x[np.isfinite(x)]
-        if x.size < n_draws // 2 or not np.isfinite(t):
-            out.extend([np.nan, np.nan])
-            continue
-        q_lo, q_hi = np.quantile(x, [a, 1 - a])
-        lo, hi = min(q_lo, 2 * t - q_hi), max(q_hi, 2 * t - q_lo)
-        out.extend([min(max(lo, 0.0), 1.0), min(max(hi, 0.0), 1.0)])
-    return tuple(float(q) for q in out)
+    for m, n in enumerate(which):
+        got = []
+        for x, t in zip((cvs[m], osis[m]), estimates[n]):
+            x = x[np.isfinite(x)]
+            if x.size < n_draws // 2 or not np.isfinite(t):
+                got.extend([np.nan, np.nan])
+                continue
+            q_lo, q_hi = np.quantile(x, [a, 1 - a])
+            lo, hi = min(q_lo, 2 * t - q_hi), max(q_hi, 2 * t - q_lo)
+            got.extend([min(max(lo, 0.0), 1.0), min(max(hi, 0.0), 1.0)])
+        out[n] = got
+    return out
 
 
-def _tuning_chunk(flashed, drifting, cell_ids):
-    """The columns of :func:`grating_tuning_columns` for ``cell_ids`` (one process)."""
+def _rank1_many(surfaces):
+    """:func:`_rank1` orientation profiles of a stack of (O, S) surfaces (..., O, S) -> (..., O), and
+    whether each surface had any nonzero value (the profile is 0 where not). The leading singular
+    pair comes from the eigenvector of the largest eigenvalue of the smaller Gram matrix (``M M^T`` or
+    ``M^T M``; the same vectors as the SVD to rounding, at a fraction of the cost for many small
+    matrices)."""
+    m = np.where(np.isfinite(surfaces), surfaces, 0.0)
+    some = m.any(axis=(-2, -1))
+    mt = np.swapaxes(m, -1, -2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if m.shape[-2] <= m.shape[-1]:
+            lam, vec = np.linalg.eigh(m @ mt)
+            u0 = vec[..., :, -1]
+            s0 = np.sqrt(np.maximum(lam[..., -1], 0.0))
+            v0 = (mt @ u0[..., None])[..., 0] / s0[..., None]
+        else:
+            lam, vec = np.linalg.eigh(mt @ m)
+            v0 = vec[..., :, -1]
+            s0 = np.sqrt(np.maximum(lam[..., -1], 0.0))
+            u0 = (m @ v0[..., None])[..., 0] / s0[..., None]
+    flip = np.take_along_axis(u0, np.argmax(np.abs(u0), axis=-1)[..., None], axis=-1)[..., 0] < 0
+    u0 = np.where(flip[..., None], -u0, u0)
+    v0 = np.where(flip[..., None], -v0, v0)
+    prof = u0 * s0[..., None] * np.max(v0, axis=-1)[..., None]
+    return np.where(some[..., None], prof, 0.0), some
+
+
+def _circular_variance_rows(theta_deg, r):
+    """:func:`circular_variance` (its first value) of every row of ``r`` (..., O) at ``theta_deg`` (O,)."""
+    th = np.deg2rad(np.asarray(theta_deg, float))
+    ok = np.isfinite(r)
+    rr = np.where(ok, np.maximum(np.where(ok, r, 0.0), 0.0), 0.0)
+    tot = rr.sum(axis=-1)
+    z = np.abs(np.sum(rr * np.exp(2j * th), axis=-1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cv = np.clip(1.0 - z / np.where(tot > 0, tot, 1.0), 0.0, 1.0)
+    return np.where(tot > 0, cv, np.nan)
+
+
+def _osi_rows(theta_deg, r):
+    """:func:`osi` of every row of ``r`` (..., O) at ``theta_deg`` (O,)."""
+    th = np.mod(np.asarray(theta_deg, float), 180.0)
+    ok = np.isfinite(r)
+    rr = np.where(ok, np.maximum(np.where(ok, r, 0.0), 0.0), -np.inf)
+    i = np.argmax(rr, axis=-1)[..., None]
+    r_i = np.take_along_axis(rr, i, axis=-1)[..., 0]
+    th_i = th[i]
+    dist = np.abs(np.mod(th - th_i - 90.0 + 90.0, 180.0) - 90.0)
+    dist = np.where(ok, dist, np.inf)
+    j = np.argmin(dist, axis=-1)[..., None]
+    r_j = np.take_along_axis(rr, j, axis=-1)[..., 0]
+    d_j = np.take_along_axis(dist, j, axis=-1)[..., 0]
+    good = (ok.sum(axis=-1) >= 2) & (d_j <= 22.5) & (r_i > 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(good, (r_i - r_j) / np.where(good, r_i + r_j, 1.0), np.nan)
+
+
+def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
+    """The columns of :func:`grating_tuning_columns` for ``cell_ids`` (one process): the fits of all cells
+    advanced together (:func:`_run_jobs`; ``solver="scipy"`` fits them one by one, the reference)."""
     ids = [np.asarray(r.cell_ids) for r in (flashed, drifting) if r is not None]
     pos = [{int(c): i for i, c in enumerate(a)} for a in ids]
     fl_pos = pos[0] if flashed is not None else {}
     dr_pos = pos[-1] if drifting is not None else {}
-    out = {k: [] for k in TUNING_COLUMNS}
     nan = float("nan")
+    rows, tuned, directed = [], [], []          # tuned: (row, fi, curves); directed: (row, curves)
     for cid in cell_ids:
         cid = int(cid)
         row = dict.fromkeys(TUNING_COLUMNS, nan)
@@ -1345,36 +1739,51 @@ def _tuning_chunk(flashed, drifting, cell_ids):
             row["dsi_ci_high"] = float(drifting.dsi_ci_high[di])
             dc = _drifting_curves(drifting, di)
             if dc is not None:
-                dfit = fit_direction(dc[5], dc[6])
-                row["pref_direction_deg"] = dfit.pref_deg if dfit.ok else float(drifting.pref_direction_deg[di])
+                directed.append((row, di, dc))
         if curves is not None:
-            th, ocurve, sfs, scurve, surface = curves[:5]
-            cv, _ = circular_variance(th, ocurve)
-            row["circular_variance"] = cv
+            th, ocurve = curves[:2]
+            row["circular_variance"] = circular_variance(th, ocurve)[0]
             row["osi"] = osi(th, ocurve)
-            if row["tuning_source"] == "flashed":
-                (row["circular_variance_ci_low"], row["circular_variance_ci_high"], row["osi_ci_low"],
-                 row["osi_ci_high"]) = _selectivity_interval(flashed, fi, cid, (cv, row["osi"]))
-            of = fit_orientation(th, ocurve)
-            # the circular-variance gate is for the 4-phase aliasing of flashed sequences only
-            oriented = of.tuned and (row["tuning_source"] != "flashed"
-                                     or (np.isfinite(cv) and cv <= MAX_CIRCULAR_VARIANCE_ORIENTED))
-            if surface is not None and oriented:
-                scurve = _sf_near(th, surface, of)
-            if oriented:
-                row.update(pref_orientation_deg=of.pref_deg, pref_orientation_ci_halfwidth_deg=of.pref_ci95_deg,
-                           orientation_hwhh_deg=of.hwhh_deg, orientation_hwhh_ci_halfwidth_deg=of.hwhh_ci95_deg,
-                           ori_fit_baseline=of.params[0], ori_fit_amplitude=of.params[1],
-                           ori_fit_kappa=of.params[2], ori_fit_r2=of.r2)
-            sfit = table_sf_fit(th, sfs, scurve, surface, of if oriented else None)
-            if sfit.ok:
-                row.update(pref_sf_cpd=sfit.pref_cpd, pref_sf_ci_low_cpd=sfit.pref_ci_low_cpd,
-                           pref_sf_ci_high_cpd=sfit.pref_ci_high_cpd, sf_bandwidth_oct=sfit.bandwidth_oct,
-                           sf_bandwidth_ci_halfwidth_oct=sfit.bandwidth_ci95_oct, sf_fit_baseline=sfit.params[0],
-                           sf_fit_amplitude=sfit.params[1], sf_fit_r2=sfit.r2,
-                           sf_model=sfit.model, sf_fit_curve=sfit.params_model)
-                width = {"log_gaussian": "sf_fit_sigma_oct", "gaussian": "sf_fit_sigma_cpd", "dog": "sf_fit_rc_deg"}
-                row[width[sfit.params_model]] = sfit.params[3]
-        for k in TUNING_COLUMNS:
-            out[k].append(row[k])
-    return out
+            tuned.append((row, fi, curves))
+        rows.append(row)
+
+    # direction preference: all direction fits together
+    for (row, di, dc), dfit in zip(directed, _run_jobs([_direction_job(dc[5], dc[6]) for _, _, dc in directed],
+                                                       solver)):
+        row["pref_direction_deg"] = dfit.pref_deg if dfit.ok else float(drifting.pref_direction_deg[di])
+    # selectivity intervals of the flashed-grating cells, all draws of all cells at once
+    fl_rows = [(row, fi) for row, fi, _ in tuned if row["tuning_source"] == "flashed"]
+    if fl_rows:
+        got = _selectivity_intervals(flashed, [fi for _, fi in fl_rows], [row["cell"] for row, _ in fl_rows],
+                                     [(row["circular_variance"], row["osi"]) for row, _ in fl_rows])
+        for (row, _), q in zip(fl_rows, got):
+            (row["circular_variance_ci_low"], row["circular_variance_ci_high"], row["osi_ci_low"],
+             row["osi_ci_high"]) = (float(v) for v in q)
+    # orientation fits, then the SF fits that start from them
+    ofits = _run_jobs([_orientation_job(curves[0], curves[1]) for _, _, curves in tuned], solver)
+    items, chosen = [], []
+    for (row, _, curves), of in zip(tuned, ofits):
+        th, ocurve, sfs, scurve, surface = curves[:5]
+        cv = row["circular_variance"]
+        # the circular-variance gate is for the 4-phase aliasing of flashed sequences only
+        oriented = of.tuned and (row["tuning_source"] != "flashed"
+                                 or (np.isfinite(cv) and cv <= MAX_CIRCULAR_VARIANCE_ORIENTED))
+        if surface is not None and oriented:
+            scurve = _sf_near(th, surface, of)
+        if oriented:
+            row.update(pref_orientation_deg=of.pref_deg, pref_orientation_ci_halfwidth_deg=of.pref_ci95_deg,
+                       orientation_hwhh_deg=of.hwhh_deg, orientation_hwhh_ci_halfwidth_deg=of.hwhh_ci95_deg,
+                       ori_fit_baseline=of.params[0], ori_fit_amplitude=of.params[1],
+                       ori_fit_kappa=of.params[2], ori_fit_r2=of.r2)
+        items.append((th, sfs, scurve, surface, of if oriented else None))
+        chosen.append(row)
+    width = {"log_gaussian": "sf_fit_sigma_oct", "gaussian": "sf_fit_sigma_cpd", "dog": "sf_fit_rc_deg"}
+    for row, sfit in zip(chosen, table_sf_fits(items, solver)):
+        if sfit.ok:
+            row.update(pref_sf_cpd=sfit.pref_cpd, pref_sf_ci_low_cpd=sfit.pref_ci_low_cpd,
+                       pref_sf_ci_high_cpd=sfit.pref_ci_high_cpd, sf_bandwidth_oct=sfit.bandwidth_oct,
+                       sf_bandwidth_ci_halfwidth_oct=sfit.bandwidth_ci95_oct, sf_fit_baseline=sfit.params[0],
+                       sf_fit_amplitude=sfit.params[1], sf_fit_r2=sfit.r2,
+                       sf_model=sfit.model, sf_fit_curve=sfit.params_model)
+            row[width[sfit.params_model]] = sfit.params[3]
+    return {k: [row[k] for row in rows] for k in TUNING_COLUMNS}
