@@ -14,13 +14,15 @@ Models
   ``sigma`` in octaves (``sf_fit_sigma_oct``) or in cpd (``sf_fit_sigma_cpd``), or the centre radius
   ``rc`` in degrees (``sf_fit_rc_deg``).
 
-Fits use :func:`scipy.optimize.least_squares` with analytic Jacobians. Starts are screened cheaply:
+Fits are bounded nonlinear least squares with analytic Jacobians, all cells and models of a table
+advanced together (:func:`_levenberg_marquardt`, a vectorised Levenberg-Marquardt over a (fits,
+parameters) array; :func:`scipy.optimize.least_squares` one fit at a time is kept as the reference,
+``solver="scipy"``, and the tests hold the two within their intervals). Starts are screened cheaply:
 every model is linear in its baseline and amplitude(s), so on a grid of the nonlinear parameters
 (preference x concentration, centre x width) those are solved exactly in closed form, and the best
 grid point is refined (for direction, the best point in each of three bands of concentration is
-probed for 10 evaluations and the lowest-cost one refined). This reaches the minimum of a broad
-multi-start search at a fraction of the cost; ``grating_tuning_columns`` fits cells in two worker
-processes when there are many. 95 % confidence intervals come from the covariance
+probed for 10 iterations and the lowest-cost one refined). This reaches the minimum of a broad
+multi-start search at a fraction of the cost. 95 % confidence intervals come from the covariance
 ``s^2 (J^T J)^-1`` (``s^2`` the residual variance) with Student-t quantiles. A quantity
 that the data cannot give (too few points, a failed fit, a peak outside the tested range) is NaN.
 
@@ -1458,9 +1460,10 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
     cell_ids : array_like, optional
         All cells (defaults to those of the results).
     n_jobs : int, optional
-        Worker processes for the fits (cells in chunks; the results do not depend on it). Default: 2
-        when at least 50 cells respond to gratings, the machine has two cores or more and this is a
-        single-threaded, non-daemonic process (not e.g. a batch worker), else 1.
+        Worker processes for the fits (cells in one chunk per process, each chunk's fits advanced
+        together; the results do not depend on it). Default: 2 when at least 50 cells respond to
+        gratings, the machine has two cores or more and this is a single-threaded, non-daemonic
+        process (not e.g. a batch worker), else 1.
 
     Returns
     -------
@@ -1505,7 +1508,7 @@ def grating_tuning_columns(flashed=None, drifting=None, cell_ids=None, n_jobs=No
         n_jobs = 2 if n_fit >= 50 and _may_start_processes() else 1
     n_jobs = max(1, min(int(n_jobs), os.cpu_count() or 1, cell_ids.size))
     if n_jobs > 1:
-        chunks = [ch for ch in np.array_split(cell_ids, n_jobs * 4) if ch.size]
+        chunks = [ch for ch in np.array_split(cell_ids, n_jobs) if ch.size]
         try:
             with worker_pool(n_jobs) as ex:   # workers die with this process
                 futs = [ex.submit(_tuning_chunk, _subset(fl, ch), _subset(dr, ch), ch) for ch in chunks]
@@ -1592,47 +1595,48 @@ def _selectivity_interval(fl, i, seed, estimates, n_draws=N_SELECTIVITY_DRAWS, l
     return tuple(_selectivity_intervals(fl, [i], [seed], [estimates], n_draws, level)[0])
 
 
-def _selectivity_intervals(fl, rows, seeds, estimates, n_draws=N_SELECTIVITY_DRAWS, level=0.95):
+def _selectivity_intervals(fl, rows, seeds, estimates, n_draws=N_SELECTIVITY_DRAWS, level=0.95, block=64):
     """:func:`_selectivity_interval` of the cells at ``rows`` of ``fl`` at once: each cell's draws from
-    its own seed, the rank-1 profiles of all draws of all cells in one stacked SVD, both indices for
-    all of them as array operations. Returns an array (cells, 4): circular variance low, high, OSI
-    low, high."""
+    its own seed, the rank-1 profiles of all draws of ``block`` cells at a time in one stacked
+    computation, both indices for all of them as array operations. Returns an array (cells, 4):
+    circular variance low, high, OSI low, high."""
     out = np.full((len(rows), 4), np.nan)
-    draws, which = [], []
-    for n, (i, seed) in enumerate(zip(rows, seeds)):
-        v = np.asarray(fl.harmonic_noise_var[i], float)
-        vp = np.asarray(fl.phase_mean_noise_var[i], float)
-        h = np.asarray(fl.harmonic_combined[i], complex)
-        pm = np.asarray(fl.phase_mean_combined[i], float)
-        if not (np.isfinite(v).any() and np.isfinite(vp).any()):
-            continue
-        v = np.where(np.isfinite(v), v, np.nanmean(v))
-        vp = np.where(np.isfinite(vp), vp, np.nanmean(vp))
-        rng = np.random.default_rng(int(seed))
-        shape = (n_draws,) + h.shape
-        hs = h + np.sqrt(v / 2) * (rng.standard_normal(shape) + 1j * rng.standard_normal(shape))
-        ps = pm + np.sqrt(vp) * rng.standard_normal(shape)
-        draws.append(ps + fl.condition_contrast[None] * np.sqrt(np.maximum(np.abs(hs) ** 2 - v, 0.0)))
-        which.append(n)
-    if not draws:
-        return out
-    resp = np.stack(draws)                                   # (cells, draws, O, S)
-    prof, some = _rank1_many(resp)
+    which = [n for n, i in enumerate(rows)
+             if np.isfinite(fl.harmonic_noise_var[i]).any() and np.isfinite(fl.phase_mean_noise_var[i]).any()]
     th = np.asarray(fl.orientations_deg, float)
-    cvs = np.where(some, _circular_variance_rows(th, prof), np.nan)
-    osis = np.where(some, _osi_rows(th, prof), np.nan)
+    cc = np.asarray(fl.condition_contrast, float)
     a = (1 - level) / 2
-    for m, n in enumerate(which):
-        got = []
-        for x, t in zip((cvs[m], osis[m]), estimates[n]):
-            x = x[np.isfinite(x)]
-            if x.size < n_draws // 2 or not np.isfinite(t):
-                got.extend([np.nan, np.nan])
-                continue
-            q_lo, q_hi = np.quantile(x, [a, 1 - a])
-            lo, hi = min(q_lo, 2 * t - q_hi), max(q_hi, 2 * t - q_lo)
-            got.extend([min(max(lo, 0.0), 1.0), min(max(hi, 0.0), 1.0)])
-        out[n] = got
+    for start in range(0, len(which), block):                 # cells in blocks (memory)
+        part = which[start:start + block]
+        idx = [rows[n] for n in part]
+        v = np.asarray(fl.harmonic_noise_var[idx], float)
+        vp = np.asarray(fl.phase_mean_noise_var[idx], float)
+        v = np.where(np.isfinite(v), v, np.nanmean(v, axis=(1, 2), keepdims=True))
+        vp = np.where(np.isfinite(vp), vp, np.nanmean(vp, axis=(1, 2), keepdims=True))
+        h = np.asarray(fl.harmonic_combined[idx], complex)[:, None]
+        pm = np.asarray(fl.phase_mean_combined[idx], float)[:, None]
+        # each cell's three standard normal arrays (real and imaginary noise of H, phase-invariant
+        # noise) from its own seed, in the order of three successive draws
+        z = np.empty((len(part), 3, n_draws) + h.shape[2:])
+        for m, n in enumerate(part):
+            np.random.default_rng(int(seeds[n])).standard_normal(out=z[m])
+        sd = np.sqrt(v / 2)[:, None]
+        amp2 = (h.real + sd * z[:, 0]) ** 2 + (h.imag + sd * z[:, 1]) ** 2
+        resp = pm + np.sqrt(vp)[:, None] * z[:, 2] + cc * np.sqrt(np.maximum(amp2 - v[:, None], 0.0))
+        prof, some = _rank1_many(resp)                       # (cells, draws, O)
+        cvs = np.where(some, _circular_variance_rows(th, prof), np.nan)
+        osis = np.where(some, _osi_rows(th, prof), np.nan)
+        for m, n in enumerate(part):
+            got = []
+            for x, t in zip((cvs[m], osis[m]), estimates[n]):
+                x = x[np.isfinite(x)]
+                if x.size < n_draws // 2 or not np.isfinite(t):
+                    got.extend([np.nan, np.nan])
+                    continue
+                q_lo, q_hi = np.quantile(x, [a, 1 - a])
+                lo, hi = min(q_lo, 2 * t - q_hi), max(q_hi, 2 * t - q_lo)
+                got.extend([min(max(lo, 0.0), 1.0), min(max(hi, 0.0), 1.0)])
+            out[n] = got
     return out
 
 
