@@ -104,7 +104,7 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("onoff_overlap", "1", "Overlap (normalised inner product) of 2-D Gaussians fitted to the strongest "
                "excitatory lobe of the ON and of the OFF map at the peak lag (0 segregated, 1 coextensive; 0 when "
                "only one contrast excites, empty when a subfield fit is not sane; `map2d maps --no-fits`, which fits "
-               "nothing: the cosine of the excitatory z-maps above z 2, which grows with the signal-to-noise ratio).",
+               "nothing: each lobe's Gaussian from the moments of its pixels at half its own maximum).",
                "ours; after Schiller et al. 1976; Mata & Ringach 2005"),
         Column("linear_share", "1", "Share (0-1) of the signal power, noise power subtracted, that the linear map "
                "holds against the ON + OFF map over every pixel and lag where a map passes a Bonferroni-corrected "

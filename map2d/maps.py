@@ -1807,6 +1807,76 @@ def map_centroid_deg(result: MapResult, cell_index: int, threshold_z: float | No
     return x, y
 
 
+def _halfmax_ellipse(map_yx, z_yx, grid: Grid, threshold_z: float):
+    """Moment ellipse ``(centre, covariance)`` of one polarity's excitatory lobe at half its maximum.
+
+    None when no pixel reaches ``threshold_z``. The lobe: pixels 8-connected to the pixel of largest z
+    whose response reaches half of that pixel's response. Its pixels, each a uniform box weighted by
+    its response, have the covariance ``M`` (the weighted centres' covariance + ``diag(dx^2, dy^2) /
+    12``). For a Gaussian ``exp(-x^T S^-1 x / 2)`` the half-maximum region is the ellipse
+    ``x^T S^-1 x <= 2 ln 2``, and the Gaussian's own covariance over it is ``k S`` with
+    ``k = 1 - ln 2 = 0.307`` (per axis ``E[u]`` for ``u = x^T S^-1 x / 2`` under ``e^-u`` on
+    ``[0, ln 2]``: ``(1 - (1 + ln 2) / 2) / (1 / 2)``), so ``S = M / k``, less the pixel box the map
+    carries (a spot fills its pixel). The level is relative to the lobe's own peak, so the ellipse does not grow with the
+    signal-to-noise ratio the way a z threshold does.
+    """
+    z = np.nan_to_num(np.asarray(z_yx, float), nan=-np.inf)
+    if not np.max(z) >= threshold_z:
+        return None
+    m = np.nan_to_num(np.asarray(map_yx, float))
+    i, j = np.unravel_index(int(np.argmax(z)), z.shape)
+    lobe = _component(m >= 0.5 * m[i, j], i, j) if m[i, j] > 0 else np.zeros(m.shape, bool)
+    lobe[i, j] = True
+    rows, cols = np.nonzero(lobe)
+    x, y = grid.point_of(rows, cols)
+    pts = np.column_stack([x, y]).astype(float)
+    w = m[rows, cols] if m[i, j] > 0 else np.ones(rows.size)
+    w = w / w.sum()
+    centre = w @ pts
+    d = pts - centre
+    box = np.diag([grid.dx_deg ** 2, grid.dy_deg ** 2]) / 12.0
+    k = 1.0 - np.log(2.0)             # the Gaussian's covariance over its half-maximum ellipse: k S
+    return centre, ((d * w[:, None]).T @ d + box) / k - box
+
+
+def halfmax_overlap(on_map, off_map, on_z, off_z, grid: Grid, threshold_z: float) -> float:
+    """ON/OFF overlap without a model fit, 0 (segregated) to 1 (coextensive): the overlap of the moment
+    ellipses of the ON and the OFF excitatory lobe taken at half their own maximum.
+
+    Each polarity's lobe (:func:`_halfmax_ellipse`) gives a Gaussian envelope by its moments; the
+    overlap is that of the two envelopes (:func:`map2d.fit.spatial.envelope_overlap`), as for the fitted
+    subfields of :func:`map2d.fit.spatial.subfield_overlap` (after Schiller, Finlay & Volman 1976,
+    J Neurophysiol 39:1288; Mata & Ringach 2005, J Neurophysiol 93:919). The half-maximum level is
+    relative to each lobe's peak, so the estimate does not drift with the signal-to-noise ratio as a
+    cosine of thresholded z-maps does. A polarity with no pixel reaching ``threshold_z`` has no
+    subfield: 0 when the other has one, NaN when neither has. ``map2d maps --no-fits`` reports it.
+    """
+    from .fit.spatial import envelope_overlap
+    on = _halfmax_ellipse(on_map, on_z, grid, threshold_z)
+    off = _halfmax_ellipse(off_map, off_z, grid, threshold_z)
+    if on is None and off is None:
+        return float("nan")
+    if on is None or off is None:
+        return 0.0
+    return envelope_overlap(on[0], on[1], off[0], off[1])
+
+
+def halfmax_overlaps(result: MapResult, alpha: float | None = None) -> np.ndarray:
+    """:func:`halfmax_overlap` of every responsive cell at its peak lag (threshold
+    :func:`region_threshold_z` over the grid's pixels at ``alpha``, default the map's); NaN for cells
+    that are not responsive and for dense noise (no ON and OFF maps)."""
+    alpha = result.alpha if alpha is None else float(alpha)
+    out = np.full(result.n_cells, np.nan)
+    if result.stimulus != "sparse":
+        return out
+    thr = region_threshold_z(result.grid.ny * result.grid.nx, alpha)
+    for c in np.flatnonzero(result.peak_lag_index >= 0):
+        li = int(result.peak_lag_index[c])
+        out[c] = halfmax_overlap(result.on[c, li], result.off[c, li], result.on_z[c, li],
+                                 result.off_z[c, li], result.grid, thr)
+    return out
+
+
 def _one_cell(result: MapResult, c: int) -> MapResult:
     """A view of ``result`` holding cell ``c`` only."""
     import dataclasses

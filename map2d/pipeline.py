@@ -527,7 +527,9 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
 
     With ``fits=False`` (``--no-fits``) only the maps and their statistics are computed: the centre
     is then the model-free centroid of the significant region around the peak pixel
-    (:func:`map2d.maps.map_centroid_deg`) and there are no fit columns.
+    (:func:`map2d.maps.map_centroid_deg`), ``onoff_overlap`` the overlap of the moment ellipses of the
+    ON and OFF lobes at half their maximum (:func:`map2d.maps.halfmax_overlaps`), and there are no fit
+    columns.
 
     ``trace_decay`` ('auto', 'off' or seconds; ``--trace-decay``): for traces, the indicator decay
     removed before the maps (:func:`map2d.traces.decay_corrected`); spikes are never filtered.
@@ -562,7 +564,7 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
         table = {k: v for k, v in an.cells.items() if k not in GRATING_ONLY_COLUMNS}
     else:
         from .contract import Traces
-        from .maps import compute_maps, dense_columns, map_centroid_deg
+        from .maps import compute_maps, dense_columns, halfmax_overlaps, map_centroid_deg
         from .traces import decay_corrected
         responses, decay = session.responses, None
         if isinstance(responses, Traces):
@@ -573,7 +575,8 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
         centres = np.array([map_centroid_deg(res, c) for c in range(res.n_cells)], dtype=float)
         table = {"cell": res.cell_ids, "responsive": res.responsive, "center_x_deg": centres[:, 0],
                  "center_y_deg": centres[:, 1], "peak_lag_s": res.peak_lag_s, "p_value": res.p_value,
-                 "polarity": res.polarity, "onoff_overlap": res.onoff_overlap, "snr": res.snr}
+                 # no fitted subfields: the moment ellipses of the half-maximum lobes (SNR-independent)
+                 "polarity": res.polarity, "onoff_overlap": halfmax_overlaps(res), "snr": res.snr}
         if decay is not None:
             table["trace_decay_tau_s"] = decay.tau_s
         if res.stimulus == "dense":
