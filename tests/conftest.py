@@ -123,7 +123,8 @@ def browser():
 @pytest.fixture(scope="session")
 def heldout_matrix(tmp_path_factory):
     """The spatial validation matrix: every regime of ``tests/heldout_rf.py`` (a generator written from
-    the session format alone), seed 0, analysed with :func:`map2d.analysis.analyze_session`.
+    the session format alone; some regimes with flashed gratings), seed 0, analysed with
+    :func:`map2d.analysis.analyze_session`.
 
     Returns ``{regime: {"rows": heldout_rf.score(...), "spacing": (dx, dy), "alpha": alpha}}``.
     """
@@ -152,5 +153,5 @@ def heldout_matrix(tmp_path_factory):
         out[name] = {"rows": heldout_rf.score(an.cells, truth, (m.grid.dx_deg, m.grid.dy_deg), peak_z),
                      "spacing": (m.grid.dx_deg, m.grid.dy_deg), "alpha": m.alpha,
                      "latency_s": truth["latency_s"], "frame_s": truth["frame_s"],
-                     "spikes": regime.get("responses", "spikes") == "spikes"}
+                     "spikes": regime.get("responses", "spikes") == "spikes", "gratings": truth["gratings"]}
     return out

@@ -1,10 +1,13 @@
-"""Held-out sparse-noise sessions for the spatial validation matrix, written from the session format alone.
+"""Held-out sessions for the validation matrix, written from the session format alone.
 
 This module imports nothing from ``map2d`` (nor its simulator): it writes ``session.json``,
-``sparse_noise.npy``, ``sparse_noise_times.npy`` and ``spikes.npz`` (or ``traces.npy`` +
-``trace_times.npy``) itself, with pixel centres from the format's formula (row 0 at the top):
-``x = x0 + (j - (nx - 1) / 2) dx``, ``y = y0 - (i - (ny - 1) / 2) dy``. It is shared by
-``tests/test_validation_matrix.py`` and ``benchmarks/validate.py``.
+``sparse_noise.npy``, ``sparse_noise_times.npy``, ``gratings.csv`` (flashed gratings, some regimes)
+and ``spikes.npz`` (or ``traces.npy`` + ``trace_times.npy``) itself, with pixel centres from the
+format's formula (row 0 at the top): ``x = x0 + (j - (nx - 1) / 2) dx``, ``y = y0 - (i - (ny - 1) / 2)
+dy``, and each grating from the format's formula
+``s(x, y) = contrast cos(2 pi sf u + phase)``, ``u = (x - xc) cos(ori) + (y - yc) sin(ori)`` (static,
+``tf_hz = 0``; ``(xc, yc)`` the phase origin: the grid centre unless the manifest names another). It is
+shared by ``tests/test_validation_matrix.py`` and ``benchmarks/validate.py``.
 
 Model cells (truth returned beside the folder)
 ----------------------------------------------
@@ -22,7 +25,15 @@ Every cell sees the frame on screen ``latency_s`` earlier through a kernel avera
 - ``none``: spontaneous firing only.
 
 A biphasic time course (``biphasic = b``) subtracts ``b`` times the drive of the frame shown one frame
-before (a transient cell). Spikes are Poisson at 2-ms resolution. For traces, the spikes are convolved
+before (a transient cell).
+
+Flashed gratings (regimes with ``gratings``) follow the sparse noise, one static grating a frame (random
+orientation x SF x phase, some blanks), and the same cells see them through the same rate function:
+the drive is the integral of the (continuous) kernel times the grating over a fine 0.25-deg grid,
+scaled per cell so that the strongest grating of the design drives the cell as much as ``peak`` (in
+the units of a spot on a pixel where the pixel-averaged kernel is 1); for an energy cell the quadrature
+pair's drives are scaled together. A cell with ``lost_in_gratings`` fires at its spontaneous rate
+during the gratings (a unit lost between the two stimuli): it has a map and no grating response. Spikes are Poisson at 2-ms resolution. For traces, the spikes are convolved
 with a double-exponential indicator kernel (rise ``tau_rise_s``, decay ``tau_decay_s``), sampled at
 ``imaging_hz`` and Gaussian noise is added.
 """
@@ -101,6 +112,59 @@ def frame_rates(cell, drives):
     return np.maximum(0.0, spont + gain * (drives[0] - cell.get("thr", 0.0)))
 
 
+FINE_DEG = 0.25         # integration grid of the grating drives (>= 22 points a cycle at 0.18 cpd)
+
+
+def _extent_deg(cell):
+    """Half-width of the patch around the kernel that holds it (4 sd of its widest part)."""
+    k = cell["kind"]
+    if k in ("gabor", "energy"):
+        return 4.0 * max(cell["sa"], cell["sb"])
+    if k in ("dog_on", "dog_off"):
+        return 4.0 * cell["ss"]
+    if k == "onoff":
+        return 4.0 * cell["sc"]
+    return 0.0
+
+
+def grating_drives(cell, ori_deg, sf_cpd, phase_deg, origin):
+    """Integral of each of the cell's kernels times each static grating (contrast 1), ``deg^2``.
+
+    ``ori_deg``, ``sf_cpd``, ``phase_deg``: equal-length arrays (one entry per grating); ``origin`` the
+    phase origin ``(xc, yc)``. Returns a list (one array per kernel, as :func:`kernels`)."""
+    n = len(ori_deg)
+    half = _extent_deg(cell)
+    if half == 0.0:
+        return [np.zeros(n)]
+    v = np.arange(-half, half + FINE_DEG / 2, FINE_DEG)
+    X, Y = np.meshgrid(cell["cx"] + v, cell["cy"] + v)
+    ks = [k.ravel() * FINE_DEG ** 2 for k in kernels(cell, X, Y)]
+    # cos(a + p) = cos a cos p - sin a sin p: one cosine and one sine image per orientation x SF
+    keys = np.stack([np.asarray(ori_deg, float), np.asarray(sf_cpd, float)], 1)
+    uniq, inv = np.unique(keys, axis=0, return_inverse=True)
+    th = np.deg2rad(uniq[:, 0])[:, None]
+    a = 2 * np.pi * uniq[:, 1][:, None] * ((X.ravel() - origin[0]) * np.cos(th) + (Y.ravel() - origin[1]) * np.sin(th))
+    cs = np.stack(ks) @ np.concatenate([np.cos(a), np.sin(a)]).T          # (kernels, 2 x conditions)
+    p = np.deg2rad(np.asarray(phase_deg, float))
+    inv = np.ravel(inv)
+    n = len(uniq)
+    return [cm[:n][inv] * np.cos(p) - cm[n:][inv] * np.sin(p) for cm in cs]
+
+
+def _grating_design(rng, g, t0):
+    """Columns of ``gratings.csv`` for ``g`` (a regime's ``gratings`` dict), starting at ``t0``."""
+    frame_s = g.get("frame_s", 0.1)
+    n = int(round(g["minutes"] * 60 / frame_s))
+    onset = t0 + np.arange(n) * frame_s + rng.normal(0, 2e-4, n)
+    blank = rng.random(n) < g.get("blank", 0.1)
+    oris, sfs, phases = (np.asarray(g[k], float) for k in ("oris", "sfs", "phases"))
+    return dict(onset_s=onset, offset_s=onset + frame_s,
+                orientation_deg=np.where(blank, 0.0, oris[rng.integers(0, oris.size, n)]),
+                sf_cpd=np.where(blank, 0.0, sfs[rng.integers(0, sfs.size, n)]),
+                phase_deg=np.where(blank, 0.0, phases[rng.integers(0, phases.size, n)]),
+                contrast=np.where(blank, 0.0, g.get("contrast", 1.0)), tf_hz=np.zeros(n))
+
+
 def make_session(folder, regime, seed):
     """Write one session of ``regime`` (a dict, see :data:`REGIMES`) into ``folder``; return the truth.
 
@@ -123,17 +187,32 @@ def make_session(folder, regime, seed):
     onsets = 1.0 + np.arange(n_frames) * frame_s + rng.normal(0, 2e-4, n_frames)
     end = onsets[-1] + frame_s
     latency = regime.get("latency_s", 0.045)
+    # every stimulus event (a frame shows until the next onset; the last one for a frame)
+    ev_on, ev_off = onsets, np.r_[onsets[1:], end]
+    g = regime.get("gratings")
+    if g is not None:
+        design = _grating_design(rng, g, end + 1.0)
+        origin = g.get("origin") or grid["center"]
+        ev_on, ev_off = np.r_[ev_on, design["onset_s"]], np.r_[ev_off, design["offset_s"]]
+        end = ev_off[-1]
 
     cells = [dict(c, id=i) for i, c in enumerate(regime["cells"])]
     t = np.arange(0.0, end + 2.0, DT)
-    fidx = np.searchsorted(onsets, t - latency, side="right") - 1
-    shown = (fidx >= 0) & (t - latency < end)
-    fidx_prev = np.searchsorted(onsets, t - latency - frame_s, side="right") - 1
-    shown_prev = (fidx_prev >= 0) & (t - latency - frame_s < end)
+    fidx = np.searchsorted(ev_on, t - latency, side="right") - 1
+    shown = (fidx >= 0) & (t - latency < ev_off[np.clip(fidx, 0, None)])
+    fidx_prev = np.searchsorted(ev_on, t - latency - frame_s, side="right") - 1
+    shown_prev = (fidx_prev >= 0) & (t - latency - frame_s < ev_off[np.clip(fidx_prev, 0, None)])
     counts = np.zeros((len(cells), t.size))
     for ci, c in enumerate(cells):
         ks = pixel_kernels(c, grid)
         d = [frames.astype(float) @ k for k in ks]
+        if g is not None:
+            gd = grating_drives(c, design["orientation_deg"], design["sf_cpd"], design["phase_deg"], origin)
+            amp = np.sqrt(sum(x ** 2 for x in gd))[design["contrast"] > 0]
+            scale = g.get("peak", 1.0) / amp.max() if amp.size and amp.max() > 0 else 0.0
+            if c.get("lost_in_gratings"):
+                scale = 0.0
+            d = [np.r_[di, scale * design["contrast"] * x] for di, x in zip(d, gd)]
         now = [np.where(shown, di[np.clip(fidx, 0, None)], 0.0) for di in d]
         b = c.get("biphasic", 0.0)
         if b:
@@ -146,6 +225,14 @@ def make_session(folder, regime, seed):
     manifest = {"sparse_noise": {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy",
                                  "grid": {"center_deg": list(grid["center"]),
                                           "spacing_deg": list(grid["spacing"])}}}
+    if g is not None:
+        names = ["onset_s", "offset_s", "orientation_deg", "sf_cpd", "phase_deg", "contrast", "tf_hz"]
+        lines = [",".join(names)] + [",".join(repr(float(design[k][i])) for k in names)
+                                     for i in range(design["onset_s"].size)]
+        (folder / "gratings.csv").write_text("\n".join(lines) + "\n")
+        manifest["gratings"] = {"table": "gratings.csv"}
+        if g.get("origin"):
+            manifest["gratings"]["phase_origin_deg"] = list(g["origin"])
     if regime.get("responses", "spikes") == "spikes":
         cell_of, k = np.nonzero(counts)
         n = counts[cell_of, k].astype(int)
@@ -168,7 +255,7 @@ def make_session(folder, regime, seed):
         np.save(folder / "trace_times.npy", t_img)
         manifest["responses"] = {"kind": "traces", "file": "traces.npy", "times": "trace_times.npy"}
     (folder / "session.json").write_text(json.dumps(manifest, indent=2))
-    return {"cells": cells, "frame_s": frame_s, "latency_s": latency}
+    return {"cells": cells, "frame_s": frame_s, "latency_s": latency, "gratings": g is not None}
 
 
 # ------------------------------------------------------------------------------------------------
@@ -241,6 +328,42 @@ REGIMES = {
 }
 
 
+# flashed gratings after 5 min of sparse noise: 6 orientations x 4 SFs (the 2-deg grid's Nyquist
+# frequency is 0.25 cpd) x 4 or 8 phases, 10 Hz, 10 % blanks, 3 min; the phase origin the grid centre
+# (manifest silent) or named off it
+GRATINGS = dict(oris=[0.0, 30.0, 60.0, 90.0, 120.0, 150.0], sfs=[0.04, 0.08, 0.12, 0.18], minutes=3.0,
+                blank=0.1, peak=1.0)
+PHASES4 = [0.0, 90.0, 180.0, 270.0]
+PHASES8 = [45.0 * k for k in range(8)]
+
+
+def _grating_cells(shift):
+    """Linear (Gabor even and odd, DoG), complex and ON-OFF cells, a weak Gabor, two silent cells and a
+    cell lost before the gratings; ``shift`` (deg) moves the fields so that regimes differ."""
+    dx, dy = shift
+    return _cells(
+        [dict(GAB, cx=0.5 + dx, cy=1.3 + dy, theta=30.0, psi=0.0, gain=60.0, spont=2.0),
+         dict(GAB, cx=9.0 + dx, cy=-5.0 + dy, theta=120.0, psi=90.0, gain=60.0, spont=2.0),
+         dict(DOG, kind="dog_on", cx=-5.3 + dx, cy=3.1 + dy, gain=60.0, spont=2.0),
+         dict(GAB, kind="energy", cx=2.0 + dx, cy=-6.0 + dy, theta=60.0, psi=0.0, gain=60.0, spont=3.0),
+         dict(kind="onoff", cx=-5.0 + dx, cy=-6.0 + dy, sc=1.8, gain=40.0, spont=5.0)],
+        [dict(GAB, cx=10.0 + dx, cy=3.0 + dy, theta=75.0, psi=0.0, gain=60.0, spont=2.0)],
+        [dict(DOG, kind="dog_off", cx=13.0 + dx, cy=-1.0 + dy, gain=60.0, spont=2.0, lost_in_gratings=True)])
+
+
+REGIMES.update({
+    # flashed gratings for the same cells: 4 phases, phase origin = grid centre
+    "gratings, 4 phases": dict(grid=SQUARE, minutes=5.0, spots=2, cells=_grating_cells((0.0, 0.0)),
+                               gratings=dict(GRATINGS, phases=PHASES4)),
+    # 8 phases
+    "gratings, 8 phases": dict(grid=SQUARE, minutes=5.0, spots=2, cells=_grating_cells((-1.3, 0.8)),
+                               gratings=dict(GRATINGS, phases=PHASES8)),
+    # 4 phases, the phase origin named in the manifest, off the grid (its centre is (4, -2))
+    "gratings, origin off centre": dict(grid=SQUARE, minutes=5.0, spots=2, cells=_grating_cells((0.7, -1.1)),
+                                        gratings=dict(GRATINGS, phases=PHASES4, origin=(-17.0, 12.5))),
+})
+
+
 def cell_class(cell):
     """'linear' (Gabor, DoG), 'complex' (energy), 'onoff' or 'none'."""
     return {"gabor": "linear", "dog_on": "linear", "dog_off": "linear", "energy": "complex",
@@ -255,7 +378,8 @@ def score(cells, truth, spacing_deg, peak_z):
     Returns a list of dicts: ``id, kind, cls, weak, responsive, err_deg, err_px`` (error over the larger
     pixel side), ``peak_z``, ``fitted_map``, ``polarity``, ``center_method``, ``size_err`` (fitted size
     over the true envelope sd, minus 1: Gabor, DoG centre and ON-OFF blob sd, an energy cell's squared
-    envelope; NaN without a fitted size).
+    envelope; NaN without a fitted size); ``sees_gratings`` (the session has gratings and they drive the cell),
+    ``agreement``, ``linear`` (True, False or None) and ``linear_reason``.
     """
     out = []
     pixel = max(spacing_deg)
@@ -279,5 +403,27 @@ def score(cells, truth, spacing_deg, peak_z):
                         overlap=float(cells["onoff_overlap"][i]) if "onoff_overlap" in cells else np.nan,
                         latency_s=float(cells["latency_s"][i]) if "latency_s" in cells else np.nan,
                         peak_lag_s=float(cells["peak_lag_s"][i]),
+                        sees_gratings=(bool(truth.get("gratings")) and cls != "none"
+                                       and not c.get("lost_in_gratings", False)),
+                        agreement=_num(cells.get("agreement", [None] * len(truth["cells"]))[i]),
+                        linear=_verdict(cells.get("linear", [None] * len(truth["cells"]))[i]),
+                        linear_reason=str(cells.get("linear_reason", [""] * len(truth["cells"]))[i] or ""),
                         size_err=size / true_size - 1 if resp and np.isfinite(size) else np.nan))
     return out
+
+
+def _num(v):
+    """A cells-table value as a float (NaN when empty)."""
+    try:
+        return float(v) if v not in (None, "") else np.nan
+    except (TypeError, ValueError):
+        return np.nan
+
+
+def _verdict(v):
+    """``linear`` as True, False or None (empty)."""
+    if v in (None, "") or (isinstance(v, float) and np.isnan(v)):
+        return None
+    if isinstance(v, str):
+        return {"true": True, "false": False}.get(v.lower())
+    return bool(v)

@@ -2,7 +2,7 @@
 not make with the code under test.
 
 The sessions come from ``tests/heldout_rf.py``, written from the session format alone (it imports nothing
-from map2d): eight regimes of what labs meet (little or a lot of maintained discharge, a rectification
+from map2d): eight sparse-noise regimes of what labs meet (little or a lot of maintained discharge, a rectification
 threshold, complex and ON-OFF cells, fields within 1.5 deg of the grid's edge, transient (biphasic) cells
 at 20 Hz with 4 spots a frame, anisotropic 2.5 x 1.6-deg pixels with 3 spots, imaging with a slow
 indicator), each with strong and weak (gain / 2.5) cells and two silent cells. One seed per regime (seed
@@ -11,6 +11,9 @@ indicator), each with strong and weak (gain / 2.5) cells and two silent cells. O
 
 The yardsticks are the issue's (ours): a third of a pixel for linear cells (at least 0.5 deg), 0.4 pixel
 for complex and ON-OFF cells (at least 1 deg), one pixel for any cell whose strongest map reaches z 6.
+Three regimes add flashed gratings for the same cells (4 phases, 8 phases, a phase origin named off the
+grid): linear cells must be called linear with a high agreement of the two methods, complex and ON-OFF
+cells not, and cells without a grating response get no verdict.
 """
 
 from __future__ import annotations
@@ -75,8 +78,8 @@ def test_silent_cells_false_positives_within_alpha(heldout_matrix):
     silent = [r for res in heldout_matrix.values() for r in res["rows"] if r["cls"] == "none"]
     alpha = next(iter(heldout_matrix.values()))["alpha"]
     fp = sum(r["responsive"] for r in silent)
-    # 16 silent cells at alpha 0.01: P(2 or more false positives) = 1.1 % (binomial)
-    assert len(silent) == 16 and fp <= 1, fp
+    # 22 silent cells (2 a regime) at alpha 0.01: P(2 or more false positives) = 2.0 % (binomial)
+    assert len(silent) == 2 * len(heldout_matrix) == 22 and fp <= 1, fp
     assert alpha == 0.01
 
 
@@ -121,3 +124,66 @@ def test_latency_at_sub_frame_resolution_for_spikes(heldout_matrix):
                 tol = (0.25 if r["peak_z"] >= 8 else 0.5) * res["frame_s"]
                 assert abs(r["latency_s"] - res["latency_s"]) <= tol, (name, r)
     assert n >= 20
+
+
+# ------------------------------------------------------------------------------------------------
+# flashed gratings for the same cells (issue 13 item 6: 4 and 8 phases, a phase origin off the centre)
+# ------------------------------------------------------------------------------------------------
+def _with_gratings(matrix):
+    for name, res in matrix.items():
+        if res["gratings"]:
+            for r in res["rows"]:
+                yield name, res, r
+
+
+def test_grating_regimes_present(heldout_matrix):
+    assert sorted(n for n, res in heldout_matrix.items() if res["gratings"]) == [
+        "gratings, 4 phases", "gratings, 8 phases", "gratings, origin off centre"]
+
+
+def test_linear_cells_called_linear_with_high_agreement(heldout_matrix):
+    # the map's prediction of the flashed gratings' first harmonics (reconcile): median agreement of the
+    # linear cells 0.9 or more in each regime (the bar of the held-out mouse-design test, issue 14),
+    # none below 0.75 (threshold of the call 0.5). Measured, seed 0: 0.87-1.00 (medians 0.98, 0.99, 0.99)
+    agreement = {}
+    for name, _, r in _with_gratings(heldout_matrix):
+        if r["cls"] == "linear" and r["sees_gratings"]:
+            assert r["responsive"] and r["linear"] is True, (name, r)
+            agreement.setdefault(name, []).append(r["agreement"])
+    assert len(agreement) == 3
+    for name, a in agreement.items():
+        assert len(a) == 4 and np.median(a) >= 0.9 and min(a) >= 0.75, (name, a)
+
+
+def test_complex_and_on_off_cells_not_called_linear(heldout_matrix):
+    # an energy cell's and an ON-OFF cell's flashed responses carry no first harmonic (phase-invariant,
+    # frequency-doubled): measured agreement 0.00-0.06
+    n = 0
+    for name, _, r in _with_gratings(heldout_matrix):
+        if r["cls"] in ("complex", "onoff"):
+            n += 1
+            assert r["responsive"] and r["linear"] is False, (name, r)
+            assert r["agreement"] < 0.5, (name, r)
+    assert n == 6
+
+
+def test_no_linearity_verdict_without_a_grating_response(heldout_matrix):
+    # silent cells, and a cell whose map is clear but which was lost before the gratings
+    lost = 0
+    for name, _, r in _with_gratings(heldout_matrix):
+        if not r["sees_gratings"]:
+            assert r["linear"] is None, (name, r)
+            if r["cls"] != "none":
+                lost += 1
+                assert r["responsive"] and "no grating response" in r["linear_reason"], (name, r)
+    assert lost == 3
+
+
+def test_grating_regimes_centres_within_the_yardsticks(heldout_matrix):
+    # every responsive driven cell of these regimes, weak ones included (measured, seed 0: 0.18 pixel
+    # at most)
+    for name, res, r in _with_gratings(heldout_matrix):
+        if r["cls"] != "none" and r["responsive"]:
+            pixel = max(res["spacing"])
+            tol = max(pixel / 3, 0.5) if r["cls"] == "linear" else max(0.4 * pixel, 1.0)
+            assert r["err_deg"] <= tol, (name, r)
