@@ -33,9 +33,11 @@ the drive is the integral of the (continuous) kernel times the grating over a fi
 scaled per cell so that the strongest grating of the design drives the cell as much as ``peak`` (in
 the units of a spot on a pixel where the pixel-averaged kernel is 1); for an energy cell the quadrature
 pair's drives are scaled together. A cell with ``lost_in_gratings`` fires at its spontaneous rate
-during the gratings (a unit lost between the two stimuli): it has a map and no grating response. Spikes are Poisson at 2-ms resolution. For traces, the spikes are convolved
-with a double-exponential indicator kernel (rise ``tau_rise_s``, decay ``tau_decay_s``), sampled at
-``imaging_hz`` and Gaussian noise is added.
+during the gratings (a unit lost between the two stimuli): it has a map and no grating response.
+
+Spikes are Poisson at 2-ms resolution. For traces, the spikes are convolved with a double-exponential
+indicator kernel (rise ``tau_rise_s``, decay ``tau_decay_s``), sampled at ``imaging_hz`` and Gaussian
+noise is added.
 """
 
 from __future__ import annotations
@@ -132,10 +134,9 @@ def grating_drives(cell, ori_deg, sf_cpd, phase_deg, origin):
 
     ``ori_deg``, ``sf_cpd``, ``phase_deg``: equal-length arrays (one entry per grating); ``origin`` the
     phase origin ``(xc, yc)``. Returns a list (one array per kernel, as :func:`kernels`)."""
-    n = len(ori_deg)
     half = _extent_deg(cell)
     if half == 0.0:
-        return [np.zeros(n)]
+        return [np.zeros(len(ori_deg))]
     v = np.arange(-half, half + FINE_DEG / 2, FINE_DEG)
     X, Y = np.meshgrid(cell["cx"] + v, cell["cy"] + v)
     ks = [k.ravel() * FINE_DEG ** 2 for k in kernels(cell, X, Y)]
@@ -143,7 +144,8 @@ def grating_drives(cell, ori_deg, sf_cpd, phase_deg, origin):
     keys = np.stack([np.asarray(ori_deg, float), np.asarray(sf_cpd, float)], 1)
     uniq, inv = np.unique(keys, axis=0, return_inverse=True)
     th = np.deg2rad(uniq[:, 0])[:, None]
-    a = 2 * np.pi * uniq[:, 1][:, None] * ((X.ravel() - origin[0]) * np.cos(th) + (Y.ravel() - origin[1]) * np.sin(th))
+    u = (X.ravel() - origin[0]) * np.cos(th) + (Y.ravel() - origin[1]) * np.sin(th)
+    a = 2 * np.pi * uniq[:, 1][:, None] * u
     cs = np.stack(ks) @ np.concatenate([np.cos(a), np.sin(a)]).T          # (kernels, 2 x conditions)
     p = np.deg2rad(np.asarray(phase_deg, float))
     inv = np.ravel(inv)
@@ -378,8 +380,8 @@ def score(cells, truth, spacing_deg, peak_z):
     Returns a list of dicts: ``id, kind, cls, weak, responsive, err_deg, err_px`` (error over the larger
     pixel side), ``peak_z``, ``fitted_map``, ``polarity``, ``center_method``, ``size_err`` (fitted size
     over the true envelope sd, minus 1: Gabor, DoG centre and ON-OFF blob sd, an energy cell's squared
-    envelope; NaN without a fitted size); ``sees_gratings`` (the session has gratings and they drive the cell),
-    ``agreement``, ``linear`` (True, False or None) and ``linear_reason``.
+    envelope; NaN without a fitted size); ``sees_gratings`` (the session has gratings and they drive
+    the cell), ``agreement``, ``linear`` (True, False or None) and ``linear_reason``.
     """
     out = []
     pixel = max(spacing_deg)
