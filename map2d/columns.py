@@ -82,7 +82,8 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("pref_sf_cpd", "cpd", "Preferred spatial frequency, read along the preferred orientation "
                "(model named in `sf_model`).", "common practice"),
         Column("f1_f0", "1", "F1/F0 of drifting-grating responses at the preferred condition (first cycle left "
-               "out, F1 with its noise bias removed); > 1 = simple when its interval excludes 1.",
+               "out, F1 with its noise bias removed, the condition chosen on other trials than those it is read "
+               "from); > 1 = simple when its interval excludes 1.",
                "Skottun et al. 1991"),
         Column("agreement", "1", "How well the map's fitted model predicts the measured flashed-grating first "
                "harmonics, 0-1, corrected for the noise of the measured surface when it holds signal "
@@ -266,8 +267,8 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("dsi_ci_low", "1", "Lower end of the 95 % interval of `dsi` (trials of both directions resampled).",
                "Davison & Hinkley 1997"),
         Column("dsi_ci_high", "1", "Upper end of the 95 % interval of `dsi`.", "Davison & Hinkley 1997"),
-        Column("f1_f0_ci_low", "1", "Lower end of the 95 % bootstrap interval of `f1_f0` (trials of the preferred "
-               "condition resampled).", "Efron & Tibshirani 1993"),
+        Column("f1_f0_ci_low", "1", "Lower end of the 95 % bootstrap interval of `f1_f0` (trials resampled, the "
+               "choice of the preferred condition redone in each resample).", "Efron & Tibshirani 1993"),
         Column("f1_f0_ci_high", "1", "Upper end of the 95 % bootstrap interval of `f1_f0`.",
                "Efron & Tibshirani 1993"),
         Column("f1_f0_simple_p_value", "1", "Bootstrap p-value of F1/F0 > 1 (share of resamples at or below 1).",

@@ -62,6 +62,7 @@ __all__ = [
 ]
 
 _ROUND = 6  # decimals used to identify equal orientations / phases (degrees)
+N_SPLITS = 16  # drifting F1/F0: splits of the trials into two folds averaged (fixed seed, reproducible)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -594,18 +595,23 @@ class DriftingResult:
     f1_amp_mean : (cells, D, S, T)  mean over trials of ``|trial_f1|`` (biased upward by noise)
     n_trials : (cells, D, S, T)
     pref_index : (cells, 3) int  condition with the largest ``F0 + |F1|`` (-1 if none)
-    f1_f0 : (cells,)  ``F1 / F0`` at the preferred condition (NaN when ``F0 <= 0``), with ``F1`` the
-        noise-bias-corrected amplitude of the vector mean, ``sqrt(max(|f1_mean|^2 - f1_sem^2, 0))``
-        (the squared length of a vector mean of noisy trials exceeds the true one by the variance of
-        the mean; without the correction an unmodulated cell reads F1/F0 well above 0)
-    f1_f0_ci_low, f1_f0_ci_high : (cells,)  95 % bootstrap interval of ``f1_f0`` over the preferred
-        condition's trials (``_f1_f0_bootstrap``)
+    f1_f0 : (cells,)  ``F1 / F0`` at the preferred condition (NaN when ``F0 <= 0``), cross-validated: the
+        trials of each condition are split into two folds, the preferred condition (largest
+        ``F0 + |F1|``) is chosen in one fold and F0 and ``|F1|^2`` are read in the other, both ways,
+        averaged over ``N_SPLITS`` splits (:func:`_cross_validated_f1_f0`); ``|F1|^2`` is the
+        noise-bias-corrected ``|mean F1|^2 - var / n`` (the squared length of a vector mean of noisy
+        trials exceeds the true one by the variance of the mean), ``F1 = sqrt(max(|F1|^2, 0))``. Reading
+        F1 on the trials that chose the condition gave truly unmodulated cells a median F1/F0 of 0.57;
+        now about 0. With one trial per condition nothing can be held out: the values at ``pref_index``
+    f1_f0_ci_low, f1_f0_ci_high : (cells,)  95 % bootstrap interval of ``f1_f0``, the split and the choice
+        of the preferred condition redone in every resample (``_f1_f0_bootstrap``); responsive cells
+        only (NaN otherwise)
     f1_f0_p_simple : (cells,)  bootstrap p of ``F1/F0 > 1``: the share of resamples at or below 1
     grating_class : (cells,) str  ``"simple"`` when the cell is responsive and the interval lies above 1,
         ``"complex"`` when it lies below 1, else ``""`` (undecided: the data do not separate the ratio
         from the criterion of Skottun et al. 1991)
-    simple : (cells,) bool  point estimate ``F1 > F0`` at the preferred condition (chooses the response
-        measure for tuning; the class is ``grating_class``)
+    simple : (cells,) bool  point estimate ``F1 > F0`` (as in ``f1_f0``; chooses the response measure for
+        tuning; the class is ``grating_class``)
     cell_tau_s : (cells,)  traces: the indicator decay used for each cell (NaN: none)
     skip_cycles, latency_s : the window settings (whole cycles left out after the onset, latency)
     response : (cells, D, S, T)  the response measure used for tuning: ``|F1|`` for simple cells,
@@ -979,8 +985,7 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         The analysis window starts and ends this much after the stimulus (the response latency);
         F1's phase stays referred to the stimulus onset.
     n_boot : int
-        Resamples of the preferred condition's trials for the interval of F1/F0 (0: no interval,
-        ``grating_class`` empty).
+        Resamples of the trials for the interval of F1/F0 (0: no interval, ``grating_class`` empty).
     rng : numpy.random.Generator or int, optional
         Seed of the resampling.
 
@@ -998,7 +1003,8 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     rise and tail modelled when its decay is known (``trace_tau_s``, else estimated from the offsets);
     the spontaneous windows are fitted the same way. For spikes F0 is the spike count over the window
     divided by its length. F1/F0 uses the preferred condition (largest
-    ``F0 + |F1|``); a ratio above 1 marks a simple cell (Skottun et al. 1991).
+    ``F0 + |F1|``), chosen on other trials than those F1 and F0 are read from (cross-validated, see
+    ``DriftingResult.f1_f0``); a ratio above 1 marks a simple cell (Skottun et al. 1991).
     """
     if not 0 < alpha < 1:
         raise ValueError(f"alpha must be in (0, 1), got {alpha}")
@@ -1106,10 +1112,18 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     rows_c = np.arange(n_cells)
     pf0 = np.where(pref >= 0, m0[rows_c, np.maximum(pref, 0)], np.nan)
     pf1 = np.where(pref >= 0, f1a[rows_c, np.maximum(pref, 0)], np.nan)
+    # F1/F0 at a preferred condition chosen on other trials than it is read from, averaged over
+    # N_SPLITS splits of each condition's trials into two folds (_cross_validated_f1_f0); with one
+    # trial per condition nothing can be held out and the in-sample values are kept
+    if np.bincount(cond).max() >= 2:
+        split = _split_folds(cond, N_SPLITS, np.random.default_rng(0), resample=False)
+        f0s, f1sq = _cross_validated_f1_f0(*_fold_sums(trial_f0, trial_f1, _fold_layout(cond, split)),
+                                           _condition_f1_var(trial_f0, trial_f1, cond, pooled))
+        pf0, pf1 = _nanmean(f0s, axis=0), _f1_and_ratio(np.nan, _nanmean(f1sq, axis=0))[0]
     with np.errstate(invalid="ignore", divide="ignore"):
         ratio = np.where(pf0 > 0, pf1 / pf0, np.nan)
     simple = np.isfinite(pf1) & (pf1 > np.where(np.isfinite(pf0), pf0, np.inf))
-    ci_lo, ci_hi, p_simple = _f1_f0_bootstrap(trial_f0, trial_f1, cond, pref, int(n_boot), rng)
+    boot_rng = np.random.default_rng(rng)                 # F1/F0 intervals (below, responsive cells)
     rng = np.random.default_rng(rng).integers(2**32)      # a separate stream for the DSI intervals
     response = np.where(simple[:, None], f1a, m0)
 
@@ -1166,6 +1180,11 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         pmin = np.where(n_tests > 0, np.nanmin(np.where(fin_p, both, np.inf), axis=0), np.nan)
         p_value = np.minimum(1.0, n_tests * pmin)
     responsive = np.isfinite(p_value) & (p_value < alpha)
+    # the interval of F1/F0 only where a class can be given (a responsive cell): it is the costly part
+    ci_lo, ci_hi, p_simple = (np.full(n_cells, np.nan) for _ in range(3))
+    if responsive.any():
+        ci_lo[responsive], ci_hi[responsive], p_simple[responsive] = _f1_f0_bootstrap(
+            trial_f0[responsive], trial_f1[responsive], cond, pooled[responsive], int(n_boot), boot_rng)
     grating_class = np.full(n_cells, "", dtype=object)
     grating_class[responsive & (ci_lo > 1.0)] = "simple"
     grating_class[responsive & (ci_hi < 1.0)] = "complex"
@@ -1221,41 +1240,181 @@ def _dsi_bootstrap(f0, f1, cond, pref, opp, use_f1, estimate, n_boot, rng, level
     return float(min(max(lo, 0.0), 1.0)), float(min(max(hi, 0.0), 1.0))
 
 
-def _f1_f0_bootstrap(trial_f0, trial_f1, cond, pref, n_boot, rng, level=0.95):
-    """Percentile interval of F1/F0 at each cell's preferred condition, resampling its trials.
+def _f1_f0_bootstrap(trial_f0, trial_f1, cond, pooled, n_boot, rng, level=0.95):
+    """Percentile interval of the cross-validated F1/F0 (:func:`_cross_validated_f1_f0`), the preferred
+    condition chosen again in every resample.
 
-    Each resample draws the condition's trials with replacement and recomputes F0 (mean) and the
-    noise-bias-corrected F1 (``sqrt(max(|mean F1|^2 - (var re + var im) / n, 0))``), as the point
-    estimate does; a resample with ``F0 <= 0`` and ``F1 > 0`` counts as a ratio above any bound.
-    ``p_simple`` is the share of resamples with ``F1/F0 <= 1`` (bootstrap test of ``F1/F0 > 1``;
-    Efron & Tibshirani 1993, An Introduction to the Bootstrap, ch. 13 and 16). NaN without at least
-    3 finite trials at the preferred condition or ``n_boot = 0``.
+    Each resample shuffles the trials of every condition, deals them alternately into two folds and
+    draws each fold's trials with replacement (:func:`_split_folds`); F0, F1 and the choice of the
+    preferred condition in each fold are then recomputed exactly as for the estimate, so the interval
+    carries the uncertainty of which condition is preferred (a cell with no preferred condition is
+    not read at its luckiest one). A resample with ``F0 <= 0`` and ``F1 > 0`` counts as a ratio above
+    any bound. ``p_simple`` is the share of resamples with ``F1/F0 <= 1`` (bootstrap test of
+    ``F1/F0 > 1``; Efron & Tibshirani 1993, An Introduction to the Bootstrap, ch. 13 and 16). NaN when
+    fewer than half the resamples give a ratio (e.g. one trial per condition) or ``n_boot = 0``.
     """
     n_cells = trial_f0.shape[0]
     lo, hi, p = (np.full(n_cells, np.nan) for _ in range(3))
-    if n_boot <= 0:
+    if n_boot <= 0 or cond.size == 0:
         return lo, hi, p
     rng = np.random.default_rng(rng)
+    layout = _fold_layout(cond, _split_folds(cond, int(n_boot), rng), np.float32)    # ratios: single precision
+    var = _condition_f1_var(trial_f0, trial_f1, cond, pooled)
+    # the variance of a fold's mean in these resamples: k draws with replacement from a random k of a
+    # condition's n trials have variance var (2 k n - n - k^2) / (n k^2) about the trials' mean (not
+    # var / k: with n = 3 and k = 1 it is 2/3 var), which is what the noise correction must remove
+    n_c = np.bincount(np.searchsorted(np.unique(cond), cond)).astype(float)
+    k = np.stack([np.ceil(n_c / 2), np.floor(n_c / 2)], axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where(k > 0, (2 * k * n_c[:, None] - n_c[:, None] - k**2) / (n_c[:, None] * k**2), np.nan).T
+    r = np.empty((int(n_boot), n_cells))
+    step = max(1, int(2e6 // (int(n_boot) * np.unique(cond).size * 2)))          # cells per block (memory)
+    for i in range(0, n_cells, step):
+        sl = slice(i, i + step)
+        r[:, sl] = _f1_and_ratio(*_cross_validated_f1_f0(*_fold_sums(trial_f0[sl], trial_f1[sl], layout), var[sl],
+                                                          scale))[1]
     a = (1.0 - level) / 2.0
-    for c in np.flatnonzero(pref >= 0):   # one small resampling per cell (trials of one condition)
-        idx = np.flatnonzero(cond == pref[c])
-        f0, f1 = trial_f0[c, idx], trial_f1[c, idx]
-        ok = np.isfinite(f0) & np.isfinite(f1)
-        f0, f1 = f0[ok], f1[ok]
-        n = f0.size
-        if n < 3:
-            continue
-        pick = rng.integers(0, n, (n_boot, n))
-        b0 = f0[pick].mean(axis=1)
-        z = f1[pick]
-        m = z.mean(axis=1)
-        v = (z.real.var(axis=1, ddof=1) + z.imag.var(axis=1, ddof=1)) / n
-        b1 = np.sqrt(np.maximum(np.abs(m) ** 2 - v, 0.0))
-        with np.errstate(invalid="ignore", divide="ignore"):
-            r = np.where(b0 > 0, b1 / b0, np.where(b1 > 0, np.inf, np.nan))
-        r = r[~np.isnan(r)]
-        if r.size < n_boot // 2:
-            continue
-        lo[c], hi[c] = np.quantile(r, [a, 1.0 - a], method="inverted_cdf")   # no interpolation: inf allowed
-        p[c] = float(np.mean(r <= 1.0))
+    for c in np.flatnonzero((~np.isnan(r)).sum(axis=0) >= max(1, n_boot // 2)):
+        rc = r[~np.isnan(r[:, c]), c]
+        lo[c], hi[c] = np.quantile(rc, [a, 1.0 - a], method="inverted_cdf")   # no interpolation: inf allowed
+        p[c] = float(np.mean(rc <= 1.0))
     return lo, hi, p
+
+
+def _condition_f1_var(trial_f0, trial_f1, cond, pooled):
+    """(cells, K) variance of one trial's F1 (``var re + var im``) in each condition shown (sorted
+    condition index), trials with finite F0 and F1.
+
+    A condition's own variance has few degrees of freedom (2 with 3 repeats) and an inflated one
+    removes a real F1 in the noise correction; the noise of a spike count grows with the rate, so a
+    pooled value would under-correct the preferred condition. The variance is therefore the straight
+    line ``a + b F0`` fitted, over the conditions, to their own variances (weighted by their degrees of
+    freedom, ``b >= 0``), read at each condition's mean F0: quasi-Poisson spike noise grows linearly
+    with the rate, additive trace noise is constant (common practice: a mean-variance relation shared
+    by the conditions). The pooled within-condition variance where the line cannot be fitted."""
+    fin = np.isfinite(trial_f0) & np.isfinite(trial_f1)
+    z = np.where(fin, trial_f1, 0.0)
+    x0 = np.where(fin, trial_f0, 0.0)
+    conds = np.unique(cond)
+    n_cells = trial_f0.shape[0]
+    var, mean, df = (np.zeros((n_cells, conds.size)) for _ in range(3))
+    for j, c in enumerate(conds):
+        sel = cond == c
+        n = fin[:, sel].sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            m = z[:, sel].sum(axis=1) / n
+            ss = (np.where(fin[:, sel], np.abs(z[:, sel] - m[:, None]) ** 2, 0.0)).sum(axis=1)
+            var[:, j] = np.where(n >= 2, ss / np.maximum(n - 1, 1), 0.0)
+            mean[:, j] = np.where(n >= 1, x0[:, sel].sum(axis=1) / np.maximum(n, 1), 0.0)
+        df[:, j] = np.maximum(n - 1, 0)
+    sw = df.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mx = (df * mean).sum(axis=1) / sw
+        my = (df * var).sum(axis=1) / sw
+        sxx = (df * (mean - mx[:, None]) ** 2).sum(axis=1)
+        slope = np.where(sxx > 0, (df * (mean - mx[:, None]) * (var - my[:, None])).sum(axis=1) / sxx, 0.0)
+        slope = np.maximum(slope, 0.0)
+        fitted = np.maximum(my[:, None] + slope[:, None] * (mean - mx[:, None]), 0.0)
+    ok = (sw >= 2) & np.isfinite(my)
+    return np.where(ok[:, None], fitted, np.asarray(pooled, float)[:, None])
+
+
+def _cross_validated_f1_f0(n, s0, s_re, s_im, var, scale=None):
+    """F0, F1 and F1/F0 at a preferred condition chosen on other trials than those it is measured on.
+
+    ``n``, ``s0``, ``s_re``, ``s_im``: (2, K, ..., cells) count, sum of F0 and sums of F1's real and
+    imaginary parts over the finite trials of each condition in each of two folds (:func:`_fold_sums`); ``var`` (cells, K) the variance
+    of one trial's F1 in each condition (:func:`_condition_f1_var`). In each fold the preferred
+    condition is the largest ``F0 + |F1|`` (F1 noise-bias-corrected, as for ``pref_index``) among the
+    conditions with trials in both folds; the other fold gives F0 (its mean) and ``|F1|^2``
+    (``|mean F1|^2 - var / n``, unbiased) there, and the two folds' values are averaged: the noise that
+    made a condition win does not lift the F1 read at it (choosing and measuring on the same trials gave
+    truly unmodulated cells a median F1/F0 of 0.57). Returns ``(F0, |F1|^2)`` (..., cells), NaN where
+    nothing can be chosen (then :func:`_f1_and_ratio`). ``scale`` (2, K), for resamples: the variance
+    of a fold's mean in units of ``var`` (default ``1 / n``).
+    """
+    extra = s0.ndim - 3                                     # axes between K and cells
+    v = np.where(np.isfinite(var), np.maximum(var, 0.0), 0.0).astype(s0.dtype).T.reshape((var.shape[1],) + (1,) * extra
+                                                                          + (var.shape[0],))
+    inv = 1.0 / np.maximum(n, 1)
+    m0 = s0 * inv
+    f1sq = np.square(s_re * inv)
+    f1sq += np.square(s_im * inv)
+    f1sq -= v * (inv if scale is None else np.asarray(scale, s0.dtype).reshape(scale.shape + (1,) * (extra + 1)))
+    score = np.maximum(f1sq, 0.0)
+    np.sqrt(score, out=score)
+    score += m0
+    both = (n[0] > 0) & (n[1] > 0)
+    got0, got1 = [], []
+    for h in (0, 1):
+        pick = np.where(both, score[h], -np.inf)
+        k = np.argmax(pick, axis=0)[None]
+        ok = np.isfinite(np.take_along_axis(pick, k, axis=0))[0]
+        got0.append(np.where(ok, np.take_along_axis(m0[1 - h], k, axis=0)[0], np.nan))
+        got1.append(np.where(ok, np.take_along_axis(f1sq[1 - h], k, axis=0)[0], np.nan))
+    return 0.5 * (got0[0] + got0[1]), 0.5 * (got1[0] + got1[1])
+
+
+def _f1_and_ratio(f0, f1sq):
+    """``F1 = sqrt(max(|F1|^2, 0))`` and ``F1 / F0``: ``+inf`` when ``F0 <= 0 < F1``, NaN when
+    ``F0 <= 0 = F1`` or either is NaN."""
+    f1 = np.sqrt(np.maximum(f1sq, 0.0))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.where(f0 > 0, f1 / f0, np.where(f1 > 0, np.inf, np.nan))
+    return f1, np.where(np.isfinite(f0) & np.isfinite(f1sq), ratio, np.nan)
+
+
+def _fold_layout(cond, weights, dtype=np.float64):
+    """Trial weights arranged for :func:`_fold_sums`: ``weights`` (B, 2, n) are the trial counts of B
+    resamples in each fold (a 0/1 fold indicator for the data themselves). Returns the condition and
+    rank of every trial and the weights padded to equal-length conditions, (2, K, B, L)."""
+    w = np.asarray(weights, float)
+    _, inv = np.unique(cond, return_inverse=True)
+    counts = np.bincount(inv)
+    slot = np.empty(cond.size, dtype=np.int64)              # rank of each trial within its condition
+    for j in range(counts.size):
+        slot[inv == j] = np.arange(counts[j])
+    wp = np.zeros((2, counts.size, w.shape[0], counts.max()), dtype=dtype)
+    for h in (0, 1):
+        wp[h][inv, :, slot] = w[:, h, :].T
+    return inv, slot, wp
+
+
+def _fold_sums(trial_f0, trial_f1, layout):
+    """Per-condition, per-fold sums for :func:`_cross_validated_f1_f0` (layout from :func:`_fold_layout`);
+    trials with a NaN F0 or F1 are left out. Returns ``n, s0, s_re, s_im`` (count, sums of F0 and of
+    F1's real and imaginary parts), each (2, K, B, cells) over the K conditions shown (sorted); ``n``
+    is (2, K, B, 1) when no trial is NaN."""
+    inv, slot, wp = layout
+    fin = np.isfinite(trial_f0) & np.isfinite(trial_f1)
+    n_cells = trial_f0.shape[0]
+    parts = [np.where(fin, trial_f0, 0.0), np.where(fin, trial_f1.real, 0.0), np.where(fin, trial_f1.imag, 0.0)]
+    all_fin = bool(fin.all())
+    if not all_fin:
+        parts.insert(0, fin)
+    x = np.concatenate(parts).T                                                        # (n, q cells)
+    xp = np.zeros(wp.shape[1:2] + wp.shape[3:] + (x.shape[1],), dtype=wp.dtype)          # (K, L, q cells)
+    xp[inv, slot] = x
+    out = (wp @ xp).reshape(wp.shape[:3] + (len(parts), n_cells))                        # (2, K, B, q, cells)
+    n = wp.sum(axis=-1)[..., None] if all_fin else out[..., 0, :]
+    return (n,) + tuple(out[..., i, :] for i in range(len(parts) - 3, len(parts)))
+
+
+def _split_folds(cond, n_draws, rng, resample=True):
+    """Trial counts (n_draws, 2, n) in two folds: in each draw the trials of every condition are
+    shuffled and dealt alternately into the two folds; with ``resample`` (bootstrap) each fold is then
+    drawn with replacement from its own trials."""
+    n = cond.size
+    w = np.zeros((n_draws, 2, n))
+    rows = np.arange(n_draws)[:, None]
+    for c in np.unique(cond):
+        idx = np.flatnonzero(cond == c)
+        perm = idx[np.argsort(rng.random((n_draws, idx.size)), axis=1)]
+        for h in (0, 1):
+            members = perm[:, h::2]
+            k = members.shape[1]
+            if k == 0:
+                continue
+            pick = np.take_along_axis(members, rng.integers(0, k, (n_draws, k)), axis=1) if resample else members
+            np.add.at(w, (rows, h, pick), 1.0)
+    return w
