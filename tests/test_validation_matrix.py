@@ -187,3 +187,32 @@ def test_grating_regimes_centres_within_the_yardsticks(heldout_matrix):
             pixel = max(res["spacing"])
             tol = max(pixel / 3, 0.5) if r["cls"] == "linear" else max(0.4 * pixel, 1.0)
             assert r["err_deg"] <= tol, (name, r)
+
+
+def test_origin_regime_rests_on_the_named_origin(tmp_path):
+    # negative control: the origin regime's session with the manifest's phase origin left out, so that
+    # it is read as the grid centre, 25 deg from where the gratings' phases were drawn: the linear
+    # cells' phases no longer match the maps' predictions (measured, seed 0: agreement 0.00-0.19, none
+    # called linear, against 0.95-1.00 with the origin named)
+    import json
+    import sys
+    import warnings
+    from pathlib import Path
+
+    from map2d.analysis import analyze_session
+    from map2d.contract import load_session
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    import heldout_rf
+
+    truth = heldout_rf.make_session(tmp_path, heldout_rf.REGIMES["gratings, origin off centre"], seed=0)
+    manifest = json.loads((tmp_path / "session.json").read_text())
+    del manifest["gratings"]["phase_origin_deg"]
+    (tmp_path / "session.json").write_text(json.dumps(manifest))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        an = analyze_session(load_session(tmp_path), rng=0)
+    lin = [i for i, c in enumerate(truth["cells"]) if heldout_rf.cell_class(c) == "linear"
+           and not c.get("lost_in_gratings")]
+    agreement = np.asarray(an.cells["agreement"], float)[lin]
+    assert np.median(agreement) < 0.5, agreement
