@@ -228,7 +228,7 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
 
 def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
                     n_shuffles: int = 200, alpha: float = 0.01, size_radii_deg=None,
-                    progress=None, trace_decay="auto", dense_estimate="auto") -> Analysis:
+                    progress=None, trace_decay="auto", dense_estimate="auto", size_tuning=True) -> Analysis:
     """Run every stage the session's data allow.
 
     Parameters
@@ -245,6 +245,9 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         Shuffle count and family-wise level of the ``responsive`` calls.
     size_radii_deg : array_like, optional
         Disk radii for the predicted size tuning (default: 8 radii up to half the grid's width).
+    size_tuning : bool
+        Predict the size tuning from the maps (``size_disk``, ``size_annulus``; for ``analysis.npz`` and
+        the report). ``map2d maps`` writes neither and passes False: its outputs do not use it.
     progress : callable, optional
         Called with a short stage name as each stage starts (for progress bars).
     trace_decay : 'auto', 'off' or float
@@ -413,7 +416,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
                                                       fl.orientations_deg, fl.sfs_cpd, origin)
     elif an.maps is not None:
         an.notes.append("no flashed gratings: agreement left empty")
-    if an.maps is not None:
+    if an.maps is not None and size_tuning:
         grid = an.maps.grid
         if size_radii_deg is None:
             half = 0.5 * min(grid.nx * grid.dx_deg, grid.ny * grid.dy_deg)

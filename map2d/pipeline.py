@@ -559,7 +559,8 @@ def run_maps(session_path, out, max_lag_s=0.2, seed=0, quiet=False, fits=True, t
     _check_max_lag(max_lag_s, sn)
     if fits:
         an = analyze_session(dataclasses.replace(session, gratings=None), max_lag_s=max_lag_s, rng=seed,
-                             trace_decay=trace_decay, dense_estimate=dense_estimate)
+                             trace_decay=trace_decay, dense_estimate=dense_estimate,
+                             size_tuning=False)   # maps.npz and cells.csv do not hold it
         res, spatial, model = an.maps, an.spatial_maps, _model_maps(an).get("model_maps", an.model_maps)
         table = {k: v for k, v in an.cells.items() if k not in GRATING_ONLY_COLUMNS}
     else:

@@ -126,7 +126,8 @@ def heldout_matrix(tmp_path_factory):
     the session format alone; some regimes with flashed gratings), seed 0, analysed with
     :func:`map2d.analysis.analyze_session`.
 
-    Returns ``{regime: {"rows": heldout_rf.score(...), "spacing": (dx, dy), "alpha": alpha}}``.
+    Returns ``{regime: {"rows": heldout_rf.score(...), "spacing": (dx, dy), "alpha": alpha, "maps": MapResult,
+    "fields": the fit columns of locate_fields, ...}}``.
     """
     import sys
     import warnings
@@ -153,5 +154,6 @@ def heldout_matrix(tmp_path_factory):
         out[name] = {"rows": heldout_rf.score(an.cells, truth, (m.grid.dx_deg, m.grid.dy_deg), peak_z),
                      "spacing": (m.grid.dx_deg, m.grid.dy_deg), "alpha": m.alpha,
                      "latency_s": truth["latency_s"], "frame_s": truth["frame_s"],
-                     "spikes": regime.get("responses", "spikes") == "spikes", "gratings": truth["gratings"]}
+                     "spikes": regime.get("responses", "spikes") == "spikes", "gratings": truth["gratings"],
+                     "maps": m, "fields": an.fields.columns}
     return out

@@ -39,7 +39,8 @@ def bench():
 
 def test_benchmark_tiny_run_peers_and_map2d_agree(bench, tmp_path, capsys):
     res = bench.main(["--minutes", "1", "--rate-hz", "30", "--cells", "6", "--grid", "5", "7", "--lags", "3",
-                      "--repeats", "1", "--dense-gb", "0.002", "--workdir", str(tmp_path)])
+                      "--repeats", "1", "--dense-gb", "0.002", "--workdir", str(tmp_path),
+                      "--population", "all-responsive"])
     # compare_maps raises when map2d and a peer differ by more than float32 tolerance
     assert res["dense_vs_map2d_max_rel_diff"] < 1e-4
     assert res["per_cell_vs_map2d_max_rel_diff"] < 1e-4
@@ -47,7 +48,9 @@ def test_benchmark_tiny_run_peers_and_map2d_agree(bench, tmp_path, capsys):
     assert res["dense_frames"] > 0 and 0 < res["dense_peak_rss_gb"] < 1.5
     assert not (tmp_path / "dense_session").exists()              # the movie is deleted afterwards
     out = capsys.readouterr().out
-    assert "dense float32 product" in out and "per-cell numpy STA" in out and "peer / map2d" in out
+    assert "dense float32 product" in out and "per-cell numpy STA" in out and "peer / default" in out
+    # the default command (fits on) and its fit stage are timed, not only --no-fits
+    assert res["map2d_with_fits"] > 0 and res["fit_stage"] > 0 and "fit stage alone" in out
 
 
 def test_peers_equal_map2d_with_a_silent_cell_and_odd_grid(bench):

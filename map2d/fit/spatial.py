@@ -28,6 +28,9 @@ the cosine/sine amplitudes, so neither angle nor phase wraps during the search),
 starts: the peak of the lightly smoothed map and its second moments (Gaussian, DoG), and the peaks of
 the zero-padded 2-D power spectrum for the Gabor's wave vector (the row axis is flipped, since row 0 is
 the top). Each start gets a short run (12 evaluations) and the best is refined to convergence.
+Many maps (:func:`fit_maps`, :func:`locate_fields`) are fitted by :mod:`map2d.fit.batched` by default: the
+same starts, bounds, multi-start rule, criteria and intervals, with every start of every map advanced
+together by a vectorised Levenberg-Marquardt (``solver='reference'`` keeps ``least_squares``).
 Bounds: centre within a quarter of the grid's extent beyond its edges; widths between 0.3 pixel and
 the grid's largest extent (the DoG surround radius at least 1.05 times the centre's); Gabor frequency
 below the Nyquist limit on each axis (``|kx| <= 1/(2 dx)``, ``|ky| <= 1/(2 dy)``). Non-finite pixels
@@ -310,28 +313,33 @@ class _Problem:
         dof = max(self.n - k, 1)
         red = float(r @ r) / dof
         s2 = max(1.0, red) if self.known_noise else red
-        A = J.T @ J
-        # scale columns for a meaningful eigen-threshold
-        c = np.sqrt(np.diag(A))
-        cov = np.full((k, k), np.nan)
-        if not np.all(np.isfinite(A)):
-            return cov
-        good = c > 0
-        if not np.any(good):
-            return cov
-        Ag = A[np.ix_(good, good)] / np.outer(c[good], c[good])
-        w, V = np.linalg.eigh(Ag)
-        null = w <= 1e-9 * max(w.max(), 1e-300)
-        inv = (V[:, ~null] / w[~null]) @ V[:, ~null].T
-        covg = s2 * inv / np.outer(c[good], c[good])
-        # a parameter with a real share in an unidentified direction has no finite interval
-        bad = np.sum(V[:, null] ** 2, axis=1) > 1e-6 if np.any(null) else np.zeros(good.sum(), bool)
-        idx = np.flatnonzero(good)
-        cov[np.ix_(idx, idx)] = covg
-        for ii in idx[bad]:
-            cov[ii, :] = np.nan
-            cov[:, ii] = np.nan
+        return _wald_cov(J.T @ J, s2)
+
+
+def _wald_cov(A, s2):
+    """``s2 A^-1`` for the normal matrix ``A = J^T J``, NaN for parameters that are not identifiable."""
+    k = A.shape[0]
+    # scale columns for a meaningful eigen-threshold
+    c = np.sqrt(np.diag(A))
+    cov = np.full((k, k), np.nan)
+    if not np.all(np.isfinite(A)):
         return cov
+    good = c > 0
+    if not np.any(good):
+        return cov
+    Ag = A[np.ix_(good, good)] / np.outer(c[good], c[good])
+    w, V = np.linalg.eigh(Ag)
+    null = w <= 1e-9 * max(w.max(), 1e-300)
+    inv = (V[:, ~null] / w[~null]) @ V[:, ~null].T
+    covg = s2 * inv / np.outer(c[good], c[good])
+    # a parameter with a real share in an unidentified direction has no finite interval
+    bad = np.sum(V[:, null] ** 2, axis=1) > 1e-6 if np.any(null) else np.zeros(good.sum(), bool)
+    idx = np.flatnonzero(good)
+    cov[np.ix_(idx, idx)] = covg
+    for ii in idx[bad]:
+        cov[ii, :] = np.nan
+        cov[:, ii] = np.nan
+    return cov
 
 
 def _intervals(names, p, cov):
@@ -444,15 +452,21 @@ def _gauss_model(x, y, x0, y0, s_major, s_minor, theta_deg, amplitude):
     return gaussian2d(x, y, x0, y0, s_major, s_minor, theta_deg, amplitude)
 
 
-def _fit_gaussian_pr(pr):
-    if not _enough(pr, 6):
-        return _empty_fit("gaussian", pr)
+def _gauss_setup(pr):
+    """Starts and bounds of the Gaussian fit (internal parameters), shared by both solvers."""
     x0, y0, smaj, smin, th, A = pr.blob_start()
     r = 1.5 * min(pr.dx, pr.dy)
     starts = [(x0, y0, smaj, smin, th, A), (x0, y0, r, r, 0.0, A)]
     big = 1e3 * pr.scale
     lo = [pr.xlo, pr.ylo, pr.wmin, pr.wmin, -np.inf, -big]
     hi = [pr.xhi, pr.yhi, pr.wmax, pr.wmax, np.inf, big]
+    return starts, lo, hi
+
+
+def _fit_gaussian_pr(pr):
+    if not _enough(pr, 6):
+        return _empty_fit("gaussian", pr)
+    starts, lo, hi = _gauss_setup(pr)
     res = _solve(_gauss_res, _gauss_jac, starts, lo, hi, args=(pr,))
     if res is None:
         return _empty_fit("gaussian", pr)
@@ -493,9 +507,8 @@ def _dog_jac(p, pr):
     return J * pr.w[:, None]
 
 
-def _fit_dog_pr(pr):
-    if not _enough(pr, 6):
-        return _empty_fit("dog", pr)
+def _dog_setup(pr):
+    """Starts and bounds of the DoG fit (internal parameters ``x0, y0, kc, rc, ks, rs / rc``)."""
     x0, y0, smaj, smin, th, A = pr.blob_start()
     rc = math.sqrt(2.0 * smaj * smin)  # exp(-r^2/rc^2) has sd rc / sqrt(2)
     rc = min(max(rc, 2 * pr.wmin), pr.wmax / 2)
@@ -509,11 +522,23 @@ def _fit_dog_pr(pr):
     hi = [pr.xhi, pr.yhi, khi, pr.wmax, khi, 2 * pr.wmax / pr.wmin]
     A = A if A != 0 else sign * pr.scale
     starts = [(x0, y0, 1.2 * A, rc, 0.2 * A / 4, 2.0), (x0, y0, 1.5 * A, 0.8 * rc, 0.5 * A / 9, 3.0)]
+    return starts, lo, hi
+
+
+def _dog_report(p):
+    """Internal (x0, y0, kc, rc, ks, rs / rc) -> reported (x0, y0, kc, rc, ks, rs)."""
+    x0, y0, kc, rc, ks, m = p
+    return np.array([x0, y0, kc, rc, ks, rc * m])
+
+
+def _fit_dog_pr(pr):
+    if not _enough(pr, 6):
+        return _empty_fit("dog", pr)
+    starts, lo, hi = _dog_setup(pr)
     res = _solve(_dog_res, _dog_jac, starts, lo, hi, args=(pr,))
     if res is None:
         return _empty_fit("dog", pr)
-    x0, y0, kc, rc, ks, m = res.x
-    return _finish("dog", pr, dog2d, np.array([x0, y0, kc, rc, ks, rc * m]))
+    return _finish("dog", pr, dog2d, _dog_report(res.x))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -589,9 +614,8 @@ def _gabor_amplitudes(pr, x0, y0, su, sv, kx, ky):
     return float(ab[0]), float(ab[1])
 
 
-def _fit_gabor_pr(pr, n_peaks=3):
-    if not _enough(pr, 8):
-        return _empty_fit("gabor", pr)
+def _gabor_setup(pr, n_peaks=3):
+    """Starts and bounds of the Gabor fit (internal parameters ``x0, y0, su, sv, kx, ky, a, b``)."""
     lo = [pr.xlo, pr.ylo, pr.wmin, pr.wmin, -pr.nyq_x, -pr.nyq_y, -np.inf, -np.inf]
     hi = [pr.xhi, pr.yhi, pr.wmax, pr.wmax, pr.nyq_x, pr.nyq_y, np.inf, np.inf]
     # envelope from the local energy (smoothed squared map)
@@ -614,6 +638,13 @@ def _fit_gabor_pr(pr, n_peaks=3):
         s_use = s0
         a, b = _gabor_amplitudes(pr, ex, ey, s_use, s_use, kx, ky)
         starts.append((ex, ey, s_use, s_use, kx, ky, a, b))
+    return starts, lo, hi
+
+
+def _fit_gabor_pr(pr, n_peaks=3):
+    if not _enough(pr, 8):
+        return _empty_fit("gabor", pr)
+    starts, lo, hi = _gabor_setup(pr, n_peaks)
     res = _solve(_gabor_res, _gabor_jac, starts, lo, hi, args=(pr,))
     if res is None:
         return _empty_fit("gabor", pr)
@@ -709,7 +740,11 @@ def fit_map(map_yx, grid, noise_sd=None, models=MODELS, criterion="bic") -> Spat
     if criterion not in ("aic", "bic"):
         raise ValueError(f"criterion must be 'aic' or 'bic', got {criterion!r}")
     pr = _Problem(map_yx, grid, noise_sd)
-    fits = {m: _FITTERS[m](pr) for m in models}
+    return _choose({m: _FITTERS[m](pr) for m in models}, models, criterion)
+
+
+def _choose(fits, models, criterion):
+    """The fit of the model with the lowest criterion among ``fits`` (one per model, one map)."""
     aic = {m: f.aic[m] for m, f in fits.items()}
     bic = {m: f.bic[m] for m, f in fits.items()}
     score = aic if criterion == "aic" else bic
@@ -718,6 +753,22 @@ def fit_map(map_yx, grid, noise_sd=None, models=MODELS, criterion="bic") -> Spat
     out = fits[best]
     out.aic, out.bic, out.criterion = aic, bic, criterion
     return out
+
+
+#: The optimiser of the many-cell fits (:func:`fit_maps`, :func:`locate_fields`): ``'batched'`` advances
+#: every cell and start together (:mod:`map2d.fit.batched`); ``'reference'`` is
+#: :func:`scipy.optimize.least_squares` one map at a time (the single-map functions always use it).
+SOLVERS = ("batched", "reference")
+
+
+def _fit_all(problems, models, solver="batched"):
+    """Every model fitted to every problem: ``{model: [SpatialFit, ...]}`` (the problems share a grid)."""
+    if solver not in SOLVERS:
+        raise ValueError(f"solver must be one of {SOLVERS}, got {solver!r}")
+    if solver == "reference":
+        return {m: [_FITTERS[m](pr) for pr in problems] for m in models}
+    from .batched import fit_models
+    return {m: fit_models(problems, m) for m in models}
 
 
 # --------------------------------------------------------------------------------------------------
@@ -955,20 +1006,29 @@ def _row(fit: SpatialFit) -> dict:
     return row
 
 
-def _fit_chunk(maps, grid, noise_sd, models, criterion, pixel_box=False):
-    rows, predicted = [], []
+def _fit_chunk(maps, grid, noise_sd, models, criterion, pixel_box=False, solver="batched"):
+    models = tuple(models)
+    if not models or any(m not in _FITTERS for m in models):
+        raise ValueError(f"models must be a non-empty subset of {MODELS}, got {models!r}")
+    if criterion not in ("aic", "bic"):
+        raise ValueError(f"criterion must be 'aic' or 'bic', got {criterion!r}")
+    problems = []
     for c in range(maps.shape[0]):
         sd = None if noise_sd is None else noise_sd[c]
         if sd is not None and not np.all(np.isfinite(sd) & (np.asarray(sd) > 0)):
             sd = None   # unusable noise estimate: fall back to the residuals
-        fit = fit_map(maps[c], grid, sd, models=models, criterion=criterion)
+        problems.append(_Problem(maps[c], grid, sd))
+    fits = _fit_all(problems, models, solver)
+    rows, predicted = [], []
+    for c in range(maps.shape[0]):
+        fit = _choose({m: fits[m][c] for m in models}, models, criterion)
         rows.append(_row(remove_pixel_box(fit, grid) if pixel_box else fit))
         predicted.append(np.asarray(fit.predicted, dtype=float))
     return rows, predicted
 
 
 def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
-             criterion="bic", return_predicted=False, pixel_box=False):
+             criterion="bic", return_predicted=False, pixel_box=False, solver="batched"):
     """Fit every responsive cell's map; columns for ``cells.csv``.
 
     Parameters
@@ -983,10 +1043,14 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
         Noise sd of each cell's map (module notes); ``None`` estimates it from the residuals, as
         does a non-finite or non-positive entry for a cell.
     n_jobs : int, optional
-        Worker processes. Default: 1 below 50 responsive cells, otherwise 2 (the maps are sent in a
-        few large chunks so pickling stays cheap).
+        Worker processes. Default: 1 below :data:`POOL_MIN_CELLS` responsive cells, otherwise 2 (each
+        worker fits its share of the cells as one batch).
     models, criterion
         As :func:`fit_map`.
+    solver : {'batched', 'reference'}
+        The optimiser (:data:`SOLVERS`): every cell at once (:mod:`map2d.fit.batched`, default) or
+        :func:`scipy.optimize.least_squares` one map at a time (the reference; the same starts, bounds,
+        criteria and intervals).
     return_predicted : bool
         Also return the fitted models evaluated on the grid, ``(C, ny, nx)`` (NaN when not fitted).
     pixel_box : bool
@@ -1021,9 +1085,7 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
         if sd.shape not in ((C,), maps.shape):
             raise ValueError(f"noise_sd must have shape ({C},) or {maps.shape}, got {sd.shape}")
     idx = np.flatnonzero(resp)
-    if n_jobs is None:
-        n_jobs = 1 if idx.size < 50 else 2
-    n_jobs = max(1, min(int(n_jobs), os.cpu_count() or 1, max(idx.size, 1)))
+    n_jobs = _n_workers(n_jobs, idx.size, solver)
 
     out = {c: np.full(C, np.nan) for c in FIT_COLUMNS}
     out["model"] = np.full(C, "", dtype=object)
@@ -1033,14 +1095,14 @@ def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
     sub = maps[idx]
     subsd = None if sd is None else sd[idx]
     if n_jobs == 1:
-        rows, preds = _fit_chunk(sub, grid, subsd, tuple(models), criterion, pixel_box)
+        rows, preds = _fit_chunk(sub, grid, subsd, tuple(models), criterion, pixel_box, solver)
     else:
-        chunks = np.array_split(np.arange(idx.size), n_jobs * 4)
+        chunks = np.array_split(np.arange(idx.size), n_jobs * (1 if solver == "batched" else 4))
         chunks = [ch for ch in chunks if ch.size]
         rows, preds = [], []
         with worker_pool(n_jobs) as ex:   # workers die with this process
             futs = [ex.submit(_fit_chunk, sub[ch], grid, None if subsd is None else subsd[ch],
-                              tuple(models), criterion, pixel_box) for ch in chunks]
+                              tuple(models), criterion, pixel_box, solver) for ch in chunks]
             for fu in futs:
                 r, p = fu.result()
                 rows.extend(r)
@@ -1173,7 +1235,11 @@ def fit_checked(map_yx, grid: Grid, check_map, check_sd, models=MODELS, alpha: f
         reason the best-ranked model was rejected.
     """
     pr = _Problem(map_yx, grid, None)
-    fits = {m: _FITTERS[m](pr) for m in models}
+    return _checked_choice({m: _FITTERS[m](pr) for m in models}, models, check_map, grid, check_sd, alpha)
+
+
+def _checked_choice(fits, models, check_map, grid, check_sd, alpha):
+    """:func:`fit_checked`'s choice among ``fits`` (one per model, one map)."""
     aic = {m: f.aic[m] for m, f in fits.items()}
     bic = {m: f.bic[m] for m, f in fits.items()}
     ranked = sorted((m for m in models if np.isfinite(bic[m])), key=lambda m: bic[m])
@@ -1189,11 +1255,13 @@ def fit_checked(map_yx, grid: Grid, check_map, check_sd, models=MODELS, alpha: f
     return None, first
 
 
-def _fit_checked_chunk(maps, grid, check_maps, check_sd, models, pixel_box, alpha):
+def _fit_checked_chunk(maps, grid, check_maps, check_sd, models, pixel_box, alpha, solver="batched"):
     """:func:`fit_checked` for each map: (rows or None, predicted maps or None, reasons)."""
     rows, predicted, reasons = [], [], []
+    fits = _fit_all([_Problem(m, grid, None) for m in maps], models, solver)
     for c in range(maps.shape[0]):
-        fit, why = fit_checked(maps[c], grid, check_maps[c], check_sd[c], models, alpha)
+        fit, why = _checked_choice({m: fits[m][c] for m in models}, models, check_maps[c], grid, check_sd[c],
+                                   alpha)
         reasons.append(why)
         if fit is None:
             rows.append(None)
@@ -1202,6 +1270,35 @@ def _fit_checked_chunk(maps, grid, check_maps, check_sd, models, pixel_box, alph
         rows.append(_row(remove_pixel_box(fit, grid) if pixel_box else fit))
         predicted.append(np.asarray(fit.predicted, dtype=float))
     return rows, predicted, reasons
+
+
+#: Fewest cells for which the fits are shared between two processes.
+POOL_MIN_CELLS = 50
+
+
+def _n_workers(n_jobs, n_cells, solver="batched"):
+    """Processes for ``n_cells`` fits: ``n_jobs``, or 1 below :data:`POOL_MIN_CELLS` cells, else 2."""
+    nj = n_jobs if n_jobs is not None else (1 if n_cells < POOL_MIN_CELLS else 2)
+    return max(1, min(int(nj), os.cpu_count() or 1, max(n_cells, 1)))
+
+
+def _in_parts(fn, n, n_jobs, solver="batched"):
+    """``[fn(part) for part in parts]``: ``range(n)`` split into ``n_jobs`` contiguous parts, all but the first
+    computed in forked children (:class:`map2d._forked.ForkedCall`: the arrays are inherited, not pickled;
+    computed here when forking is not possible). The reference solver splits finer, into a pool's chunks."""
+    if n == 0:
+        return []
+    if n_jobs <= 1:
+        return [fn(np.arange(n))]
+    if solver == "reference":
+        parts = [p for p in np.array_split(np.arange(n), n_jobs * 4) if p.size]
+        with worker_pool(n_jobs) as ex:   # workers die with this process
+            return [f.result() for f in [ex.submit(fn, p) for p in parts]]
+    from .._forked import ForkedCall
+    parts = [p for p in np.array_split(np.arange(n), n_jobs) if p.size]
+    children = [ForkedCall(lambda p=p: fn(p)) for p in parts[1:]]
+    first = fn(parts[0])
+    return [first] + [ch.result() for ch in children]
 
 
 @dataclass
@@ -1232,7 +1329,7 @@ class CellFields:
     onoff_overlap: np.ndarray
 
 
-def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True) -> CellFields:
+def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batched") -> CellFields:
     """Choose each responsive cell's map, fit it, keep the fit only if it earns its place, else use the
     region.
 
@@ -1252,6 +1349,8 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True) -> CellFields
         Level of the regions and of the fit test (default ``result.alpha``).
     pixel_box : bool
         Report the kernel's parameters, the pixel box removed (:func:`remove_pixel_box`).
+    solver : {'batched', 'reference'}
+        The optimiser of every fit here, the subfields' included (as :func:`fit_maps`).
 
     Returns
     -------
@@ -1274,22 +1373,14 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True) -> CellFields
         idx = np.flatnonzero(ch.kind == kind)
         if idx.size == 0:
             continue
-        nj = n_jobs if n_jobs is not None else (1 if idx.size < 50 else 2)
-        nj = max(1, min(int(nj), os.cpu_count() or 1, idx.size))
-        if nj == 1:
-            rows, preds, why = _fit_checked_chunk(maps[idx], grid, check[idx], ch.noise_sd[idx], models,
-                                                  pixel_box, alpha)
-        else:
-            parts = [p for p in np.array_split(np.arange(idx.size), nj * 4) if p.size]
-            rows, preds, why = [], [], []
-            with worker_pool(nj) as ex:
-                futs = [ex.submit(_fit_checked_chunk, maps[idx[p]], grid, check[idx[p]], ch.noise_sd[idx[p]],
-                                  models, pixel_box, alpha) for p in parts]
-                for fu in futs:
-                    r, p, w = fu.result()
-                    rows += r
-                    preds += p
-                    why += w
+        nj = _n_workers(n_jobs, idx.size, solver)
+        rows, preds, why = [], [], []
+        for r, p, w in _in_parts(lambda part: _fit_checked_chunk(maps[idx[part]], grid, check[idx[part]],
+                                                                 ch.noise_sd[idx[part]], models, pixel_box,
+                                                                 alpha, solver), idx.size, nj, solver):
+            rows += r
+            preds += p
+            why += w
         for c, row, pred, reason in zip(idx, rows, preds, why):
             out["fit_check"][c] = reason or "passed"
             if row is not None:
@@ -1309,10 +1400,11 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True) -> CellFields
         field_pixel[has, 1] = np.clip(np.rint(c), 0, grid.nx - 1).astype(int)
     overlap = np.full(C, np.nan)
     if result.stimulus == "sparse":
-        for c in np.flatnonzero(result.peak_lag_index >= 0):
-            li = int(result.peak_lag_index[c])
-            overlap[c] = subfield_overlap(result.on[c, li], result.off[c, li], result.on_z[c, li],
-                                          result.off_z[c, li], grid, ch.threshold_z)
+        cells = np.flatnonzero(result.peak_lag_index >= 0)
+        nj = _n_workers(n_jobs, cells.size, solver)
+        parts = _in_parts(lambda part: _overlaps(result, cells[part], grid, ch.threshold_z, solver), cells.size,
+                          nj, solver)
+        overlap[cells] = np.concatenate(parts) if parts else []
     return CellFields(choice=ch, columns=out, model_maps=model_maps, field_pixel=field_pixel,
                       onoff_overlap=overlap)
 
@@ -1352,6 +1444,13 @@ def envelope_overlap(center1, cov1, center2, cov2) -> float:
 def _subfield(map_yx, z_yx, grid, threshold_z):
     """Gaussian envelope (centre, covariance) of one polarity's excitatory subfield, None when it has no
     significant pixel, NaN centre when its fit is not sane."""
+    m = _lobe(map_yx, z_yx, threshold_z)
+    return None if m is None else _envelope(fit_gaussian(m, grid), grid)
+
+
+def _lobe(map_yx, z_yx, threshold_z):
+    """The map inside the excitatory lobe holding the peak (0 elsewhere), None when no pixel reaches
+    ``threshold_z``."""
     z = np.nan_to_num(np.asarray(z_yx, float))
     if not z.max() >= threshold_z:
         return None
@@ -1361,8 +1460,11 @@ def _subfield(map_yx, z_yx, grid, threshold_z):
     from ..maps import _component
     i, j = np.unravel_index(int(np.argmax(z)), z.shape)
     lobe = ndimage.binary_dilation(_component(z >= 2.0, i, j), structure=np.ones((3, 3), bool)) & (z > 0)
-    m = np.where(lobe, np.nan_to_num(np.asarray(map_yx, float)), 0.0)
-    fit = fit_gaussian(m, grid)
+    return np.where(lobe, np.nan_to_num(np.asarray(map_yx, float)), 0.0)
+
+
+def _envelope(fit, grid):
+    """(centre, covariance) of a Gaussian fitted to a lobe; NaN when the fit is not sane."""
     p = fit.params
     xs, ys = grid.x_deg, grid.y_deg
     mx, my = (0.5 + CENTRE_MARGIN_PIXELS) * grid.dx_deg, (0.5 + CENTRE_MARGIN_PIXELS) * grid.dy_deg
@@ -1380,6 +1482,21 @@ def _subfield(map_yx, z_yx, grid, threshold_z):
     return np.array([p["center_x_deg"], p["center_y_deg"]]), S
 
 
+def _overlaps(result, cells, grid, threshold_z, solver="batched"):
+    """:func:`subfield_overlap` of each of ``cells`` at its peak lag, every subfield fitted in one batch."""
+    lobes = []
+    for c in cells:
+        li = int(result.peak_lag_index[c])
+        lobes.append(_lobe(result.on[c, li], result.on_z[c, li], threshold_z))
+        lobes.append(_lobe(result.off[c, li], result.off_z[c, li], threshold_z))
+    todo = [i for i, m in enumerate(lobes) if m is not None]
+    fits = _fit_all([_Problem(lobes[i], grid, None) for i in todo], ("gaussian",), solver)["gaussian"]
+    env = [None] * len(lobes)
+    for i, fit in zip(todo, fits):
+        env[i] = _envelope(fit, grid)
+    return np.array([_overlap_of(env[2 * j], env[2 * j + 1]) for j in range(len(cells))], float)
+
+
 def subfield_overlap(on_map, off_map, on_z, off_z, grid: Grid, threshold_z: float) -> float:
     """ON/OFF overlap of a cell from its fitted excitatory subfields, 0 (segregated) to 1 (coextensive).
 
@@ -1392,8 +1509,11 @@ def subfield_overlap(on_map, off_map, on_z, off_z, grid: Grid, threshold_z: floa
     the other has one, NaN when neither has; NaN when a subfield's fit is not sane (narrower than a
     third of a pixel, off the grid, not excitatory).
     """
-    on = _subfield(on_map, on_z, grid, threshold_z)
-    off = _subfield(off_map, off_z, grid, threshold_z)
+    return _overlap_of(_subfield(on_map, on_z, grid, threshold_z), _subfield(off_map, off_z, grid, threshold_z))
+
+
+def _overlap_of(on, off):
+    """:func:`subfield_overlap` from the two subfields (:func:`_subfield`)."""
     if on is None and off is None:
         return float("nan")
     if on is None or off is None:

@@ -1,0 +1,475 @@
+"""Many spatial model fits at once: a vectorised Levenberg-Marquardt over a (rows, parameters) array.
+
+:mod:`map2d.fit.spatial` fits one map with :func:`scipy.optimize.least_squares`, one model and one start
+at a time. For hundreds of cells that is mostly interpreter overhead: a 24 x 32 map has 768 pixels and
+6-8 parameters, so each step is a few microseconds of arithmetic wrapped in a hundred of bookkeeping.
+Here every start of every cell is one row of a ``(rows, parameters)`` array and all rows advance
+together: the residuals and the analytic Jacobians (the parameterisations of :mod:`map2d.fit.spatial`:
+``_gauss_jac``, ``_dog_jac``, ``_gabor_jac``) are computed for all rows in one pass over a
+``(rows, parameters, pixels)`` array, the normal matrices ``J^T J`` by one stacked matrix product, and
+the damped steps by one stacked solve. Rows that have converged leave the active set, so the late
+iterations only cost what the slow rows need.
+
+The method is Levenberg-Marquardt with Marquardt's scaling (the damping is ``lambda diag(J^T J)``, the
+largest diagonal seen so far, so the step is invariant to the parameters' units, like
+``least_squares(x_scale='jac')``) and Nielsen's update of ``lambda`` from the gain ratio (Madsen, Nielsen
+& Tingleff 2004, Methods for Non-Linear Least Squares Problems, 2nd ed., section 3.2; More 1978, The
+Levenberg-Marquardt algorithm: implementation and theory, Lecture Notes in Mathematics 630).
+Bounds are kept by projection with an active set: a parameter at a bound whose gradient points outside
+is held fixed for that step, the step of the others is solved for, and the new point is clipped to the
+box. Stopping follows MINPACK's tests with the reference's tolerances (1e-8): the relative decrease of
+the cost, the relative size of the step, and the largest cosine between the residual and a free
+Jacobian column (More, Garbow & Hillstrom 1980, User guide for MINPACK-1, ANL-80-74).
+
+Starts, bounds, the multi-start rule (a short run from every start, the best continued to convergence),
+the reported parameters, the information criteria and the Wald intervals are those of
+:mod:`map2d.fit.spatial` (the same functions are called); only the optimiser differs.
+``tests/test_fit_batched.py`` checks that the two agree within the reported intervals on simulated
+cells and on the held-out generator's sessions.
+
+Memory: rows are advanced in chunks so that the Jacobian and its temporaries stay within
+:data:`CHUNK_BYTES` whatever the number of cells.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["fit_models", "CHUNK_BYTES"]
+
+#: Memory for one chunk of rows (the Jacobian and the per-pixel temporaries of the residual).
+CHUNK_BYTES = 48 * 2**20
+#: Evaluations of each start before the best start of a cell is chosen (as the reference's screen).
+SCREEN_EVALS = 12
+#: Evaluations allowed for the run to convergence.
+MAX_EVALS = 300
+#: Evaluations of the best start on a window (:data:`WINDOW_SDS`) before it moves to the whole grid.
+WINDOW_EVALS = 50
+TOL = 1e-8
+
+_N_PARAMS = {"gaussian": 6, "dog": 6, "gabor": 8}
+
+
+# --------------------------------------------------------------------------------------------------
+# residuals and Jacobians of many rows: p (n, k); x (1 or n, 1, wx), y (1 or n, wy, 1) the pixel
+# positions of a rectangular window (rows and columns of the grid); d, w (n, wy, wx).
+# Residuals are (n, wy, wx); Jacobians (n, k, wy, wx), so that J J^T and J r are stacked matrix products
+# --------------------------------------------------------------------------------------------------
+
+def _cols(p):
+    return [p[:, i, None, None] for i in range(p.shape[1])]
+
+
+def _gauss_rj(p, x, y, d, w, jac=True):
+    x0, y0, su, sv, th, A = _cols(p)
+    c, s = np.cos(th), np.sin(th)
+    dx, dy = x - x0, y - y0
+    u = dx * c + dy * s
+    v = -dx * s + dy * c
+    au, av = u / su**2, v / sv**2
+    Ew = np.exp(-0.5 * (u * au + v * av)) * w
+    r = A * Ew - d * w
+    if not jac:
+        return r, None
+    AE = A * Ew
+    J = np.empty((p.shape[0], 6) + d.shape[1:])
+    J[:, 0] = AE * (au * c - av * s)
+    J[:, 1] = AE * (au * s + av * c)
+    J[:, 2] = AE * (u * au) / su
+    J[:, 3] = AE * (v * av) / sv
+    J[:, 4] = -AE * u * v * (1 / su**2 - 1 / sv**2)
+    J[:, 5] = Ew
+    return r, J
+
+
+def _dog_rj(p, x, y, d, w, jac=True):
+    x0, y0, kc, rc, ks, m = _cols(p)
+    rs = rc * m
+    dx, dy = x - x0, y - y0
+    r2 = dx * dx + dy * dy
+    Ec = np.exp(-r2 / rc**2) * w
+    Es = np.exp(-r2 / rs**2) * w
+    r = kc * Ec - ks * Es - d * w
+    if not jac:
+        return r, None
+    a = kc * Ec * (2 / rc**2)
+    b = ks * Es * (2 / rs**2)
+    J = np.empty((p.shape[0], 6) + d.shape[1:])
+    ab = a - b
+    J[:, 0] = ab * dx
+    J[:, 1] = ab * dy
+    J[:, 2] = Ec
+    bs = b * r2 / rs
+    J[:, 3] = a * r2 / rc - bs * m
+    J[:, 4] = -Es
+    J[:, 5] = -bs * rc
+    return r, J
+
+
+def _gabor_rj(p, x, y, d, w, jac=True):
+    x0, y0, su, sv, kx, ky, a, b = _cols(p)
+    f = np.maximum(np.hypot(kx, ky), 1e-12)
+    c, s = kx / f, ky / f
+    dx, dy = x - x0, y - y0
+    u = dx * c + dy * s
+    v = -dx * s + dy * c
+    au, av = u / su**2, v / sv**2
+    E = np.exp(-0.5 * (u * au + v * av)) * w
+    tp = 2 * np.pi
+    # the carrier's phase is a sum of a column term and a row term: cos and sin of each, then combined
+    # (the angle-sum identities), so the trigonometric functions run over wx + wy values, not wx * wy
+    px, py = tp * kx * dx, tp * ky * dy
+    cx, sx, cy, sy = np.cos(px), np.sin(px), np.cos(py), np.sin(py)
+    Ecp = E * (cx * cy - sx * sy)
+    Esp = E * (sx * cy + cx * sy)
+    r = a * Ecp + b * Esp - d * w
+    if not jac:
+        return r, None
+    EC = r + d * w                 # E (a cos + b sin)
+    ES = b * Ecp - a * Esp         # E dC/dphase
+    q_th = (u * v) * (1 / su**2 - 1 / sv**2) * EC
+    J = np.empty((p.shape[0], 8) + d.shape[1:])
+    J[:, 0] = -tp * kx * ES + EC * (au * c - av * s)
+    J[:, 1] = -tp * ky * ES + EC * (au * s + av * c)
+    J[:, 2] = EC * (u * au) / su
+    J[:, 3] = EC * (v * av) / sv
+    J[:, 4] = tp * dx * ES + q_th * (ky / f**2)
+    J[:, 5] = tp * dy * ES - q_th * (kx / f**2)
+    J[:, 6] = Ecp
+    J[:, 7] = Esp
+    return r, J
+
+
+_RJ = {"gaussian": _gauss_rj, "dog": _dog_rj, "gabor": _gabor_rj}
+
+
+# --------------------------------------------------------------------------------------------------
+# Levenberg-Marquardt, rows at once
+# --------------------------------------------------------------------------------------------------
+
+def _normal(J, r):
+    """``J J^T`` (n, k, k) and ``J r`` (n, k) of Jacobians (n, k, ...) and residuals (n, ...)."""
+    n, k = J.shape[:2]
+    J = J.reshape(n, k, -1)
+    return J @ J.transpose(0, 2, 1), (J @ r.reshape(n, -1, 1))[:, :, 0]
+
+
+def _sumsq(r):
+    r = r.reshape(r.shape[0], -1)
+    return np.einsum("ij,ij->i", r, r)
+
+
+def _lm(model, p, lo, hi, x, y, d, w, max_evals, tol=TOL):
+    """Advance every row of ``p`` (n, k) to a local minimum of ``0.5 sum(r^2)`` within ``[lo, hi]``.
+
+    ``x`` (n or 1, 1, wx), ``y`` (n or 1, wy, 1): pixel positions; ``d``, ``w`` (n, wy, wx): data and
+    weights (0 at pixels not used); ``max_evals``: (n,) evaluations allowed per row (the first included).
+    Returns ``p``, ``cost`` (n,) and ``status`` (n,): 1 converged, 0 out of evaluations, -1 failed.
+    """
+    rj = _RJ[model]
+    p = np.array(p, float)
+    n, k = p.shape
+    r, J = rj(p, x, y, d, w)
+    cost = 0.5 * _sumsq(r)
+    H, g = _normal(J, r)
+    del J, r
+    status = np.zeros(n, int)
+    status[~(np.isfinite(cost) & np.isfinite(H).all(axis=(1, 2)))] = -1
+    diag = np.arange(k) * (k + 1)                     # the diagonal of a flattened (k, k)
+    dsq = H.reshape(n, k * k)[:, diag].copy()
+    lam = np.full(n, 1e-3)
+    nu = np.full(n, 2.0)
+    evals = np.ones(n, int)
+    eye = np.eye(k)
+    per_row = x.shape[0] > 1
+    while True:
+        act = np.flatnonzero((status == 0) & (evals < max_evals))
+        if act.size == 0:
+            break
+        m = act.size
+        pa, ga, Ha, ca, la = p[act], g[act], H[act], cost[act], lam[act]
+        loa, hia = lo[act], hi[act]
+        fixed = ((pa <= loa) & (ga > 0)) | ((pa >= hia) & (ga < 0))
+        D = dsq[act]
+        D = np.maximum(D, 1e-12 * D.max(axis=1, keepdims=True) + 1e-300)
+        # convergence by the gradient: largest cosine between the residual and a free Jacobian column
+        gs = np.abs(ga) / np.sqrt(D)
+        if fixed.any():
+            gs[fixed] = 0.0
+        done_g = gs.max(axis=1) <= tol * np.sqrt(np.maximum(2 * ca, 1e-300))
+        A = Ha.copy()
+        A.reshape(m, k * k)[:, diag] += la[:, None] * D
+        rhs = -ga
+        if fixed.any():                               # held at their bound for this step
+            ff = fixed[:, :, None] | fixed[:, None, :]
+            A[ff] = 0.0
+            A.reshape(m, k * k)[:, diag] += fixed
+            rhs = np.where(fixed, 0.0, rhs)
+        ok = np.isfinite(A).all(axis=(1, 2)) & np.isfinite(rhs).all(axis=1)
+        if not ok.all():
+            A[~ok] = eye
+            rhs[~ok] = 0.0
+        try:
+            delta = np.linalg.solve(A, rhs[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:                       # a singular row: solve row by row
+            delta = np.stack([np.linalg.lstsq(Ai, bi, rcond=None)[0] for Ai, bi in zip(A, rhs)])
+        pn = np.clip(pa + delta, loa, hia)
+        step = pn - pa
+        if per_row:
+            rn, Jn = rj(pn, x[act], y[act], d[act], w[act])
+        else:
+            rn, Jn = rj(pn, x, y, d[act], w[act])
+        cn = 0.5 * _sumsq(rn)
+        evals[act] += 1
+        pred = -((step * ga).sum(axis=1) + 0.5 * (step * (Ha @ step[:, :, None])[:, :, 0]).sum(axis=1))
+        actual = ca - cn
+        good = ok & (actual > 0)                         # NaN compares False
+        # accepted rows: new point, normal equations, damping down
+        sel = np.flatnonzero(good)
+        if sel.size:
+            Hn, gn = _normal(Jn[sel], rn[sel])
+            finite = np.isfinite(Hn).all(axis=(1, 2)) & np.isfinite(gn).all(axis=1)
+            if not finite.all():
+                good[sel[~finite]] = False
+                sel, Hn, gn = sel[finite], Hn[finite], gn[finite]
+            ia = act[sel]
+            p[ia], H[ia], g[ia] = pn[sel], Hn, gn
+            dsq[ia] = np.maximum(dsq[ia], Hn.reshape(-1, k * k)[:, diag])
+            old = ca[sel]
+            cost[ia] = cn[sel]
+            ps = pred[sel]
+            rho = np.where(ps > 0, actual[sel] / np.where(ps > 0, ps, 1.0), 0.0)
+            lam[ia] *= np.maximum(1 / 3, 1 - (2 * rho - 1) ** 3)
+            nu[ia] = 2.0
+            conv_f = (actual[sel] <= tol * old) & (ps <= tol * old)
+            status[ia[conv_f]] = 1
+        del Jn, rn
+        # rejected rows: damping up
+        ir = act[~good]
+        lam[ir] *= nu[ir]
+        nu[ir] *= 2
+        # the step test (either way), the gradient test (MINPACK), and a damping no step survives
+        small = np.sqrt((step * step).sum(axis=1)) <= tol * (tol + np.sqrt((pa * pa).sum(axis=1)))
+        stop = (small | done_g | (lam[act] > 1e16)) & (status[act] == 0)
+        status[act[stop]] = 1
+    return p, cost, status
+
+
+def _lm_chunked(model, p, lo, hi, x, y, d, w, max_evals, rows_of):
+    """:func:`_lm` in chunks of rows (:data:`CHUNK_BYTES`); row ``i`` fits problem ``rows_of[i]`` of the
+    per-problem arrays ``x`` (m, 1, wx), ``y`` (m, wy, 1), ``d``, ``w`` (m, wy, wx)."""
+    n, k = p.shape
+    P = d.shape[1] * d.shape[2]
+    size = max(1, int(CHUNK_BYTES // (8 * P * (2 * k + 16))))
+    out_p, out_c, out_s = np.empty_like(p), np.empty(n), np.empty(n, int)
+    for a in range(0, n, size):
+        b = min(n, a + size)
+        m = rows_of[a:b]
+        xm, ym = (x[m], y[m]) if x.shape[0] > 1 else (x, y)
+        out_p[a:b], out_c[a:b], out_s[a:b] = _lm(model, p[a:b], lo[a:b], hi[a:b], xm, ym, d[m], w[m],
+                                                 max_evals[a:b])
+    return out_p, out_c, out_s
+
+
+# --------------------------------------------------------------------------------------------------
+# many problems, one model
+# --------------------------------------------------------------------------------------------------
+
+def _solve_many(model, setups, x, y, d, w, max_evals=MAX_EVALS):
+    """Multi-start least squares for every problem with a setup (``(starts, lo, hi)`` or None).
+
+    As the reference (:func:`map2d.fit.spatial._solve`): one start runs to convergence; several get
+    :data:`SCREEN_EVALS` evaluations each, and the best of them (lowest cost) is run to convergence
+    unless it converged already. Every start of every problem is advanced in the same batch.
+    ``x``, ``y``, ``d``, ``w``: per-problem pixel positions, data and weights (:func:`_lm_chunked`).
+    Returns the internal parameters (m, k) (NaN where no start succeeded) and their bounds.
+    """
+    k = _N_PARAMS[model]
+    m_all = len(setups)
+    rows_of, p0, lo, hi, multi = [], [], [], [], []
+    for i, su in enumerate(setups):
+        if su is None:
+            continue
+        starts, l, h = su
+        l, h = np.asarray(l, float), np.asarray(h, float)
+        with np.errstate(invalid="ignore"):
+            l_in = np.where(np.isfinite(l), l + 1e-9 * (np.abs(l) + 1), l)
+            h_in = np.where(np.isfinite(h), h - 1e-9 * (np.abs(h) + 1), h)
+        for s0 in starts:
+            rows_of.append(i)
+            p0.append(np.clip(np.asarray(s0, float), l_in, h_in))
+            lo.append(l)
+            hi.append(h)
+            multi.append(len(starts) > 1)
+    out = np.full((m_all, k), np.nan)
+    lo_out, hi_out = np.full((m_all, k), -np.inf), np.full((m_all, k), np.inf)
+    if not rows_of:
+        return out, lo_out, hi_out
+    rows_of, p0, lo, hi, multi = (np.asarray(rows_of), np.asarray(p0), np.asarray(lo), np.asarray(hi),
+                                  np.asarray(multi))
+    evals = np.where(multi, SCREEN_EVALS, max_evals)
+    p, cost, status = _lm_chunked(model, p0, lo, hi, x, y, d, w, evals, rows_of)
+    usable = (status >= 0) & np.isfinite(cost) & np.all(np.isfinite(p), axis=1)
+    # the best start of each problem
+    key = np.where(usable, cost, np.inf)
+    order = np.lexsort((key, rows_of))
+    first = np.ones(order.size, bool)
+    first[1:] = rows_of[order][1:] != rows_of[order][:-1]
+    best = order[first]
+    best = best[np.isfinite(key[best])]
+    again = best[multi[best] & (status[best] == 0)]
+    if again.size:
+        p2, c2, s2 = _lm_chunked(model, p[again], lo[again], hi[again], x, y, d, w,
+                                 np.full(again.size, max_evals), rows_of[again])
+        keep = (s2 >= 0) & np.isfinite(c2) & (c2 <= cost[again]) & np.all(np.isfinite(p2), axis=1)
+        p[again[keep]] = p2[keep]
+    out[rows_of[best]] = p[best]
+    lo_out[rows_of], hi_out[rows_of] = lo, hi
+    return out, lo_out, hi_out
+
+
+#: A problem is first solved on a window around its field: the starts' centre plus this many of the
+#: starts' largest envelope sd (the DoG: the surround's) on each side; then polished on the whole grid.
+WINDOW_SDS = 3.5
+
+
+def _reach(model, starts):
+    """Centre (x, y) and the largest envelope sd (degrees) of a problem's starts (internal parameters)."""
+    st = np.asarray(starts, float)
+    if model == "gaussian":
+        sd = np.max(np.abs(st[:, 2:4]))
+    elif model == "dog":
+        sd = np.max(np.abs(st[:, 3] * st[:, 5])) / np.sqrt(2.0)
+    else:
+        sd = np.max(np.abs(st[:, 2:4]))
+    return float(np.mean(st[:, 0])), float(np.mean(st[:, 1])), float(sd)
+
+
+def _windows(model, setups, grid):
+    """Per problem: (first row, rows, first column, columns) of its window on the grid."""
+    ny, nx = grid.shape
+    out = np.zeros((len(setups), 4), int)
+    out[:] = (0, ny, 0, nx)
+    for i, su in enumerate(setups):
+        if su is None:
+            continue
+        x0, y0, sd = _reach(model, su[0])
+        if not (np.isfinite(x0) and np.isfinite(y0) and np.isfinite(sd)):
+            continue
+        row, col = grid.pixel_of(x0, y0)
+        hy = int(np.ceil(WINDOW_SDS * sd / grid.dy_deg))
+        hx = int(np.ceil(WINDOW_SDS * sd / grid.dx_deg))
+        wy = min(ny, 4 * int(np.ceil((2 * hy + 1) / 4)))     # sizes in steps of 4: few window shapes
+        wx = min(nx, 4 * int(np.ceil((2 * hx + 1) / 4)))
+        r0 = int(np.clip(np.rint(row) - wy // 2, 0, ny - wy))
+        c0 = int(np.clip(np.rint(col) - wx // 2, 0, nx - wx))
+        out[i] = (r0, wy, c0, wx)
+    return out
+
+
+def fit_models(problems, model):
+    """Fit ``model`` to every problem (:class:`map2d.fit.spatial._Problem`, one grid) -> list of SpatialFit.
+
+    The same fits as ``map2d.fit.spatial._FITTERS[model]`` (starts, bounds, reported parameters, criteria,
+    intervals), the optimiser batched (module notes): every start of every problem first on a window
+    around its field (problems grouped by window shape), then the chosen solution polished on the whole
+    grid (the objective of the reference).
+    """
+    from . import spatial as S
+
+    setup, report, fun = {
+        "gaussian": (S._gauss_setup, S._gauss_report, S._gauss_model),
+        "dog": (S._dog_setup, S._dog_report, S.dog2d),
+        "gabor": (S._gabor_setup, S._gabor_report, S.gabor2d),
+    }[model]
+    k = _N_PARAMS[model]
+    problems = list(problems)
+    if not problems:
+        return []
+    grid = problems[0].grid
+    ny, nx = grid.shape
+    xs, ys = np.asarray(grid.x_deg, float), np.asarray(grid.y_deg, float)
+    m = len(problems)
+    setups = []
+    for pr in problems:
+        su = setup(pr) if S._enough(pr, k) else None
+        setups.append(su if su is not None and len(su[0]) else None)
+    D = np.zeros((m, ny, nx))
+    W = np.zeros((m, ny, nx))
+    for i, pr in enumerate(problems):
+        D[i][pr.ok] = pr.d
+        W[i][pr.ok] = pr.w
+    win = _windows(model, setups, grid)
+    p_int = np.full((m, k), np.nan)
+    lo, hi = np.full((m, k), -np.inf), np.full((m, k), np.inf)
+    for shape in sorted({(int(a), int(b)) for a, b in win[:, [1, 3]]}):
+        sel = np.flatnonzero((win[:, 1] == shape[0]) & (win[:, 3] == shape[1]))
+        sel = np.array([i for i in sel if setups[i] is not None], int)
+        if sel.size == 0:
+            continue
+        rr = win[sel, 0, None] + np.arange(shape[0])             # (s, wy)
+        cc = win[sel, 2, None] + np.arange(shape[1])             # (s, wx)
+        d = D[sel[:, None, None], rr[:, :, None], cc[:, None, :]]
+        w = W[sel[:, None, None], rr[:, :, None], cc[:, None, :]]
+        full = shape == (ny, nx)
+        out, l, h = _solve_many(model, [setups[i] for i in sel], xs[cc][:, None, :], ys[rr][:, :, None], d, w,
+                                MAX_EVALS if full else WINDOW_EVALS)
+        p_int[sel], lo[sel], hi[sel] = out, l, h
+    # polish on the whole grid what was solved on a smaller window
+    part = np.flatnonzero(np.all(np.isfinite(p_int), axis=1) & ((win[:, 1] < ny) | (win[:, 3] < nx)))
+    if part.size:
+        p2, c2, s2 = _lm_chunked(model, p_int[part], lo[part], hi[part], xs[None, None, :], ys[None, :, None],
+                                 D, W, np.full(part.size, MAX_EVALS), part)
+        ok = (s2 >= 0) & np.all(np.isfinite(p2), axis=1)
+        p_int[part[ok]] = p2[ok]
+    fits = [None] * m
+    done = np.flatnonzero(np.all(np.isfinite(p_int), axis=1))
+    if done.size == 0:
+        return [S._empty_fit(model, pr) for pr in problems]
+    p_rep = np.array([report(p_int[i]) for i in done])
+    X, Y = xs[None, None, :], ys[None, :, None]
+    cov = _covariances(fun, p_rep, X, Y, D[done], W[done], [problems[i] for i in done])
+    pred = fun(X, Y, *[p_rep[:, j, None, None] for j in range(k)])
+    names = S._PARAM_NAMES[model]
+    for row, i in enumerate(done):
+        pr = problems[i]
+        aic, bic = pr.criteria(pred[row][pr.ok], k)
+        fits[i] = S.SpatialFit(model=model, params={nm: float(v) for nm, v in zip(names, p_rep[row])},
+                               ci=S._intervals(names, p_rep[row], cov[row]), aic={model: aic},
+                               bic={model: bic}, r2=pr.r2(pred[row][pr.ok]), predicted=pred[row],
+                               criterion="none", n_pixels=pr.n)
+    return [f if f is not None else S._empty_fit(model, pr) for f, pr in zip(fits, problems)]
+
+
+def _covariances(fun, p, x, y, d, w, problems):
+    """Wald covariances of the reported parameters ``p`` (m, k), as ``_Problem.covariance`` row by row:
+    central differences of ``fun`` (step ``1e-6 (|p| + 1)``) on the grid ``x`` (1, 1, nx), ``y`` (1, ny, 1),
+    weighted by ``w``, ``s2 (J^T J)^-1``."""
+    from . import spatial as S
+
+    m, k = p.shape
+    out = np.full((m, k, k), np.nan)
+    P = d.shape[1] * d.shape[2]
+    size = max(1, int(CHUNK_BYTES // (8 * P * (k + 4))))
+    for a in range(0, m, size):
+        b = min(m, a + size)
+        pc = p[a:b]
+        wc = w[a:b]
+        J = np.empty((b - a, k) + d.shape[1:])
+        for i in range(k):
+            h = 1e-6 * (np.abs(pc[:, i]) + 1.0)
+            pp, pm = pc.copy(), pc.copy()
+            pp[:, i] += h
+            pm[:, i] -= h
+            fp = fun(x, y, *[pp[:, j, None, None] for j in range(k)])
+            fm = fun(x, y, *[pm[:, j, None, None] for j in range(k)])
+            J[:, i] = (fp - fm) / (2 * h[:, None, None]) * wc
+        r = (fun(x, y, *[pc[:, j, None, None] for j in range(k)]) - d[a:b]) * wc
+        A, _ = _normal(J, r)
+        rss = _sumsq(r)
+        for row in range(b - a):
+            pr = problems[a + row]
+            red = rss[row] / max(pr.n - k, 1)
+            s2 = max(1.0, red) if pr.known_noise else red
+            out[a + row] = S._wald_cov(A[row], s2)
+    return out
