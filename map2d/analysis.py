@@ -293,8 +293,6 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     """
     from . import reconcile
     from .fit.spatial import locate_fields
-    from .fit.tuning import TUNING_COLUMNS, grating_tuning_columns
-    from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
     from .maps import compute_maps, dense_columns, dense_estimate_note, spike_latency
     from .quality import map_quality
     from .spacetime import model_space_time, predict_flashed_st, space_time, st_columns
@@ -347,6 +345,9 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     # -- gratings ------------------------------------------------------------------------------------
     g = session.gratings
     if g is not None:
+        # imported here: without gratings (map2d maps) their modules' imports are not paid for
+        from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
+
         an.phase_origin_deg = tuple(g.phase_origin_deg)
         # traces: one per-cell indicator decay for every stage (maps, flashed, drifting)
         flashed_responses, cell_tau = session.responses, None
@@ -373,6 +374,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     tuning = None
     if an.flashed is not None or an.drifting is not None:
         step("tuning")
+        from .fit.tuning import grating_tuning_columns
         tuning = grating_tuning_columns(an.flashed, an.drifting, cell_ids=ids, n_jobs=n_jobs)
 
     # -- reconciliation --------------------------------------------------------------------------------
@@ -492,6 +494,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     if an.inverse is not None:
         cells["inverse_similarity"] = list(np.where(np.asarray(responsive, bool), an.inverse.similarity, np.nan))
     if tuning is not None:
+        from .fit.tuning import TUNING_COLUMNS
         for k in TUNING_COLUMNS:
             if k not in cells:
                 cells[k] = list(tuning[k])

@@ -82,7 +82,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import ndimage
-from scipy.optimize import least_squares
 
 from .._forked import worker_pool
 from ..geometry import Grid
@@ -353,6 +352,8 @@ def _solve(fun, jac, starts, lo, hi, args=(), screen_nfev=12, tol=1e-8):
 
     Returns the final :class:`scipy.optimize.OptimizeResult`, or None if every start failed.
     """
+    from scipy.optimize import least_squares
+
     lo = np.asarray(lo, float)
     hi = np.asarray(hi, float)
     with np.errstate(invalid="ignore"):
@@ -1176,7 +1177,7 @@ def fit_check(fit: SpatialFit, map_yx, grid: Grid, noise_sd, alpha: float = 0.01
     alpha : float
         Level of the test against noise.
     """
-    from scipy.stats import chi2
+    from scipy.special import chdtri      # chi2.isf(alpha, k) = chdtri(k, alpha)
 
     if not fit.model or not np.isfinite(fit.center_x_deg) or fit.predicted is None:
         return "not fitted"
@@ -1188,7 +1189,7 @@ def fit_check(fit: SpatialFit, map_yx, grid: Grid, noise_sd, alpha: float = 0.01
         return "not above noise"
     d, sd, m = d[ok], sd[ok], m[ok]
     gain = float(np.sum((d / sd) ** 2) - np.sum(((d - m) / sd) ** 2))
-    if not gain >= chi2.isf(alpha, len(fit.params)):
+    if not gain >= chdtri(len(fit.params), alpha):
         return "not above noise"
     tss = float(np.sum((d - d.mean()) ** 2))
     signal = tss - float(np.sum(sd ** 2)) * (1 - 1 / d.size)
