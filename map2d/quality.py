@@ -58,7 +58,8 @@ class BlockSums:
     ----------
     sums : ndarray float64 (n_blocks, L, 2P, C)  sums of the centred response; columns ``0..P-1`` bright
         spots, ``P..2P-1`` dark spots
-    counts : ndarray float64 (n_blocks, L, 2P, C)  number of (spot, valid response) pairs
+    counts : ndarray float64 (n_blocks, L, 2P, C or 1)  number of (spot, valid response) pairs (one column
+        shared by every cell when all cells' responses are valid in the same frames)
     lags : ndarray int (L,)
     block_of_row : ndarray int (rows,)  block of each response row
     """
@@ -74,12 +75,15 @@ class BlockSums:
 
     def maps(self, blocks):
         """``(on, off)`` mean maps ``(L, P, C)`` over the given blocks (NaN where no pair)."""
-        s = self.sums[blocks].sum(axis=0)
-        n = self.counts[blocks].sum(axis=0)
-        P = s.shape[1] // 2
-        with np.errstate(invalid="ignore", divide="ignore"):
-            m = np.where(n > 0, s / n, np.nan)
-        return m[:, :P], m[:, P:]
+        return _mean_maps(self.sums[blocks].sum(axis=0), self.counts[blocks].sum(axis=0))
+
+
+def _mean_maps(s, n):
+    """``(on, off)`` mean maps from summed sums ``s`` (L, 2P, C) and counts ``n`` (L, 2P, C or 1)."""
+    P = s.shape[1] // 2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        m = np.where(n > 0, s / n, np.nan)
+    return m[:, :P], m[:, P:]
 
 
 def spearman_brown(r, k=2.0):
@@ -137,7 +141,9 @@ def block_sums(X, V, B, lags, n_blocks):
     P2 = B.shape[1]
     edges = np.linspace(0, F, n_blocks + 1).round().astype(int)
     sums = np.zeros((n_blocks, lags.size, P2, C))
-    counts = np.zeros_like(sums)
+    if C and bool((V == V[:, :1]).all()):      # every cell valid in the same frames: one count column
+        V = V[:, :1]
+    counts = np.zeros((n_blocks, lags.size, P2, V.shape[1]))
     for b in range(n_blocks):
         a, e = edges[b], edges[b + 1]
         for li, lag in enumerate(lags):
@@ -188,16 +194,24 @@ def map_reliability(bs: BlockSums, use_onoff, level: float = 0.95):
     m = nb // 2
     even, odd = np.arange(0, nb, 2), np.arange(1, nb, 2)
 
-    def r_of(ev, od):
-        on_a, off_a = bs.maps(ev)
-        on_b, off_b = bs.maps(od)
-        sgn = np.where(use_onoff, 1.0, -1.0)
+    sgn = np.where(use_onoff, 1.0, -1.0)
+
+    def r_of(a, b):
+        on_a, off_a = _mean_maps(*a)
+        on_b, off_b = _mean_maps(*b)
         ma = (on_a + sgn * off_a).reshape(-1, on_a.shape[-1])
         mb = (on_b + sgn * off_b).reshape(-1, on_b.shape[-1])
         return _corr_cols(ma, mb)
 
-    r = r_of(even, odd)
-    zj = np.stack([np.arctanh(np.clip(r_of(np.delete(even, j), np.delete(odd, j)), -0.999999, 0.999999))
+    # the halves' totals once; a jackknife replicate leaves one pair of blocks out by subtraction
+    tot_e = (bs.sums[even].sum(axis=0), bs.counts[even].sum(axis=0))
+    tot_o = (bs.sums[odd].sum(axis=0), bs.counts[odd].sum(axis=0))
+    r = r_of(tot_e, tot_o)
+
+    def left_out(tot, b):
+        return tot[0] - bs.sums[b], tot[1] - bs.counts[b]
+
+    zj = np.stack([np.arctanh(np.clip(r_of(left_out(tot_e, even[j]), left_out(tot_o, odd[j])), -0.999999, 0.999999))
                    for j in range(m)])
     se = np.sqrt((m - 1) / m * np.sum((zj - zj.mean(0)) ** 2, axis=0))
     t = special.stdtrit(m - 1, 0.5 + level / 2)   # Student t quantile (scipy.stats.t.ppf), lighter import
@@ -228,6 +242,52 @@ def _fit_nonlinearity(g, y, n_bins=10):
     return xc, yc
 
 
+def _nonlinearity_predict(g_tr, y_tr, g_te, n_bins=10):
+    """Column by column, ``np.interp(g_te, *_fit_nonlinearity(g_tr, y_tr))`` (a constant when the training
+    generator has fewer than 3 distinct decile edges): every column at once. ``g_tr``, ``y_tr`` (n, C),
+    ``g_te`` (m, C) -> (m, C)."""
+    n, C = g_tr.shape
+    cols = np.arange(C)
+    # (n_bins + 1, C), non-decreasing; each column made contiguous first (a partition along rows is slow)
+    q = np.quantile(np.ascontiguousarray(g_tr.T), np.linspace(0, 1, n_bins + 1), axis=1)
+    # np.unique per column: repeated edges out (moved to the end as +inf)
+    q[1:][q[1:] == q[:-1]] = np.inf
+    edges = np.sort(q, axis=0)
+    n_edges = np.isfinite(edges).sum(axis=0)                          # (C,)
+    # the bin of each training value: edges <= value, less one, within the column's bins
+    idx = np.zeros(g_tr.shape, np.int64)
+    for e in edges:
+        idx += g_tr >= e
+    idx = np.clip(idx - 1, 0, np.maximum(n_edges - 2, 0))
+    flat = (idx + cols * n_bins).ravel()
+    cnt = np.bincount(flat, minlength=C * n_bins).reshape(C, n_bins)
+    sg = np.bincount(flat, weights=g_tr.ravel(), minlength=C * n_bins).reshape(C, n_bins)
+    sy = np.bincount(flat, weights=y_tr.ravel(), minlength=C * n_bins).reshape(C, n_bins)
+    keep = cnt > 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        xc = np.where(keep, sg / np.where(keep, cnt, 1), np.inf)
+        yc = np.where(keep, sy / np.where(keep, cnt, 1), np.nan)
+    order = np.argsort(xc, axis=1, kind="stable")                    # the kept bins first, in order
+    xc, yc = np.take_along_axis(xc, order, 1), np.take_along_axis(yc, order, 1)
+    K = keep.sum(axis=1)                                              # knots per column
+    const = n_edges < 3
+    K = np.where(const, 1, K)
+    y_first = np.where(const, y_tr.mean(axis=0), yc[:, 0])
+    # np.interp: the knot segment of each value, linear inside, the end values outside
+    j = np.zeros(g_te.shape, np.int64)
+    for i in range(1, n_bins):
+        j += g_te >= xc[:, i]                        # +inf knots never count
+    j = np.clip(j, 0, np.maximum(K - 2, 0))
+    x0 = xc[cols, j]
+    x1, y0, y1 = xc[cols, np.minimum(j + 1, n_bins - 1)], yc[cols, j], yc[cols, np.minimum(j + 1, n_bins - 1)]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = (y1 - y0) / (x1 - x0) * (g_te - x0) + y0
+    y_last = yc[cols, np.maximum(K - 1, 0)]
+    out = np.where(g_te <= xc[:, 0], y_first, out)
+    out = np.where(g_te >= xc[cols, np.maximum(K - 1, 0)], y_last, out)
+    return np.where(const | (K == 1), y_first, out)
+
+
 def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4):
     """Cross-validated correlation between the measured responses and a linear-nonlinear prediction.
 
@@ -240,20 +300,28 @@ def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4):
     lags = bs.lags
     fold_of_row = bs.block_of_row % n_folds
     pred = np.full((F, C), np.nan)
+    all_s, all_n = bs.sums.sum(axis=0), bs.counts.sum(axis=0)
+    same_rows = C > 0 and bool((V == V[:, :1]).all())     # every cell valid in the same frames
     for k in range(n_folds):
-        train_blocks = np.flatnonzero(np.arange(bs.n_blocks) % n_folds != k)
-        on, off = bs.maps(train_blocks)                          # (L, P, C)
+        fold_blocks = np.flatnonzero(np.arange(bs.n_blocks) % n_folds == k)
+        # the other blocks' totals: all blocks less this fold's
+        n = all_n - bs.counts[fold_blocks].sum(axis=0)            # (L, 2P, C or 1)
+        on, off = _mean_maps(all_s - bs.sums[fold_blocks].sum(axis=0), n)     # (L, P, C)
         W = np.nan_to_num(np.concatenate([on, off], axis=1))     # (L, 2P, C)
         # each coefficient shrunk by its own noise (positive-part James-Stein factor per coefficient):
         # a mean of n responses of variance s^2 has noise variance s^2 / n
         tr_rows = (fold_of_row != k)[:, None] & (V > 0)
         s2 = (np.where(tr_rows, X, 0.0) ** 2).sum(0) / np.maximum(tr_rows.sum(0), 1)     # (C,)
-        n = bs.counts[train_blocks].sum(axis=0)                   # (L, 2P, C)
         with np.errstate(invalid="ignore", divide="ignore"):
             W = W * np.clip(1.0 - s2 / (n * W ** 2), 0.0, 1.0)
         W = np.nan_to_num(W)
         g = _generator(B, W, lags, F)
         test = fold_of_row == k
+        if same_rows:                                 # every cell at once (same frames)
+            tr, te = (~test) & (V[:, 0] > 0), test & (V[:, 0] > 0)
+            if tr.sum() >= 20 and te.any():
+                pred[te] = _nonlinearity_predict(g[tr], X[tr], g[te])
+            continue
         for c in range(C):
             tr = (~test) & (V[:, c] > 0)
             te = test & (V[:, c] > 0)

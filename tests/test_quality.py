@@ -116,3 +116,50 @@ def test_quality_columns_in_the_cells_table(small_spikes_session):
     kinds = {c["cell_id"]: c["kind"] for c in truth["cells"]}
     un = np.array([kinds[int(i)] == "unresponsive" for i in an.cell_ids])
     assert np.all(rel[~un] > np.max(rel[un]))
+
+
+def test_all_cells_at_once_nonlinearity_equals_the_per_cell_one():
+    # the vectorised decile nonlinearity (every cell at once) against the per-cell reference kept in
+    # map2d.quality (_fit_nonlinearity + numpy.interp), on generators with ties, a constant column, and
+    # test values outside the training range
+    from map2d.quality import _fit_nonlinearity, _nonlinearity_predict
+
+    rng = np.random.default_rng(4)
+    g = rng.standard_normal((400, 6))
+    g[:, 1] = np.round(g[:, 1])                        # heavy ties: repeated decile edges
+    g[:, 2] = 0.0                                      # constant: fewer than 3 distinct edges
+    g[:300, 3] = 0.0                                   # mostly zero, as a shrunk sparse generator
+    y = g + rng.standard_normal(g.shape)
+    te = 1.5 * rng.standard_normal((150, 6))
+    got = _nonlinearity_predict(g, y, te)
+    for c in range(g.shape[1]):
+        xc, yc = _fit_nonlinearity(g[:, c], y[:, c])
+        ref = np.interp(te[:, c], xc, yc) if xc.size > 1 else np.full(te.shape[0], yc[0])
+        np.testing.assert_allclose(got[:, c], ref, rtol=1e-12, atol=1e-12)
+
+
+def test_quality_same_frames_path_equals_the_per_cell_path(mixed):
+    # when every cell is valid in the same frames, counts are shared and the nonlinearity is fitted for all
+    # cells at once; a cell added with one missing frame sends both down the per-cell path; the other
+    # cells' values must not change
+    from map2d.maps import frame_responses, map_lags
+    from map2d.quality import map_reliability, prediction_r
+
+    cells, sessions = mixed
+    noise, resp = sessions[0]
+    lags = map_lags(noise.frame_interval_s, 0.2)
+    B, _, layout = _design(noise, int(lags[-1]))
+    assert layout is None
+    R = np.asarray(frame_responses(resp, noise), float).T[:, :8]          # (frames, 8 cells)
+    X = R - R.mean(0)
+    V = np.ones_like(X)
+    Vx = np.column_stack([V, V[:, :1]])
+    Vx[5, -1] = 0.0                                                      # the added cell misses a frame
+    Xx = np.column_stack([X, np.where(Vx[:, -1:] > 0, X[:, :1], 0.0)])
+    fast, slow = block_sums(X, V, B, lags, 16), block_sums(Xx, Vx, B, lags, 16)
+    assert fast.counts.shape[-1] == 1 and slow.counts.shape[-1] == 9
+    onoff = np.arange(8) % 2 == 0
+    for a, b in zip(map_reliability(fast, onoff), map_reliability(slow, np.append(onoff, False))):
+        np.testing.assert_allclose(a, b[:8], rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(prediction_r(fast, B, X, V), prediction_r(slow, B, Xx, Vx)[:8], rtol=1e-9,
+                               atol=1e-12)
