@@ -228,7 +228,8 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
 
 def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
                     n_shuffles: int = 200, alpha: float = 0.01, size_radii_deg=None,
-                    progress=None, trace_decay="auto", dense_estimate="auto", size_tuning=True) -> Analysis:
+                    progress=None, trace_decay="auto", dense_estimate="auto", size_tuning=True,
+                    drift_latency="auto") -> Analysis:
     """Run every stage the session's data allow.
 
     Parameters
@@ -254,6 +255,10 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         Traces only: the indicator's first-order decay removed before the maps
         (:func:`map2d.traces.decay_corrected`; 'auto' estimates it per cell, a number is the time
         constant in seconds, 'off' maps the traces as they are). Spikes are never filtered.
+    drift_latency : 'auto' or float
+        Drifting gratings: each cell's analysis windows start and end its response latency after the
+        stimulus, estimated per cell ('auto', :func:`map2d.gratings.drifting_latency`) or the given
+        number of seconds for every cell (0: no shift); ``drift_latency_s`` in the table.
     dense_estimate : 'auto', 'sta' or 'whitened'
         Dense (real-valued) noise only: the linear map's estimate (``dense_method`` of
         :func:`map2d.maps.compute_maps`; 'auto' whitens correlated noise). The estimate used is named in
@@ -368,7 +373,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
                 an.flashed.harmonic_noise_var = an.measured_noise
         if has_drifting(g):
             step("drifting gratings")
-            an.drifting = analyze_drifting(session.responses, g, alpha=alpha, trace_tau_s=cell_tau)
+            an.drifting = analyze_drifting(session.responses, g, alpha=alpha, trace_tau_s=cell_tau,
+                                           latency_s=drift_latency)
     else:
         an.notes.append("no gratings: no tuning, no reconciliation")
     tuning = None
@@ -498,6 +504,8 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         for k in TUNING_COLUMNS:
             if k not in cells:
                 cells[k] = list(tuning[k])
+    if an.drifting is not None:   # the shift of each cell's drifting-grating windows
+        cells["drift_latency_s"] = list(an.drifting.latency_s)
     if an.maps is not None:   # sizes, SFs, orientations in locally isotropic degrees at the centre
         local = reconcile.local_angle_columns(fit_cols["center_y_deg"], fit_cols, tuning)
         for k in reconcile.LOCAL_ANGLE_COLUMNS:

@@ -223,6 +223,11 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--config", type=Path, default=None,
                        help="NWB mapping (JSON) when SESSION is an .nwb file (README, NWB files and many "
                             "sessions; docs/batch.md)")
+        if name in ("gratings", "analyze"):
+            p.add_argument("--drift-latency", default="auto", dest="drift_latency", metavar="auto|SECONDS",
+                           help="drifting gratings: shift each cell's analysis windows by its response "
+                                "latency, estimated per cell from its drifting responses (auto, the "
+                                "default), or by the same number of seconds for every cell (0: no shift)")
         if name in ("maps", "analyze"):
             p.add_argument("--dense-estimate", default="auto", choices=("auto", "sta", "whitened"),
                            dest="dense_estimate",
@@ -382,11 +387,11 @@ def _dispatch(args) -> int:
                                  dense_estimate=args.dense_estimate)
     if args.command == "gratings":
         return pipeline.run_gratings(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
-                                     quiet=args.quiet, config=args.config)
+                                     quiet=args.quiet, config=args.config, drift_latency=args.drift_latency)
     if args.command == "analyze":
         return pipeline.run_analyze(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
                                     quiet=args.quiet, config=args.config, trace_decay=args.trace_decay,
-                                    dense_estimate=args.dense_estimate)
+                                    dense_estimate=args.dense_estimate, drift_latency=args.drift_latency)
     if args.command == "batch":
         return pipeline.run_batch(args.sessions, args.out, scheduler=args.scheduler, config=args.config,
                                   max_lag_s=args.max_lag_s, seed=args.seed, workers=args.workers,

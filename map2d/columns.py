@@ -275,6 +275,10 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "Efron & Tibshirani 1993"),
         Column("grating_class", "text", "`simple` when the interval of F1/F0 lies above 1, `complex` when below, "
                "empty otherwise; from drifting gratings.", "Skottun et al. 1991"),
+        Column("drift_latency_s", "s", "Drifting gratings: the response latency by which the cell's analysis "
+               "windows were shifted (start and end after the stimulus); estimated per cell as the lag, 0-0.3 s, "
+               "that maximises the power of its mean drifting response (cells responsive without a shift; 0 for "
+               "the others), or set with `--drift-latency`.", "ours; windows shifted by latency: common practice"),
         Column("flashed_peak_lag_s", "s", "Lag of the largest flashed-grating response.",
                "Ringach, Sapiro & Shapley 1997"),
         Column("flashed_p_value", "1", "P-value of the flashed-grating test (shuffled condition sequence, max over "

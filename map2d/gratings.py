@@ -58,7 +58,7 @@ from .maps import map_lags
 
 __all__ = [
     "FlashedResult", "DriftingResult", "analyze_flashed", "analyze_drifting",
-    "flashed_rows", "fold_static", "has_flashed", "has_drifting", "estimate_decay_tau",
+    "flashed_rows", "fold_static", "has_flashed", "has_drifting", "estimate_decay_tau", "drifting_latency",
 ]
 
 _ROUND = 6  # decimals used to identify equal orientations / phases (degrees)
@@ -613,7 +613,9 @@ class DriftingResult:
     simple : (cells,) bool  point estimate ``F1 > F0`` (as in ``f1_f0``; chooses the response measure for
         tuning; the class is ``grating_class``)
     cell_tau_s : (cells,)  traces: the indicator decay used for each cell (NaN: none)
-    skip_cycles, latency_s : the window settings (whole cycles left out after the onset, latency)
+    skip_cycles : whole cycles left out after the onset
+    latency_s : (cells,)  each cell's latency: its analysis windows start and end this much after the
+        stimulus (given, or estimated by :func:`drifting_latency`)
     response : (cells, D, S, T)  the response measure used for tuning: ``|F1|`` for simple cells,
         ``F0`` for complex cells (common practice)
     pref_direction_deg : (cells,)  direction of the largest ``response`` at the preferred SF/TF
@@ -667,7 +669,7 @@ class DriftingResult:
     dsi_ci_high: np.ndarray = None
     cell_tau_s: np.ndarray = None
     skip_cycles: int = 0
-    latency_s: float = 0.0
+    latency_s: np.ndarray = None
 
 
 def _spike_f1(spikes: Spikes, onset, end, tf):
@@ -955,8 +957,8 @@ def _spontaneous(responses, table: GratingTable, drift_rows, tau_s=float("nan"))
 
 
 def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: float = 0.01,
-                     trace_tau_s=None, skip_cycles: int = 1, latency_s: float = 0.0,
-                     n_boot: int = 1000, rng=0) -> DriftingResult:
+                     trace_tau_s=None, skip_cycles: int = 1, latency_s="auto",
+                     n_boot: int = 1000, rng=0, max_latency_s: float = 0.3) -> DriftingResult:
     """F0 and F1 of drifting-grating trials, per trial and per (direction, SF, TF) condition.
 
     Parameters
@@ -1022,14 +1024,38 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     tfr = np.round(tf, 9)
     if int(skip_cycles) < 0:
         raise ValueError(f"skip_cycles must be >= 0, got {skip_cycles}")
-    if not np.isfinite(latency_s) or latency_s < 0:
-        raise ValueError(f"latency_s must be >= 0, got {latency_s}")
+    n_resp = responses.cell_ids.size
+    if isinstance(latency_s, str):
+        if latency_s != "auto":
+            raise ValueError(f"latency_s must be 'auto', a number or one number per cell, got {latency_s!r}")
+        lat = np.full(n_resp, np.nan)
+    else:
+        lat = np.asarray(latency_s, float)
+        if lat.ndim == 0:
+            lat = np.full(n_resp, float(lat))
+        if lat.shape != (n_resp,):
+            raise ValueError(f"latency_s must be one number or one per cell ({n_resp}), got shape {lat.shape}")
+        if np.any(lat[np.isfinite(lat)] < 0) or np.any(np.isinf(lat)):
+            raise ValueError("latency_s must be >= 0 seconds")
+    if np.isnan(lat).any():
+        # estimate where not given: the cells responsive with unshifted windows (so the choice of the
+        # latency cannot make a cell responsive) get the lag that maximises their drifting response
+        # (drifting_latency); the others keep 0
+        first = analyze_drifting(responses, table, alpha=alpha, trace_tau_s=trace_tau_s, skip_cycles=skip_cycles,
+                                 latency_s=np.where(np.isnan(lat), 0.0, lat), n_boot=0)
+        est = np.zeros(n_resp)
+        resp = first.responsive & np.isnan(lat)
+        if resp.any():
+            est[resp] = drifting_latency(_subset(responses, resp), table, first.cell_tau_s[resp],
+                                         first.spontaneous[resp], max_latency_s)
+        return analyze_drifting(responses, table, alpha=alpha, trace_tau_s=first.cell_tau_s,
+                                skip_cycles=skip_cycles, latency_s=np.where(np.isnan(lat), est, lat),
+                                n_boot=n_boot, rng=rng)
     n_cycles = np.floor(dur * tf + 1e-6)
     skip = np.where(n_cycles >= int(skip_cycles) + 1, int(skip_cycles), 0)
     tf_safe = np.where(tf > 0, tf, 1)
     window = np.where(n_cycles >= 1, (n_cycles - skip) / tf_safe, dur)
-    start = onset + skip / tf_safe + float(latency_s)      # whole cycles: the phase is unchanged
-    end = start + window
+    start = onset + skip / tf_safe      # whole cycles: the phase is unchanged; each cell's latency added below
     stim_onset = onset
     onset = start
 
@@ -1042,8 +1068,6 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     if isinstance(responses, Spikes):
         tau = float("nan")
         cell_tau = np.full(responses.cell_ids.size, np.nan)
-        raw = interval_responses(responses, onset, end).astype(float)
-        trial_f1 = _spike_f1(responses, onset, end, tf)
     else:
         given = None if trace_tau_s is None else np.asarray(trace_tau_s, float)
         if given is None or given.ndim == 1 and not np.isfinite(given).all():
@@ -1062,7 +1086,19 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
             cell_tau = np.where(np.isfinite(given), given, session_tau)
         fin_tau = cell_tau[np.isfinite(cell_tau)]
         tau = float(np.median(fin_tau)) if fin_tau.size else float("nan")
-        raw, trial_f1 = _per_tau(lambda tr, t: _trace_f1(tr, onset, end, tf, t), responses, cell_tau)
+    # each cell's windows start its latency after the stimulus (cells sharing a latency together)
+    raw = np.empty((n_resp, onset.size))
+    trial_f1 = np.empty((n_resp, onset.size), dtype=complex)
+    for value in np.unique(lat):
+        sel = lat == value
+        st, en = onset + value, onset + value + window
+        sub = _subset(responses, sel)
+        if isinstance(responses, Spikes):
+            raw[sel] = interval_responses(sub, st, en)
+            trial_f1[sel] = _spike_f1(sub, st, en, tf) * np.exp(-2j * np.pi * tf * value)[None, :]
+        else:
+            r_, f_ = _per_tau(lambda tr, t: _trace_f1(tr, st, en, tf, t), sub, cell_tau[sel])
+            raw[sel], trial_f1[sel] = r_, f_ * np.exp(-2j * np.pi * tf * value)[None, :]
     spont, source, spont_windows, spont_len = (
         _spontaneous(responses, table, rows, tau) if isinstance(responses, Spikes)
         else _per_tau_spont(responses, table, rows, cell_tau))
@@ -1070,7 +1106,8 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
     # response by p (F1 ~ exp(-i p) for tf > 0, exp(+i p) for tf < 0), so that without this trials of
     # one condition shown at different start phases cancel in the vector mean
     trial_f1 = trial_f1 * np.exp(1j * np.sign(tf_signed) * np.deg2rad(table.phase_deg[rows].astype(float)))[None, :]
-    # the window started later than the stimulus (whole cycles skipped, latency): F1 referred to the onset
+    # the window started later than the stimulus (whole cycles skipped, and the latency above): F1
+    # referred to the onset
     trial_f1 = trial_f1 * np.exp(-2j * np.pi * tf * (onset - stim_onset))[None, :]
     trial_f0 = raw - np.where(np.isfinite(spont), spont, 0.0)[:, None]
     n_cells = trial_f0.shape[0]
@@ -1199,7 +1236,126 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         dsi=dsi, p_value=p_value, responsive=responsive, alpha=float(alpha), trace_tau_s=float(tau),
         f1_f0_ci_low=ci_lo, f1_f0_ci_high=ci_hi, f1_f0_p_simple=p_simple, grating_class=grating_class,
         dsi_ci_low=dsi_lo, dsi_ci_high=dsi_hi,
-        cell_tau_s=cell_tau, skip_cycles=int(skip_cycles), latency_s=float(latency_s))
+        cell_tau_s=cell_tau, skip_cycles=int(skip_cycles), latency_s=lat)
+
+
+def _subset(responses, sel):
+    """The cells ``sel`` (boolean mask) of spikes or traces."""
+    sel = np.asarray(sel, bool)
+    if sel.all():
+        return responses
+    if isinstance(responses, Spikes):
+        ids = responses.cell_ids[sel]
+        keep = np.isin(responses.cell, ids)
+        return Spikes(time_s=responses.time_s[keep], cell=responses.cell[keep], cell_ids=ids)
+    ids = None if responses.ids is None else np.asarray(responses.ids)[sel]
+    return Traces(values=np.asarray(responses.values)[sel], times_s=responses.times_s, ids=ids)
+
+
+def drifting_latency(responses: Spikes | Traces, table: GratingTable, cell_tau_s=None, spontaneous=None,
+                     max_latency_s: float = 0.3, step_s: float = 0.005) -> np.ndarray:
+    """Response latency of each cell to drifting gratings (s): the lag that maximises its response.
+
+    Windows as long as the whole cycles of each trial (from the stimulus onset, no cycle skipped) are
+    slid by lags ``0, step_s, ...`` up to ``max_latency_s`` (at most half the shortest trial and 90 %
+    of the shortest gap between trials); at each lag the condition means of F0 (minus
+    ``spontaneous``) and F1 (referred to the stimulus onset) give the response power
+    ``sum_c n_c (F0_c^2 + |F1_c|^2 / 2)`` (Parseval: the power of the mean response's constant and
+    first-harmonic parts). A response that starts ``L`` after the onset and stops ``L`` after the
+    offset fills the window entirely only at lag ``L``: earlier windows hold spontaneous activity at
+    their start, later ones the silence after the offset. Spikes are binned at ``step_s``; traces use
+    the drive ``r + tau dr/dt`` of a first-order indicator of decay ``tau`` (``cell_tau_s``, per cell;
+    NaN: the trace itself), binned at the sampling interval when that is coarser.
+    """
+    rows = np.flatnonzero(table.is_drifting)
+    rows = rows[np.argsort(table.onset_s[rows], kind="stable")]
+    on = table.onset_s[rows].astype(float)
+    off = table.offset_s[rows].astype(float)
+    dur = off - on
+    tf_signed = table.tf_hz[rows].astype(float)
+    tf = np.abs(tf_signed)
+    n_cyc = np.floor(dur * tf + 1e-6)
+    w_full = np.where(n_cyc >= 1, n_cyc / np.where(tf > 0, tf, 1.0), dur)
+    gaps = on[1:] - off[:-1]
+    limit = min(float(max_latency_s), 0.5 * float(dur.min()),
+                0.9 * float(gaps.min()) if gaps.size and gaps.min() > 0 else np.inf)
+    n_cells = responses.cell_ids.size
+    if isinstance(responses, Traces) and responses.times_s.size > 1:
+        step_s = max(step_s, float(np.median(np.diff(responses.times_s))))
+    n_lag = int(np.floor(max(limit, 0.0) / step_s + 1e-9)) + 1
+    if n_cells == 0 or n_lag < 2:
+        return np.zeros(n_cells)
+    direction = np.mod(np.round(np.mod(table.orientation_deg[rows] + np.where(tf_signed < 0, 180.0, 0.0), 360.0),
+                                _ROUND), 360.0)
+    key = np.stack([direction, np.round(table.sf_cpd[rows].astype(float), 9), np.round(tf, 9),
+                    np.round(w_full, 9)], axis=1)
+    _, group = np.unique(key, axis=0, return_inverse=True)
+    group = group.ravel()
+    n_g = np.bincount(group).astype(float)
+    w_g = np.bincount(group, weights=w_full) / n_g
+    tf_g = np.bincount(group, weights=tf) / n_g
+    n_win = np.round(w_g / step_s).astype(int)               # window length in bins, per condition
+    n_bins = int(n_win.max()) + n_lag
+    phase_ref = np.exp(1j * np.sign(tf_signed) * np.deg2rad(table.phase_deg[rows].astype(float)))
+    G = n_g.size
+    spont = np.zeros(n_cells) if spontaneous is None else np.where(np.isfinite(spontaneous), spontaneous, 0.0)
+    lags = np.arange(n_lag)
+    hi = lags[None, :] + n_win[:, None]                          # (G, lags)
+    gi = np.arange(G)[:, None]
+    norm = (n_g * w_g)[None, :, None]
+
+    def power_of(h0, h1, sp):
+        """(cells, G, bins) histograms of the response and of its first harmonic -> (cells, lags)."""
+        c0 = np.concatenate([np.zeros(h0.shape[:2] + (1,)), np.cumsum(h0, axis=2)], axis=2)
+        c1 = np.concatenate([np.zeros(h1.shape[:2] + (1,), complex), np.cumsum(h1, axis=2)], axis=2)
+        f0 = (c0[:, gi, hi] - c0[:, gi, lags[None, :]]) / norm - sp[:, None, None]
+        f1 = 2.0 * (c1[:, gi, hi] - c1[:, gi, lags[None, :]]) / norm
+        return (n_g[None, :, None] * (f0**2 + 0.5 * np.abs(f1) ** 2)).sum(axis=1)
+
+    power = np.empty((n_cells, n_lag))
+    size = G * n_bins
+    block = max(1, int(2e6 // size))                             # cells per block (memory)
+    if isinstance(responses, Spikes):
+        t = responses.time_s
+        k = np.searchsorted(on, t, side="right") - 1
+        u = t - on[np.maximum(k, 0)]
+        ok = (k >= 0) & (u < n_bins * step_s)
+        cell, k, u = cell_index(responses)[ok], k[ok], u[ok]
+        order = np.argsort(cell, kind="stable")
+        cell, k, u = cell[order], k[order], u[order]
+        col = group[k] * n_bins + np.minimum(np.floor(u / step_s + 1e-6).astype(int), n_bins - 1)
+        e1 = np.exp(-2j * np.pi * tf[k] * u) * phase_ref[k]
+        for i in range(0, n_cells, block):
+            lo, up = np.searchsorted(cell, [i, i + block])
+            m = min(block, n_cells - i)
+            flat = (cell[lo:up] - i) * size + col[lo:up]
+            h0 = np.bincount(flat, minlength=m * size).reshape(m, G, n_bins).astype(float)
+            h1 = (np.bincount(flat, weights=e1[lo:up].real, minlength=m * size)
+                  + 1j * np.bincount(flat, weights=e1[lo:up].imag, minlength=m * size)).reshape(m, G, n_bins)
+            power[i:i + m] = power_of(h0, h1, spont[i:i + m])
+    else:
+        times = responses.times_s
+        vals = np.asarray(responses.values, float)
+        dt = np.gradient(times) if times.size > 1 else np.ones(times.size)
+        tau = np.zeros(n_cells) if cell_tau_s is None else np.where(np.isfinite(cell_tau_s), cell_tau_s, 0.0)
+        k = np.searchsorted(on, times, side="right") - 1
+        u = times - on[np.maximum(k, 0)]
+        idx = np.flatnonzero((k >= 0) & (u < n_bins * step_s))
+        k, u = k[idx], u[idx]
+        col = group[k] * n_bins + np.minimum(np.floor(u / step_s + 1e-6).astype(int), n_bins - 1)
+        rows_i = np.arange(idx.size)
+        m0 = sparse.csr_matrix((dt[idx], (rows_i, col)), shape=(idx.size, size))
+        m1 = sparse.csr_matrix((dt[idx] * np.exp(-2j * np.pi * tf[k] * u) * phase_ref[k], (rows_i, col)),
+                               shape=(idx.size, size))
+        for i in range(0, n_cells, block):
+            v = vals[i:i + block]
+            deriv = np.gradient(v, times, axis=1) if times.size > 1 else np.zeros_like(v)
+            drive = np.nan_to_num(v + tau[i:i + block, None] * deriv)[:, idx]     # the indicator's decay undone
+            m = drive.shape[0]
+            h0 = np.asarray(m0.T @ drive.T).T.reshape(m, G, n_bins)
+            h1 = np.asarray(m1.T @ drive.T).T.reshape(m, G, n_bins)
+            power[i:i + m] = power_of(h0, h1, spont[i:i + m])
+    return np.argmax(power, axis=1) * step_s
 
 
 def _dsi_bootstrap(f0, f1, cond, pref, opp, use_f1, estimate, n_boot, rng, level=0.95):

@@ -489,6 +489,20 @@ def _check_max_lag(max_lag_s, sn) -> None:
                                           f"of {sn.frame_interval_s:.4g} s (at most a quarter of them)")
 
 
+def _drift_latency_option(value):
+    """``--drift-latency`` checked: 'auto' or a number of seconds in [0, 1] (else BadInput)."""
+    if value is None or value == "auto":
+        return "auto"
+    from .contract import parse_number
+    try:
+        v = parse_number(str(value))
+    except ValueError:
+        v = float("nan")
+    if not (0.0 <= v <= 1.0):
+        raise BadInput("--drift-latency", None, f"must be auto or seconds in [0, 1], got {value!r}")
+    return v
+
+
 def _dense_estimate_option(value):
     """``--dense-estimate`` checked: 'auto', 'sta' or 'whitened' (else BadInput)."""
     if value not in ("auto", "sta", "whitened"):
@@ -606,7 +620,7 @@ def _manifest_of(session_path, config):
     return Path(config) if config is not None else Path(session_path) / "session.json"
 
 
-def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None) -> int:
+def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None, drift_latency="auto") -> int:
     """``map2d gratings``: grating surfaces and tuning -> ``gratings.npz`` and ``cells.csv``.
 
     ``gratings.npz`` (cells sorted by id, ``cell_ids``): for a flashed sequence ``orientations_deg``,
@@ -629,6 +643,7 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
     from .nwb import load_source
 
     results_target(out)                       # refuse a bad --out before the work
+    drift_latency = _drift_latency_option(drift_latency)
     session = load_source(session_path, config)
     manifest = _manifest_of(session_path, config)
     g = session.gratings
@@ -640,7 +655,7 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
         raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {max_lag_s}")
     rng = np.random.default_rng(seed)
     fl = analyze_flashed(session.responses, g, max_lag_s=max_lag_s, rng=rng) if has_flashed(g) else None
-    dr = analyze_drifting(session.responses, g) if has_drifting(g) else None
+    dr = analyze_drifting(session.responses, g, latency_s=drift_latency) if has_drifting(g) else None
     ids = np.asarray(session.cell_ids)
     order = np.argsort(ids, kind="stable")
     arrays = {"cell_ids": ids[order]}
@@ -659,7 +674,7 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
             f0_mean=dr.f0_mean[order], f0_sem=dr.f0_sem[order], f1_mean=dr.f1_mean[order],
             f1_sem=dr.f1_sem[order], f1_amp_mean=dr.f1_amp_mean[order], n_trials=dr.n_trials[order],
             spontaneous=dr.spontaneous[order], drifting_p_value=dr.p_value[order],
-            trial_window_s=dr.trial_window_s)
+            trial_window_s=dr.trial_window_s, drift_latency_s=dr.latency_s[order])
     columns = grating_tuning_columns(fl, dr, cell_ids=ids)
     with results_folder(out) as tmp:
         np.savez_compressed(tmp / "gratings.npz", **arrays)
@@ -776,7 +791,7 @@ def write_analysis(folder, analysis, session, report=True) -> list:
 
 
 def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None, trace_decay="auto",
-                dense_estimate="auto") -> int:
+                dense_estimate="auto", drift_latency="auto") -> int:
     """``map2d analyze``: everything, the results contract, written atomically into ``out``.
 
     ``session_path`` is a session folder, a folder whose ``session.json`` points at an NWB file, or an
@@ -788,12 +803,14 @@ def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=No
     trace_decay = _trace_decay_option(trace_decay)
     results_target(out)                       # refuse a bad --out before the work
     dense_estimate = _dense_estimate_option(dense_estimate)
+    drift_latency = _drift_latency_option(drift_latency)
     session = load_source(session_path, config)
     _check_max_lag(max_lag_s, session.sparse_noise)
     bar = _StageBar(quiet)
     try:
         analysis = analyze_session(session, max_lag_s=max_lag_s, rng=seed, progress=bar,
-                                   trace_decay=trace_decay, dense_estimate=dense_estimate)
+                                   trace_decay=trace_decay, dense_estimate=dense_estimate,
+                                   drift_latency=drift_latency)
         bar("writing")
         with results_folder(out) as tmp:
             write_analysis(tmp, analysis, session)

@@ -66,3 +66,16 @@ def test_gratings_only_session_is_summarised_by_its_grating_responses(tiny, tmp_
     assert "sparse noise" not in line and "responsive to gratings" in line
     n = int(line.split("cells, ")[1].split(" responsive")[0])
     assert n >= 1                                   # the tiny session's model cells answer gratings
+
+
+def test_drift_latency_option(tiny, tmp_path, capsys):
+    """``--drift-latency``: a bad value is refused before any work (one line, exit 2, no results);
+    a number is every cell's shift, in ``drift_latency_s``."""
+    import csv
+    assert main(["gratings", str(tiny / "full"), "--out", str(tmp_path / "bad"), "--drift-latency", "soon"]) == 2
+    assert "--drift-latency" in capsys.readouterr().err and not (tmp_path / "bad").exists()
+    assert main(["analyze", str(tiny / "full"), "--out", str(tmp_path / "a"), "--drift-latency", "0.05",
+                 "--quiet"]) == 0
+    with open(tmp_path / "a" / "cells.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert [float(r["drift_latency_s"]) for r in rows] == [0.05] * len(rows)

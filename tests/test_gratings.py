@@ -855,3 +855,97 @@ def test_flashed_shuffle_null_matches_a_direct_count(with_nan):
                               np.random.default_rng(9))
         np.testing.assert_array_equal(got, exceed_ref)
     assert 0 < exceed_ref.sum() < n_cells * n_shuffles     # the check is not vacuous
+
+
+# ----------------------------------------------------------------------------------------------
+# latency-shifted windows (issue 14)
+# ----------------------------------------------------------------------------------------------
+LATS = np.repeat([0.03, 0.1, 0.2], 8)
+PHI_DEG = 40.0
+
+
+def _latency_spikes(tf=2.0, dur=1.0, gap=1.0, repeats=5, amp=20.0, spont=2.0, seed=0):
+    """Half-wave rectified simple cells with known latencies ``LATS``: rate ``spont + amp pi [cos(2 pi tf
+    (t - onset - L) + PHI)]+`` from ``onset + L`` to ``offset + L`` (full at direction 0, 0.3 of it at
+    90/180/270), Poisson spikes by thinning. Fourier series of the rectified cosine: F0 = amp,
+    F1 = amp pi / 2 (F1/F0 = pi / 2), and F1 referred to the stimulus onset has the phase
+    ``PHI - 360 tf L``."""
+    rng = np.random.default_rng(seed)
+    dirs = np.tile([0.0, 90.0, 180.0, 270.0], repeats)
+    dirs = dirs[rng.permutation(dirs.size)]
+    n = dirs.size
+    on = 1.0 + np.arange(n) * (dur + gap)
+    table = GratingTable.from_columns(onset_s=on, offset_s=on + dur, orientation_deg=dirs, sf_cpd=np.full(n, 0.05),
+                                      phase_deg=np.zeros(n), contrast=np.ones(n), tf_hz=np.full(n, tf))
+    total = on[-1] + dur + gap + 1.0
+    peak = spont + amp * np.pi
+    times, cells = [], []
+    for c, lat in enumerate(LATS):
+        t = np.sort(rng.uniform(0.0, total, rng.poisson(peak * total)))
+        k = np.clip(np.searchsorted(on, t - lat, side="right") - 1, 0, None)
+        inside = (t - lat >= on[k]) & (t - lat < on[k] + dur)
+        g = np.where(dirs[k] == 0.0, 1.0, 0.3)
+        wave = np.maximum(np.cos(2 * np.pi * tf * (t - lat - on[k]) + np.deg2rad(PHI_DEG)), 0.0)
+        keep = rng.random(t.size) < (spont + np.where(inside, g * amp * np.pi * wave, 0.0)) / peak
+        times.append(t[keep])
+        cells.append(np.full(keep.sum(), c))
+    t, c = np.concatenate(times), np.concatenate(cells)
+    o = np.argsort(t)
+    return Spikes(time_s=t[o], cell=c[o], cell_ids=np.arange(LATS.size)), table
+
+
+def _phase_error(dr, tf):
+    """Signed error (deg) of each cell's F1 phase at direction 0 against ``PHI - 360 tf L``."""
+    want = PHI_DEG - 360.0 * tf * LATS
+    return (np.degrees(np.angle(dr.f1_mean[:, 0, 0, 0])) - want + 180.0) % 360.0 - 180.0
+
+
+def test_drifting_windows_follow_each_cells_latency_spikes():
+    """Issue 14: each cell's windows shifted by its own latency, estimated from its drifting responses
+    (map2d.gratings.drifting_latency). Trials of 2 cycles (1 s at 2 Hz) analysed whole (skip_cycles=0):
+    unshifted, a window holds L of spontaneous activity and misses the last L of the response.
+    Measured on seeds 0-2 (8 cells per latency): latencies within 15 ms; with the shift the median F1
+    phase error (truth PHI - 360 tf L) is at most 5.4 deg, F1 within 5 % of amp pi / 2 and F1/F0 within
+    5 % of pi / 2 (Fourier series of the rectified cosine); unshifted, F1 reads 0.53-0.70 of the truth at
+    L = 0.1-0.2 s and the phase is off by 7-15 deg at L = 0.2 s (F1/F0 only 2-8 % off: F0 loses nearly
+    the same share)."""
+    sp, table = _latency_spikes()
+    auto = analyze_drifting(sp, table, skip_cycles=0, n_boot=0)
+    none = analyze_drifting(sp, table, skip_cycles=0, n_boot=0, latency_s=0.0)
+    np.testing.assert_allclose(auto.latency_s, LATS, atol=0.02)
+    assert np.all(none.latency_s == 0.0)
+    f1_true = 20.0 * np.pi / 2
+    err_auto, err_none = _phase_error(auto, 2.0), _phase_error(none, 2.0)
+    for lat in np.unique(LATS):
+        s = LATS == lat
+        assert abs(np.median(err_auto[s])) <= 6.0, lat
+        assert abs(np.median(np.abs(auto.f1_mean[s, 0, 0, 0])) / f1_true - 1) <= 0.08, lat
+        assert abs(np.median(auto.f1_f0[s]) / (np.pi / 2) - 1) <= 0.06, lat
+    for lat in (0.1, 0.2):
+        assert np.median(np.abs(none.f1_mean[LATS == lat, 0, 0, 0])) <= 0.75 * f1_true
+    assert abs(np.median(err_none[LATS == 0.2])) >= 6.0
+
+
+def test_drifting_windows_follow_each_cells_latency_traces():
+    """Traces (the same cells through a first-order indicator of decay 0.4 s, sampled at 30 Hz): the
+    latency comes from the drive ``r + tau dr/dt`` and is recovered to about one sample; with the shift F1/F0 of the L = 0.2 s cells reads 1.65 (truth pi / 2 = 1.57), unshifted 1.14:
+    the indicator fit then assumes a drive present from the window's start."""
+    sp, table = _latency_spikes()
+    dt = 0.001
+    total = table.offset_s[-1] + 2.0
+    nb = int(total / dt)
+    counts = np.zeros((LATS.size, nb))
+    np.add.at(counts, (sp.cell, np.minimum((sp.time_s / dt).astype(int), nb - 1)), 1.0)
+    calcium = lfilter([0.01], [1.0, -np.exp(-dt / 0.4)], counts, axis=1)
+    ts = np.arange(0.0, total - 0.05, 1 / 30.0)
+    noise = 0.005 * np.random.default_rng(1).standard_normal((LATS.size, ts.size))
+    tr = Traces(values=calcium[:, (ts / dt).astype(int)] + noise, times_s=ts)
+    auto = analyze_drifting(tr, table, skip_cycles=0, n_boot=0, trace_tau_s=0.4)
+    none = analyze_drifting(tr, table, skip_cycles=0, n_boot=0, trace_tau_s=0.4, latency_s=0.0)
+    # the sampling interval (33 ms) limits the estimate: a drive edge on a sample is half seen by both
+    # neighbouring lags; measured: all but one cell within one sample (+17-37 ms), that one 103 ms late
+    off = np.abs(auto.latency_s - LATS)
+    assert np.mean(off <= 1 / 30.0 + 0.011) >= 0.9
+    late = LATS == 0.2
+    assert abs(np.median(auto.f1_f0[late]) / (np.pi / 2) - 1) <= 0.1
+    assert np.median(none.f1_f0[late]) <= 0.8 * np.pi / 2
