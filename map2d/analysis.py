@@ -180,7 +180,12 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
     L = flashed.lags_s.size
     if not np.isclose(frame, flashed.frame_s):
         return None
-    r = interval_responses(responses, onset, end).astype(np.float64)      # (C, n)
+    kept = flashed.__dict__.pop("_presentations", None)   # left by analyze_flashed for these responses
+    if (kept is not None and kept[0] is responses and np.array_equal(kept[1], onset)
+            and np.array_equal(kept[2], end)):
+        r = kept[3]
+    else:
+        r = interval_responses(responses, onset, end).astype(np.float64)  # (C, n)
     C, n = r.shape
     w = np.asarray(flashed.temporal_weights, float)                       # (C, L)
     if w.shape != (C, L):

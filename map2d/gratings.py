@@ -432,7 +432,7 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
     responsive = np.isfinite(p_value) & (p_value < alpha)
 
     kx, ky = wave_vector(oris[:, None], sfs[None, :])
-    return FlashedResult(
+    result = FlashedResult(
         cell_ids=np.asarray(responses.cell_ids), orientations_deg=oris, sfs_cpd=sfs, phases_deg=phs,
         lags_s=lags_s, frame_s=frame, mean=d, count=count, blank_mean=blank_mean,
         condition_contrast=cond_contrast, harmonic=harmonic, phase_mean=phase_mean, energy=energy,
@@ -440,6 +440,10 @@ def analyze_flashed(responses: Spikes | Traces, table: GratingTable, max_lag_s: 
         kx_cpd=np.asarray(kx, float), ky_cpd=np.asarray(ky, float), n_shuffles=int(n_shuffles),
         alpha=float(alpha), temporal_weights=weights, harmonic_combined=h_comb[..., 0],
         phase_mean_combined=pm_comb[..., 0], temporal_profile=profile, lag_noise_cov=noise_cov)
+    # the responses of every presentation, for map2d.analysis.flashed_noise on the same responses (which
+    # then bins them once, not twice, and drops them); an attribute, not a field: never saved
+    result._presentations = (responses, onset, end, r)
+    return result
 
 
 def _shuffle_exceed(r0, finite, no_nan, pairs, cond, n_groups, sst, obs, n_shuffles, block, rng):

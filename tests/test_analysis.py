@@ -190,6 +190,9 @@ def test_flashed_noise_is_calibrated_on_cells_without_a_first_harmonic():
                                   baseline_hz=(0.5, 1.5))
     fl = analyze_flashed(session.responses, session.gratings, n_shuffles=0)
     v = flashed_noise(session.responses, session.gratings, fl)
+    # the presentations' responses kept by analyze_flashed are used once: binned afresh, the same values
+    assert not hasattr(fl, "_presentations")
+    np.testing.assert_array_equal(flashed_noise(session.responses, session.gratings, fl), v)
     h2 = np.abs(fl.harmonic_combined) ** 2
     assert v.shape == h2.shape and np.all(np.isfinite(v)) and np.all(v > 0)
     ratio = h2.sum() / v.sum()                 # 8 cells x 48 conditions
