@@ -304,6 +304,7 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
     from . import reconcile
     from .fit.spatial import locate_fields
     from .maps import compute_maps, dense_columns, dense_estimate_note, spike_latency
+    from ._forked import ForkedCall
     from .quality import map_quality
     from .spacetime import model_space_time, predict_flashed_st, space_time, st_columns
     from .traces import decay_corrected
@@ -339,8 +340,11 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         an.spatial_maps, an.peak_maps, an.map_kind = ch.spatial, ch.peak, ch.kind
         linear_spatial = ch.linear_spatial
         fit_cols = an.fields.columns
-        quality = map_quality(map_responses, session.sparse_noise, max_lag_s,
-                              use_onoff=an.map_kind == "on+off")
+        # map quality (map2d.quality: a second pass over the noise, single-threaded) runs in a forked
+        # child on the other core while this process goes on; its columns are taken at the table
+        use_onoff = an.map_kind == "on+off"
+        quality = ForkedCall(lambda: map_quality(map_responses, session.sparse_noise, max_lag_s,
+                                                 use_onoff=use_onoff))
         # what predicts the gratings: the accepted fit of a linear map; otherwise the separable linear
         # map itself (for a complex cell mostly noise: it should predict little); never a rejected fit
         fitted = (ch.kind == "linear") & (fit_cols["center_method"] == "model")
@@ -438,6 +442,10 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
         centres = np.column_stack([fit_cols["center_x_deg"], fit_cols["center_y_deg"]]).astype(float)
         an.size_disk, an.size_annulus = reconcile.size_tuning(np.nan_to_num(an.spatial_maps), grid, centres,
                                                               an.size_radii_deg)
+
+    if quality is not None:   # the forked map-quality pass (started after the fits) is joined here
+        step("map quality")
+        quality = quality.result()
 
     # -- the table ---------------------------------------------------------------------------------------
     step("table")

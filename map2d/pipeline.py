@@ -689,8 +689,8 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
 class _StageBar:
     """A progress bar over analysis stages: silent with ``quiet`` or when stderr is not a terminal."""
 
-    STAGES = ("maps", "fits", "flashed gratings", "drifting gratings", "tuning", "reconcile", "table",
-              "writing")
+    STAGES = ("maps", "fits", "flashed gratings", "drifting gratings", "tuning", "reconcile", "map quality",
+              "table", "writing")
 
     def __init__(self, quiet):
         import sys

@@ -41,8 +41,8 @@ from scipy import special
 
 from .contract import SparseNoise
 
-__all__ = ["BlockSums", "block_sums", "map_reliability", "prediction_r", "spearman_brown", "map_quality",
-           "QUALITY_COLUMNS"]
+__all__ = ["BlockSums", "block_sums", "lag_design", "map_reliability", "prediction_r", "spearman_brown",
+           "map_quality", "QUALITY_COLUMNS"]
 
 #: Columns :func:`map_quality` adds to ``cells.csv``.
 QUALITY_COLUMNS = ("map_reliability", "map_reliability_ci_low", "map_reliability_ci_high", "prediction_r")
@@ -121,7 +121,35 @@ def _padded(R, layout):
     return out
 
 
-def block_sums(X, V, B, lags, n_blocks):
+def lag_design(B, lags):
+    """``(rows, L * 2P)`` csr float32 whose row ``t`` holds the spots shown at ``t - lags[i]`` in columns
+    ``i * 2P + j``: ``lag_design(B, lags)[a:e].T @ X[a:e]`` is every lag's ``B[t - l]^T X[t]`` summed over
+    the response rows ``a <= t < e``, and ``lag_design(B, lags) @ W`` the generator ``sum_l B[t - l] W_l``,
+    each in one sparse product instead of one per lag (built from ``B``'s index arrays, no sorting)."""
+    import scipy.sparse as sp
+    B = B.tocsr()
+    F, P2 = B.shape
+    lags = np.asarray(lags, int)
+    cnt = np.diff(B.indptr).astype(np.int64)
+    seg = np.zeros((lags.size, F), np.int64)               # seg[i, t]: entries of lag i in row t
+    for i, lag in enumerate(lags):
+        if lag < F:
+            seg[i, lag:] = cnt[:F - lag]
+    indptr = np.zeros(F + 1, np.int64)
+    np.cumsum(seg.sum(axis=0), out=indptr[1:])
+    start = indptr[:-1] + np.cumsum(seg, axis=0) - seg     # where lag i's entries of row t begin
+    indices = np.empty(int(indptr[-1]), np.int32)
+    for i, lag in enumerate(lags):
+        if lag >= F:
+            continue
+        n = int(B.indptr[F - lag])
+        src_row = np.repeat(np.arange(F - lag), cnt[:F - lag])
+        dest = start[i, src_row + lag] + (np.arange(n) - B.indptr[src_row])
+        indices[dest] = B.indices[:n] + i * P2
+    return sp.csr_matrix((np.ones(indices.size, np.float32), indices, indptr), shape=(F, lags.size * P2))
+
+
+def block_sums(X, V, B, lags, n_blocks, design=None):
     """Per-block, per-lag sums ``B[t]^T X[t + l]`` and counts ``B[t]^T V[t + l]`` (pairs assigned to the
     block of the response row ``t + l``).
 
@@ -132,10 +160,16 @@ def block_sums(X, V, B, lags, n_blocks):
     B : scipy.sparse csr (rows, 2P)  spot indicators
     lags : ndarray int (L,)
     n_blocks : int
+    design : csr, optional  ``lag_design(B, lags)`` when already built
 
     Returns
     -------
     BlockSums
+
+    Notes
+    -----
+    One sparse product per block over every lag (:func:`lag_design`), in float32 (an entry sums a few
+    dozen pairs per block; the blocks are added in float64).
     """
     F, C = X.shape
     P2 = B.shape[1]
@@ -144,15 +178,16 @@ def block_sums(X, V, B, lags, n_blocks):
     if C and bool((V == V[:, :1]).all()):      # every cell valid in the same frames: one count column
         V = V[:, :1]
     counts = np.zeros((n_blocks, lags.size, P2, V.shape[1]))
+    lags = np.asarray(lags, int)
+    D = lag_design(B, lags) if design is None else design
+    X32, V32 = np.asarray(X, np.float32), np.asarray(V, np.float32)
     for b in range(n_blocks):
         a, e = edges[b], edges[b + 1]
-        for li, lag in enumerate(lags):
-            a0 = max(a, int(lag))
-            if e <= a0:
-                continue
-            Bt = B[a0 - lag:e - lag].T
-            sums[b, li] = Bt @ X[a0:e]
-            counts[b, li] = Bt @ V[a0:e]
+        if e <= a:
+            continue
+        Dt = D[a:e].T
+        sums[b] = (Dt @ X32[a:e]).reshape(lags.size, P2, C)
+        counts[b] = (Dt @ V32[a:e]).reshape(lags.size, P2, -1)
     block_of_row = np.repeat(np.arange(n_blocks), np.diff(edges))
     return BlockSums(sums, counts, np.asarray(lags), block_of_row)
 
@@ -220,15 +255,6 @@ def map_reliability(bs: BlockSums, use_onoff, level: float = 0.95):
     return spearman_brown(r), spearman_brown(lo), spearman_brown(hi)
 
 
-def _generator(B, W, lags, F):
-    """``g[t] = sum_l (B @ W_l)[t - l]`` -> (F, C); ``W`` (L, 2P, C)."""
-    g = np.zeros((F, W.shape[-1]))
-    for li, lag in enumerate(lags):
-        y = B @ W[li]
-        g[lag:] += y[:F - lag] if lag else y
-    return g
-
-
 def _fit_nonlinearity(g, y, n_bins=10):
     """Decile means of ``y`` against ``g`` (one column): bin centres and means, for interpolation."""
     edges = np.unique(np.quantile(g, np.linspace(0, 1, n_bins + 1)))
@@ -288,16 +314,18 @@ def _nonlinearity_predict(g_tr, y_tr, g_te, n_bins=10):
     return np.where(const | (K == 1), y_first, out)
 
 
-def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4):
+def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4, design=None):
     """Cross-validated correlation between the measured responses and a linear-nonlinear prediction.
 
     Fold ``k`` holds the blocks ``b`` with ``b % n_folds == k``; the ON and OFF maps of the other blocks
     make the generator signal (module docstring), the nonlinearity is fitted on the other blocks'
     frames, and the prediction of fold ``k``'s frames is compared with their responses. Returns
     ``r`` (C,): NaN when a cell has fewer than 10 valid held-out frames or a constant response.
+    The generator of all cells and lags is one float32 sparse product per fold (:func:`lag_design`).
     """
     F, C = X.shape
     lags = bs.lags
+    D = lag_design(B, lags) if design is None else design
     fold_of_row = bs.block_of_row % n_folds
     pred = np.full((F, C), np.nan)
     all_s, all_n = bs.sums.sum(axis=0), bs.counts.sum(axis=0)
@@ -315,7 +343,7 @@ def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4):
         with np.errstate(invalid="ignore", divide="ignore"):
             W = W * np.clip(1.0 - s2 / (n * W ** 2), 0.0, 1.0)
         W = np.nan_to_num(W)
-        g = _generator(B, W, lags, F)
+        g = np.asarray(D @ W.reshape(-1, C).astype(np.float32), np.float64)     # sum_l B[t - l] W_l
         test = fold_of_row == k
         if same_rows:                                 # every cell at once (same frames)
             tr, te = (~test) & (V[:, 0] > 0), test & (V[:, 0] > 0)
@@ -365,6 +393,7 @@ def map_quality(responses, noise: SparseNoise, max_lag_s: float, use_onoff=None,
     lags = map_lags(noise.frame_interval_s, max_lag_s)
     B, P, layout = _design(noise, int(lags[-1]))
     R = _padded(frame_responses(responses, noise), layout)        # (rows, C)
+    D = lag_design(B, lags)                                       # every lag in one sparse matrix
     use_onoff = np.zeros(C, bool) if use_onoff is None else np.asarray(use_onoff, bool)
     for a in range(0, C, _CELL_CHUNK):
         sl = slice(a, min(C, a + _CELL_CHUNK))
@@ -373,8 +402,8 @@ def map_quality(responses, noise: SparseNoise, max_lag_s: float, use_onoff=None,
         with np.errstate(invalid="ignore"):
             mean = np.nansum(Rc, axis=0) / np.maximum(V.sum(0), 1)
         X = np.where(V > 0, Rc - mean, 0.0)
-        bs = block_sums(X, V, B, lags, n_blocks)
+        bs = block_sums(X, V, B, lags, n_blocks, design=D)
         rel, lo, hi = map_reliability(bs, use_onoff[sl])
         out["map_reliability"][sl], out["map_reliability_ci_low"][sl], out["map_reliability_ci_high"][sl] = rel, lo, hi
-        out["prediction_r"][sl] = prediction_r(bs, B, X, V, n_folds)
+        out["prediction_r"][sl] = prediction_r(bs, B, X, V, n_folds, design=D)
     return out

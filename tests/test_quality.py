@@ -163,3 +163,29 @@ def test_quality_same_frames_path_equals_the_per_cell_path(mixed):
         np.testing.assert_allclose(a, b[:8], rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(prediction_r(fast, B, X, V), prediction_r(slow, B, Xx, Vx)[:8], rtol=1e-9,
                                atol=1e-12)
+
+
+def test_lag_design_is_every_lag_of_the_spot_matrix(mixed):
+    """One sparse product over the lag-stacked design equals the per-lag products it replaces (the
+    definitions in the module docstring, written out lag by lag)."""
+    from map2d.maps import frame_responses, map_lags
+    from map2d.quality import lag_design
+    _, sessions = mixed
+    noise, resp = sessions[0]
+    lags = map_lags(noise.frame_interval_s, 0.2)
+    B, _, _ = _design(noise, int(lags[-1]))
+    R = frame_responses(resp, noise).T.astype(float)
+    X = R - R.mean(0)
+    D = lag_design(B, lags)
+    F, P2 = B.shape
+    a, e = 100, F - 50                                   # a block of response rows
+    got = (D[a:e].T @ X[a:e]).reshape(lags.size, P2, -1)
+    W = np.random.default_rng(0).standard_normal((lags.size, P2, X.shape[1]))
+    gen = D @ W.reshape(-1, X.shape[1])
+    ref_gen = np.zeros((F, X.shape[1]))
+    for i, lag in enumerate(lags):
+        rows = np.arange(max(a, lag), e)
+        assert np.allclose(got[i], B[rows - lag].T @ X[rows], atol=1e-4), lag
+        y = B @ W[i]
+        ref_gen[lag:] += y[:F - lag]
+    assert np.allclose(gen, ref_gen, atol=1e-4)
