@@ -10,7 +10,8 @@ indicator), each with strong and weak (gain / 2.5) cells and two silent cells. O
 ``docs/validation.md``.
 
 The yardsticks are the issue's (ours): a third of a pixel for linear cells (at least 0.5 deg), 0.4 pixel
-for complex and ON-OFF cells (at least 1 deg), one pixel for any cell whose strongest map reaches z 6.
+for complex and ON-OFF cells (at least 1 deg), on every regime and every responsive cell; one pixel for
+any cell whose strongest map reaches z 6.
 Three regimes add flashed gratings for the same cells (4 phases, 8 phases, a phase origin named off the
 grid): linear cells must be called linear with a high agreement of the two methods, complex and ON-OFF
 cells not, and cells without a grating response get no verdict.
@@ -39,15 +40,20 @@ def test_no_cell_with_a_clear_map_is_misplaced_by_more_than_a_pixel(heldout_matr
 
 
 def test_linear_cells_within_a_third_of_a_pixel(heldout_matrix):
-    # every strong (z >= 6) linear cell whose field lies on the grid; fields cut by the grid's edge
-    # within 0.4 pixel here (seed 0: 0.38 at most; a Gabor half off the grid trades its envelope centre
-    # against frequency and phase). Over seeds 0-4 one edge cell reached 0.77 pixel (a region centroid
-    # after every fit was rejected): docs/validation.md
+    # the issue's yardstick (ours), on every regime and every responsive linear cell, weak ones too
+    # (seed 0: 0.20 pixel at most for fitted centres). The exception is a centre no model could place
+    # (center_method 'region'): a weak Gabor cut by the grid's edge, whose fits' centre intervals span
+    # +-1 to +-14 pixels across the cut and whose significant region is one-sided (its side lobe beyond
+    # the edge is missing), so its centroid is pulled inward (seed 0: 0.51 pixel, the largest over
+    # seeds 0-4, docs/validation.md). Those within 0.6 pixel.
+    n = 0
     for name, res, r in _driven(heldout_matrix):
-        if r["cls"] == "linear" and r["responsive"] and r["peak_z"] >= 6:
+        if r["cls"] == "linear" and r["responsive"]:
+            n += 1
             pixel = max(res["spacing"])
-            tol = 0.4 * pixel if name == "edge" else max(pixel / 3, 0.5)
+            tol = max(pixel / 3, 0.5) if r["center_method"] == "model" else 0.6 * pixel
             assert r["err_deg"] <= tol, (name, r)
+    assert n >= 20                               # 23 of the 24 driven linear cells at seed 0
 
 
 def test_complex_and_on_off_cells_found_on_their_on_plus_off_map(heldout_matrix):
@@ -59,6 +65,8 @@ def test_complex_and_on_off_cells_found_on_their_on_plus_off_map(heldout_matrix)
             assert r["fitted_map"] == "on+off" and r["polarity"] == "ON-OFF", (name, r)
             # fitted ON and OFF subfields coincide (measured 0.70-0.98)
             assert r["overlap"] >= 0.6, (name, r)
+        if r["cls"] in ("complex", "onoff") and r["responsive"]:
+            # the issue's yardstick for every responsive one, weak ones too
             pixel = max(res["spacing"])
             assert r["err_deg"] <= max(0.4 * pixel, 1.0), (name, r)
     assert n >= 6
