@@ -1625,14 +1625,18 @@ class MapChoice:
     noise_sd: np.ndarray
     threshold_z: float
 
-    def spatial_z(self, c: int) -> np.ndarray:
-        """The fitted (separable) map of cell ``c`` over the null sd of its peak-lag map, ``(ny, nx)``.
+    def region_z(self, c: int) -> np.ndarray:
+        """The z-map whose significant region locates cell ``c`` (:func:`region_centre`), ``(ny, nx)``.
 
-        Pooling lags leaves the separable map no noisier than the peak-lag map, so these values are
-        z-scores on the conservative side: a pixel reaching :attr:`threshold_z` here is significant at
-        the peak lag's level or better. What :func:`region_centre` locates.
+        The fitted (separable) map over the null sd of the peak-lag map: pooling lags leaves it no
+        noisier than the peak-lag map, so these are z-scores on the conservative side (a pixel reaching
+        :attr:`threshold_z` is significant at the peak lag's level or better). When no pixel of it
+        reaches :attr:`threshold_z` (a response spread thinly over many lags), the peak-lag z-map.
         """
-        return self.spatial[c] / self.noise_sd[c]
+        z = self.spatial[c] / self.noise_sd[c]
+        if not np.nanmax(np.abs(z), initial=0.0) >= self.threshold_z:
+            return self.z[c]
+        return z
 
 
 def _both_maps(result: MapResult, c: int):
@@ -1783,7 +1787,9 @@ def region_centre(z_map: np.ndarray, grid: Grid, threshold_z: float, share: floa
     The cluster: pixels whose ``|z|`` reaches ``threshold_z`` and ``share`` of the peak's ``|z|`` (either
     sign: the ON and OFF subregions of a simple cell make one field; the share keeps the noisy tails of a
     strong field out), 8-connected across gaps of one pixel (the zero crossing between an odd cell's
-    subregions), taking the cluster that holds the largest ``|z|``. When no pixel reaches the threshold, the pixels around the peak with at least ``share`` of its ``|z|`` are used.
+    subregions), taking the cluster that holds the largest ``|z|``. When no pixel reaches the threshold,
+    the pixels around the peak with at least half its ``|z|`` are used (a lower share would take in the
+    noise around a weak peak).
     Weighting by ``|z|`` rather than by the response makes pixels of unequal noise (unequal spot counts,
     anisotropic sampling) count by their evidence. A field cut by the grid's edge is pulled inward: its
     cluster is one-sided.
@@ -1796,7 +1802,7 @@ def region_centre(z_map: np.ndarray, grid: Grid, threshold_z: float, share: floa
     if not np.any(z > 0):
         return float("nan"), float("nan"), 0
     i, j = np.unravel_index(int(np.argmax(z)), z.shape)
-    thr = max(float(threshold_z), share * z[i, j]) if z[i, j] >= threshold_z else share * z[i, j]
+    thr = max(float(threshold_z), share * z[i, j]) if z[i, j] >= threshold_z else 0.5 * z[i, j]
     mask = z >= thr
     # subregions of either sign parted by a one-pixel zero crossing (an odd simple cell centred on a
     # pixel) are one field: the cluster grows over one-pixel gaps, its weights stay on the mask
@@ -1820,7 +1826,7 @@ def map_centroid_deg(result: MapResult, cell_index: int, threshold_z: float | No
 
     The map that carries the cell (:func:`choose_maps`: linear, or ON + OFF for cells that bright and
     dark spots excite at the same places), its separable spatial part in z units
-    (:meth:`MapChoice.spatial_z`); the ``|z|``-weighted centroid of its significant cluster
+    (:meth:`MapChoice.region_z`); the ``|z|``-weighted centroid of its significant cluster
     (:func:`region_centre`, threshold :func:`region_threshold_z` over the grid's pixels at the map's
     ``alpha`` unless ``threshold_z`` is given). NaN for a cell that is not
     responsive. The analysis reports this centre (``center_method = region``) whenever no model fit
@@ -1831,7 +1837,7 @@ def map_centroid_deg(result: MapResult, cell_index: int, threshold_z: float | No
     sub = _one_cell(result, cell_index)
     ch = choose_maps(sub)
     thr = ch.threshold_z if threshold_z is None else float(threshold_z)
-    x, y, _ = region_centre(ch.spatial_z(0), result.grid, thr)
+    x, y, _ = region_centre(ch.region_z(0), result.grid, thr)
     return x, y
 
 

@@ -1350,7 +1350,7 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batch
     extent only); :func:`fit_check` accepts or rejects each fit against the noise of the map at the
     peak lag; an accepted fit gives the centre (``center_method = 'model'``), otherwise the
     ``|z|``-weighted centroid of the significant cluster of the fitted (separable) map does
-    (:func:`map2d.maps.region_centre` of :meth:`map2d.maps.MapChoice.spatial_z`,
+    (:func:`map2d.maps.region_centre` of :meth:`map2d.maps.MapChoice.region_z`,
     ``center_method = 'region'``) and the fit columns stay empty.
 
     Parameters
@@ -1402,7 +1402,7 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batch
                 model_maps[c] = pred
                 out["center_method"][c] = "model"
             else:
-                x, y, _ = region_centre(ch.spatial_z(c), grid, ch.threshold_z)
+                x, y, _ = region_centre(ch.region_z(c), grid, ch.threshold_z)
                 out["center_x_deg"][c], out["center_y_deg"][c] = x, y
                 out["center_method"][c] = "region" if np.isfinite(x) else ""
     field_pixel = np.full((C, 2), -1, dtype=int)
