@@ -1090,18 +1090,24 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
             cell_tau = np.where(np.isfinite(given), given, session_tau)
         fin_tau = cell_tau[np.isfinite(cell_tau)]
         tau = float(np.median(fin_tau)) if fin_tau.size else float("nan")
-    # each cell's windows start its latency after the stimulus (cells sharing a latency together)
-    raw = np.empty((n_resp, onset.size))
-    trial_f1 = np.empty((n_resp, onset.size), dtype=complex)
-    for value in np.unique(lat):
-        sel = lat == value
-        st, en = onset + value, onset + value + window
-        sub = _subset(responses, sel)
-        if isinstance(responses, Spikes):
-            raw[sel] = interval_responses(sub, st, en)
-            trial_f1[sel] = _spike_f1(sub, st, en, tf) * np.exp(-2j * np.pi * tf * value)[None, :]
-        else:
-            r_, f_ = _per_tau(lambda tr, t: _trace_f1(tr, st, en, tf, t), sub, cell_tau[sel])
+    # each cell's windows start and end its latency after the stimulus
+    if isinstance(responses, Spikes):
+        # a spike at t of a cell with latency L is in the window [s + L, e + L) when t - L is in [s, e):
+        # every cell's spikes moved back by its latency share one set of windows
+        moved = responses
+        if np.any(lat != 0):
+            t_m = responses.time_s - lat[cell_index(responses)]
+            o = np.argsort(t_m, kind="stable")
+            moved = Spikes(time_s=t_m[o], cell=responses.cell[o], cell_ids=responses.cell_ids)
+        raw = interval_responses(moved, onset, onset + window).astype(float)
+        trial_f1 = _spike_f1(moved, onset, onset + window, tf) * np.exp(-2j * np.pi * tf[None, :] * lat[:, None])
+    else:                                                   # traces: cells sharing a latency together
+        raw = np.empty((n_resp, onset.size))
+        trial_f1 = np.empty((n_resp, onset.size), dtype=complex)
+        for value in np.unique(lat):
+            sel = lat == value
+            st, en = onset + value, onset + value + window
+            r_, f_ = _per_tau(lambda tr, t: _trace_f1(tr, st, en, tf, t), _subset(responses, sel), cell_tau[sel])
             raw[sel], trial_f1[sel] = r_, f_ * np.exp(-2j * np.pi * tf * value)[None, :]
     spont, source, spont_windows, spont_len = (
         _spontaneous(responses, table, rows, tau) if isinstance(responses, Spikes)
@@ -1257,7 +1263,7 @@ def _subset(responses, sel):
 
 
 def drifting_latency(responses: Spikes | Traces, table: GratingTable, cell_tau_s=None, spontaneous=None,
-                     max_latency_s: float = 0.3, step_s: float = 0.005) -> np.ndarray:
+                     max_latency_s: float = 0.3, step_s: float = 0.01) -> np.ndarray:
     """Response latency of each cell to drifting gratings (s): the lag that maximises its response.
 
     Windows as long as the whole cycles of each trial (from the stimulus onset, no cycle skipped) are
