@@ -335,7 +335,7 @@ def _cells_last(a, name):
 
 
 def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_var=None,
-                      alpha=SIGNAL_ALPHA):
+                      alpha=SIGNAL_ALPHA, signal_p=None):
     """How well the map's predicted grating surface matches the measured one.
 
     Parameters
@@ -354,6 +354,12 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_
         condition whose variance is NaN takes the mean of the others.
     alpha : float
         Level of the test that the measured surface holds more than noise (below).
+    signal_p : array_like, shape (C,), optional
+        A p-value of that test computed elsewhere, used instead of the chi-square below (with
+        ``noise_var``): :func:`map2d.analysis.flashed_signal_p`, whose null includes the choice of the
+        temporal profile that pooled the lags of ``measured`` (the chi-square takes the surface's
+        weights as fixed and, for surfaces pooled with a profile taken from the same data, rejects
+        too often). NaN for a cell keeps the chi-square.
 
     Returns
     -------
@@ -460,6 +466,7 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_
         phase_err = np.where(ok & (sw > 0), np.sum(w * dphi, axis=1) / sw, np.nan)
     raw = agreement
     nan_c = np.full(raw.shape, np.nan)
+    given_p = signal_p
     signal_fraction, signal_p, corrected = nan_c.copy(), nan_c.copy(), np.zeros(raw.shape, bool)
     if noise_var is not None:
         from scipy.stats import chi2
@@ -480,7 +487,15 @@ def forward_agreement(predicted, measured, min_conditions=MIN_CONDITIONS, noise_
             v2 = np.sum(v_use**2, axis=1)
             scale = np.where(n_ok & (v2 > 0), v2 / (2 * np.where(n_ok, big_n, 1.0)), 1.0)
             nu = np.where(n_ok & (v2 > 0), 2 * big_n**2 / np.where(v2 > 0, v2, 1.0), 1.0)
-            signal_p = np.where(n_ok, chi2.sf(mm / scale, nu), np.nan)
+            signal_p_chi2 = np.where(n_ok, chi2.sf(mm / scale, nu), np.nan)
+            if given_p is None:
+                signal_p = signal_p_chi2
+            else:
+                given = np.asarray(given_p, float).ravel()
+                if given.size != signal_p_chi2.size:
+                    raise ValueError(f"signal_p must have one value per cell ({signal_p_chi2.size}), "
+                                     f"got {given.size}")
+                signal_p = np.where(n_ok, np.where(np.isfinite(given), given, signal_p_chi2), np.nan)
             explained = pm**2 / np.where(pp > 0, pp, 1.0) - np.sum(np.abs(p0) ** 2 * v_use, axis=1) / (2 * pp)
             signal = mm - big_n
             corrected = n_ok & (signal_p < alpha) & (signal > 0)
