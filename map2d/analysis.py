@@ -479,7 +479,9 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
       cells score what their prediction scores against the noiseless truth (0.8-1.0), and complex cells
       (no first harmonic, the surface indistinguishable from noise, no correction) stay at 0-0.03.
       The raw score is kept as ``agreement_raw``; ``agreement_noise_corrected``,
-      ``grating_signal_fraction`` and ``grating_signal_p_value`` say what was done.
+      ``grating_signal_fraction`` and ``grating_signal_p_value`` say what was done. The p-value (which
+      also decides "no grating response") comes from :func:`flashed_signal_p`, whose permutation null
+      includes the choice of the cell's temporal profile, for the cells with a prediction.
     """
     from . import reconcile
     from .fit.spatial import locate_fields

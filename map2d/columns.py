@@ -223,7 +223,9 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "surface (it holds power beyond its noise, p < 0.001).", "Spearman 1904"),
         Column("grating_signal_fraction", "1", "Share of the measured grating surface's power that is signal, "
                "1 - noise / total."),
-        Column("grating_signal_p_value", "1", "P-value of the measured surface's power against its noise alone."),
+        Column("grating_signal_p_value", "1", "P-value of the measured surface's power against its noise alone; "
+               "the null comes from permutations of the grating sequence that redo the choice of the cell's "
+               "temporal profile (moments matched to a scaled chi-square).", "Satterthwaite 1946"),
         Column("magnitude_agreement", "1", "Squared correlation of measured and predicted magnitudes |H| "
                "(phases ignored; 0 when the correlation is negative)."),
         Column("phase_error_deg", "deg", "Mean absolute phase difference (0-180) between measured and predicted "
