@@ -6,6 +6,7 @@ pixels of 2 deg), so the grid's edge lies at x = -10 deg.
 """
 
 import numpy as np
+import pytest
 
 from map2d.fit import spatial as S
 from map2d.geometry import Grid
@@ -60,3 +61,19 @@ def test_region_centre_of_a_symmetric_field_is_its_centre():
     zo = gabor2d(X, Y, 5.0, -1.0, 2.4, 3.2, 0.0, 0.12, 90.0, 12.0)
     x, y, _ = region_centre(zo, GRID, thr)
     assert abs(x - 5.0) < 1e-9 and abs(y + 1.0) < 1e-9
+
+
+@pytest.mark.parametrize("solver", ["batched", "reference"])
+def test_the_checks_apply_on_both_solvers(solver):
+    # locate_fields' path (all cells' fits together): the edge cells get no fitted centre, the inner
+    # ones keep theirs, whichever solver fitted them (without the interval check the first edge cell's
+    # fit passed with both solvers)
+    X, Y = GRID.mesh_deg()
+    rng = np.random.default_rng(3)
+    maps = np.stack([gabor2d(X, Y, x0, 0.5, 2.4, 3.2, 0.0, 0.12, 0.0, 1.0) + 0.1 * rng.standard_normal(X.shape)
+                     for x0 in (-9.5, -9.5, -9.5, 4.0, 2.0)])
+    sd = np.full_like(maps, 0.1)
+    rows, _, why = S._fit_checked_chunk(maps, GRID, maps, sd, S.MODELS, False, 0.01, solver=solver)
+    assert all(r is None and w for r, w in zip(rows[:3], why[:3])), why
+    assert all(r is not None and w == "" for r, w in zip(rows[3:], why[3:])), why
+    assert all(abs(r["center_x_deg"] - x0) < 0.5 for r, x0 in zip(rows[3:], (4.0, 2.0)))
