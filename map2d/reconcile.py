@@ -763,16 +763,24 @@ def size_tuning(maps, grid: Grid, center_xy_deg, radii_deg, supersample=8):
     sx = (grid.x_deg[:, None] + u[None, :] * grid.dx_deg).ravel()        # (nx * n,)
     sy = (grid.y_deg[:, None] + u[None, :] * grid.dy_deg).ravel()        # (ny * n,)
     area = grid.dx_deg * grid.dy_deg / n_sub**2
-    disk = np.full((n_c, radii.size), np.nan)
-    for c in range(n_c):  # one centre per cell: a small loop over cells, vectorised over pixels
-        if not np.all(np.isfinite(centre[c])):
-            continue                                   # no centre (e.g. no fit): responses NaN
-        d2 = (sx[None, :] - centre[c, 0]) ** 2 + (sy[:, None] - centre[c, 1]) ** 2   # (ny n, nx n)
-        sub = np.repeat(np.repeat(m3[c], n_sub, axis=0), n_sub, axis=1) * area
-        order = np.argsort(d2, axis=None)
-        d2s = d2.ravel()[order]
-        cum = np.concatenate([[0.0], np.cumsum(sub.ravel()[order])])
-        disk[c] = cum[np.searchsorted(d2s, radii**2, side="right")]
+    # each sub-sample point counts in the disks whose radius reaches it: with the radii sorted, its ring
+    # is the first radius >= its distance; ring sums (bincount), then cumulative sums give the disks (a
+    # NaN pixel in a ring makes that disk and every larger one NaN); cells in blocks, no sorting
+    r_order = np.argsort(radii, kind="stable")
+    r2 = radii[r_order] ** 2
+    n_r = radii.size
+    disk = np.full((n_c, n_r), np.nan)
+    ok = np.flatnonzero(np.all(np.isfinite(centre), axis=1))   # no centre (e.g. no fit): responses NaN
+    block = 32
+    for lo in range(0, ok.size, block):
+        cs = ok[lo:lo + block]
+        d2 = ((sx[None, None, :] - centre[cs, 0, None, None]) ** 2
+              + (sy[None, :, None] - centre[cs, 1, None, None]) ** 2)                # (b, ny n, nx n)
+        ring = np.searchsorted(r2, d2.ravel(), side="left").reshape(d2.shape)      # n_r: outside every disk
+        sub = np.repeat(np.repeat(m3[cs], n_sub, axis=1), n_sub, axis=2) * area
+        idx = (ring + (n_r + 1) * np.arange(cs.size)[:, None, None]).ravel()
+        rings = np.bincount(idx, weights=sub.ravel(), minlength=(n_r + 1) * cs.size).reshape(cs.size, n_r + 1)
+        disk[cs[:, None], r_order[None, :]] = np.cumsum(rings[:, :n_r], axis=1)
     annulus = disk[:, [int(np.argmax(radii))]] - disk
     if single:
         return disk[0], annulus[0]

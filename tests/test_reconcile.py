@@ -497,3 +497,28 @@ def test_local_visual_angle_columns_scale_azimuth_by_cos_elevation():
     assert c60["pref_orientation_local_deg"][0] == pytest.approx(np.degrees(np.arctan(0.5)))
     # too close to the pole, or a missing input: NaN
     assert np.isnan(c["size_local_deg"][2]) and np.isnan(c["gabor_sf_local_cpd"][2])
+
+
+def test_size_tuning_of_many_cells_equals_the_direct_sum():
+    """Every cell's disk response is the sum of the map over the sub-sample points within the radius
+    (the definition, written out point by point), for unsorted radii, a NaN pixel and a NaN centre."""
+    grid = Grid(ny=9, nx=11, center_x_deg=1.0, center_y_deg=-2.0, dx_deg=1.5, dy_deg=1.2)
+    rng = np.random.default_rng(5)
+    maps = rng.standard_normal((40, 9, 11))
+    maps[3, 4, 5] = np.nan
+    centres = rng.uniform(-6, 6, (40, 2))
+    centres[7] = np.nan
+    radii = np.array([3.0, 0.5, 6.0, 0.0, 9.0])
+    disk, annulus = size_tuning(maps, grid, centres, radii, supersample=4)
+    u = (np.arange(4) + 0.5) / 4 - 0.5
+    sx = (grid.x_deg[:, None] + u * grid.dx_deg).ravel()
+    sy = (grid.y_deg[:, None] + u * grid.dy_deg).ravel()
+    area = grid.dx_deg * grid.dy_deg / 16
+    for c in range(40):
+        sub = np.repeat(np.repeat(maps[c], 4, axis=0), 4, axis=1) * area
+        d2 = (sx[None, :] - centres[c, 0]) ** 2 + (sy[:, None] - centres[c, 1]) ** 2
+        for r, rad in enumerate(radii):
+            ref = np.sum(sub[d2 <= rad ** 2]) if np.all(np.isfinite(centres[c])) else np.nan
+            assert np.isclose(disk[c, r], ref, rtol=1e-12, atol=1e-12, equal_nan=True), (c, r)
+    assert np.allclose(annulus, disk[:, [4]] - disk, equal_nan=True)
+    assert np.isnan(disk[3]).any() and np.isnan(disk[7]).all()
