@@ -158,6 +158,8 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
     from .align import interval_responses
     from .gratings import _frame_windows, flashed_rows, fold_static
 
+    # the presentations' responses analyze_flashed left for these responses: used (or dropped) here
+    kept = flashed.__dict__.pop("_presentations", None)
     rows = np.flatnonzero(flashed_rows(table))
     rows = rows[np.argsort(table.onset_s[rows], kind="stable")]
     if rows.size < 2:
@@ -180,7 +182,6 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
     L = flashed.lags_s.size
     if not np.isclose(frame, flashed.frame_s):
         return None
-    kept = flashed.__dict__.pop("_presentations", None)   # left by analyze_flashed for these responses
     if (kept is not None and kept[0] is responses and np.array_equal(kept[1], onset)
             and np.array_equal(kept[2], end)):
         r = kept[3]
