@@ -95,3 +95,23 @@ def test_lost_cell_gets_no_verdict(tmp_path):
     lin = [j for j, c in enumerate(cells) if heldout_rf.cell_class(c) == "linear" and j != i]
     assert all(an.cells["linear"][j] is True for j in lin), [an.cells["linear_reason"][j] for j in lin]
     assert max(float(an.cells["grating_signal_p_value"][j]) for j in lin) < 1e-6
+
+
+def test_signal_p_with_missing_trace_samples():
+    # traces with a gap (NaN samples) take the per-presentation path of flashed_signal_p; 80 silent
+    # cells as noisy 30-Hz traces of their spike counts, 1 s missing. Measured with 120 such cells:
+    # 3.3 % below 0.05, 0.8 % below 0.01, KS against uniform p 0.72.
+    from map2d.contract import Traces
+
+    spikes, table = _null_session(80, seed=3)
+    t = np.arange(0.0, table.onset_s[-1] + 2.0, 1 / 30.0)
+    edges = np.r_[t, t[-1] + 1 / 30.0]
+    values = np.stack([np.histogram(spikes.time_s[spikes.cell == c], bins=edges)[0] for c in range(80)])
+    values = values + np.random.default_rng(0).normal(0.0, 0.5, values.shape)
+    values[:, 1000:1030] = np.nan
+    traces = Traces(values=values, times_s=t)
+    fl = analyze_flashed(traces, table, rng=0, n_shuffles=0)
+    p = flashed_signal_p(traces, table, fl, rng=0)
+    assert np.isfinite(p).all()
+    # binomial(80, 0.01): P(4 or more) = 0.9 %; KS (common practice)
+    assert np.sum(p < 0.01) <= 3 and stats.kstest(p, "uniform").pvalue > 0.01, np.sort(p)[:6]
