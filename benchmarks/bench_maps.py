@@ -183,13 +183,22 @@ def peer_dense(noise: SparseNoise, spikes: Spikes, lags):
 # ----------------------------------------------------------------------------------------------
 # running map2d as a user does
 # ----------------------------------------------------------------------------------------------
-def _map2d(args, env=None):
-    """Run ``python -m map2d.cli ARGS`` (same as the ``map2d`` script); -> (seconds, peak RSS bytes or None)."""
+def _cpu_children():
+    u = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return u.ru_utime + u.ru_stime
+
+
+def _map2d(args, env=None, cpu=None):
+    """Run ``python -m map2d.cli ARGS`` (same as the ``map2d`` script); -> (seconds, peak RSS bytes or None).
+    ``cpu``: a list that gets the CPU seconds of the process and of its forked children."""
     cmd = [sys.executable, "-m", "map2d.cli", *map(str, args)]
     t0 = time.perf_counter()
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    c0 = _cpu_children()
     proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
     dt = time.perf_counter() - t0
+    if cpu is not None:
+        cpu.append(_cpu_children() - c0)
     after = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     if proc.returncode != 0:
         raise RuntimeError(f"{' '.join(cmd)} failed ({proc.returncode}):\n{proc.stdout}\n{proc.stderr}")
@@ -218,12 +227,16 @@ def compare_maps(npz_path, peer, label, rtol=1e-4):
     return worst
 
 
-def _median_time(fn, repeats):
+def _median_time(fn, repeats, cpu=None):
+    """Median wall time of ``fn()`` over repeats; ``cpu``: a list that gets each run's CPU time of this process
+    (all its threads) and of children it waited for."""
     times, out = [], None
     for _ in range(repeats):
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time() + _cpu_children()
         out = fn()
         times.append(time.perf_counter() - t0)
+        if cpu is not None:
+            cpu.append(time.process_time() + _cpu_children() - c0)
     return float(np.median(times)), times, out
 
 
@@ -235,9 +248,10 @@ def _fit_stage(folder, max_lag, repeats):
 
     s = load_session(folder)
     res = compute_maps(s.responses, s.sparse_noise, max_lag_s=max_lag, rng=0)
-    med, times, fields = _median_time(lambda: locate_fields(res), repeats)
+    cpu = []
+    med, times, fields = _median_time(lambda: locate_fields(res), repeats, cpu)
     n_fit = int(np.sum(fields.columns["center_method"] != ""))
-    return med, times, n_fit
+    return med, times, n_fit, float(np.median(cpu))
 
 
 def bench_maps(workdir: Path, minutes, cells, ny, nx, n_lags, repeats, rate_hz=60.0, seed=0,
@@ -263,27 +277,30 @@ def bench_maps(workdir: Path, minutes, cells, ny, nx, n_lags, repeats, rate_hz=6
                           responsive_fraction=responsive_fraction)}
     args = ["maps", folder, "--out", out, "--max-lag", f"{max_lag:.9g}", "--quiet"]
     # the default command (model fits on) is what users wait for; --no-fits computes what the peers do
-    m_times, f_times = [], []
+    m_times, f_times, m_cpu, f_cpu = [], [], [], []
     for _ in range(repeats):
-        f_times.append(_map2d(args)[0])
-        m_times.append(_map2d(args + ["--no-fits"])[0])
+        f_times.append(_map2d(args, cpu=f_cpu)[0])
+        m_times.append(_map2d(args + ["--no-fits"], cpu=m_cpu)[0])
     res["map2d_with_fits"] = float(np.median(f_times))
     res["map2d"] = float(np.median(m_times))
+    res["cpu"] = {"map2d_with_fits": float(np.median(f_cpu)), "map2d": float(np.median(m_cpu))}
     say(f"map2d maps (default, model fits on; whole process): median {res['map2d_with_fits']:.2f} s of "
         f"{['%.2f' % t for t in f_times]}")
     say(f"map2d maps --no-fits (whole process): median {res['map2d']:.2f} s of {['%.2f' % t for t in m_times]}")
-    fit_med, fit_times, n_fit = _fit_stage(folder, max_lag, repeats)
-    res["fit_stage"], res["cells_fitted"] = fit_med, n_fit
+    fit_med, fit_times, n_fit, fit_cpu = _fit_stage(folder, max_lag, repeats)
+    res["fit_stage"], res["cells_fitted"], res["cpu"]["fit_stage"] = fit_med, n_fit, fit_cpu
     say(f"fit stage (locate_fields, {n_fit} responsive cells, in this process): median {fit_med:.2f} s of "
         f"{['%.2f' % t for t in fit_times]}")
-    d_med, d_times, dense = _median_time(lambda: peer_dense(noise, spikes, lags), repeats)
-    res["dense"] = d_med
+    cpu = []
+    d_med, d_times, dense = _median_time(lambda: peer_dense(noise, spikes, lags), repeats, cpu)
+    res["dense"], res["cpu"]["dense"] = d_med, float(np.median(cpu))
     say(f"dense float32 product peer: median {d_med:.2f} s of {['%.2f' % t for t in d_times]}")
     res["dense_vs_map2d_max_rel_diff"] = compare_maps(out / "maps.npz", dense, "dense peer")
     del dense
     if not skip_per_cell:
-        p_med, p_times, per = _median_time(lambda: peer_per_cell(noise, spikes, lags), repeats)
-        res["per_cell"] = p_med
+        cpu = []
+        p_med, p_times, per = _median_time(lambda: peer_per_cell(noise, spikes, lags), repeats, cpu)
+        res["per_cell"], res["cpu"]["per_cell"] = p_med, float(np.median(cpu))
         say(f"per-cell numpy peer:        median {p_med:.2f} s of {['%.2f' % t for t in p_times]}")
         res["per_cell_vs_map2d_max_rel_diff"] = compare_maps(out / "maps.npz", per, "per-cell peer")
     with open(out / "cells.csv") as fh:
@@ -292,17 +309,22 @@ def bench_maps(workdir: Path, minutes, cells, ny, nx, n_lags, repeats, rate_hz=6
 
 
 def print_table(res, title=""):
+    """Wall time (medians) and CPU time (all processes and threads; steadier on a shared machine)."""
     print()
     if title:
         print(title)
-    print(f"{'method':40s} {'median s':>9s} {'peer / default':>15s} {'peer / --no-fits':>17s}")
-    print(f"{'map2d maps (default, fits on)':40s} {res['map2d_with_fits']:9.2f}")
-    print(f"{'map2d maps --no-fits':40s} {res['map2d']:9.2f}")
-    print(f"{'  of the default: fit stage alone':40s} {res['fit_stage']:9.2f}")
+    cpu = res.get("cpu", {})
+    print(f"{'method':36s} {'median s':>9s} {'CPU s':>7s} {'peer / default':>15s} {'peer / --no-fits':>17s}")
+    for key, label in (("map2d_with_fits", "map2d maps (default, fits on)"), ("map2d", "map2d maps --no-fits"),
+                       ("fit_stage", "  of the default: fit stage alone")):
+        print(f"{label:36s} {res[key]:9.2f} {cpu.get(key, np.nan):7.2f}")
     for key, label in (("dense", "dense float32 product"), ("per_cell", "per-cell numpy STA")):
         if key in res:
-            print(f"{label:40s} {res[key]:9.2f} {res[key] / res['map2d_with_fits']:14.1f}x "
-                  f"{res[key] / res['map2d']:16.1f}x")
+            print(f"{label:36s} {res[key]:9.2f} {cpu.get(key, np.nan):7.2f} "
+                  f"{res[key] / res['map2d_with_fits']:14.1f}x {res[key] / res['map2d']:16.1f}x")
+    if "per_cell" in cpu and "map2d_with_fits" in cpu:
+        print(f"(CPU-time ratios, per-cell / default {cpu['per_cell'] / cpu['map2d_with_fits']:.1f}x, "
+              f"dense / default {cpu['dense'] / cpu['map2d_with_fits']:.1f}x)")
     print(f"(default / --no-fits: {res['map2d_with_fits'] / res['map2d']:.2f}x; maps agree: largest difference "
           f"{max(v for k, v in res.items() if k.endswith('rel_diff')):.1e} of the map range; "
           f"{res.get('responsive', '?')} of {res['config']['cells']} cells responsive, {res['cells_fitted']} fitted)")

@@ -180,3 +180,22 @@ def test_map2d_maps_does_not_predict_size_tuning(small_spikes_session, tmp_path,
     assert pipeline.run_maps(folder, tmp_path / "out", max_lag_s=0.2, quiet=True) == 0
     with np.load(tmp_path / "out" / "maps.npz") as z:
         assert "size_disk" not in z.files and np.isfinite(z["model_maps"]).any()
+
+
+def test_stacked_wald_covariances_equal_the_one_map_ones():
+    # every row's covariance as map2d.fit.spatial._wald_cov computes it, including an unidentified
+    # direction (two equal columns) and a parameter without any effect (a zero column)
+    rng = np.random.default_rng(0)
+    A, s2 = [], rng.uniform(0.5, 2.0, 60)
+    for i in range(60):
+        J = rng.standard_normal((40, 6))
+        if i % 5 == 0:
+            J[:, 2] = J[:, 3]
+        if i % 7 == 0:
+            J[:, 4] = 0.0
+        A.append(J.T @ J)
+    A = np.array(A)
+    got = B._wald_covs(A, s2)
+    ref = np.array([S._wald_cov(a, v) for a, v in zip(A, s2)])
+    assert np.array_equal(np.isnan(got), np.isnan(ref))
+    np.testing.assert_allclose(got, ref, rtol=1e-9, equal_nan=True)

@@ -467,9 +467,36 @@ def _covariances(fun, p, x, y, d, w, problems):
         r = (fun(x, y, *[pc[:, j, None, None] for j in range(k)]) - d[a:b]) * wc
         A, _ = _normal(J, r)
         rss = _sumsq(r)
+        s2 = np.empty(b - a)
         for row in range(b - a):
             pr = problems[a + row]
             red = rss[row] / max(pr.n - k, 1)
-            s2 = max(1.0, red) if pr.known_noise else red
-            out[a + row] = S._wald_cov(A[row], s2)
+            s2[row] = max(1.0, red) if pr.known_noise else red
+        out[a:b] = _wald_covs(A, s2)
+    return out
+
+
+def _wald_covs(A, s2):
+    """``map2d.fit.spatial._wald_cov`` of every row of ``A`` (m, k, k), ``s2`` (m,): the rows whose
+    parameters all have a non-zero column in one stacked eigen-decomposition, the others one by one."""
+    from . import spatial as S
+
+    m, k = A.shape[:2]
+    out = np.full((m, k, k), np.nan)
+    c = np.sqrt(np.einsum("ijj->ij", A))
+    fast = np.isfinite(A).all(axis=(1, 2)) & (c > 0).all(axis=1)
+    for i in np.flatnonzero(~fast):
+        out[i] = S._wald_cov(A[i], s2[i])
+    if fast.any():
+        cf = c[fast]
+        outer = cf[:, :, None] * cf[:, None, :]
+        w, V = np.linalg.eigh(A[fast] / outer)
+        null = w <= 1e-9 * np.maximum(w.max(axis=1, keepdims=True), 1e-300)
+        inv_w = np.where(null, 0.0, 1.0 / np.where(null, 1.0, w))
+        cov = (V * inv_w[:, None, :]) @ V.transpose(0, 2, 1)
+        cov = s2[fast, None, None] * cov / outer
+        # a parameter with a real share in an unidentified direction has no finite interval
+        bad = (np.where(null[:, None, :], V ** 2, 0.0).sum(axis=2) > 1e-6) & null.any(axis=1, keepdims=True)
+        cov = np.where(bad[:, :, None] | bad[:, None, :], np.nan, cov)
+        out[fast] = cov
     return out
