@@ -270,8 +270,8 @@ def _fit_nonlinearity(g, y, n_bins=10):
 
 def _nonlinearity_predict(g_tr, y_tr, g_te, n_bins=10):
     """Column by column, ``np.interp(g_te, *_fit_nonlinearity(g_tr, y_tr))`` (a constant when the training
-    generator has fewer than 3 distinct decile edges): every column at once. ``g_tr``, ``y_tr`` (n, C),
-    ``g_te`` (m, C) -> (m, C)."""
+    generator has fewer than 3 distinct decile edges): the deciles and bins of every column at once, the
+    interpolation column by column. ``g_tr``, ``y_tr`` (n, C), ``g_te`` (m, C) -> (m, C)."""
     n, C = g_tr.shape
     cols = np.arange(C)
     # (n_bins + 1, C), non-decreasing; each column made contiguous first (a partition along rows is slow)
@@ -281,37 +281,25 @@ def _nonlinearity_predict(g_tr, y_tr, g_te, n_bins=10):
     edges = np.sort(q, axis=0)
     n_edges = np.isfinite(edges).sum(axis=0)                          # (C,)
     # the bin of each training value: edges <= value, less one, within the column's bins
-    idx = np.zeros(g_tr.shape, np.int64)
+    idx = np.zeros(g_tr.shape, np.int8)              # at most n_bins + 1 edges
     for e in edges:
         idx += g_tr >= e
-    idx = np.clip(idx - 1, 0, np.maximum(n_edges - 2, 0))
+    idx = np.clip(idx.astype(np.intp) - 1, 0, np.maximum(n_edges - 2, 0))
     flat = (idx + cols * n_bins).ravel()
     cnt = np.bincount(flat, minlength=C * n_bins).reshape(C, n_bins)
     sg = np.bincount(flat, weights=g_tr.ravel(), minlength=C * n_bins).reshape(C, n_bins)
     sy = np.bincount(flat, weights=y_tr.ravel(), minlength=C * n_bins).reshape(C, n_bins)
     keep = cnt > 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        xc = np.where(keep, sg / np.where(keep, cnt, 1), np.inf)
-        yc = np.where(keep, sy / np.where(keep, cnt, 1), np.nan)
-    order = np.argsort(xc, axis=1, kind="stable")                    # the kept bins first, in order
-    xc, yc = np.take_along_axis(xc, order, 1), np.take_along_axis(yc, order, 1)
-    K = keep.sum(axis=1)                                              # knots per column
-    const = n_edges < 3
-    K = np.where(const, 1, K)
-    y_first = np.where(const, y_tr.mean(axis=0), yc[:, 0])
-    # np.interp: the knot segment of each value, linear inside, the end values outside
-    j = np.zeros(g_te.shape, np.int64)
-    for i in range(1, n_bins):
-        j += g_te >= xc[:, i]                        # +inf knots never count
-    j = np.clip(j, 0, np.maximum(K - 2, 0))
-    x0 = xc[cols, j]
-    x1, y0, y1 = xc[cols, np.minimum(j + 1, n_bins - 1)], yc[cols, j], yc[cols, np.minimum(j + 1, n_bins - 1)]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        out = (y1 - y0) / (x1 - x0) * (g_te - x0) + y0
-    y_last = yc[cols, np.maximum(K - 1, 0)]
-    out = np.where(g_te <= xc[:, 0], y_first, out)
-    out = np.where(g_te >= xc[cols, np.maximum(K - 1, 0)], y_last, out)
-    return np.where(const | (K == 1), y_first, out)
+    out = np.empty((C, g_te.shape[0]))
+    te = np.ascontiguousarray(g_te.T)
+    for c in range(C):                               # numpy.interp on each column's kept bins
+        if n_edges[c] < 3:
+            out[c] = y_tr[:, c].mean()
+            continue
+        k = keep[c]
+        xc, yc = sg[c, k] / cnt[c, k], sy[c, k] / cnt[c, k]
+        out[c] = np.interp(te[c], xc, yc) if xc.size > 1 else yc[0]
+    return out.T
 
 
 def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4, design=None):
@@ -330,6 +318,9 @@ def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4, design=None):
     pred = np.full((F, C), np.nan)
     all_s, all_n = bs.sums.sum(axis=0), bs.counts.sum(axis=0)
     same_rows = C > 0 and bool((V == V[:, :1]).all())     # every cell valid in the same frames
+    # per fold: the sum of squared responses (X is 0 where not valid) and the valid frames
+    x2 = np.array([(X[fold_of_row == k] ** 2).sum(axis=0) for k in range(n_folds)])
+    nv = np.array([(V[fold_of_row == k] > 0).sum(axis=0) for k in range(n_folds)])
     for k in range(n_folds):
         fold_blocks = np.flatnonzero(np.arange(bs.n_blocks) % n_folds == k)
         # the other blocks' totals: all blocks less this fold's
@@ -338,8 +329,7 @@ def prediction_r(bs: BlockSums, B, X, V, n_folds: int = 4, design=None):
         W = np.nan_to_num(np.concatenate([on, off], axis=1))     # (L, 2P, C)
         # each coefficient shrunk by its own noise (positive-part James-Stein factor per coefficient):
         # a mean of n responses of variance s^2 has noise variance s^2 / n
-        tr_rows = (fold_of_row != k)[:, None] & (V > 0)
-        s2 = (np.where(tr_rows, X, 0.0) ** 2).sum(0) / np.maximum(tr_rows.sum(0), 1)     # (C,)
+        s2 = (x2.sum(0) - x2[k]) / np.maximum(nv.sum(0) - nv[k], 1)     # (C,) over the training frames
         with np.errstate(invalid="ignore", divide="ignore"):
             W = W * np.clip(1.0 - s2 / (n * W ** 2), 0.0, 1.0)
         W = np.nan_to_num(W)
