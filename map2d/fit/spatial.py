@@ -1294,23 +1294,19 @@ def _n_workers(n_jobs, n_cells, solver="batched"):
     return max(1, min(int(nj), os.cpu_count() or 1, max(n_cells, 1)))
 
 
-def _in_parts(fn, n, n_jobs, solver="batched"):
-    """``[fn(part) for part in parts]``: ``range(n)`` split into ``n_jobs`` contiguous parts, all but the first
-    computed in forked children (:class:`map2d._forked.ForkedCall`: the arrays are inherited, not pickled;
-    computed here when forking is not possible). The reference solver splits finer, into a pool's chunks."""
+def _in_parts(fn, args_of, n, n_jobs, solver="batched"):
+    """``[fn(*args_of(part)) for part in parts]``: ``range(n)`` split into contiguous parts computed by
+    ``n_jobs`` worker processes (:func:`map2d._forked.worker_pool`: they die with this process; ``fn`` a
+    module-level function, ``args_of(part)`` its arguments for those cells only); one part per worker for
+    the batched solver (each a batch), finer chunks for the reference solver."""
     if n == 0:
         return []
     if n_jobs <= 1:
-        return [fn(np.arange(n))]
-    if solver == "reference":
-        parts = [p for p in np.array_split(np.arange(n), n_jobs * 4) if p.size]
-        with worker_pool(n_jobs) as ex:   # workers die with this process
-            return [f.result() for f in [ex.submit(fn, p) for p in parts]]
-    from .._forked import ForkedCall
-    parts = [p for p in np.array_split(np.arange(n), n_jobs) if p.size]
-    children = [ForkedCall(lambda p=p: fn(p)) for p in parts[1:]]
-    first = fn(parts[0])
-    return [first] + [ch.result() for ch in children]
+        return [fn(*args_of(np.arange(n)))]
+    per_worker = 1 if solver == "batched" else 4
+    parts = [p for p in np.array_split(np.arange(n), n_jobs * per_worker) if p.size]
+    with worker_pool(n_jobs) as ex:   # workers die with this process
+        return [f.result() for f in [ex.submit(fn, *args_of(p)) for p in parts]]
 
 
 @dataclass
@@ -1388,9 +1384,9 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batch
             continue
         nj = _n_workers(n_jobs, idx.size, solver)
         rows, preds, why = [], [], []
-        for r, p, w in _in_parts(lambda part: _fit_checked_chunk(maps[idx[part]], grid, check[idx[part]],
-                                                                 ch.noise_sd[idx[part]], models, pixel_box,
-                                                                 alpha, solver), idx.size, nj, solver):
+        for r, p, w in _in_parts(_fit_checked_chunk,
+                                 lambda part: (maps[idx[part]], grid, check[idx[part]], ch.noise_sd[idx[part]],
+                                               models, pixel_box, alpha, solver), idx.size, nj, solver):
             rows += r
             preds += p
             why += w
@@ -1415,8 +1411,14 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batch
     if result.stimulus == "sparse":
         cells = np.flatnonzero(result.peak_lag_index >= 0)
         nj = _n_workers(n_jobs, cells.size, solver)
-        parts = _in_parts(lambda part: _overlaps(result, cells[part], grid, ch.threshold_z, solver), cells.size,
-                          nj, solver)
+        li = result.peak_lag_index[cells]
+
+        def args_of(part):     # the peak-lag ON and OFF maps of these cells only
+            c, lag = cells[part], li[part]
+            return (result.on[c, lag], result.off[c, lag], result.on_z[c, lag], result.off_z[c, lag], grid,
+                    ch.threshold_z, solver)
+
+        parts = _in_parts(_overlaps, args_of, cells.size, nj, solver)
         overlap[cells] = np.concatenate(parts) if parts else []
     return CellFields(choice=ch, columns=out, model_maps=model_maps, field_pixel=field_pixel,
                       onoff_overlap=overlap)
@@ -1495,19 +1497,19 @@ def _envelope(fit, grid):
     return np.array([p["center_x_deg"], p["center_y_deg"]]), S
 
 
-def _overlaps(result, cells, grid, threshold_z, solver="batched"):
-    """:func:`subfield_overlap` of each of ``cells`` at its peak lag, every subfield fitted in one batch."""
+def _overlaps(on, off, on_z, off_z, grid, threshold_z, solver="batched"):
+    """:func:`subfield_overlap` of each cell's maps (``on``, ``off``, ``on_z``, ``off_z``: (n, ny, nx)), every
+    subfield fitted in one batch."""
     lobes = []
-    for c in cells:
-        li = int(result.peak_lag_index[c])
-        lobes.append(_lobe(result.on[c, li], result.on_z[c, li], threshold_z))
-        lobes.append(_lobe(result.off[c, li], result.off_z[c, li], threshold_z))
+    for c in range(on.shape[0]):
+        lobes.append(_lobe(on[c], on_z[c], threshold_z))
+        lobes.append(_lobe(off[c], off_z[c], threshold_z))
     todo = [i for i, m in enumerate(lobes) if m is not None]
     fits = _fit_all([_Problem(lobes[i], grid, None) for i in todo], ("gaussian",), solver)["gaussian"]
     env = [None] * len(lobes)
     for i, fit in zip(todo, fits):
         env[i] = _envelope(fit, grid)
-    return np.array([_overlap_of(env[2 * j], env[2 * j + 1]) for j in range(len(cells))], float)
+    return np.array([_overlap_of(env[2 * j], env[2 * j + 1]) for j in range(on.shape[0])], float)
 
 
 def subfield_overlap(on_map, off_map, on_z, off_z, grid: Grid, threshold_z: float) -> float:
