@@ -76,6 +76,7 @@ Press WH et al., Numerical Recipes, 3rd ed., section 15.6 (confidence limits fro
 
 from __future__ import annotations
 
+import contextlib
 import math
 import os
 from dataclasses import dataclass, field
@@ -1294,19 +1295,22 @@ def _n_workers(n_jobs, n_cells, solver="batched"):
     return max(1, min(int(nj), os.cpu_count() or 1, max(n_cells, 1)))
 
 
-def _in_parts(fn, args_of, n, n_jobs, solver="batched"):
+def _in_parts(fn, args_of, n, n_jobs, solver="batched", ex=None):
     """``[fn(*args_of(part)) for part in parts]``: ``range(n)`` split into contiguous parts computed by
     ``n_jobs`` worker processes (:func:`map2d._forked.worker_pool`: they die with this process; ``fn`` a
     module-level function, ``args_of(part)`` its arguments for those cells only); one part per worker for
-    the batched solver (each a batch), finer chunks for the reference solver."""
+    the batched solver (each a batch), finer chunks for the reference solver. ``ex``: a pool to use (else
+    one is started here)."""
     if n == 0:
         return []
     if n_jobs <= 1:
         return [fn(*args_of(np.arange(n)))]
     per_worker = 1 if solver == "batched" else 4
     parts = [p for p in np.array_split(np.arange(n), n_jobs * per_worker) if p.size]
-    with worker_pool(n_jobs) as ex:   # workers die with this process
+    if ex is not None:
         return [f.result() for f in [ex.submit(fn, *args_of(p)) for p in parts]]
+    with worker_pool(n_jobs) as pool:   # workers die with this process
+        return [f.result() for f in [pool.submit(fn, *args_of(p)) for p in parts]]
 
 
 @dataclass
@@ -1376,50 +1380,62 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batch
     out["center_method"] = np.full(C, "", dtype=object)
     out["fit_check"] = np.full(C, "", dtype=object)
     model_maps = np.full((C,) + grid.shape, np.nan)
-    maps = np.nan_to_num(ch.spatial)
-    check = ch.z * ch.noise_sd                     # the chosen map at the peak lag
-    for kind, models in (("linear", MODELS), ("on+off", ("gaussian",))):
-        idx = np.flatnonzero(ch.kind == kind)
-        if idx.size == 0:
-            continue
-        nj = _n_workers(n_jobs, idx.size, solver)
-        rows, preds, why = [], [], []
-        for r, p, w in _in_parts(_fit_checked_chunk,
-                                 lambda part: (maps[idx[part]], grid, check[idx[part]], ch.noise_sd[idx[part]],
-                                               models, pixel_box, alpha, solver), idx.size, nj, solver):
-            rows += r
-            preds += p
-            why += w
-        for c, row, pred, reason in zip(idx, rows, preds, why):
-            out["fit_check"][c] = reason or "passed"
-            if row is not None:
-                for k in FIT_COLUMNS:
-                    out[k][c] = row[k]
-                model_maps[c] = pred
-                out["center_method"][c] = "model"
-            else:
-                x, y, _ = region_centre(ch.region_z(c), grid, ch.threshold_z)
-                out["center_x_deg"][c], out["center_y_deg"][c] = x, y
-                out["center_method"][c] = "region" if np.isfinite(x) else ""
-    field_pixel = np.full((C, 2), -1, dtype=int)
-    has = np.isfinite(out["center_x_deg"]) & np.isfinite(out["center_y_deg"])
-    if has.any():
-        r, c = grid.pixel_of(out["center_x_deg"][has], out["center_y_deg"][has])
-        field_pixel[has, 0] = np.clip(np.rint(r), 0, grid.ny - 1).astype(int)
-        field_pixel[has, 1] = np.clip(np.rint(c), 0, grid.nx - 1).astype(int)
-    overlap = np.full(C, np.nan)
-    if result.stimulus == "sparse":
-        cells = np.flatnonzero(result.peak_lag_index >= 0)
-        nj = _n_workers(n_jobs, cells.size, solver)
-        li = result.peak_lag_index[cells]
+    # one pool of worker processes for every stage below (started when first needed): fewer forks
+    with contextlib.ExitStack() as stack:
+        pools = {}
 
-        def args_of(part):     # the peak-lag ON and OFF maps of these cells only
-            c, lag = cells[part], li[part]
-            return (result.on[c, lag], result.off[c, lag], result.on_z[c, lag], result.off_z[c, lag], grid,
-                    ch.threshold_z, solver)
+        def pool_for(nj):
+            if nj <= 1:
+                return None
+            if "ex" not in pools:
+                pools["ex"] = stack.enter_context(worker_pool(nj))
+            return pools["ex"]
 
-        parts = _in_parts(_overlaps, args_of, cells.size, nj, solver)
-        overlap[cells] = np.concatenate(parts) if parts else []
+        maps = np.nan_to_num(ch.spatial)
+        check = ch.z * ch.noise_sd                     # the chosen map at the peak lag
+        for kind, models in (("linear", MODELS), ("on+off", ("gaussian",))):
+            idx = np.flatnonzero(ch.kind == kind)
+            if idx.size == 0:
+                continue
+            nj = _n_workers(n_jobs, idx.size, solver)
+            rows, preds, why = [], [], []
+            for r, p, w in _in_parts(_fit_checked_chunk,
+                                     lambda part: (maps[idx[part]], grid, check[idx[part]], ch.noise_sd[idx[part]],
+                                                   models, pixel_box, alpha, solver), idx.size, nj, solver,
+                                     pool_for(nj)):
+                rows += r
+                preds += p
+                why += w
+            for c, row, pred, reason in zip(idx, rows, preds, why):
+                out["fit_check"][c] = reason or "passed"
+                if row is not None:
+                    for k in FIT_COLUMNS:
+                        out[k][c] = row[k]
+                    model_maps[c] = pred
+                    out["center_method"][c] = "model"
+                else:
+                    x, y, _ = region_centre(ch.region_z(c), grid, ch.threshold_z)
+                    out["center_x_deg"][c], out["center_y_deg"][c] = x, y
+                    out["center_method"][c] = "region" if np.isfinite(x) else ""
+        field_pixel = np.full((C, 2), -1, dtype=int)
+        has = np.isfinite(out["center_x_deg"]) & np.isfinite(out["center_y_deg"])
+        if has.any():
+            r, c = grid.pixel_of(out["center_x_deg"][has], out["center_y_deg"][has])
+            field_pixel[has, 0] = np.clip(np.rint(r), 0, grid.ny - 1).astype(int)
+            field_pixel[has, 1] = np.clip(np.rint(c), 0, grid.nx - 1).astype(int)
+        overlap = np.full(C, np.nan)
+        if result.stimulus == "sparse":
+            cells = np.flatnonzero(result.peak_lag_index >= 0)
+            nj = _n_workers(n_jobs, cells.size, solver)
+            li = result.peak_lag_index[cells]
+
+            def args_of(part):     # the peak-lag ON and OFF maps of these cells only
+                c, lag = cells[part], li[part]
+                return (result.on[c, lag], result.off[c, lag], result.on_z[c, lag], result.off_z[c, lag], grid,
+                        ch.threshold_z, solver)
+
+            parts = _in_parts(_overlaps, args_of, cells.size, nj, solver, pool_for(nj))
+            overlap[cells] = np.concatenate(parts) if parts else []
     return CellFields(choice=ch, columns=out, model_maps=model_maps, field_pixel=field_pixel,
                       onoff_overlap=overlap)
 
