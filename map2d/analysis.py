@@ -119,6 +119,36 @@ def _map_time_course(maps, patterns):
         return np.where(pp[:, None] > 0, np.einsum("clp,cp->cl", lin, p) / pp[:, None], 0.0)
 
 
+def _flashed_presentations(table, flashed, min_rows):
+    """The flashed presentations of ``table`` in onset order, on ``flashed``'s condition axes.
+
+    Returns ``(onset_s, offset_s, contrast, condition, stimulus, (n_orientations, n_sfs, n_phases))``
+    with the flat condition index ``(orientation * n_sfs + sf) * n_phases + phase`` and ``stimulus``
+    True where a presentation has contrast and sits on the axes; None with fewer than ``min_rows``
+    presentations.
+    """
+    from .gratings import flashed_rows, fold_static
+
+    rows = np.flatnonzero(flashed_rows(table))
+    rows = rows[np.argsort(table.onset_s[rows], kind="stable")]
+    if rows.size < min_rows:
+        return None
+    ori, ph = fold_static(table.orientation_deg[rows], table.phase_deg[rows])
+    sf = np.round(table.sf_cpd[rows].astype(float), 9)
+    axes = (flashed.orientations_deg, flashed.sfs_cpd, flashed.phases_deg)
+    idx = []
+    contrast = table.contrast[rows].astype(float)
+    stim = contrast > 0
+    for vals, ax in zip((ori, sf, ph), axes):
+        i = np.clip(np.searchsorted(ax, vals), 0, ax.size - 1)
+        stim &= np.isclose(ax[i], vals)
+        idx.append(i)
+    n_o, n_s, n_p = (ax.size for ax in axes)
+    cond = (idx[0] * n_s + idx[1]) * n_p + idx[2]
+    return (table.onset_s[rows].astype(float), table.offset_s[rows].astype(float), contrast, cond, stim,
+            (n_o, n_s, n_p))
+
+
 def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
     """Noise variance of each cell's measured flashed-grating surface, from single presentations.
 
@@ -156,28 +186,14 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
         ``phase_mean``, a pair (harmonic, phase-invariant part), or None.
     """
     from .align import interval_responses
-    from .gratings import _frame_windows, flashed_rows, fold_static
+    from .gratings import _frame_windows
 
     # the presentations' responses analyze_flashed left for these responses: used (or dropped) here
     kept = flashed.__dict__.pop("_presentations", None)
-    rows = np.flatnonzero(flashed_rows(table))
-    rows = rows[np.argsort(table.onset_s[rows], kind="stable")]
-    if rows.size < 2:
+    pres = _flashed_presentations(table, flashed, min_rows=2)
+    if pres is None:
         return None
-    onset = table.onset_s[rows].astype(float)
-    offset = table.offset_s[rows].astype(float)
-    contrast = table.contrast[rows].astype(float)
-    ori, ph = fold_static(table.orientation_deg[rows], table.phase_deg[rows])
-    sf = np.round(table.sf_cpd[rows].astype(float), 9)
-    axes = (flashed.orientations_deg, flashed.sfs_cpd, flashed.phases_deg)
-    idx = []
-    ok = contrast > 0
-    for vals, ax in zip((ori, sf, ph), axes):
-        i = np.clip(np.searchsorted(ax, vals), 0, ax.size - 1)
-        ok &= np.isclose(ax[i], vals)
-        idx.append(i)
-    n_o, n_s, n_p = (ax.size for ax in axes)
-    cond = (idx[0] * n_s + idx[1]) * n_p + idx[2]
+    onset, offset, _, cond, ok, (n_o, n_s, n_p) = pres
     frame, end = _frame_windows(onset, offset)
     L = flashed.lags_s.size
     if not np.isclose(frame, flashed.frame_s):
@@ -281,30 +297,17 @@ def flashed_signal_p(responses, table, flashed, n_shuffles=199, rng=None, cells=
     from scipy.stats import chi2
 
     from .align import interval_responses
-    from .gratings import _frame_windows, _lag_weights, flashed_rows, fold_static
+    from .gratings import _frame_windows, _lag_weights
 
     if int(n_shuffles) < 20:
         raise ValueError(f"n_shuffles must be >= 20, got {n_shuffles}")
     rng = np.random.default_rng(rng)
-    rows = np.flatnonzero(flashed_rows(table))
-    rows = rows[np.argsort(table.onset_s[rows], kind="stable")]
-    if rows.size < 4:
+    pres = _flashed_presentations(table, flashed, min_rows=4)
+    if pres is None:
         return None
-    onset = table.onset_s[rows].astype(float)
-    offset = table.offset_s[rows].astype(float)
-    contrast = table.contrast[rows].astype(float)
-    ori, ph = fold_static(table.orientation_deg[rows], table.phase_deg[rows])
-    sf = np.round(table.sf_cpd[rows].astype(float), 9)
-    axes = (flashed.orientations_deg, flashed.sfs_cpd, flashed.phases_deg)
-    idx = []
-    stim = contrast > 0
-    for vals, ax in zip((ori, sf, ph), axes):
-        i = np.clip(np.searchsorted(ax, vals), 0, ax.size - 1)
-        stim &= np.isclose(ax[i], vals)
-        idx.append(i)
-    n_o, n_s, n_p = (ax.size for ax in axes)
+    onset, offset, contrast, cond, stim, (n_o, n_s, n_p) = pres
     n_c = n_o * n_s * n_p
-    cond = np.where(stim, (idx[0] * n_s + idx[1]) * n_p + idx[2], n_c)     # n_c: the blanks
+    cond = np.where(stim, cond, n_c)     # n_c: the blanks
     frame, end = _frame_windows(onset, offset)
     L = flashed.lags_s.size
     if not np.isclose(frame, flashed.frame_s) or L == 0:
