@@ -681,19 +681,25 @@ def test_drifting_f1_f0_of_traces_uses_each_cells_own_indicator_decay():
     np.testing.assert_allclose(own.cell_tau_s, taus)
 
 
-def _unmodulated_and_silent_spikes(seed=1, n_mod=60, n_un=40):
-    """Drifting trials (8 directions x 2 SFs x 5 repeats, 2 s at 2 Hz, 1-s gaps) and Poisson spikes:
-    ``n_mod`` cells driven alike by every grating without modulation (4 -> 8 spikes/s during trials,
-    true F1/F0 = 0) and ``n_un`` cells that ignore the stimulus (4 spikes/s throughout)."""
-    rng = np.random.default_rng(seed)
-    cond = [(d, s) for d in np.arange(8) * 45.0 for s in (0.04, 0.08)] * 5
+def _drifting_trials(rng, repeats):
+    """Drifting trials of 8 directions x 2 SFs (0.04, 0.08 cpd), ``repeats`` each in random order, 2 s
+    at 2 Hz with 1-s gaps from t = 1 s. Returns the table, the onsets and the recording's length."""
+    cond = [(d, s) for d in np.arange(8) * 45.0 for s in (0.04, 0.08)] * repeats
     order = rng.permutation(len(cond))
     n = len(cond)
     on = 1.0 + np.arange(n) * 3.0
     table = GratingTable.from_columns(onset_s=on, offset_s=on + 2.0, orientation_deg=[cond[i][0] for i in order],
                                       sf_cpd=[cond[i][1] for i in order], phase_deg=np.zeros(n),
                                       contrast=np.ones(n), tf_hz=np.full(n, 2.0))
-    total = on[-1] + 4.0
+    return table, on, on[-1] + 4.0
+
+
+def _unmodulated_and_silent_spikes(seed=1, n_mod=60, n_un=40):
+    """Drifting trials (8 directions x 2 SFs x 5 repeats, 2 s at 2 Hz, 1-s gaps) and Poisson spikes:
+    ``n_mod`` cells driven alike by every grating without modulation (4 -> 8 spikes/s during trials,
+    true F1/F0 = 0) and ``n_un`` cells that ignore the stimulus (4 spikes/s throughout)."""
+    rng = np.random.default_rng(seed)
+    table, on, total = _drifting_trials(rng, 5)
     times, cells = [], []
     for c in range(n_mod + n_un):
         t = rng.uniform(0, total, rng.poisson(4.0 * total))
@@ -741,14 +747,7 @@ def _modulated_spikes(depths, n_each, repeats=5, seed=3):
     spontaneous 4 spikes/s: F0 = 4, F1 = 4 m, so the true F1/F0 is the depth ``m`` (Fourier series).
     ``n_each`` cells per depth; times drawn by thinning a 24-spikes/s Poisson process."""
     rng = np.random.default_rng(seed)
-    cond = [(d, s) for d in np.arange(8) * 45.0 for s in (0.04, 0.08)] * repeats
-    order = rng.permutation(len(cond))
-    n = len(cond)
-    on = 1.0 + np.arange(n) * 3.0
-    table = GratingTable.from_columns(onset_s=on, offset_s=on + 2.0, orientation_deg=[cond[i][0] for i in order],
-                                      sf_cpd=[cond[i][1] for i in order], phase_deg=np.zeros(n),
-                                      contrast=np.ones(n), tf_hz=np.full(n, 2.0))
-    total = on[-1] + 4.0
+    table, on, total = _drifting_trials(rng, repeats)
     m = np.repeat(np.asarray(depths, float), n_each)
     counts = rng.poisson(24.0 * total, m.size)
     cell = np.repeat(np.arange(m.size), counts)
