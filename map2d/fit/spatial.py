@@ -1138,6 +1138,13 @@ MIN_SIGNAL_EXPLAINED = 0.5
 #: grid's edge trades its envelope centre against frequency and phase and read 0.4-2.6 pixels off with
 #: intervals of +-3 to +-14 pixels (held-out edge sessions, docs/validation.md).
 MAX_CENTRE_HALF_WIDTH_PIXELS = 1.0
+#: Largest BIC by which a model may trail the best-ranked one and still stand in for it when that one is
+#: rejected: 10, beyond which the evidence against it is "very strong" (Kass & Raftery 1995, J Am Stat
+#: Assoc 90:773). A model the data decisively reject does not describe the map, and its centre is not the
+#: field's: on the held-out sessions (seeds 0-9) a difference of Gaussians trailing a rejected Gabor by
+#: 36-119 placed weak Gabors cut by the grid's edge or thresholded 0.6-1.4 pixels off, their significant
+#: regions 0.01-0.31 pixel (benchmarks/centre_errors.py).
+MAX_FALLBACK_BIC = 10.0
 
 
 def _widths(fit: SpatialFit):
@@ -1229,6 +1236,9 @@ def fit_check(fit: SpatialFit, map_yx, grid: Grid, noise_sd, alpha: float = 0.01
 def fit_checked(map_yx, grid: Grid, check_map, check_sd, models=MODELS, alpha: float = 0.01):
     """Fit every model and keep the best (by BIC) that earns its place (:func:`fit_check`).
 
+    A model ranked below a rejected one is taken only within :data:`MAX_FALLBACK_BIC` of the best-ranked
+    model's BIC; beyond it none is accepted (the caller then locates the field by its region).
+
     Parameters
     ----------
     map_yx : array_like (ny, nx)
@@ -1258,6 +1268,8 @@ def _checked_choice(fits, models, check_map, grid, check_sd, alpha):
     ranked = sorted((m for m in models if np.isfinite(bic[m])), key=lambda m: bic[m])
     first = "not fitted"
     for i, m in enumerate(ranked):
+        if bic[m] - bic[ranked[0]] > MAX_FALLBACK_BIC:
+            break                              # decisively worse than a rejected model: not the map's shape
         why = fit_check(fits[m], check_map, grid, check_sd, alpha)
         if not why:
             out = fits[m]
