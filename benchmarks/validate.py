@@ -9,7 +9,7 @@ flashed gratings, the agreement of map and gratings and the linearity verdict.
 
 Usage (from the repository root)::
 
-    python benchmarks/validate.py               # 5 seeds per regime, rewrites docs/validation.md + .png
+    python benchmarks/validate.py               # 10 seeds per regime, rewrites docs/validation.md + .png
     python benchmarks/validate.py --seeds 2 --out /tmp/check
 """
 
@@ -229,7 +229,7 @@ def figure(rows, spacing, path):
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--seeds", type=int, default=5, help="seeds per regime (0 .. n-1)")
+    ap.add_argument("--seeds", type=int, default=10, help="seeds per regime (0 .. n-1)")
     ap.add_argument("--out", default=str(ROOT / "docs"), help="folder for validation.md and validation.png")
     a = ap.parse_args(argv)
     seeds = list(range(a.seeds))

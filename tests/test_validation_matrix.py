@@ -45,7 +45,7 @@ def test_linear_cells_within_a_third_of_a_pixel(heldout_matrix):
     # (center_method 'region'): a weak Gabor cut by the grid's edge, whose fits' centre intervals span
     # +-1 to +-14 pixels across the cut and whose significant region is one-sided (its side lobe beyond
     # the edge is missing), so its centroid is pulled inward (seed 0: 0.51 pixel, the largest over
-    # seeds 0-4, docs/validation.md). Those within 0.6 pixel.
+    # seeds 0-9, docs/validation.md). Those within 0.6 pixel.
     n = 0
     for name, res, r in _driven(heldout_matrix):
         if r["cls"] == "linear" and r["responsive"]:
