@@ -17,13 +17,27 @@ __all__ = ["interval_responses", "cell_index", "spikes_in_intervals"]
 
 def cell_index(spikes: Spikes) -> np.ndarray:
     """Row index (into ``spikes.cell_ids``) of each spike."""
-    ids = spikes.cell_ids
+    return _rows_of(spikes.cell_ids, spikes.cell)
+
+
+def _rows_of(ids, cell):
+    """``numpy.searchsorted(ids, cell)``, by a subtraction for consecutive ids and by a table of the
+    searches for every id in their range when that range is not much larger than the ids (the same
+    numbers, without a binary search per spike)."""
     if ids.size and ids[-1] - ids[0] == ids.size - 1:         # consecutive ids: no search needed
-        return spikes.cell - ids[0]
-    return np.searchsorted(ids, spikes.cell)
+        return cell - ids[0]
+    if ids.size and cell.size > 4 * ids.size:
+        lo, hi = int(ids.min()), int(ids.max())
+        if hi - lo <= 4 * ids.size + 1024:
+            table = np.searchsorted(ids, np.arange(lo, hi + 1))
+            inside = (cell >= lo) & (cell <= hi)
+            if inside.all():
+                return table[cell - lo]
+            return np.where(inside, table[np.clip(cell, lo, hi) - lo], np.searchsorted(ids, cell))
+    return np.searchsorted(ids, cell)
 
 
-def spikes_in_intervals(spikes: Spikes, starts, ends) -> tuple[np.ndarray, np.ndarray]:
+def spikes_in_intervals(spikes: Spikes, starts, ends, return_index: bool = False):
     """Interval and cell row (:func:`cell_index`) of every spike inside an interval.
 
     A spike at ``t`` is in interval ``k``, the last one with ``starts[k] <= t``, when ``t < ends[k]``;
@@ -32,18 +46,30 @@ def spikes_in_intervals(spikes: Spikes, starts, ends) -> tuple[np.ndarray, np.nd
     Returns
     -------
     (numpy.ndarray, numpy.ndarray)
-        Interval index and cell row per spike kept, in the spikes' order.
+        Interval index and cell row per spike kept, in the spikes' order; with ``return_index`` also
+        the positions of those spikes in ``spikes`` (an index array or a slice).
     """
     t = spikes.time_s
-    if starts.size and np.array_equal(ends[:-1], starts[1:]) and np.all(t[1:] >= t[:-1]):
-        # back-to-back intervals (stimulus frames) and sorted spikes: one slice holds every spike
-        # inside, and no per-spike check against the interval's end is needed
-        a, b = np.searchsorted(t, [starts[0], ends[-1]], side="left")
-        return np.searchsorted(starts, t[a:b], side="right") - 1, cell_index(spikes)[a:b]
+    if starts.size and t.size and np.all(t[1:] >= t[:-1]):
+        if np.array_equal(ends[:-1], starts[1:]):
+            # back-to-back intervals (stimulus frames) and sorted spikes: one slice holds every spike
+            # inside, and no per-spike check against the interval's end is needed
+            a, b = np.searchsorted(t, [starts[0], ends[-1]], side="left")
+            out = (np.searchsorted(starts, t[a:b], side="right") - 1, _rows_of(spikes.cell_ids, spikes.cell[a:b]))
+            return out + (slice(a, b),) if return_index else out
+        if np.all(ends[:-1] <= starts[1:]) and np.all(ends >= starts):
+            # intervals apart (trials) and sorted spikes: each interval's spikes are one run of them
+            a = np.searchsorted(t, starts, side="left")
+            counts = np.searchsorted(t, ends, side="left") - a
+            k = np.repeat(np.arange(starts.size), counts)
+            idx = np.arange(k.size) + np.repeat(a - (np.cumsum(counts) - counts), counts)
+            out = (k, _rows_of(spikes.cell_ids, spikes.cell[idx]))
+            return out + (idx,) if return_index else out
     k = np.searchsorted(starts, t, side="right") - 1
     ok = k >= 0
     ok[ok] &= t[ok] < ends[k[ok]]
-    return k[ok], cell_index(spikes)[ok]
+    out = (k[ok], cell_index(spikes)[ok])
+    return out + (np.flatnonzero(ok),) if return_index else out
 
 
 def _check_intervals(starts_s, ends_s):

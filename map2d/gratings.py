@@ -51,7 +51,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import sparse, stats
 
-from .align import cell_index, interval_responses
+from .align import cell_index, interval_responses, spikes_in_intervals
 from .contract import GratingTable, Spikes, Traces
 from .geometry import wave_vector
 from .maps import map_lags
@@ -682,12 +682,9 @@ def _spike_f1(spikes: Spikes, onset, end, tf):
     t = spikes.time_s
     if t.size == 0 or n == 0:
         return out
-    k = np.searchsorted(onset, t, side="right") - 1
-    ok = k >= 0
-    ok[ok] &= t[ok] < end[k[ok]]
-    k = k[ok]
-    theta = 2 * np.pi * tf[k] * (t[ok] - onset[k])
-    idx = cell_index(spikes)[ok] * n + k
+    k, rows, pos = spikes_in_intervals(spikes, onset, end, return_index=True)
+    theta = 2 * np.pi * tf[k] * (t[pos] - onset[k])
+    idx = rows * n + k
     re = np.bincount(idx, weights=np.cos(theta), minlength=n_cells * n)
     im = np.bincount(idx, weights=-np.sin(theta), minlength=n_cells * n)
     return ((re + 1j * im).reshape(n_cells, n)) * (2.0 / (end - onset))[None, :]
@@ -1041,6 +1038,11 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
             raise ValueError(f"latency_s must be one number or one per cell ({n_resp}), got shape {lat.shape}")
         if np.any(lat[np.isfinite(lat)] < 0) or np.any(np.isinf(lat)):
             raise ValueError("latency_s must be >= 0 seconds")
+    if isinstance(responses, Spikes):
+        # only the spikes of the drifting block are read (trials, their latency shift, spontaneous
+        # windows): every pass below touches those alone, the same spikes in the same order
+        responses = _drifting_spikes(responses, table, rows,
+                                     max(float(max_latency_s), float(np.nanmax(lat, initial=0.0))))
     if np.isnan(lat).any():
         # estimate where not given: the cells responsive with unshifted windows (so the choice of the
         # latency cannot make a cell responsive) get the lag that maximises their drifting response
@@ -1096,9 +1098,13 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         # every cell's spikes moved back by its latency share one set of windows
         moved = responses
         if np.any(lat != 0):
-            t_m = responses.time_s - lat[cell_index(responses)]
-            o = np.argsort(t_m, kind="stable")
-            moved = Spikes(time_s=t_m[o], cell=responses.cell[o], cell_ids=responses.cell_ids)
+            t = responses.time_s
+            t_m = t - lat[cell_index(responses)]
+            if np.all(t[1:] >= t[:-1]):   # each cell's spikes stay in their order: no sort needed
+                moved = Spikes(time_s=t_m, cell=responses.cell, cell_ids=responses.cell_ids)
+            else:
+                o = np.argsort(t_m, kind="stable")
+                moved = Spikes(time_s=t_m[o], cell=responses.cell[o], cell_ids=responses.cell_ids)
         raw = interval_responses(moved, onset, onset + window).astype(float)
         trial_f1 = _spike_f1(moved, onset, onset + window, tf) * np.exp(-2j * np.pi * tf[None, :] * lat[:, None])
     else:                                                   # traces: cells sharing a latency together
@@ -1182,24 +1188,8 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
 
     # direction preference and DSI at the preferred SF and TF
     resp4 = response.reshape(shape)
-    pref_dir = np.full(n_cells, np.nan)
-    dsi = np.full(n_cells, np.nan)
-    dsi_lo, dsi_hi = np.full(n_cells, np.nan), np.full(n_cells, np.nan)
-    rng_boot = np.random.default_rng(rng)
-    for c in np.flatnonzero(ok):
-        curve = resp4[c, :, pref_idx[c, 1], pref_idx[c, 2]]
-        if not np.isfinite(curve).any():
-            continue
-        i = int(np.nanargmax(curve))
-        pref_dir[c] = dirs[i]
-        opp = np.flatnonzero(np.abs(np.mod(dirs - dirs[i] - 180.0 + 180.0, 360.0) - 180.0) < 1e-6)
-        if opp.size and np.isfinite(curve[opp[0]]) and curve[i] > 0:
-            rn = max(float(curve[opp[0]]), 0.0)
-            dsi[c] = (curve[i] - rn) / (curve[i] + rn)
-            st = pref_idx[c, 1] * n_t + pref_idx[c, 2]
-            dsi_lo[c], dsi_hi[c] = _dsi_bootstrap(trial_f0[c], trial_f1[c], cond, i * n_s * n_t + st,
-                                                  int(opp[0]) * n_s * n_t + st, bool(simple[c]), dsi[c],
-                                                  int(n_boot), rng_boot)
+    pref_dir, dsi, dsi_lo, dsi_hi = _direction_selectivity(resp4, pref_idx, dirs, trial_f0, trial_f1, cond, simple,
+                                                           int(n_boot), np.random.default_rng(rng))
 
     # significance: F0 ANOVA and F1 vector-mean F test
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -1247,6 +1237,27 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         f1_f0_ci_low=ci_lo, f1_f0_ci_high=ci_hi, f1_f0_p_simple=p_simple, grating_class=grating_class,
         dsi_ci_low=dsi_lo, dsi_ci_high=dsi_hi,
         cell_tau_s=cell_tau, skip_cycles=int(skip_cycles), latency_s=lat)
+
+
+def _drifting_spikes(spikes: Spikes, table: GratingTable, rows, max_shift_s: float) -> Spikes:
+    """The spikes a drifting analysis can read: from the first onset of the trials ``rows`` or of the
+    blanks outside flashed sequences (spontaneous windows, :func:`_spontaneous`) to their last offset
+    plus ``max_shift_s`` (latency) and a second of margin, in their order. A slice when the spike
+    times are sorted (the usual case), else a mask."""
+    use = np.zeros(len(table), bool)
+    use[rows] = True
+    use |= table.is_blank & ~flashed_rows(table)
+    t0 = float(np.min(table.onset_s[use]))
+    t1 = float(np.max(table.offset_s[use])) + max_shift_s + 1.0
+    t = spikes.time_s
+    if t.size and np.all(t[1:] >= t[:-1]):
+        a, b = np.searchsorted(t, [t0, t1], side="left")
+        if a == 0 and b == t.size:
+            return spikes
+        keep = slice(a, b)
+    else:
+        keep = (t >= t0) & (t < t1)
+    return Spikes(time_s=t[keep], cell=spikes.cell[keep], cell_ids=spikes.cell_ids)
 
 
 def _subset(responses, sel):
@@ -1331,12 +1342,13 @@ def drifting_latency(responses: Spikes | Traces, table: GratingTable, cell_tau_s
         u = t - on[np.maximum(k, 0)]
         ok = (k >= 0) & (u < n_bins * step_s)
         cell, k, u = cell_index(responses)[ok], k[ok], u[ok]
-        order = np.argsort(cell, kind="stable")
-        cell, k, u = cell[order], k[order], u[order]
+        if n_cells > block:          # blocks of cells (one block: each cell's spikes in order already)
+            order = np.argsort(cell, kind="stable")
+            cell, k, u = cell[order], k[order], u[order]
         col = group[k] * n_bins + np.minimum(np.floor(u / step_s + 1e-6).astype(int), n_bins - 1)
         e1 = np.exp(-2j * np.pi * tf[k] * u) * phase_ref[k]
         for i in range(0, n_cells, block):
-            lo, up = np.searchsorted(cell, [i, i + block])
+            lo, up = np.searchsorted(cell, [i, i + block]) if n_cells > block else (0, cell.size)
             m = min(block, n_cells - i)
             flat = (cell[lo:up] - i) * size + col[lo:up]
             h0 = np.bincount(flat, minlength=m * size).reshape(m, G, n_bins).astype(float)
@@ -1368,6 +1380,36 @@ def drifting_latency(responses: Spikes | Traces, table: GratingTable, cell_tau_s
     return np.argmax(power, axis=1) * step_s
 
 
+def _direction_selectivity(resp4, pref_idx, dirs, trial_f0, trial_f1, cond, simple, n_boot, rng):
+    """Preferred direction, DSI and its interval (:func:`_dsi_bootstrap`) of every cell, at its preferred
+    SF and TF (``pref_idx``, -1: none): the direction of the largest response (``resp4`` (cells,
+    directions, SFs, TFs)) and ``(R_pref - R_opp) / (R_pref + R_opp)`` with the opposite direction's
+    response clipped at 0, where the opposite direction was shown and ``R_pref > 0``.
+    Returns ``(pref_dir, dsi, dsi_low, dsi_high)`` (cells,)."""
+    n_cells, n_d, n_s, n_t = resp4.shape
+    pref_dir, dsi, lo, hi = (np.full(n_cells, np.nan) for _ in range(4))
+    cells = np.flatnonzero(pref_idx[:, 0] >= 0)
+    curve = resp4[cells, :, pref_idx[cells, 1], pref_idx[cells, 2]]                     # (m, directions)
+    fin = np.isfinite(curve)
+    has = fin.any(axis=1)
+    i = np.argmax(np.where(fin, curve, -np.inf), axis=1)                                 # as nanargmax
+    pref_dir[cells[has]] = dirs[i[has]]
+    # the opposite of each direction shown (-1: not shown)
+    near = np.abs(np.mod(dirs[None, :] - dirs[:, None] - 180.0 + 180.0, 360.0) - 180.0) < 1e-6
+    opp_of = np.where(near.any(axis=1), np.argmax(near, axis=1), -1)
+    o = opp_of[i]
+    rows = np.arange(cells.size)
+    r_pref, r_opp = curve[rows, i], curve[rows, np.maximum(o, 0)]
+    sel = has & (o >= 0) & np.isfinite(r_opp) & (r_pref > 0)
+    rn = np.maximum(r_opp[sel], 0.0)
+    dsi[cells[sel]] = (r_pref[sel] - rn) / (r_pref[sel] + rn)
+    c = cells[sel]
+    st = pref_idx[c, 1] * n_t + pref_idx[c, 2]
+    lo[c], hi[c] = _dsi_bootstrap(trial_f0[c], trial_f1[c], cond, i[sel] * n_s * n_t + st, o[sel] * n_s * n_t + st,
+                                  np.asarray(simple, bool)[c], dsi[c], n_boot, rng)
+    return pref_dir, dsi, lo, hi
+
+
 def _dsi_bootstrap(f0, f1, cond, pref, opp, use_f1, estimate, n_boot, rng, level=0.95):
     """95 % interval of the DSI, resampling the trials of the preferred and the opposite direction.
 
@@ -1375,35 +1417,60 @@ def _dsi_bootstrap(f0, f1, cond, pref, opp, use_f1, estimate, n_boot, rng, level
     corrected F1 for a cell whose preferred response is modulated) and the DSI with the opposite
     response clipped at 0; the interval is the union of the percentile and the basic bootstrap
     intervals (conservative, as for the circular variance; Davison & Hinkley 1997, sec. 5.2), clipped
-    to [0, 1]. NaN with fewer than 3 trials on a side or ``n_boot = 0``."""
-    if n_boot <= 0 or not np.isfinite(estimate):
-        return np.nan, np.nan
-    rs = []
-    for k in (pref, opp):
-        idx = np.flatnonzero(cond == k)
-        a0, a1 = f0[idx], f1[idx]
-        ok = np.isfinite(a0) & np.isfinite(a1)
-        a0, a1 = a0[ok], a1[ok]
-        n = a0.size
-        if n < 3:
-            return np.nan, np.nan
-        pick = rng.integers(0, n, (n_boot, n))
-        if use_f1:
-            z = a1[pick]
-            v = (z.real.var(axis=1, ddof=1) + z.imag.var(axis=1, ddof=1)) / n
-            rs.append(np.sqrt(np.maximum(np.abs(z.mean(axis=1)) ** 2 - v, 0.0)))
-        else:
-            rs.append(a0[pick].mean(axis=1))
+    to [0, 1]. NaN with fewer than 3 trials on a side or ``n_boot = 0``.
+
+    All cells at once: ``f0``, ``f1`` (cells, trials), ``pref``, ``opp`` (the two conditions), ``use_f1``,
+    ``estimate`` (cells,). The draws follow the cells in order (the preferred side, then the opposite
+    one; none after a side with too few trials), one stream ``rng``. Returns ``(low, high)`` (cells,).
+    """
+    m = f0.shape[0]
+    lo, hi = np.full(m, np.nan), np.full(m, np.nan)
+    if n_boot <= 0 or m == 0:
+        return lo, hi
+    fin = np.isfinite(f0) & np.isfinite(f1)
+    members = {k: np.flatnonzero(cond == k) for k in np.unique(np.concatenate([pref, opp]))}
+    picks = [[None, None] for _ in range(m)]              # (trial indices, draws) per cell and side
+    for c in range(m):
+        if not np.isfinite(estimate[c]):
+            continue
+        for h, k in enumerate((pref[c], opp[c])):
+            idx = members[k]
+            idx = idx[fin[c, idx]]
+            if idx.size < 3:
+                break
+            picks[c][h] = (idx, rng.integers(0, idx.size, (n_boot, idx.size)))
+    done = np.array([p[1] is not None for p in picks], bool)
+    rs = np.full((2, m, n_boot), np.nan)
+    for h in (0, 1):
+        # cells whose side has the same number of trials are resampled together
+        sizes = np.array([p[h][0].size if done[c] else 0 for c, p in enumerate(picks)])
+        for n in np.unique(sizes[done]):
+            cs = np.flatnonzero(done & (sizes == n))
+            trials = np.stack([picks[c][h][0][picks[c][h][1]] for c in cs])      # (cells, n_boot, n)
+            if use_f1[cs].any():
+                f = cs[use_f1[cs]]
+                z = f1[f[:, None, None], trials[use_f1[cs]]]
+                v = (z.real.var(axis=2, ddof=1) + z.imag.var(axis=2, ddof=1)) / n
+                rs[h, f] = np.sqrt(np.maximum(np.abs(z.mean(axis=2)) ** 2 - v, 0.0))
+            if (~use_f1[cs]).any():
+                f = cs[~use_f1[cs]]
+                rs[h, f] = f0[f[:, None, None], trials[~use_f1[cs]]].mean(axis=2)
     rp, rn = rs[0], np.maximum(rs[1], 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
         d = np.where(rp > 0, (rp - rn) / (rp + rn), np.nan)
-    d = d[np.isfinite(d)]
-    if d.size < n_boot // 2:
-        return np.nan, np.nan
+    n_fin = np.isfinite(d).sum(axis=1)
+    use = done & (n_fin >= max(1, n_boot // 2))
     a = (1.0 - level) / 2.0
-    q_lo, q_hi = np.quantile(d, [a, 1.0 - a])
-    lo, hi = min(q_lo, 2 * estimate - q_hi), max(q_hi, 2 * estimate - q_lo)
-    return float(min(max(lo, 0.0), 1.0)), float(min(max(hi, 0.0), 1.0))
+    q = np.full((2, m), np.nan)
+    whole = use & (n_fin == n_boot)
+    if whole.any():
+        q[:, whole] = np.quantile(d[whole], [a, 1.0 - a], axis=1)
+    for c in np.flatnonzero(use & ~whole):
+        q[:, c] = np.quantile(d[c][np.isfinite(d[c])], [a, 1.0 - a])
+    est = np.asarray(estimate, float)
+    lo = np.where(use, np.clip(np.minimum(q[0], 2 * est - q[1]), 0.0, 1.0), np.nan)
+    hi = np.where(use, np.clip(np.maximum(q[1], 2 * est - q[0]), 0.0, 1.0), np.nan)
+    return lo, hi
 
 
 def _f1_f0_bootstrap(trial_f0, trial_f1, cond, pooled, n_boot, rng, level=0.95):
@@ -1440,7 +1507,12 @@ def _f1_f0_bootstrap(trial_f0, trial_f1, cond, pooled, n_boot, rng, level=0.95):
         r[:, sl] = _f1_and_ratio(*_cross_validated_f1_f0(*_fold_sums(trial_f0[sl], trial_f1[sl], layout), var[sl],
                                                           scale))[1]
     a = (1.0 - level) / 2.0
-    for c in np.flatnonzero((~np.isnan(r)).sum(axis=0) >= max(1, n_boot // 2)):
+    n_ok = (~np.isnan(r)).sum(axis=0)
+    whole = n_ok == r.shape[0]                            # no NaN resample: all such cells at once
+    if whole.any():
+        lo[whole], hi[whole] = np.quantile(r[:, whole], [a, 1.0 - a], axis=0, method="inverted_cdf")
+        p[whole] = np.mean(r[:, whole] <= 1.0, axis=0)
+    for c in np.flatnonzero((n_ok >= max(1, n_boot // 2)) & ~whole):
         rc = r[~np.isnan(r[:, c]), c]
         lo[c], hi[c] = np.quantile(rc, [a, 1.0 - a], method="inverted_cdf")   # no interpolation: inf allowed
         p[c] = float(np.mean(rc <= 1.0))
