@@ -245,12 +245,23 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "`pref_orientation_deg`."),
         Column("orientation_hwhh_deg", "deg", "Orientation tuning half-width at half height (von Mises fit).",
                "common practice"),
-        Column("orientation_hwhh_ci_halfwidth_deg", "deg", "Half-width of the 95 % interval of "
-               "`orientation_hwhh_deg`."),
+        Column("orientation_hwhh_ci_low_deg", "deg", "Lower end of the 95 % interval of `orientation_hwhh_deg` "
+               "(flashed gratings: the von Mises refitted to resampled surfaces, the measured noise of each "
+               "condition; else from the fit, see `bandwidth_ci_reason`).", "Davison & Hinkley 1997"),
+        Column("orientation_hwhh_ci_high_deg", "deg", "Upper end of the 95 % interval of `orientation_hwhh_deg`.",
+               "Davison & Hinkley 1997"),
         Column("pref_sf_ci_low_cpd", "cpd", "Lower end of the 95 % interval of `pref_sf_cpd`."),
         Column("pref_sf_ci_high_cpd", "cpd", "Upper end of the 95 % interval of `pref_sf_cpd`."),
         Column("sf_bandwidth_oct", "oct", "Full SF bandwidth at half height above the baseline.", "common practice"),
-        Column("sf_bandwidth_ci_halfwidth_oct", "oct", "Half-width of the 95 % interval of `sf_bandwidth_oct`."),
+        Column("sf_bandwidth_ci_low_oct", "oct", "Lower end of the 95 % interval of `sf_bandwidth_oct` (flashed "
+               "gratings: the SF models refitted to resampled surfaces and averaged as the estimate; else from the "
+               "fit, see `bandwidth_ci_reason`).", "Davison & Hinkley 1997"),
+        Column("sf_bandwidth_ci_high_oct", "oct", "Upper end of the 95 % interval of `sf_bandwidth_oct`.",
+               "Davison & Hinkley 1997"),
+        Column("bandwidth_ci_reason", "text", "Why the interval of `orientation_hwhh_deg` or `sf_bandwidth_oct` is "
+               "empty (too few resampled surfaces gave a finite width: a wider curve than the tested range "
+               "measures) or comes from the fit (drifting gratings, or noise not measured); empty when both "
+               "are resampled."),
         Column("circular_variance", "1", "Circular variance of the orientation curve (0 one orientation, 1 untuned; "
                "flashed gratings: the noise floor of |H| removed).",
                "Ringach, Shapley & Hawken 2002"),
@@ -337,8 +348,12 @@ RENAMED = {
         ("theta", "deg"), ("rc", "deg"), ("rs", "deg"), ("gabor_orientation", "deg"), ("gabor_sf", "cpd"),
         ("gabor_phase", "deg")) for e in ("low", "high")},
     "pref_orientation_ci95_deg": "pref_orientation_ci_halfwidth_deg",
-    "orientation_hwhh_ci95_deg": "orientation_hwhh_ci_halfwidth_deg",
-    "sf_bandwidth_ci95_oct": "sf_bandwidth_ci_halfwidth_oct",
+    "orientation_hwhh_ci95_deg": "orientation_hwhh_ci_low_deg / orientation_hwhh_ci_high_deg",
+    "sf_bandwidth_ci95_oct": "sf_bandwidth_ci_low_oct / sf_bandwidth_ci_high_oct",
+    "orientation_hwhh_ci_halfwidth_deg": "orientation_hwhh_ci_low_deg / orientation_hwhh_ci_high_deg (now "
+                                         "resampled for flashed gratings, not symmetric)",
+    "sf_bandwidth_ci_halfwidth_oct": "sf_bandwidth_ci_low_oct / sf_bandwidth_ci_high_oct (now resampled for "
+                                     "flashed gratings, not symmetric)",
     "grating_signal_p": "grating_signal_p_value",
     "sf_fit_model": "sf_model",
     "sf_fit_params_model": "sf_fit_curve",

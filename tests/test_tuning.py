@@ -533,6 +533,60 @@ def test_flashed_selectivity_does_not_drift_with_recording_length():
     assert out[3.0][1]["circular_variance"][0] == pytest.approx(0.409, abs=0.005)
 
 
+@pytest.fixture(scope="module")
+def recording_lengths():
+    """The same 30 simulated cells (seed 5: simple, complex, centre-surround and unresponsive) recorded
+    with 3, 10 and 100 minutes of flashed gratings (nothing else simulated), analysed with the noise
+    variances measured; cells.csv tuning columns per length."""
+    from map2d.analysis import flashed_noise
+    from map2d.gratings import analyze_flashed
+    from map2d.simulate import simulate_session
+
+    out = {}
+    for minutes in (3.0, 10.0, 100.0):
+        s, _ = simulate_session(n_cells=30, minutes=0, responses="spikes", seed=5, flashed_minutes=minutes,
+                                repeats=0)
+        fl = analyze_flashed(s.responses, s.gratings, rng=0, n_shuffles=0)
+        fl.responsive[:] = True
+        fl.harmonic_noise_var, fl.phase_mean_noise_var = flashed_noise(s.responses, s.gratings, fl,
+                                                                       phase_mean=True)
+        out[minutes] = {k: np.asarray(v) for k, v in grating_tuning_columns(fl, None, n_jobs=1).items()}
+    return out
+
+
+@pytest.mark.parametrize("name,unit,n_min", [("circular_variance", "", 50), ("osi", "", 50),
+                                             ("orientation_hwhh", "_deg", 25), ("sf_bandwidth", "_oct", 35)])
+def test_selectivity_of_3_and_10_minutes_covers_100_minutes(recording_lengths, name, unit, n_min):
+    """Issue 14, item 5, for every selectivity column: the 100-minute value of each cell against the
+    95 % intervals of the same cell recorded for 3 and 10 minutes. The intervals resample the measured
+    noise of each condition (circular variance, OSI) and, for the orientation HWHH and the SF bandwidth,
+    refit the models to every resampled surface (before, the bandwidth intervals came from the fit's
+    covariance). Measured (seed 5, 30 cells): circular variance 54/60, OSI 59/60, HWHH 27/31, SF
+    bandwidth 36/42 of the 3- and 10-minute intervals hold the 100-minute value. The 100-minute value
+    has its own noise (about a third, a sixth of the 10-, 3-minute spread), so about 94 % is expected
+    of calibrated intervals; on 80 other cells (seed 6) the shares were 91, 94, 89 and 91 % (the
+    fit-based intervals of before: HWHH 91 %, SF bandwidth 90 %, so resampling widened the SF
+    intervals a little without a measurable gain in coverage). Cells whose interval is empty (too few
+    resampled surfaces with a finite width) say so in ``bandwidth_ci_reason``."""
+    long = recording_lengths[100.0][name + unit].astype(float)
+    held, n = 0, 0
+    for minutes in (3.0, 10.0):
+        c = recording_lengths[minutes]
+        est = c[name + unit].astype(float)
+        lo, hi = c[f"{name}_ci_low{unit}"].astype(float), c[f"{name}_ci_high{unit}"].astype(float)
+        ok = np.isfinite(long) & np.isfinite(lo)
+        assert np.all((lo[ok] <= est[ok]) & (est[ok] <= hi[ok]))
+        held += int(np.sum((lo[ok] <= long[ok]) & (long[ok] <= hi[ok])))
+        n += int(ok.sum())
+        if unit:
+            # an empty interval of a finite width always comes with its reason
+            empty = np.isfinite(est) & ~np.isfinite(lo)
+            assert all(("finite in only" in r) for r in c["bandwidth_ci_reason"][empty])
+            assert not any("from the fit" in r for r in c["bandwidth_ci_reason"])      # all resampled
+    assert n >= n_min                                   # most cells have their intervals
+    assert held >= 0.8 * n, (name, held, n)
+
+
 # ----------------------------------------------------------------------------------------------
 # all cells' fits advanced together (map2d.fit.tuning._levenberg_marquardt)
 # ----------------------------------------------------------------------------------------------
@@ -547,20 +601,21 @@ def test_batched_tuning_columns_agree_with_scipy_fits_within_their_intervals():
     ids = np.sort(fl.cell_ids)
     ref = _tuning_chunk(_flashed_view(fl), _drifting_view(dr), ids, solver="scipy")
     got = _tuning_chunk(_flashed_view(fl), _drifting_view(dr), ids, solver="batch")
-    for k in ("tuning_source", "sf_model", "sf_fit_curve", "grating_class"):
+    text = ("tuning_source", "sf_model", "sf_fit_curve", "grating_class", "bandwidth_ci_reason")
+    for k in text:
         assert got[k] == ref[k], k
-    col = {k: (np.array(ref[k], float), np.array(got[k], float)) for k in ref
-           if k not in ("tuning_source", "sf_model", "sf_fit_curve", "grating_class")}
+    col = {k: (np.array(ref[k], float), np.array(got[k], float)) for k in ref if k not in text}
     for k, (a, b) in col.items():
         np.testing.assert_array_equal(np.isnan(a), np.isnan(b), err_msg=k)
-    pairs = [("pref_orientation_deg", "pref_orientation_ci_halfwidth_deg"),
-             ("orientation_hwhh_deg", "orientation_hwhh_ci_halfwidth_deg"),
-             ("sf_bandwidth_oct", "sf_bandwidth_ci_halfwidth_oct")]
-    for value, half in pairs:
-        a, b = col[value]
+    a, b = col["pref_orientation_deg"]
+    ok = np.isfinite(a)
+    assert ok.sum() >= 10
+    assert np.all(np.abs(b[ok] - a[ok]) <= col["pref_orientation_ci_halfwidth_deg"][0][ok])
+    for value, unit in (("orientation_hwhh", "deg"), ("sf_bandwidth", "oct")):
+        a, b = col[f"{value}_{unit}"]
         ok = np.isfinite(a)
         assert ok.sum() >= 10, value                                     # the fits did run
-        assert np.all(np.abs(b[ok] - a[ok]) <= col[half][0][ok]), value
+        assert np.all((b[ok] >= col[f"{value}_ci_low_{unit}"][0][ok]) & (b[ok] <= col[f"{value}_ci_high_{unit}"][0][ok]))
     a, b = col["pref_sf_cpd"]
     ok = np.isfinite(a)
     assert ok.sum() >= 10
