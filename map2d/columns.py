@@ -247,7 +247,7 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "common practice"),
         Column("orientation_hwhh_ci_low_deg", "deg", "Lower end of the 95 % interval of `orientation_hwhh_deg` "
                "(flashed gratings: the von Mises refitted to resampled surfaces, the measured noise of each "
-               "condition; else from the fit, see `bandwidth_ci_reason`).", "Davison & Hinkley 1997"),
+               "condition; else from the fit, see `bandwidth_interval_reason`).", "Davison & Hinkley 1997"),
         Column("orientation_hwhh_ci_high_deg", "deg", "Upper end of the 95 % interval of `orientation_hwhh_deg`.",
                "Davison & Hinkley 1997"),
         Column("pref_sf_ci_low_cpd", "cpd", "Lower end of the 95 % interval of `pref_sf_cpd`."),
@@ -255,10 +255,10 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("sf_bandwidth_oct", "oct", "Full SF bandwidth at half height above the baseline.", "common practice"),
         Column("sf_bandwidth_ci_low_oct", "oct", "Lower end of the 95 % interval of `sf_bandwidth_oct` (flashed "
                "gratings: the SF models refitted to resampled surfaces and averaged as the estimate; else from the "
-               "fit, see `bandwidth_ci_reason`).", "Davison & Hinkley 1997"),
+               "fit, see `bandwidth_interval_reason`).", "Davison & Hinkley 1997"),
         Column("sf_bandwidth_ci_high_oct", "oct", "Upper end of the 95 % interval of `sf_bandwidth_oct`.",
                "Davison & Hinkley 1997"),
-        Column("bandwidth_ci_reason", "text", "Why the interval of `orientation_hwhh_deg` or `sf_bandwidth_oct` is "
+        Column("bandwidth_interval_reason", "text", "Why the interval of `orientation_hwhh_deg` or `sf_bandwidth_oct` is "
                "empty (too few resampled surfaces gave a finite width: a wider curve than the tested range "
                "measures) or comes from the fit (drifting gratings, or noise not measured); empty when both "
                "are resampled."),

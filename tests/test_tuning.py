@@ -567,7 +567,7 @@ def test_selectivity_of_3_and_10_minutes_covers_100_minutes(recording_lengths, n
     of calibrated intervals; on 80 other cells (seed 6) the shares were 91, 94, 89 and 91 % (the
     fit-based intervals of before: HWHH 91 %, SF bandwidth 90 %, so resampling widened the SF
     intervals a little without a measurable gain in coverage). Cells whose interval is empty (too few
-    resampled surfaces with a finite width) say so in ``bandwidth_ci_reason``."""
+    resampled surfaces with a finite width) say so in ``bandwidth_interval_reason``."""
     long = recording_lengths[100.0][name + unit].astype(float)
     held, n = 0, 0
     for minutes in (3.0, 10.0):
@@ -581,8 +581,8 @@ def test_selectivity_of_3_and_10_minutes_covers_100_minutes(recording_lengths, n
         if unit:
             # an empty interval of a finite width always comes with its reason
             empty = np.isfinite(est) & ~np.isfinite(lo)
-            assert all(("finite in only" in r) for r in c["bandwidth_ci_reason"][empty])
-            assert not any("from the fit" in r for r in c["bandwidth_ci_reason"])      # all resampled
+            assert all(("finite in only" in r) for r in c["bandwidth_interval_reason"][empty])
+            assert not any("from the fit" in r for r in c["bandwidth_interval_reason"])      # all resampled
     assert n >= n_min                                   # most cells have their intervals
     assert held >= 0.8 * n, (name, held, n)
 
@@ -601,7 +601,7 @@ def test_batched_tuning_columns_agree_with_scipy_fits_within_their_intervals():
     ids = np.sort(fl.cell_ids)
     ref = _tuning_chunk(_flashed_view(fl), _drifting_view(dr), ids, solver="scipy")
     got = _tuning_chunk(_flashed_view(fl), _drifting_view(dr), ids, solver="batch")
-    text = ("tuning_source", "sf_model", "sf_fit_curve", "grating_class", "bandwidth_ci_reason")
+    text = ("tuning_source", "sf_model", "sf_fit_curve", "grating_class", "bandwidth_interval_reason")
     for k in text:
         assert got[k] == ref[k], k
     col = {k: (np.array(ref[k], float), np.array(got[k], float)) for k in ref if k not in text}

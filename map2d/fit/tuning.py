@@ -1471,7 +1471,7 @@ TUNING_COLUMNS = (
     "cell", "grating_responsive", "tuning_source", "pref_orientation_deg", "pref_orientation_ci_halfwidth_deg",
     "orientation_hwhh_deg", "orientation_hwhh_ci_low_deg", "orientation_hwhh_ci_high_deg", "pref_sf_cpd",
     "pref_sf_ci_low_cpd", "pref_sf_ci_high_cpd", "sf_bandwidth_oct", "sf_bandwidth_ci_low_oct",
-    "sf_bandwidth_ci_high_oct", "bandwidth_ci_reason", "circular_variance",
+    "sf_bandwidth_ci_high_oct", "bandwidth_interval_reason", "circular_variance",
     "circular_variance_ci_low", "circular_variance_ci_high", "osi", "osi_ci_low", "osi_ci_high",
     "pref_direction_deg", "dsi", "dsi_ci_low", "dsi_ci_high", "f1_f0", "f1_f0_ci_low", "f1_f0_ci_high",
     "f1_f0_simple_p_value",
@@ -1532,7 +1532,7 @@ def _fit_based(row, name, unit, half, upper=np.inf):
     row[f"{name}_ci_low_{unit}"] = float(max(t - half, 0.0)) if ok else float("nan")
     row[f"{name}_ci_high_{unit}"] = float(min(t + half, upper)) if ok else float("nan")
     if ok:
-        row["bandwidth_ci_reason"] = "intervals from the fit (not resampled)"
+        row["bandwidth_interval_reason"] = "intervals from the fit (not resampled)"
 
 
 def _near_rows(theta_deg, ofit):
@@ -1730,11 +1730,14 @@ def _selectivity_interval(fl, i, seed, estimates, n_draws=N_SELECTIVITY_DRAWS, l
     return tuple(_selectivity_intervals(fl, [i], [seed], [estimates], n_draws, level)[0])
 
 
-def _selectivity_intervals(fl, rows, seeds, estimates, n_draws=N_SELECTIVITY_DRAWS, level=0.95, block=64):
+def _selectivity_intervals(fl, rows, seeds, estimates, n_draws=N_SELECTIVITY_DRAWS, level=0.95, block=64,
+                           then=None):
     """:func:`_selectivity_interval` of the cells at ``rows`` of ``fl`` at once: each cell's draws from
     its own seed (:func:`_draw_surfaces`), the rank-1 profiles of all draws of ``block`` cells at a time
     in one stacked computation, both indices for all of them as array operations. Returns an array
-    (cells, 4): circular variance low, high, OSI low, high."""
+    (cells, 4): circular variance low, high, OSI low, high. ``then(part, resp)``, if given, is called
+    with each block's positions in ``rows`` and its drawn surfaces (the draws made once for more
+    intervals, :func:`_bandwidth_intervals`)."""
     out = np.full((len(rows), 4), np.nan)
     which = [n for n, i in enumerate(rows) if _has_noise(fl, i)]
     th = np.asarray(fl.orientations_deg, float)
@@ -1742,6 +1745,8 @@ def _selectivity_intervals(fl, rows, seeds, estimates, n_draws=N_SELECTIVITY_DRA
     for start in range(0, len(which), block):                 # cells in blocks (memory)
         part = which[start:start + block]
         resp = _draw_surfaces(fl, [rows[n] for n in part], [seeds[n] for n in part], n_draws)
+        if then is not None:
+            then(part, resp)
         prof, some = _rank1_many(resp)                       # (cells, draws, O)
         cvs = np.where(some, _circular_variance_rows(th, prof), np.nan)
         osis = np.where(some, _osi_rows(th, prof), np.nan)
@@ -1982,80 +1987,86 @@ def _bandwidth_intervals(fl, cells, n_draws=N_BANDWIDTH_DRAWS, level=0.95, block
     """
     out = np.full((len(cells), 4), np.nan)
     fin = np.zeros((len(cells), 2), int)
-    th_all = np.asarray(fl.orientations_deg, float)
-    f_all = np.asarray(fl.sfs_cpd, float)
-    good_f = np.isfinite(f_all) & (f_all > 0)
     which = [n for n, c in enumerate(cells) if (c[2] is not None or c[3] is not None) and _has_noise(fl, c[0])]
     for start in range(0, len(which), block):
         part = which[start:start + block]
         resp = _draw_surfaces(fl, [cells[n][0] for n in part], [cells[n][1] for n in part], N_SELECTIVITY_DRAWS,
                               n_draws)                                   # (cells, draws, O, S)
-        prof_o, prof_s, some = _rank1_many(resp, sf=True)
-        tasks = {}                  # kind -> list of (n, slot, model index, task)
-        for m, n in enumerate(part):
-            _, _, ori, sf = cells[n]
-            if ori is not None:
-                pr, fit = ori[1]
-                if pr.x.size == th_all.size:
-                    tasks.setdefault(pr.kind, []).append((n, 0, 0, (pr.x, np.where(some[m][:, None], prof_o[m], np.nan),
-                                                                    fit.params, pr.lower, pr.upper)))
-            if sf is None:
-                continue
-            _, path, pfs, curve = sf
-            if path == "surface":
-                ok2 = np.isfinite(fl.peak_response[cells[n][0]]) & good_f[None, :]
-                y = resp[m][:, ok2]
-            else:
-                if curve[0] == "near":
-                    rows, w = curve[1], curve[2]
-                    r = resp[m][:, rows]                                 # (draws, 3, S)
-                    okr = np.isfinite(r)
-                    with np.errstate(invalid="ignore", divide="ignore"):
-                        c = (np.where(okr, r, 0.0) * w[:, None]).sum(1) / (okr * w[:, None]).sum(1)
-                else:
-                    c = np.where(some[m][:, None], prof_s[m], np.nan)
-                y = c[:, curve[-1]]
-            for j, (pr, fit) in _weighty_models(pfs):
-                if y.shape[1] == np.size(pr.y):
-                    tasks.setdefault(pr.kind, []).append((n, 1, j, (pr.x, y, fit.params, pr.lower, pr.upper)))
-        got = {}                    # (n, slot) -> list of (kind, params, cost, n_points)
-        for kind, ts in tasks.items():
-            for (n, slot, _, task), (p, cost) in zip(ts, _refit(kind, [t[3] for t in ts])):
-                got.setdefault((n, slot), []).append((kind, p, cost, task[1].shape[1]))
-        for n in part:
-            ori, sf = cells[n][2], cells[n][3]
-            if (n, 0) in got:
-                _, p, cost, _ = got[(n, 0)][0]
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    c = 1.0 - _LN2 / p[:, 2]
-                    hw = np.where(np.isfinite(cost) & (p[:, 1] > 0) & (c >= -1.0),
-                                  np.degrees(0.5 * np.arccos(np.clip(c, -1.0, 1.0))), np.nan)
-                lo_, hi_, k = _resampled_interval(hw[None], np.array([ori[0]], float), level, 0.0, 90.0)
-                out[n, 0], out[n, 1], fin[n, 0] = lo_[0], hi_[0], k[0]
-            if (n, 1) in got:
-                lf = np.log2(f_all[good_f])
-                lo_f, hi_f = float(lf.min()), float(lf.max())
-                bws, logw = [], []
-                for kind, p, cost, n_pts in got[(n, 1)]:
-                    amp = 0 if kind == "dog" or kind.endswith("_b0") else 1
-                    _, bw = _profile_rows(kind, p, lo_f, hi_f)
-                    okm = np.isfinite(cost) & (p[:, amp] > 0)
-                    bws.append(bw)
-                    with np.errstate(divide="ignore", invalid="ignore"):
-                        logw.append(np.where(okm, -0.5 * n_pts * np.log(np.maximum(2.0 * cost, 1e-300)), -np.inf))
-                bws, logw = np.array(bws), np.array(logw)                  # (models, draws)
-                any_ok = np.isfinite(logw).any(axis=0)
-                with np.errstate(invalid="ignore"):
-                    w = np.exp(logw - np.where(any_ok, logw.max(axis=0), 0.0))
-                    w = w / np.where(any_ok, w.sum(axis=0), 1.0)
-                use = w > 1e-6
-                ww = np.where(use, w, 0.0)
-                ww = ww / np.where(any_ok, ww.sum(axis=0), 1.0)
-                bw = np.where(any_ok & ~np.any(use & ~np.isfinite(bws), axis=0),
-                              np.sum(ww * np.where(use, bws, 0.0), axis=0), np.nan)
-                lo_, hi_, k = _resampled_interval(bw[None], np.array([sf[0]], float), level, 0.0)
-                out[n, 2], out[n, 3], fin[n, 1] = lo_[0], hi_[0], k[0]
+        _bandwidth_block(fl, cells, part, resp, level, out, fin)
     return out, fin
+
+
+def _bandwidth_block(fl, cells, part, resp, level, out, fin):
+    """The intervals of :func:`_bandwidth_intervals` of ``cells[n]`` for ``n`` in ``part``, from their
+    drawn surfaces ``resp`` (len(part), draws, O, S); written into rows ``part`` of ``out`` and ``fin``."""
+    th_all = np.asarray(fl.orientations_deg, float)
+    f_all = np.asarray(fl.sfs_cpd, float)
+    good_f = np.isfinite(f_all) & (f_all > 0)
+    prof_o, prof_s, some = _rank1_many(resp, sf=True)
+    tasks = {}                  # kind -> list of (n, slot, model index, task)
+    for m, n in enumerate(part):
+        _, _, ori, sf = cells[n]
+        if ori is not None:
+            pr, fit = ori[1]
+            if pr.x.size == th_all.size:
+                tasks.setdefault(pr.kind, []).append((n, 0, 0, (pr.x, np.where(some[m][:, None], prof_o[m], np.nan),
+                                                                fit.params, pr.lower, pr.upper)))
+        if sf is None:
+            continue
+        _, path, pfs, curve = sf
+        if path == "surface":
+            ok2 = np.isfinite(fl.peak_response[cells[n][0]]) & good_f[None, :]
+            y = resp[m][:, ok2]
+        else:
+            if curve[0] == "near":
+                rows, w = curve[1], curve[2]
+                r = resp[m][:, rows]                                 # (draws, 3, S)
+                okr = np.isfinite(r)
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    c = (np.where(okr, r, 0.0) * w[:, None]).sum(1) / (okr * w[:, None]).sum(1)
+            else:
+                c = np.where(some[m][:, None], prof_s[m], np.nan)
+            y = c[:, curve[-1]]
+        for j, (pr, fit) in _weighty_models(pfs):
+            if y.shape[1] == np.size(pr.y):
+                tasks.setdefault(pr.kind, []).append((n, 1, j, (pr.x, y, fit.params, pr.lower, pr.upper)))
+    got = {}                    # (n, slot) -> list of (kind, params, cost, n_points)
+    for kind, ts in tasks.items():
+        for (n, slot, _, task), (p, cost) in zip(ts, _refit(kind, [t[3] for t in ts])):
+            got.setdefault((n, slot), []).append((kind, p, cost, task[1].shape[1]))
+    for n in part:
+        ori, sf = cells[n][2], cells[n][3]
+        if (n, 0) in got:
+            _, p, cost, _ = got[(n, 0)][0]
+            with np.errstate(invalid="ignore", divide="ignore"):
+                c = 1.0 - _LN2 / p[:, 2]
+                hw = np.where(np.isfinite(cost) & (p[:, 1] > 0) & (c >= -1.0),
+                              np.degrees(0.5 * np.arccos(np.clip(c, -1.0, 1.0))), np.nan)
+            lo_, hi_, k = _resampled_interval(hw[None], np.array([ori[0]], float), level, 0.0, 90.0)
+            out[n, 0], out[n, 1], fin[n, 0] = lo_[0], hi_[0], k[0]
+        if (n, 1) in got:
+            lf = np.log2(f_all[good_f])
+            lo_f, hi_f = float(lf.min()), float(lf.max())
+            bws, logw = [], []
+            for kind, p, cost, n_pts in got[(n, 1)]:
+                amp = 0 if kind == "dog" or kind.endswith("_b0") else 1
+                _, bw = _profile_rows(kind, p, lo_f, hi_f)
+                okm = np.isfinite(cost) & (p[:, amp] > 0)
+                bws.append(bw)
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    logw.append(np.where(okm, -0.5 * n_pts * np.log(np.maximum(2.0 * cost, 1e-300)), -np.inf))
+            bws, logw = np.array(bws), np.array(logw)                  # (models, draws)
+            any_ok = np.isfinite(logw).any(axis=0)
+            with np.errstate(invalid="ignore"):
+                w = np.exp(logw - np.where(any_ok, logw.max(axis=0), 0.0))
+                w = w / np.where(any_ok, w.sum(axis=0), 1.0)
+            use = w > 1e-6
+            ww = np.where(use, w, 0.0)
+            ww = ww / np.where(any_ok, ww.sum(axis=0), 1.0)
+            bw = np.where(any_ok & ~np.any(use & ~np.isfinite(bws), axis=0),
+                          np.sum(ww * np.where(use, bws, 0.0), axis=0), np.nan)
+            lo_, hi_, k = _resampled_interval(bw[None], np.array([sf[0]], float), level, 0.0)
+            out[n, 2], out[n, 3], fin[n, 1] = lo_[0], hi_[0], k[0]
 
 
 def _rank1_many(surfaces, sf=False):
@@ -2136,7 +2147,7 @@ def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
         row["grating_class"] = ""
         row["sf_model"] = ""
         row["sf_fit_curve"] = ""
-        row["bandwidth_ci_reason"] = ""
+        row["bandwidth_interval_reason"] = ""
         fi = fl_pos.get(cid)
         di = dr_pos.get(cid)
         fl_resp = fi is not None and bool(flashed.responsive[fi])
@@ -2178,14 +2189,6 @@ def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
     for (row, di, dc), dfit in zip(directed, _run_jobs([_direction_job(dc[5], dc[6]) for _, _, dc in directed],
                                                        solver)):
         row["pref_direction_deg"] = dfit.pref_deg if dfit.ok else float(drifting.pref_direction_deg[di])
-    # selectivity intervals of the flashed-grating cells, all draws of all cells at once
-    fl_rows = [(row, fi) for row, fi, _ in tuned if row["tuning_source"] == "flashed"]
-    if fl_rows:
-        got = _selectivity_intervals(flashed, [fi for _, fi in fl_rows], [row["cell"] for row, _ in fl_rows],
-                                     [(row["circular_variance"], row["osi"]) for row, _ in fl_rows])
-        for (row, _), q in zip(fl_rows, got):
-            (row["circular_variance_ci_low"], row["circular_variance_ci_high"], row["osi_ci_low"],
-             row["osi_ci_high"]) = (float(v) for v in q)
     # orientation fits, then the SF fits that start from them
     ofits = _run_jobs([_orientation_job(curves[0], curves[1]) for _, _, curves in tuned], solver, keep=True)
     items, chosen, refits = [], [], []
@@ -2220,7 +2223,8 @@ def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
                        sf_model=sfit.model, sf_fit_curve=sfit.params_model)
             _fit_based(row, "sf_bandwidth", "oct", sfit.bandwidth_ci95_oct)
             row[width[sfit.params_model]] = sfit.params[3]
-    # the bandwidth intervals of the flashed-grating cells by refitting resampled surfaces
+    # the intervals of the flashed-grating cells from resampled surfaces (drawn once for all): circular
+    # variance and OSI recomputed, orientation HWHH and SF bandwidth refitted
     cells, at = [], []
     for (row, fi, o_pf, how), sfit, sh in zip(refits, sfits, sf_how):
         if row["tuning_source"] != "flashed":
@@ -2231,13 +2235,29 @@ def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
         if ori is None and sf is None:
             continue
         if not _has_noise(flashed, fi):
-            row["bandwidth_ci_reason"] = "noise variance of the flashed surfaces not measured: intervals from the fit"
+            row["bandwidth_interval_reason"] = "noise variance of the flashed surfaces not measured: intervals from the fit"
             continue
         cells.append((fi, row["cell"], ori, sf))
         at.append(row)
+    fl_rows = [(row, fi) for row, fi, _ in tuned if row["tuning_source"] == "flashed"]
+    bw_out, n_fin = np.full((len(cells), 4), np.nan), np.zeros((len(cells), 2), int)
+    where = {id(row): k for k, row in enumerate(at)}
+    pos = [where.get(id(row), -1) for row, _ in fl_rows]
+
+    def bandwidths(part, resp):
+        sub = [(m, pos[n]) for m, n in enumerate(part) if pos[n] >= 0]
+        if sub:
+            _bandwidth_block(flashed, cells, [k for _, k in sub],
+                             resp[[m for m, _ in sub]][:, :N_BANDWIDTH_DRAWS], 0.95, bw_out, n_fin)
+    if fl_rows:
+        got = _selectivity_intervals(flashed, [fi for _, fi in fl_rows], [row["cell"] for row, _ in fl_rows],
+                                     [(row["circular_variance"], row["osi"]) for row, _ in fl_rows],
+                                     then=bandwidths)
+        for (row, _), q in zip(fl_rows, got):
+            (row["circular_variance_ci_low"], row["circular_variance_ci_high"], row["osi_ci_low"],
+             row["osi_ci_high"]) = (float(v) for v in q)
     if cells:
-        got, n_fin = _bandwidth_intervals(flashed, cells)
-        for row, q, k, (_, _, ori, sf) in zip(at, got, n_fin, cells):
+        for row, q, k, (_, _, ori, sf) in zip(at, bw_out, n_fin, cells):
             why = []
             for j, (name, unit, what) in enumerate((("orientation_hwhh", "deg", "orientation HWHH"),
                                                    ("sf_bandwidth", "oct", "SF bandwidth"))):
@@ -2246,5 +2266,5 @@ def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
                 row[f"{name}_ci_low_{unit}"], row[f"{name}_ci_high_{unit}"] = float(q[2 * j]), float(q[2 * j + 1])
                 if not np.isfinite(q[2 * j]):
                     why.append(f"{what} finite in only {k[j]} of {N_BANDWIDTH_DRAWS} resampled surfaces")
-            row["bandwidth_ci_reason"] = "; ".join(why)
+            row["bandwidth_interval_reason"] = "; ".join(why)
     return {k: [row[k] for row in rows] for k in TUNING_COLUMNS}
