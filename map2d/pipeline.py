@@ -655,6 +655,11 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
         raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {max_lag_s}")
     rng = np.random.default_rng(seed)
     fl = analyze_flashed(session.responses, g, max_lag_s=max_lag_s, rng=rng) if has_flashed(g) else None
+    if fl is not None:      # selectivity with the noise floor removed, and its intervals (as map2d analyze)
+        from .analysis import flashed_noise
+        noise = flashed_noise(session.responses, g, fl, max_lag_s, phase_mean=True)
+        if noise is not None:
+            fl.harmonic_noise_var, fl.phase_mean_noise_var = noise
     dr = analyze_drifting(session.responses, g, latency_s=drift_latency) if has_drifting(g) else None
     ids = np.asarray(session.cell_ids)
     order = np.argsort(ids, kind="stable")

@@ -513,3 +513,98 @@ def test_drifting_latency_shift_at_high_temporal_frequency(tmp_path, monkeypatch
         assert _ang(np.degrees(np.angle(f1[d, s])), want, 360.0) <= 10.0, c["id"]
         shrink = abs(out["0"]["f1_mean"][i][d, s, 0]) / abs(f1[d, s])
         assert shrink <= 0.93, (c["id"], shrink)
+
+
+# ------------------------------------------------------------------------------------------------
+# selectivity against recording length (issue 14, item 5): flashed gratings only, 3, 10, 100 minutes
+# ------------------------------------------------------------------------------------------------
+def write_flashed_session(folder: Path, n_frames: int, rng) -> None:
+    """A spikes session of the tuned model cells with ``n_frames`` flashed frames and nothing else (a
+    30-frame sparse-noise stretch carries the grid). Spikes are drawn frame by frame: a frame's evoked
+    spikes (Poisson, the rate of the rendered grating's drive for ``EVOKED_S``) fall uniformly in
+    ``[onset + LATENCY_S, onset + LATENCY_S + EVOKED_S)``, the baseline is Poisson over the whole
+    session; the same rates as :func:`_rates` builds on its fine grid, without the grid."""
+    rng = np.random.default_rng(rng)
+    folder.mkdir(parents=True)
+    ny, nx = GRID_SHAPE
+    frames = np.zeros((30, ny, nx), dtype=np.int8)
+    frames[np.arange(30), rng.integers(0, ny, 30), rng.integers(0, nx, 30)] = rng.choice([-1, 1], 30)
+    np.save(folder / "sparse_noise.npy", frames)
+    np.save(folder / "sparse_noise_times.npy", np.arange(30) * 0.1)
+    onset = 3.5 + np.arange(n_frames) * FLASH_FRAME_S
+    blank = rng.random(n_frames) < BLANK_FRACTION
+    o_i = rng.integers(0, FLASH_ORIS.size, n_frames)
+    s_i = rng.integers(0, FLASH_SFS.size, n_frames)
+    p_i = rng.integers(0, FLASH_PHASES.size, n_frames)
+    cols = dict(onset_s=onset, offset_s=onset + FLASH_FRAME_S,
+                orientation_deg=np.where(blank, 0.0, FLASH_ORIS[o_i]), sf_cpd=np.where(blank, 0.0, FLASH_SFS[s_i]),
+                phase_deg=np.where(blank, 0.0, FLASH_PHASES[p_i]), contrast=np.where(blank, 0.0, FLASH_CONTRAST),
+                tf_hz=np.zeros(n_frames))
+    _write_csv(folder / "gratings.csv", cols)
+    t_end = float(onset[-1] + FLASH_FRAME_S + 1.0)
+    times, ids = [], []
+    for c in TUNED:
+        patch = cell_patch(c)
+        table = _nonlin(c, drive(c, patch, FLASH_ORIS[:, None, None], FLASH_SFS[None, :, None],
+                                 FLASH_PHASES[None, None, :], EXPLICIT_ORIGIN))      # (O, S, P), contrast 1
+        scale = FLASH_CONTRAST if c["kind"] == "simple" else FLASH_CONTRAST**2
+        rate = np.where(blank, 0.0, (c["gain"] / table.max()) * scale * table[o_i, s_i, p_i])
+        n_ev = rng.poisson(rate * EVOKED_S)
+        ev = np.repeat(onset + LATENCY_S, n_ev) + EVOKED_S * rng.random(n_ev.sum())
+        base = rng.uniform(0.0, t_end, rng.poisson(c["base"] * t_end))
+        times.append(np.concatenate([ev, base]))
+        ids.append(np.full(times[-1].size, c["id"]))
+    times, ids = np.concatenate(times), np.concatenate(ids)
+    order = np.argsort(times)
+    np.savez(folder / "spikes.npz", time_s=times[order], cell=ids[order])
+    manifest = {"sparse_noise": {"frames": "sparse_noise.npy", "times": "sparse_noise_times.npy",
+                                 "grid": {"center_deg": list(GRID_CENTER), "spacing_deg": list(GRID_SPACING)}},
+                "gratings": {"table": "gratings.csv", "phase_origin_deg": list(EXPLICIT_ORIGIN)},
+                "responses": {"kind": "spikes", "file": "spikes.npz"}}
+    (folder / "session.json").write_text(json.dumps(manifest, indent=1))
+
+
+@pytest.fixture(scope="module")
+def lengths(tmp_path_factory):
+    """cells.csv rows (by cell id) of the tuned cells recorded for 3, 10 and 100 minutes."""
+    root = tmp_path_factory.mktemp("lengths")
+    out = {}
+    for minutes in (3, 10, 100):
+        write_flashed_session(root / f"s{minutes}", int(minutes * 60 / FLASH_FRAME_S), rng=1000 + minutes)
+        assert map2d_main(["gratings", str(root / f"s{minutes}"), "--out", str(root / f"r{minutes}")]) == 0
+        out[minutes] = {int(r["cell"]): r for r in read_cells(root / f"r{minutes}" / "cells.csv")}
+    return out
+
+
+def test_selectivity_agrees_across_recording_lengths(lengths):
+    """Issue 14, item 5, on sessions we did not make with map2d: circular variance, OSI, orientation
+    half-width and SF bandwidth of each tuned cell after 3 and 10 minutes of flashed gratings hold its
+    100-minute value within their 95 % intervals (the noise floor of |H| removed, so the estimates do
+    not drift with length; intervals from resampled surfaces, the widths refitted). Run through
+    ``map2d gratings``, which before removed no noise floor and gave no selectivity intervals (the
+    circular variance of cell 3 read 0.54, 0.49, 0.48 after 3, 10, 100 minutes; now 0.50, 0.47, 0.48).
+    Measured: 34 of 38 intervals hold the 100-minute value (circular variance 10/10, OSI 10/10,
+    orientation HWHH 8/9, SF bandwidth 6/9: the SF bandwidth intervals are the least well calibrated;
+    the fit-based ones of before held 6/10); the two empty intervals (cell 11 at 3 minutes: 82 and 86
+    of 100 resampled surfaces with a finite width) say why."""
+    cols = [("circular_variance", ""), ("osi", ""), ("orientation_hwhh", "_deg"), ("sf_bandwidth", "_oct")]
+    held, total, missed = 0, 0, []
+    for c in TUNED:
+        long = lengths[100][c["id"]]
+        for minutes in (3, 10):
+            row = lengths[minutes][c["id"]]
+            for name, unit in cols:
+                lo, hi = _num(row[f"{name}_ci_low{unit}"]), _num(row[f"{name}_ci_high{unit}"])
+                est, ref = _num(row[name + unit]), _num(long[name + unit])
+                assert np.isfinite(est) and np.isfinite(ref), (c["id"], minutes, name)
+                if not np.isfinite(lo):                     # an empty interval says why
+                    assert "finite in only" in row["bandwidth_interval_reason"], (c["id"], minutes, name)
+                    continue
+                assert lo <= est <= hi
+                total += 1
+                if lo <= ref <= hi:
+                    held += 1
+                else:
+                    missed.append((c["id"], minutes, name, round(est, 3), round(lo, 3), round(hi, 3), round(ref, 3)))
+    assert total >= 36
+    assert held >= 0.85 * total, missed
