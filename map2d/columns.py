@@ -167,8 +167,9 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "`explains too little`, `too narrow`, `elongated`, `no carrier`, `centre off the grid`, "
                "`no finite interval`, `centre not determined` (its 95 % interval wider than +-1 pixel); empty when "
                "not responsive.", "ours; Wilks 1938 (test against noise)"),
-        Column("center_x_ci_low_deg", "deg", "Lower end of the 95 % interval of `center_x_deg` (from the fit's "
-               "Jacobian).", "common practice"),
+        Column("center_x_ci_low_deg", "deg", "Lower end of the 95 % interval of `center_x_deg` (every fitted "
+               "parameter's interval: the fit's heteroscedasticity-consistent sandwich covariance, HC3, never "
+               "narrower than the equal-noise one).", "MacKinnon & White 1985; Long & Ervin 2000"),
         Column("center_x_ci_high_deg", "deg", "Upper end of the 95 % interval of `center_x_deg`.", "common practice"),
         Column("center_y_ci_low_deg", "deg", "Lower end of the 95 % interval of `center_y_deg`.", "common practice"),
         Column("center_y_ci_high_deg", "deg", "Upper end of the 95 % interval of `center_y_deg`.", "common practice"),

@@ -199,3 +199,19 @@ def test_stacked_wald_covariances_equal_the_one_map_ones():
     ref = np.array([S._wald_cov(a, v) for a, v in zip(A, s2)])
     assert np.array_equal(np.isnan(got), np.isnan(ref))
     np.testing.assert_allclose(got, ref, rtol=1e-9, equal_nan=True)
+
+
+def test_stacked_sandwich_covariances_equal_the_one_map_ones():
+    # every row's HC3 covariance as map2d.fit.spatial._sandwich_cov computes it (unequal noise, some rows
+    # with an unidentified direction or a parameter without effect, some floored at the Wald variance)
+    rng = np.random.default_rng(1)
+    m, k, n = 40, 6, 50
+    J = rng.standard_normal((m, k, n))
+    J[::5, 2] = J[::5, 3]
+    J[::7, 4] = 0.0
+    r = rng.standard_normal((m, n)) * rng.uniform(0.2, 3.0, (m, n))
+    s2 = np.where(np.arange(m) % 3 == 0, 4.0, 0.5)
+    got = B._sandwich_covs(J, r, s2)
+    ref = np.array([S._sandwich_cov(J[i].T, r[i], s2[i]) for i in range(m)])
+    assert np.array_equal(np.isnan(got), np.isnan(ref)) and np.isnan(got[0]).any() and np.isfinite(got[1]).all()
+    np.testing.assert_allclose(got, ref, rtol=1e-9, equal_nan=True)

@@ -249,6 +249,73 @@ def test_gabor_intervals_cover_orientation_and_sf():
         assert hits[k] >= 0.8 * n, (k, hits[k])
 
 
+def test_sandwich_covariance_is_hc3():
+    # the textbook HC3 of a linear regression (MacKinnon & White 1985; Long & Ervin 2000), written out
+    # with the hat matrix: (X'X)^-1 X' diag(e_i^2 / (1 - h_ii)^2) X (X'X)^-1, h = diag(X (X'X)^-1 X')
+    from map2d.fit.spatial import _sandwich_cov, _wald_cov
+    rng = np.random.default_rng(2)
+    X = np.column_stack([np.ones(30), rng.uniform(0, 3, 30), rng.standard_normal(30)])
+    e = rng.standard_normal(30) * (0.2 + X[:, 1])
+    B = np.linalg.inv(X.T @ X)
+    h = np.diag(X @ B @ X.T)
+    ref = B @ X.T @ np.diag(e ** 2 / (1 - h) ** 2) @ X @ B
+    np.testing.assert_allclose(_sandwich_cov(X, e, 0.0), ref, rtol=1e-10)
+    # no variance below the Wald one s2 (X'X)^-1 given as the floor
+    big = _sandwich_cov(X, e, 100.0)
+    assert np.all(np.diag(big) >= np.diag(_wald_cov(X.T @ X, 100.0)) * (1 - 1e-12))
+
+
+def test_hc3_covers_under_unequal_noise_where_the_wald_interval_does_not():
+    # Long & Ervin (2000): with the noisiest points at the highest leverage the textbook (equal-noise)
+    # interval of a slope is too narrow and HC3's is about right. Derived design (60 points, a skewed
+    # x, noise sd 0.2 + x^1.5), 2000 repeats: Wald 0.78, HC3 0.94 (nominal 0.95)
+    from map2d.fit.spatial import _sandwich_cov, _wald_cov
+    rng = np.random.default_rng(3)
+    n = 60
+    x = np.sort(rng.uniform(0, 1, n)) ** 2 * 3
+    X = np.column_stack([np.ones(n), x])
+    sd = 0.2 + x ** 1.5
+    hits = {"wald": 0, "hc3": 0}
+    reps = 2000
+    for _ in range(reps):
+        y = X @ [1.0, 2.0] + rng.standard_normal(n) * sd
+        b = np.linalg.lstsq(X, y, rcond=None)[0]
+        r = X @ b - y
+        for lab, cov in (("wald", _wald_cov(X.T @ X, r @ r / (n - 2))), ("hc3", _sandwich_cov(X, r, 0.0))):
+            hits[lab] += abs(b[1] - 2.0) <= S.Z95 * np.sqrt(cov[1, 1])
+    assert hits["hc3"] >= 0.92 * reps and hits["wald"] <= 0.85 * reps, hits
+
+
+def test_map_intervals_cover_under_poisson_like_noise():
+    # a Gaussian field whose pixel variance grows with the signal (4 x the background's at the peak, as
+    # spike counts' does), noise not given: the reported (HC3) centre boxes cover the true centre at
+    # about their nominal rate (>= 0.95^2 jointly), the equal-noise Wald ones, from the same fits, do not
+    # (measured: 34 and 26 of 40; over 100 repeats on a 24 x 32 map, 0.91-0.97 and 0.77-0.85 per axis
+    # for every model)
+    from scipy.stats import binom
+    rng = np.random.default_rng(8)
+    X, Y = GRID.mesh_deg()
+    truth = np.array([11.0, -4.5])
+    clean = gaussian2d(X, Y, *truth, 2.8, 1.6, 60.0, 0.5)
+    sd = 0.1 * np.sqrt(1 + 3 * clean / 0.5)
+    n, hits, wald = 40, 0, 0
+    for _ in range(n):
+        pr = S._Problem(clean + rng.standard_normal(clean.shape) * sd, GRID, None)
+        f = S._fit_gaussian_pr(pr)
+        p = np.array([f.params[k] for k in S._PARAM_NAMES["gaussian"]])
+        hits += all(f.ci[k][0] <= v <= f.ci[k][1] for k, v in zip(("center_x_deg", "center_y_deg"), truth))
+        J = np.empty((pr.n, p.size))                 # the Wald covariance s^2 (J'J)^-1 of the same fit
+        for i in range(p.size):
+            dp = np.zeros(p.size)
+            dp[i] = 1e-6 * (abs(p[i]) + 1.0)
+            J[:, i] = (gaussian2d(pr.x, pr.y, *(p + dp)) - gaussian2d(pr.x, pr.y, *(p - dp))) / (2 * dp[i])
+        r = gaussian2d(pr.x, pr.y, *p) - pr.d
+        cov = S._wald_cov(J.T @ J, r @ r / (pr.n - p.size))
+        wald += bool(np.all(np.abs(p[:2] - truth) <= S.Z95 * np.sqrt(np.diag(cov)[:2])))
+    lowest = binom.ppf(0.001, n, 0.95 ** 2)          # lower binomial bound at 0.001
+    assert hits >= lowest > wald, (hits, wald, lowest)
+
+
 def test_angle_of_a_circular_gaussian_is_poorly_determined():
     # a circular Gaussian has no major-axis angle: its interval is NaN or very wide, while the
     # same noise on an elliptical field (sigma ratio 2) gives an angle within a few degrees (derived)

@@ -22,7 +22,7 @@ the cost, the relative size of the step, and the largest cosine between the resi
 Jacobian column (More, Garbow & Hillstrom 1980, User guide for MINPACK-1, ANL-80-74).
 
 Starts, bounds, the multi-start rule (a short run from every start, the best continued to convergence),
-the reported parameters, the information criteria and the Wald intervals are those of
+the reported parameters, the information criteria and the intervals (HC3 sandwich) are those of
 :mod:`map2d.fit.spatial` (the same functions are called); only the optimiser differs.
 ``tests/test_fit_batched.py`` checks that the two agree within the reported intervals on simulated
 cells and on the held-out generator's sessions.
@@ -442,15 +442,13 @@ def fit_models(problems, model):
 
 
 def _covariances(fun, p, x, y, d, w, problems):
-    """Wald covariances of the reported parameters ``p`` (m, k), as ``_Problem.covariance`` row by row:
+    """Covariances of the reported parameters ``p`` (m, k), as ``_Problem.covariance`` row by row:
     central differences of ``fun`` (step ``1e-6 (|p| + 1)``) on the grid ``x`` (1, 1, nx), ``y`` (1, ny, 1),
-    weighted by ``w``, ``s2 (J^T J)^-1``."""
-    from . import spatial as S
-
+    weighted by ``w``, and the HC3 sandwich of ``map2d.fit.spatial._sandwich_cov``."""
     m, k = p.shape
     out = np.full((m, k, k), np.nan)
     P = d.shape[1] * d.shape[2]
-    size = max(1, int(CHUNK_BYTES // (8 * P * (k + 4))))
+    size = max(1, int(CHUNK_BYTES // (8 * P * (3 * k + 4))))
     for a in range(0, m, size):
         b = min(m, a + size)
         pc = p[a:b]
@@ -465,38 +463,58 @@ def _covariances(fun, p, x, y, d, w, problems):
             fm = fun(x, y, *[pm[:, j, None, None] for j in range(k)])
             J[:, i] = (fp - fm) / (2 * h[:, None, None]) * wc
         r = (fun(x, y, *[pc[:, j, None, None] for j in range(k)]) - d[a:b]) * wc
-        A, _ = _normal(J, r)
         rss = _sumsq(r)
         s2 = np.empty(b - a)
         for row in range(b - a):
             pr = problems[a + row]
             red = rss[row] / max(pr.n - k, 1)
             s2[row] = max(1.0, red) if pr.known_noise else red
-        out[a:b] = _wald_covs(A, s2)
+        out[a:b] = _sandwich_covs(J.reshape(b - a, k, P), r.reshape(b - a, P), s2)
     return out
 
 
-def _wald_covs(A, s2):
-    """``map2d.fit.spatial._wald_cov`` of every row of ``A`` (m, k, k), ``s2`` (m,): the rows whose
-    parameters all have a non-zero column in one stacked eigen-decomposition, the others one by one."""
+def _normal_pinvs(A):
+    """``map2d.fit.spatial._normal_pinv`` of every row of ``A`` (m, k, k) -> ``inv`` (m, k, k), ``unknown``
+    (m, k): the rows whose parameters all have a non-zero column in one stacked eigen-decomposition, the
+    others one by one."""
     from . import spatial as S
 
     m, k = A.shape[:2]
-    out = np.full((m, k, k), np.nan)
+    inv = np.zeros((m, k, k))
+    unknown = np.zeros((m, k), bool)
     c = np.sqrt(np.einsum("ijj->ij", A))
     fast = np.isfinite(A).all(axis=(1, 2)) & (c > 0).all(axis=1)
     for i in np.flatnonzero(~fast):
-        out[i] = S._wald_cov(A[i], s2[i])
+        inv[i], unknown[i] = S._normal_pinv(A[i])
     if fast.any():
         cf = c[fast]
         outer = cf[:, :, None] * cf[:, None, :]
         w, V = np.linalg.eigh(A[fast] / outer)
         null = w <= 1e-9 * np.maximum(w.max(axis=1, keepdims=True), 1e-300)
         inv_w = np.where(null, 0.0, 1.0 / np.where(null, 1.0, w))
-        cov = (V * inv_w[:, None, :]) @ V.transpose(0, 2, 1)
-        cov = s2[fast, None, None] * cov / outer
+        inv[fast] = (V * inv_w[:, None, :]) @ V.transpose(0, 2, 1) / outer
         # a parameter with a real share in an unidentified direction has no finite interval
-        bad = (np.where(null[:, None, :], V ** 2, 0.0).sum(axis=2) > 1e-6) & null.any(axis=1, keepdims=True)
-        cov = np.where(bad[:, :, None] | bad[:, None, :], np.nan, cov)
-        out[fast] = cov
-    return out
+        unknown[fast] = (np.where(null[:, None, :], V ** 2, 0.0).sum(axis=2) > 1e-6) & null.any(axis=1, keepdims=True)
+    return inv, unknown
+
+
+def _nan_unknown(cov, unknown):
+    return np.where(unknown[:, :, None] | unknown[:, None, :], np.nan, cov)
+
+
+def _wald_covs(A, s2):
+    """``map2d.fit.spatial._wald_cov`` of every row of ``A`` (m, k, k), ``s2`` (m,)."""
+    inv, unknown = _normal_pinvs(A)
+    return _nan_unknown(s2[:, None, None] * inv, unknown)
+
+
+def _sandwich_covs(J, r, s2):
+    """``map2d.fit.spatial._sandwich_cov`` of every row: weighted Jacobians ``J`` (m, k, n), weighted
+    residuals ``r`` (m, n), Wald variances' factors ``s2`` (m,)."""
+    from . import spatial as S
+
+    inv, unknown = _normal_pinvs(J @ J.transpose(0, 2, 1))
+    h = np.einsum("mkn,mkn->mn", J, inv @ J)
+    e = (r / np.maximum(1.0 - h, 1.0 - S.MAX_LEVERAGE)) ** 2
+    cov = inv @ ((J * e[:, None, :]) @ J.transpose(0, 2, 1)) @ inv
+    return _nan_unknown(S._floored(cov, s2[:, None, None] * inv), unknown)
