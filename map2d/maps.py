@@ -72,6 +72,8 @@ _FORK_MIN_WORK = 20_000_000   # frames x cells x lags above which the null runs 
 _BLOCK_VALUES = 288            # z values (pixels x lags x kinds) per block of the max-statistic tail fit
 _MIN_BLOCKS = 48               # block maxima per cell for the first tail fit (all cells)
 _GRAY_BLOCKS = 256             # block maxima per cell for cells whose first p is near alpha
+_CHOICE_VALUES = 1 << 19       # values (cells x lags x pixels) per block of cells in choose_maps
+_LATENCY_VALUES = 1 << 21      # drives (frames x cells) per block of frames in spike_latency
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1583,11 +1585,22 @@ def region_threshold_z(n_tests: int, alpha: float) -> float:
     return float(-ndtri(alpha / (2.0 * n)))
 
 
-def _separable(a, li):
-    """Spatial singular vector of ``a`` (L, P), scaled to the projection of lag ``li`` on it."""
-    _, _, vt = np.linalg.svd(a, full_matrices=False)
-    u = vt[0]
-    return u * float(a[li] @ u)
+def _separable_stack(a, li):
+    """:func:`_separable` of a stack of maps: ``a`` (n, L, P), ``li`` (n,) -> (n, P).
+
+    The first right singular vector ``u`` of ``a`` is ``a^T e / |a^T e|`` with ``e`` the top eigenvector
+    of the ``L x L`` Gram matrix ``a a^T`` (the same vector as the SVD's, up to a sign that
+    ``u (a[li] . u)`` does not depend on), so all cells take one batched ``L x L`` eigenproblem."""
+    n = a.shape[0]
+    if n == 0:
+        return np.zeros((0, a.shape[2]))
+    _, V = np.linalg.eigh(np.matmul(a, a.transpose(0, 2, 1)))
+    v = np.einsum("nl,nlp->np", V[:, :, -1], a)                     # s_1 x first right singular vector
+    nn = np.einsum("np,np->n", v, v)
+    proj = np.einsum("np,np->n", a[np.arange(n), li], v)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where(nn > 0, proj / nn, 0.0)
+    return v * scale[:, None]
 
 
 @dataclass
@@ -1639,29 +1652,20 @@ class MapChoice:
         return z
 
 
-def _both_maps(result: MapResult, c: int):
-    """ON + OFF map of cell ``c`` over lags ``(L, P)``, and its z-map (the engine's, or with the null sd
-    from the ON and OFF sds when the result holds no ON + OFF map)."""
-    L = result.lag_frames.size
+def _both_stack(result: MapResult, cells: np.ndarray):
+    """:func:`_both_maps` of several cells: ON + OFF maps ``(n, L, P)`` and their z-maps."""
+    L, n = result.lag_frames.size, cells.size
     if result.both is not None and result.both_z is not None:
-        return (result.both[c].reshape(L, -1).astype(float), result.both_z[c].reshape(L, -1).astype(float))
-    on, off = result.on[c].reshape(L, -1).astype(float), result.off[c].reshape(L, -1).astype(float)
+        return (result.both[cells].reshape(n, L, -1).astype(float),
+                result.both_z[cells].reshape(n, L, -1).astype(float))
+    on = result.on[cells].reshape(n, L, -1).astype(float)
+    off = result.off[cells].reshape(n, L, -1).astype(float)
     with np.errstate(invalid="ignore", divide="ignore"):
-        sd_on = np.abs(on / result.on_z[c].reshape(L, -1))
-        sd_off = np.abs(off / result.off_z[c].reshape(L, -1))
+        sd_on = np.abs(on / result.on_z[cells].reshape(n, L, -1))
+        sd_off = np.abs(off / result.off_z[cells].reshape(n, L, -1))
         both = on + off
-        # ON and OFF means come from disjoint frames: their covariance (-s^2 / (F - 1)) is negligible
         z = both / np.sqrt(sd_on ** 2 + sd_off ** 2)
     return both, z
-
-
-def _linear_power_share(lin, zlin, both, zboth, sel):
-    """Noise-corrected share ``P_lin / (P_lin + P_both)`` over the elements ``sel`` (NaN if no signal)."""
-    with np.errstate(invalid="ignore", divide="ignore"):
-        p_lin = np.nansum(lin[sel] ** 2 - (lin[sel] / zlin[sel]) ** 2)
-        p_both = np.nansum(both[sel] ** 2 - (both[sel] / zboth[sel]) ** 2)
-    p_lin, p_both = max(float(p_lin), 0.0), max(float(p_both), 0.0)
-    return p_lin / (p_lin + p_both) if p_lin + p_both > 0 else np.nan
 
 
 def choose_maps(result: MapResult, alpha: float | None = None) -> MapChoice:
@@ -1713,41 +1717,57 @@ def choose_maps(result: MapResult, alpha: float | None = None) -> MapChoice:
     kind = np.full(C, "", dtype=object)
     share = np.full(C, np.nan)
     t_st = region_threshold_z(4 * L * P, alpha)
-    for c in np.flatnonzero(result.peak_lag_index >= 0):
-        li = int(result.peak_lag_index[c])
-        lin_raw = result.linear[c].reshape(L, -1).astype(float)
-        zlin = result.linear_z[c].reshape(L, -1).astype(float)
+    cells = np.flatnonzero(result.peak_lag_index >= 0)
+    step = max(1, _CHOICE_VALUES // max(L * P, 1))        # blocks of cells: a few (n, L, P) float64 arrays
+    for a in range(0, cells.size, step):
+        blk = cells[a:a + step]
+        n, r = blk.size, np.arange(blk.size)
+        li = result.peak_lag_index[blk].astype(np.int64)
+        lin_raw = result.linear[blk].reshape(n, L, P).astype(float)
+        zlin = result.linear_z[blk].reshape(n, L, P).astype(float)
         lin = np.nan_to_num(lin_raw)
-        peak[c] = lin[li].reshape(ny, nx)
-        linear_spatial[c] = _separable(lin, li).reshape(ny, nx)
-        chosen = "linear"
-        if np.isfinite(result.on[c]).any():
-            both, zboth = _both_maps(result, c)
-            zon = result.on_z[c].reshape(L, -1).astype(float)
-            zoff = result.off_z[c].reshape(L, -1).astype(float)
+        peak[blk] = lin[r, li].reshape(n, ny, nx)
+        lin_sp = _separable_stack(lin, li)
+        linear_spatial[blk] = lin_sp.reshape(n, ny, nx)
+        onoff = np.zeros(n, bool)
+        both = zboth = None
+        has_on = np.isfinite(result.on[blk].reshape(n, -1)).any(axis=1)
+        if has_on.any():
+            both, zboth = _both_stack(result, blk)
+            zon = result.on_z[blk].reshape(n, L, P).astype(float)
+            zoff = result.off_z[blk].reshape(n, L, P).astype(float)
             zall = np.fmax(np.fmax(np.abs(zon), np.abs(zoff)), np.fmax(np.abs(zlin), np.abs(zboth)))
-            sel = np.nan_to_num(zall) >= t_st
-            ok = sel & np.isfinite(zlin) & np.isfinite(zboth) & (zlin != 0) & (zboth != 0)
-            if ok.any():
-                share[c] = _linear_power_share(lin_raw, zlin, both, zboth, ok)
-                if share[c] < LINEAR_SHARE_THRESHOLD and np.nanmax(np.abs(zboth[ok])) >= t_st:
-                    chosen = "on+off"
-        kind[c] = chosen
-        if chosen == "linear":
-            spatial[c] = linear_spatial[c]
-            z = zlin[li]
-            m = lin_raw[li]
-        else:
-            spatial[c] = _separable(np.nan_to_num(both), li).reshape(ny, nx)
-            z = zboth[li]
-            m = both[li]
-        zmap[c] = z.reshape(ny, nx)
+            ok = ((np.nan_to_num(zall) >= t_st) & np.isfinite(zlin) & np.isfinite(zboth) & (zlin != 0)
+                  & (zboth != 0) & has_on[:, None, None])
+            # noise-corrected signal powers over the region (NaN elements left out, as nansum does)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                p_lin = np.nansum(np.where(ok, lin_raw ** 2 - (lin_raw / zlin) ** 2, 0.0), axis=(1, 2))
+                p_both = np.nansum(np.where(ok, both ** 2 - (both / zboth) ** 2, 0.0), axis=(1, 2))
+                top_both = np.where(ok, np.abs(zboth), -np.inf).max(axis=(1, 2))
+            p_lin, p_both = np.maximum(p_lin, 0.0), np.maximum(p_both, 0.0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                sh = np.where(p_lin + p_both > 0, p_lin / (p_lin + p_both), np.nan)
+            any_ok = ok.any(axis=(1, 2))
+            share[blk[any_ok]] = sh[any_ok]
+            onoff = any_ok & (sh < LINEAR_SHARE_THRESHOLD) & (top_both >= t_st)
+        kind[blk] = np.where(onoff, "on+off", "linear")
+        sp_ = lin_sp.copy()
+        z = zlin[r, li]
+        m = lin_raw[r, li]
+        if onoff.any():
+            sp_[onoff] = _separable_stack(np.nan_to_num(both[onoff]), li[onoff])
+            z[onoff] = zboth[r[onoff], li[onoff]]
+            m[onoff] = both[r[onoff], li[onoff]]
+        spatial[blk] = sp_.reshape(n, ny, nx)
+        zmap[blk] = z.reshape(n, ny, nx)
         with np.errstate(invalid="ignore", divide="ignore"):
             sd = np.abs(m / z)
         sd = np.where(np.isfinite(sd) & (sd > 0), sd, np.nan)
-        if np.isfinite(sd).any():
-            sd = np.where(np.isfinite(sd), sd, np.nanmedian(sd))
-        noise[c] = sd.reshape(ny, nx)
+        fin = np.isfinite(sd).any(axis=1)
+        if fin.any():                                   # pixels without an sd get the cell's median sd
+            med = np.nanmedian(sd[fin], axis=1)
+            sd[fin] = np.where(np.isfinite(sd[fin]), sd[fin], med[:, None])
+        noise[blk] = sd.reshape(n, ny, nx)
     return MapChoice(kind=kind, linear_share=share, spatial=spatial, linear_spatial=linear_spatial,
                      peak=peak, z=zmap, noise_sd=noise, threshold_z=region_threshold_z(P, alpha))
 
@@ -1942,6 +1962,9 @@ def spike_latency(spikes: Spikes, noise: SparseNoise, result: MapResult, bins_pe
     1/4, 1/2, 1/4) first reaches half its maximum, going back from the maximum (linear interpolation
     between bin centres).
 
+    All cells are done together: the drives of a block of frames for every cell are one sparse product,
+    and each lag adds every (spike, frame) pair of the block to one histogram of all cells.
+
     Parameters
     ----------
     spikes : Spikes
@@ -1975,49 +1998,70 @@ def spike_latency(spikes: Spikes, noise: SparseNoise, result: MapResult, bins_pe
     L = int(result.lag_frames[-1]) + 1
     width = T / int(bins_per_frame)
     n_bins = L * int(bins_per_frame)
-    flat = np.asarray(noise.frames).reshape(F, -1)
-    f_idx, p_idx = np.nonzero(flat)
-    bright = flat[f_idx, p_idx] > 0
-    P = flat.shape[1]
-    B = sp.csr_matrix((np.ones(f_idx.size, np.float32), (f_idx, np.where(bright, p_idx, p_idx + P))),
-                      shape=(F, 2 * P))
-    rows = cell_index(spikes)
-    order = np.argsort(rows, kind="stable")
-    bounds = np.searchsorted(rows[order], np.arange(C + 1))
+    # every cell's weights: its excitatory ON and OFF pixels at the peak lag, (2P, n)
+    li = result.peak_lag_index[cells]
+    w = []
+    for m, z in ((result.on, result.on_z), (result.off, result.off_z)):
+        mm = np.nan_to_num(m[cells, li].reshape(cells.size, -1).astype(float))
+        zz = np.nan_to_num(z[cells, li].reshape(cells.size, -1).astype(float))
+        w.append(np.where((zz >= z_min) & (mm > 0), mm, 0.0))
+    w = np.concatenate(w, axis=1)
+    use = (w > 0).any(axis=1)
+    cells, W = cells[use], np.ascontiguousarray(w[use].T)
+    n = cells.size
+    if n == 0:
+        return out
+    B = _SparseCorrelator(noise.frames).B                        # (F, 2P): which spot in which frame
+    mean = (np.asarray(B.sum(axis=0), float).ravel() @ W) / F     # each cell's mean drive over frames
+    col_of = np.full(C, -1, dtype=np.int64)                       # spike's cell row -> column of W
+    col_of[cells] = np.arange(n)
     t_all = np.asarray(spikes.time_s, float)
-    for c in cells:
-        li = int(result.peak_lag_index[c])
-        w = []
-        for m, z in ((result.on, result.on_z), (result.off, result.off_z)):
-            mm, zz = np.nan_to_num(m[c, li].ravel()), np.nan_to_num(z[c, li].ravel())
-            w.append(np.where((zz >= z_min) & (mm > 0), mm, 0.0))
-        w = np.concatenate(w)
-        if not np.any(w > 0):
+    rows = cell_index(spikes)
+    if t_all.size > 1 and np.any(t_all[1:] < t_all[:-1]):
+        order = np.argsort(t_all, kind="stable")
+        t_all, rows = t_all[order], rows[order]
+    nb1 = n_bins + 1                                              # one overflow bin per cell
+    h = np.zeros(n * nb1)
+    step = int(max(256, min(F, _LATENCY_VALUES // n)))            # frames per block of drives
+    for a in range(0, F, step):
+        b = min(F, a + step)
+        # spikes whose frame k (last onset <= t) pairs with frames a .. b-1 at some lag: a <= k < b + L - 1
+        s0 = int(np.searchsorted(t_all, onsets[a], side="left"))
+        s1 = t_all.size if b + L - 1 >= F else int(np.searchsorted(t_all, onsets[b + L - 1], side="left"))
+        if s1 <= s0:
             continue
-        d = np.asarray(B @ w, float)
-        d -= d.mean()
-        t = np.sort(t_all[order[bounds[c]:bounds[c + 1]]])
+        col = col_of[rows[s0:s1]]
+        t = t_all[s0:s1]
         k = np.searchsorted(onsets, t, side="right") - 1
-        h = np.zeros(n_bins)
+        # a spike n_bins or more bins after its own frame's onset is at least as far from every earlier one
+        keep = (col >= 0) & ((t - onsets[k]) / width < n_bins)
+        col, t, k = col[keep], t[keep], k[keep]
+        if k.size == 0:
+            continue
+        D = (np.asarray(B[a:b] @ W) - mean).ravel()              # (b - a, n) centred drives
+        at = (k - a) * n + col                                    # drive of the spike's own frame
+        hist = col * nb1                                          # the cell's row of h
         for lag in range(L):
-            f = k - lag
-            ok = f >= 0
-            tau = t[ok] - onsets[f[ok]]
-            b = np.floor(tau / width).astype(np.int64)
-            keep = (b >= 0) & (b < n_bins)
-            h += np.bincount(b[keep], weights=d[f[ok]][keep], minlength=n_bins)[:n_bins]
-        h = np.convolve(h, [0.25, 0.5, 0.25], mode="same")      # one noisy bin does not end the rise
-        j = int(np.argmax(h))
-        if not h[j] > 0:
-            continue
-        half = 0.5 * h[j]
-        i = j
-        while i > 0 and h[i - 1] >= half:
-            i -= 1
-        centre = (np.arange(n_bins) + 0.5) * width
-        if i == 0:
-            out[c] = centre[0] if h[0] >= half else np.nan
-            continue
-        a, b_ = h[i - 1], h[i]
-        out[c] = centre[i - 1] + (half - a) / (b_ - a) * width
+            i0, i1 = np.searchsorted(k, [a + lag, b + lag])     # spikes whose frame minus lag is in a .. b-1
+            if i1 <= i0:
+                continue
+            bins = np.minimum(((t[i0:i1] - onsets[k[i0:i1] - lag]) / width).astype(np.int64), n_bins)
+            h += np.bincount(hist[i0:i1] + bins, weights=D[at[i0:i1] - lag * n], minlength=n * nb1)
+    h = h.reshape(n, nb1)[:, :n_bins]
+    # smoothed over 3 bins (weights 1/4, 1/2, 1/4): one noisy bin does not end the rise
+    hp = np.pad(h, ((0, 0), (1, 1)))
+    h = 0.25 * hp[:, :-2] + 0.5 * hp[:, 1:-1] + 0.25 * hp[:, 2:]
+    j = np.argmax(h, axis=1)
+    r = np.arange(n)
+    top = h[r, j]
+    half = 0.5 * top
+    # going back from the maximum: the first bin whose predecessor falls below half the maximum
+    idx = np.arange(n_bins)
+    below = (h < half[:, None]) & (idx[None, :] < j[:, None])
+    i = np.where(below, idx[None, :], -1).max(axis=1) + 1
+    centre = (idx + 0.5) * width
+    a_, b_ = h[r, np.maximum(i - 1, 0)], h[r, i]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        lat = np.where(i == 0, centre[0], centre[np.maximum(i - 1, 0)] + (half - a_) / (b_ - a_) * width)
+    out[cells] = np.where(top > 0, lat, np.nan)
     return out
