@@ -47,6 +47,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
+try:        # the kernel behind scipy.sparse's sparse @ dense (accumulates into a given array)
+    from scipy.sparse._sparsetools import csc_matvecs as _csc_matvecs
+except ImportError:                                  # another scipy layout: the public product
+    _csc_matvecs = None
+
 from ._forked import ForkedCall
 from .align import interval_responses, spikes_in_intervals
 from .contract import SparseNoise, Spikes, Traces
@@ -478,15 +483,31 @@ def _correlate(chunks, prov, shift: int, lags, circular: bool) -> np.ndarray:
     block (plus the longest lag) when needed, so only one block of responses is in memory.
     """
     lmax = int(lags[-1])
-    Y = None
+    Y = part = None
     for a, b, BT in chunks:
         Xc = prov.rows(a + shift, b + shift + lmax, circular)
         for li, lag in enumerate(lags):
-            part = BT @ Xc[int(lag):int(lag) + (b - a)]
+            Xl = Xc[int(lag):int(lag) + (b - a)]
+            if part is None or part.shape != (BT.shape[0], Xl.shape[1]):
+                part = np.empty((BT.shape[0], Xl.shape[1]), dtype=np.float32)
+            _product_into(part, BT, Xl)
             if Y is None:
                 Y = np.zeros((len(lags),) + part.shape, dtype=np.float32)
             Y[li] += part
     return Y
+
+
+def _product_into(out, BT, X):
+    """``out[...] = BT @ X`` (``BT`` csc float32, ``X`` float32) written into ``out``: the kernel of
+    ``scipy.sparse``'s sparse-times-dense product without a fresh result array per block and lag (the
+    same sums in the same order); the public product when that kernel is not at hand."""
+    if (_csc_matvecs is None or BT.format != "csc" or BT.dtype != np.float32 or X.dtype != np.float32
+            or not X.flags.c_contiguous or not out.flags.c_contiguous):
+        out[...] = BT @ X
+        return out
+    out.fill(0)
+    _csc_matvecs(BT.shape[0], BT.shape[1], X.shape[1], BT.indptr, BT.indices, BT.data, X.ravel(), out.ravel())
+    return out
 
 
 # ----------------------------------------------------------------------------------------------
@@ -885,8 +906,9 @@ def _compute_sparse(src, noise, lags, cell_ids, unit, frame_s, K, alpha, rng, mi
     child = ForkedCall(lambda: _first_stage(null_stats, cells, offsets[:n_a], C, L, starts, N_KINDS_SPARSE),
                        enabled=n_jobs > 1)
 
-    maps = np.full((N_KINDS_SPARSE, C, L, P), np.nan, dtype=np.float32)
-    asd = np.full((N_KINDS_SPARSE, C, L, P), np.nan, dtype=np.float32)
+    # every element of these is written lag by lag below (no NaN fill first: 2 x 4 x cells x lags x pixels)
+    maps = np.empty((N_KINDS_SPARSE, C, L, P), dtype=np.float32)
+    asd = np.empty((N_KINDS_SPARSE, C, L, P), dtype=np.float32)
     Yobs = _correlate(chunks, prov, 0, lags, circular=False)            # (L, 2P, C)
     for li, lag in enumerate(lags):
         sums = Yobs[li]
