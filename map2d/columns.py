@@ -247,27 +247,29 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("orientation_hwhh_deg", "deg", "Orientation tuning half-width at half height (von Mises fit).",
                "common practice"),
         Column("orientation_hwhh_ci_low_deg", "deg", "Lower end of the 95 % interval of `orientation_hwhh_deg` "
-               "(flashed gratings: the von Mises refitted to resampled surfaces, the measured noise of each "
-               "condition; else from the fit, see `bandwidth_interval_reason`).", "Davison & Hinkley 1997"),
+               "(the von Mises refitted to resampled data: flashed gratings the measured noise of each condition, "
+               "drifting gratings the trials of each condition; else from the fit, see `bandwidth_interval_reason`).",
+               "Davison & Hinkley 1997"),
         Column("orientation_hwhh_ci_high_deg", "deg", "Upper end of the 95 % interval of `orientation_hwhh_deg`.",
                "Davison & Hinkley 1997"),
         Column("pref_sf_ci_low_cpd", "cpd", "Lower end of the 95 % interval of `pref_sf_cpd`."),
         Column("pref_sf_ci_high_cpd", "cpd", "Upper end of the 95 % interval of `pref_sf_cpd`."),
         Column("sf_bandwidth_oct", "oct", "Full SF bandwidth at half height above the baseline.", "common practice"),
         Column("sf_bandwidth_ci_low_oct", "oct", "Lower end of the 95 % interval of `sf_bandwidth_oct` (flashed "
-               "gratings: the SF models refitted to resampled surfaces and averaged as the estimate; else from the "
-               "fit, see `bandwidth_interval_reason`).", "Davison & Hinkley 1997"),
+               "the SF models refitted to resampled data, as `orientation_hwhh_ci_low_deg`, and averaged as the estimate; "
+               "else from the fit, see `bandwidth_interval_reason`).", "Davison & Hinkley 1997"),
         Column("sf_bandwidth_ci_high_oct", "oct", "Upper end of the 95 % interval of `sf_bandwidth_oct`.",
                "Davison & Hinkley 1997"),
         Column("bandwidth_interval_reason", "text", "Why the interval of `orientation_hwhh_deg` or `sf_bandwidth_oct` is "
                "empty (too few resampled surfaces gave a finite width: a wider curve than the tested range "
-               "measures) or comes from the fit (drifting gratings, or noise not measured); empty when both "
-               "are resampled."),
+               "measures) or comes from the fit (flashed noise not measured, or drifting gratings with fewer than 2 "
+               "trials per condition); empty when both are resampled."),
         Column("circular_variance", "1", "Circular variance of the orientation curve (0 one orientation, 1 untuned; "
                "flashed gratings: the noise floor of |H| removed).",
                "Ringach, Shapley & Hawken 2002"),
         Column("circular_variance_ci_low", "1", "Lower end of the 95 % interval of `circular_variance` "
-               "(flashed gratings: the measured noise of each condition resampled).", "Davison & Hinkley 1997"),
+               "(flashed gratings: the measured noise of each condition resampled; drifting gratings: the trials of each "
+               "condition resampled).", "Davison & Hinkley 1997"),
         Column("circular_variance_ci_high", "1", "Upper end of the 95 % interval of `circular_variance`.",
                "Davison & Hinkley 1997"),
         Column("osi", "1", "Orientation selectivity index (R_pref - R_orth) / (R_pref + R_orth).",

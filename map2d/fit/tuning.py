@@ -1669,7 +1669,7 @@ _FLASHED_FIELDS = ("cell_ids", "p_value", "responsive", "peak_lag_s", "peak_resp
                    "phase_mean_combined", "harmonic_noise_var", "phase_mean_noise_var")
 _DRIFTING_FIELDS = ("cell_ids", "p_value", "responsive", "f1_f0", "simple", "dsi", "pref_direction_deg",
                     "pref_index", "response", "f1_f0_ci_low", "f1_f0_ci_high", "f1_f0_p_simple", "grating_class",
-                    "dsi_ci_low", "dsi_ci_high")
+                    "dsi_ci_low", "dsi_ci_high", "trial_f0", "trial_f1")
 
 
 def _flashed_view(fl):
@@ -1686,10 +1686,13 @@ def _drifting_view(dr):
     n = np.asarray(dr.cell_ids).size
     defaults = {"f1_f0_ci_low": np.full(n, np.nan), "f1_f0_ci_high": np.full(n, np.nan),
                 "f1_f0_p_simple": np.full(n, np.nan), "grating_class": np.full(n, "", object),
-                "dsi_ci_low": np.full(n, np.nan), "dsi_ci_high": np.full(n, np.nan)}
+                "dsi_ci_low": np.full(n, np.nan), "dsi_ci_high": np.full(n, np.nan),
+                "trial_f0": np.full((n, 0), np.nan), "trial_f1": np.full((n, 0), np.nan, complex)}
     v = SimpleNamespace(**{k: np.asarray(getattr(dr, k) if getattr(dr, k, None) is not None else defaults[k])
                            for k in _DRIFTING_FIELDS})
     v.directions_deg, v.sfs_cpd = np.asarray(dr.directions_deg), np.asarray(dr.sfs_cpd)
+    tc = getattr(dr, "trial_condition", None)
+    v.trial_condition = np.zeros((0, 3), np.int64) if tc is None else np.asarray(tc)
     return v
 
 
@@ -1700,7 +1703,7 @@ def _subset(view, cells):
     rows = np.flatnonzero(np.isin(view.cell_ids, cells))
     fields = _FLASHED_FIELDS if hasattr(view, "peak_response") else _DRIFTING_FIELDS
     out = SimpleNamespace(**{k: getattr(view, k)[rows] for k in fields})
-    for k in ("orientations_deg", "directions_deg", "sfs_cpd", "condition_contrast"):
+    for k in ("orientations_deg", "directions_deg", "sfs_cpd", "condition_contrast", "trial_condition"):
         if hasattr(view, k):
             setattr(out, k, getattr(view, k))
     return out
@@ -2005,31 +2008,48 @@ def _bandwidth_block(fl, cells, part, resp, level, out, fin):
     prof_o, prof_s, some = _rank1_many(resp, sf=True)
     tasks = {}                  # kind -> list of (n, slot, model index, task)
     for m, n in enumerate(part):
-        _, _, ori, sf = cells[n]
-        if ori is not None:
-            pr, fit = ori[1]
-            if pr.x.size == th_all.size:
-                tasks.setdefault(pr.kind, []).append((n, 0, 0, (pr.x, np.where(some[m][:, None], prof_o[m], np.nan),
-                                                                fit.params, pr.lower, pr.upper)))
-        if sf is None:
-            continue
-        _, path, pfs, curve = sf
-        if path == "surface":
-            ok2 = np.isfinite(fl.peak_response[cells[n][0]]) & good_f[None, :]
-            y = resp[m][:, ok2]
-        else:
-            if curve[0] == "near":
-                rows, w = curve[1], curve[2]
-                r = resp[m][:, rows]                                 # (draws, 3, S)
-                okr = np.isfinite(r)
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    c = (np.where(okr, r, 0.0) * w[:, None]).sum(1) / (okr * w[:, None]).sum(1)
+        sf = cells[n][3]
+        ori_y = np.where(some[m][:, None], prof_o[m], np.nan) if th_all.size else None
+        sf_y = None
+        if sf is not None:
+            _, path, _, curve = sf
+            if path == "surface":
+                ok2 = np.isfinite(fl.peak_response[cells[n][0]]) & good_f[None, :]
+                sf_y = resp[m][:, ok2]
             else:
-                c = np.where(some[m][:, None], prof_s[m], np.nan)
-            y = c[:, curve[-1]]
-        for j, (pr, fit) in _weighty_models(pfs):
-            if y.shape[1] == np.size(pr.y):
-                tasks.setdefault(pr.kind, []).append((n, 1, j, (pr.x, y, fit.params, pr.lower, pr.upper)))
+                if curve[0] == "near":
+                    rows, w = curve[1], curve[2]
+                    r = resp[m][:, rows]                                 # (draws, 3, S)
+                    okr = np.isfinite(r)
+                    with np.errstate(invalid="ignore", divide="ignore"):
+                        c = (np.where(okr, r, 0.0) * w[:, None]).sum(1) / (okr * w[:, None]).sum(1)
+                else:
+                    c = np.where(some[m][:, None], prof_s[m], np.nan)
+                sf_y = c[:, curve[-1]]
+        _width_tasks(cells, n, ori_y, sf_y, tasks)
+    _refit_widths(cells, part, tasks, f_all, level, out, fin)
+
+
+def _width_tasks(cells, n, ori_y, sf_y, tasks):
+    """Add the refits of cell ``cells[n]`` to ``tasks`` (kind -> list): its orientation fit to the drawn
+    orientation curves ``ori_y`` (draws, points), its weighty SF models to the drawn SF curves or
+    surfaces ``sf_y`` (draws, points); either may be None."""
+    ori, sf = cells[n][2], cells[n][3]
+    if ori is not None and ori_y is not None:
+        pr, fit = ori[1]
+        if ori_y.shape[1] == np.size(pr.y):
+            tasks.setdefault(pr.kind, []).append((n, 0, 0, (pr.x, ori_y, fit.params, pr.lower, pr.upper)))
+    if sf is not None and sf_y is not None:
+        for j, (pr, fit) in _weighty_models(sf[2]):
+            if sf_y.shape[1] == np.size(pr.y):
+                tasks.setdefault(pr.kind, []).append((n, 1, j, (pr.x, sf_y, fit.params, pr.lower, pr.upper)))
+
+
+def _refit_widths(cells, part, tasks, f_all, level, out, fin):
+    """Run the refits of ``tasks`` (:func:`_width_tasks`, all cells of ``part`` together per model),
+    read each draw's HWHH and Akaike-averaged SF bandwidth, and write the intervals
+    (:func:`_resampled_interval`) into rows ``part`` of ``out`` and ``fin``. ``f_all`` the SFs tested."""
+    good_f = np.isfinite(f_all) & (f_all > 0)
     got = {}                    # (n, slot) -> list of (kind, params, cost, n_points)
     for kind, ts in tasks.items():
         for (n, slot, _, task), (p, cost) in zip(ts, _refit(kind, [t[3] for t in ts])):
@@ -2067,6 +2087,96 @@ def _bandwidth_block(fl, cells, part, resp, level, out, fin):
                           np.sum(ww * np.where(use, bws, 0.0), axis=0), np.nan)
             lo_, hi_, k = _resampled_interval(bw[None], np.array([sf[0]], float), level, 0.0)
             out[n, 2], out[n, 3], fin[n, 1] = lo_[0], hi_[0], k[0]
+
+
+def _drifting_draws(dr, i, seed, n_draws=N_BANDWIDTH_DRAWS):
+    """Tuning responses (draws, D, S, T) of row ``i`` of drifting results ``dr`` with the trials of each
+    condition resampled (with replacement, as many as it has): per condition the mean F0, or for a
+    cell whose ``response`` is F1 (``simple``) the noise-bias-corrected ``|mean F1|`` (``|mean|^2`` less
+    the variance of the mean, as :func:`map2d.gratings.analyze_drifting` computes it). None when the
+    trials are not known or a shown condition has fewer than 2 trials (nothing to resample)."""
+    f0 = np.asarray(dr.trial_f0[i], float)
+    f1 = np.asarray(dr.trial_f1[i], complex)
+    tc = np.asarray(dr.trial_condition)
+    if f0.size == 0 or tc.shape[0] != f0.size:
+        return None
+    n_d, n_s, n_t = np.shape(dr.response)[1:]
+    valid = np.all(tc >= 0, axis=1)
+    k = np.where(valid, (tc[:, 0] * n_s + tc[:, 1]) * n_t + tc[:, 2], -1)
+    use = np.flatnonzero(valid)
+    order = use[np.argsort(k[use], kind="stable")]
+    ks = k[order]
+    if ks.size == 0:
+        return None
+    starts = np.flatnonzero(np.r_[True, ks[1:] != ks[:-1]])
+    counts = np.diff(np.r_[starts, ks.size])
+    if counts.min() < 2:
+        return None
+    rng = np.random.default_rng(int(seed))
+    pick = np.empty((n_draws, ks.size), np.int64)
+    for a, c in zip(starts, counts):
+        pick[:, a:a + c] = order[a + rng.integers(0, c, (n_draws, c))]
+    n_k = n_d * n_s * n_t
+    lab = (np.arange(n_draws)[:, None] * n_k + ks[None, :]).ravel()
+
+    def sums(x, w):
+        return np.bincount(lab, weights=np.where(w, x, 0.0), minlength=n_draws * n_k).reshape(n_draws, n_k)
+    a0, a1 = f0[pick].ravel(), f1[pick].ravel()
+    w0, w1 = np.isfinite(a0), np.isfinite(a1)
+    n0, n1 = sums(np.ones(a0.size), w0), sums(np.ones(a1.size), w1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if bool(dr.simple[i]):
+            mr, mi = sums(a1.real, w1) / n1, sums(a1.imag, w1) / n1
+            var = (sums(a1.real**2, w1) - n1 * mr**2 + sums(a1.imag**2, w1) - n1 * mi**2) / (n1 - 1)
+            r = np.sqrt(np.maximum(mr**2 + mi**2 - np.where(n1 > 1, var / n1, 0.0), 0.0))
+            r = np.where(n1 > 0, r, np.nan)
+        else:
+            r = np.where(n0 > 0, sums(a0, w0) / n0, np.nan)
+    return r.reshape(n_draws, n_d, n_s, n_t)
+
+
+def _drifting_intervals(dr, cells, level=0.95):
+    """95 % intervals of circular variance, OSI, orientation HWHH and SF bandwidth of cells tuned by
+    drifting gratings, trials resampled (:func:`_drifting_draws`): each draw's curves read as the
+    estimate's (:func:`_drifting_curves`, the same preferred condition), the indices recomputed and the
+    widths refitted as for flashed gratings (:func:`_refit_widths`). ``cells`` a list of ``(row, seed,
+    ori, sf, estimates)`` (``ori`` and ``sf`` as for :func:`_bandwidth_intervals`, the SF ``path``
+    ``"curve"``; ``estimates`` the circular variance and OSI). Returns ``(indices (cells, 4): CV low,
+    high, OSI low, high; widths (cells, 4); finite (cells, 2); resampled (cells,) bool)``."""
+    n = len(cells)
+    sel, out = np.full((n, 4), np.nan), np.full((n, 4), np.nan)
+    fin, done = np.zeros((n, 2), int), np.zeros(n, bool)
+    a = (1.0 - level) / 2.0
+    tasks = {}
+    for m, (i, seed, ori, sf, est) in enumerate(cells):
+        r = _drifting_draws(dr, i, seed)
+        if r is None:
+            continue
+        done[m] = True
+        d_i, s_i, t_i = dr.pref_index[i]
+        dirc = r[:, :, s_i, t_i]                                          # (draws, D)
+        th = np.mod(np.asarray(dr.directions_deg, float), 180.0)
+        uo = np.unique(np.round(th, 6))
+        idx = np.searchsorted(uo, np.round(th, 6))
+        fd = np.isfinite(dirc)
+        tot = np.stack([np.bincount(idx, weights=np.where(fd[b], dirc[b], 0.0), minlength=uo.size)
+                        for b in range(r.shape[0])])
+        cnt = np.stack([np.bincount(idx, weights=fd[b].astype(float), minlength=uo.size) for b in range(r.shape[0])])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            oc = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)        # (draws, O)
+        for j, x in enumerate((_circular_variance_rows(uo, oc), _osi_rows(uo, oc))):
+            t = est[j]
+            if np.isfinite(t) and np.isfinite(x).sum() >= x.size // 2:
+                q_lo, q_hi = np.nanquantile(x, [a, 1 - a])
+                sel[m, 2 * j] = min(max(min(q_lo, 2 * t - q_hi), 0.0), 1.0)
+                sel[m, 2 * j + 1] = min(max(max(q_hi, 2 * t - q_lo), 0.0), 1.0)
+        ori_y = oc[:, np.isfinite(ori[2])] if ori is not None else None     # the points the estimate used
+        sf_y = r[:, d_i, :, t_i][:, sf[3][-1]] if sf is not None else None
+        _width_tasks(cells, m, ori_y, sf_y, tasks)
+    part = [m for m in range(n) if done[m]]
+    if part:
+        _refit_widths(cells, part, tasks, np.asarray(dr.sfs_cpd, float), level, out, fin)
+    return sel, out, fin, done
 
 
 def _rank1_many(surfaces, sf=False):
@@ -2212,7 +2322,7 @@ def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
             how += (np.isfinite(f) & (f > 0) & np.isfinite(np.asarray(scurve, float)),)
         items.append((th, sfs, scurve, surface, of if oriented else None))
         chosen.append(row)
-        refits.append((row, fi, o_pf[0] if oriented and o_pf else None, how))
+        refits.append((row, fi, o_pf[0] if oriented and o_pf else None, how, ocurve))
     width = {"log_gaussian": "sf_fit_sigma_oct", "gaussian": "sf_fit_sigma_cpd", "dog": "sf_fit_rc_deg"}
     sfits, sf_how = table_sf_fits(items, solver, keep=True)
     for row, sfit in zip(chosen, sfits):
@@ -2225,8 +2335,15 @@ def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
             row[width[sfit.params_model]] = sfit.params[3]
     # the intervals of the flashed-grating cells from resampled surfaces (drawn once for all): circular
     # variance and OSI recomputed, orientation HWHH and SF bandwidth refitted
-    cells, at = [], []
-    for (row, fi, o_pf, how), sfit, sh in zip(refits, sfits, sf_how):
+    cells, at, dr_cells, dr_at = [], [], [], []
+    for (row, fi, o_pf, how, ocurve), sfit, sh in zip(refits, sfits, sf_how):
+        if row["tuning_source"] == "drifting":
+            ori = (row["orientation_hwhh_deg"], o_pf, np.asarray(ocurve, float)) \
+                if o_pf is not None and np.isfinite(row["orientation_hwhh_deg"]) else None
+            sf = (sfit.bandwidth_oct, sh[0], sh[1], how) if sfit.ok and np.isfinite(sfit.bandwidth_oct) else None
+            dr_cells.append((dr_pos[row["cell"]], row["cell"], ori, sf, (row["circular_variance"], row["osi"])))
+            dr_at.append(row)
+            continue
         if row["tuning_source"] != "flashed":
             continue
         ori = (row["orientation_hwhh_deg"], o_pf) if o_pf is not None and np.isfinite(row["orientation_hwhh_deg"]) \
@@ -2266,5 +2383,24 @@ def _tuning_chunk(flashed, drifting, cell_ids, solver="batch"):
                 row[f"{name}_ci_low_{unit}"], row[f"{name}_ci_high_{unit}"] = float(q[2 * j]), float(q[2 * j + 1])
                 if not np.isfinite(q[2 * j]):
                     why.append(f"{what} finite in only {k[j]} of {N_BANDWIDTH_DRAWS} resampled surfaces")
+            row["bandwidth_interval_reason"] = "; ".join(why)
+    if dr_cells:            # tuned by drifting gratings: the trials resampled
+        sel, widths, n_fin, done = _drifting_intervals(drifting, dr_cells)
+        for row, q, w, k, ok, (_, _, ori, sf, _) in zip(dr_at, sel, widths, n_fin, done, dr_cells):
+            (row["circular_variance_ci_low"], row["circular_variance_ci_high"], row["osi_ci_low"],
+             row["osi_ci_high"]) = (float(v) for v in q)
+            if not ok:
+                if ori is not None or sf is not None:
+                    row["bandwidth_interval_reason"] = "trials not resampled (fewer than 2 per condition, or not " \
+                                                       "known): intervals from the fit"
+                continue
+            why = []
+            for j, (name, unit, what) in enumerate((("orientation_hwhh", "deg", "orientation HWHH"),
+                                                   ("sf_bandwidth", "oct", "SF bandwidth"))):
+                if (ori, sf)[j] is None:
+                    continue
+                row[f"{name}_ci_low_{unit}"], row[f"{name}_ci_high_{unit}"] = float(w[2 * j]), float(w[2 * j + 1])
+                if not np.isfinite(w[2 * j]):
+                    why.append(f"{what} finite in only {k[j]} of {N_BANDWIDTH_DRAWS} resampled trial sets")
             row["bandwidth_interval_reason"] = "; ".join(why)
     return {k: [row[k] for row in rows] for k in TUNING_COLUMNS}
