@@ -117,12 +117,14 @@ def markdown(rows, spacing, alpha, seeds, seconds, latency):
            "(`fitted_map`, right when linear cells get `linear` and complex / ON-OFF cells `on+off`); *centre*",
            "= how the centre was found (`center_method`), *models* = the accepted models; *within yardstick* =",
            "responsive cells whose centre error is at most a third of a pixel (at least 0.5 deg) for linear cells,",
-           "0.4 pixel (at least 1 deg) for complex and ON-OFF cells; *latency error* = median / largest",
+           "0.4 pixel (at least 1 deg) for complex and ON-OFF cells; *centre box covers* = fitted centres whose",
+           "95 % intervals (`center_x_ci_*`, `center_y_ci_*`) both hold the true centre (nominal at least",
+           "0.95^2 = 90 %); *latency error* = median / largest",
            "|`latency_s` - true latency| (spikes; the generator's cells respond for one frame from 45 ms after",
            "a frame's onset at 10 Hz, 30 ms at 20 Hz).", ""]
     out += ["| regime | cells | found (strong; weak) | false pos. | centre error, deg (px): 50 / 90 / 100 % | "
-            "within yardstick | size error | map right | centre | models | latency error, s |",
-            "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+            "within yardstick | centre box covers | size error | map right | centre | models | latency error, s |",
+            "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
     for name, rs in rows.items():
         pixel = max(spacing[name])
         silent = [r for r in rs if r["cls"] == "none"]
@@ -140,6 +142,7 @@ def markdown(rows, spacing, alpha, seeds, seconds, latency):
             right = sum((r["fitted_map"] == "linear") == (r["cls"] == "linear") for r in found)
             tol = max(pixel / 3, 0.5) if cl == ("linear",) else max(0.4 * pixel, 1.0)
             within = sum(r["err_deg"] <= tol for r in found)
+            boxes = [r["covered"] for r in found if r.get("covered") is not None]
             meth = Counter(r["center_method"] for r in found)
             models = Counter(r["model"] for r in found if r["model"])
             lat = [abs(r["latency_s"] - latency[name]) for r in found if np.isfinite(r["latency_s"])]
@@ -148,6 +151,7 @@ def markdown(rows, spacing, alpha, seeds, seconds, latency):
                 f"| {name} | {label} | {sum(r['responsive'] for r in strong)}/{len(strong)}; "
                 f"{sum(r['responsive'] for r in weak)}/{len(weak)} | "
                 f"{sum(r['responsive'] for r in silent)}/{len(silent)} | {err} | {within}/{len(found)} | "
+                f"{sum(boxes)}/{len(boxes)} | "
                 f"{np.median(size):.2f} | {right}/{len(found)} | "
                 + ", ".join(f"{k} {v}" for k, v in sorted(meth.items())) + " | "
                 + ", ".join(f"{k} {v}" for k, v in sorted(models.items())) + f" | {lat_txt} |")
@@ -182,6 +186,12 @@ def markdown(rows, spacing, alpha, seeds, seconds, latency):
             "  columns are empty. At the grid's edge the usual reason is `centre not determined` (the fit's 95 %",
             "  interval wider than +-1 pixel across the cut); the cluster there is one-sided, so the centroid is",
             "  pulled inward (the edge regime's largest error, a weak Gabor).",
+            "- `center_x_ci_*` / `center_y_ci_*` (and every fitted parameter's interval): from a",
+            "  heteroscedasticity-consistent (HC3) covariance, never narrower than the equal-noise one; the",
+            "  equal-noise intervals covered the true centre for 78 % of fitted cells over 10 seeds (23 % of",
+            "  thresholded cells). Thresholded cells remain the lowest: their noise sits on the few pixels of the",
+            "  field, so the covariance itself rests on few residuals. Widths' intervals hold the map's widths,",
+            "  not the kernel's: a thresholded cell's map is narrower than its kernel (its size error above).",
             "- `size_deg` is the envelope sd of the accepted model with the pixel box removed; thresholded and",
             "  rectified cells have smaller effective fields than their kernel, which the size error shows.",
             "- `responsive`: weak cells are found when their maps reach the max-statistic's critical value; the",

@@ -381,7 +381,8 @@ def score(cells, truth, spacing_deg, peak_z):
     pixel side), ``peak_z``, ``fitted_map``, ``polarity``, ``center_method``, ``size_err`` (fitted size
     over the true envelope sd, minus 1: Gabor, DoG centre and ON-OFF blob sd, an energy cell's squared
     envelope; NaN without a fitted size); ``sees_gratings`` (the session has gratings and they drive
-    the cell), ``agreement``, ``linear`` (True, False or None) and ``linear_reason``.
+    the cell), ``agreement``, ``linear`` (True, False or None), ``linear_reason`` and ``covered`` (the 95 %
+    centre intervals hold the true centre: True, False, or None without intervals).
     """
     out = []
     pixel = max(spacing_deg)
@@ -410,8 +411,17 @@ def score(cells, truth, spacing_deg, peak_z):
                         agreement=_num(cells.get("agreement", [None] * len(truth["cells"]))[i]),
                         linear=_verdict(cells.get("linear", [None] * len(truth["cells"]))[i]),
                         linear_reason=str(cells.get("linear_reason", [""] * len(truth["cells"]))[i] or ""),
-                        size_err=size / true_size - 1 if resp and np.isfinite(size) else np.nan))
+                        size_err=size / true_size - 1 if resp and np.isfinite(size) else np.nan,
+                        covered=_covered(cells, i, c) if cls != "none" and resp else None))
     return out
+
+
+def _covered(cells, i, c):
+    """Whether the cell's 95 % centre intervals (x and y) both hold the true centre; None without them."""
+    ends = [_num(cells.get(f"center_{a}_ci_{e}_deg", [None] * (i + 1))[i]) for a in "xy" for e in ("low", "high")]
+    if not np.all(np.isfinite(ends)):
+        return None
+    return bool(ends[0] <= c["cx"] <= ends[1] and ends[2] <= c["cy"] <= ends[3])
 
 
 def _num(v):
