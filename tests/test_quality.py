@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from map2d.quality import QUALITY_COLUMNS, _design, block_sums, map_quality, spearman_brown
+from map2d.quality import FIT_FRAMES, QUALITY_COLUMNS, _design, block_sums, map_quality, spearman_brown
 from map2d.simulate import default_grid, make_cells, simulate_responses, stimulus_rates
 from map2d.stimuli.sparse_noise import make_sparse_noise
 
@@ -161,8 +161,9 @@ def test_quality_same_frames_path_equals_the_per_cell_path(mixed):
     onoff = np.arange(8) % 2 == 0
     for a, b in zip(map_reliability(fast, onoff), map_reliability(slow, np.append(onoff, False))):
         np.testing.assert_allclose(a, b[:8], rtol=1e-9, atol=1e-12)
-    np.testing.assert_allclose(prediction_r(fast, B, X, V), prediction_r(slow, B, Xx, Vx)[:8], rtol=1e-9,
-                               atol=1e-12)
+    # (the held-out sums are float32 within blocks of frames: the two paths round differently)
+    np.testing.assert_allclose(prediction_r(fast, B, X, V), prediction_r(slow, B, Xx, Vx)[:8], rtol=1e-6,
+                               atol=1e-9)
 
 
 def test_lag_design_is_every_lag_of_the_spot_matrix(mixed):
@@ -189,3 +190,52 @@ def test_lag_design_is_every_lag_of_the_spot_matrix(mixed):
         y = B @ W[i]
         ref_gen[lag:] += y[:F - lag]
     assert np.allclose(gen, ref_gen, atol=1e-4)
+
+
+def test_streamed_pass_equals_the_reference_pass(mixed):
+    """The pass of map2d.quality (cells in chunks, frames streamed, float32 sums, all lags of a block
+    in per-lag products) against the pass as first written, kept as tests/_quality_reference.py, on
+    spikes, on spikes with dropped frames (the gap-padded timeline) and on traces with missing samples
+    in some cells (each cell its own valid frames). Sessions shorter than map2d.quality.FIT_FRAMES fit
+    the nonlinearity on every training frame, as the reference does, so the values must agree to
+    float32 rounding."""
+    import dataclasses
+
+    import _quality_reference as reference
+    from map2d.simulate import simulate_responses
+
+    cells, sessions = mixed
+    noise, resp = sessions[0]
+    assert noise.n_frames < FIT_FRAMES
+    onoff = np.array([c.kind == "complex" for c in cells])
+    valid = np.ones(noise.n_frames, bool)
+    valid[[40, 41, 900, 3000, 3001, 3002, 6000]] = False
+    gappy = dataclasses.replace(noise, valid=valid)
+    traces = simulate_responses(cells[:12], noise, responses="traces", rng=5)
+    values = traces.values.copy()
+    values[2, 300:420] = np.nan                   # two cells lose samples (their own invalid frames)
+    values[7, 5000:5030] = np.nan
+    traces = dataclasses.replace(traces, values=values)
+    for r, n, oo in ((resp, noise, onoff), (resp, gappy, onoff), (traces, noise, onoff[:12])):
+        got = map_quality(r, n, 0.2, use_onoff=oo)
+        ref = reference.map_quality(r, n, 0.2, use_onoff=oo)
+        for k in QUALITY_COLUMNS:
+            assert np.array_equal(np.isnan(got[k]), np.isnan(ref[k])), k
+            np.testing.assert_allclose(got[k], ref[k], rtol=0, atol=2e-5, err_msg=k)
+
+
+def test_in_place_products_equal_scipys_public_products(mixed, monkeypatch):
+    """The block sums and the held-out generator accumulate with scipy's compiled csr kernels in place;
+    without them (map2d.quality._kernels = None) the public sparse products give the same values."""
+    import map2d.quality as quality
+
+    cells, sessions = mixed
+    noise, resp = sessions[0]
+    onoff = np.array([c.kind == "complex" for c in cells])
+    B, _, _ = _design(noise, 4)
+    assert quality._fits_kernel(B, np.zeros((B.shape[1], 2), np.float32), np.zeros((B.shape[0], 2), np.float32))
+    fast = map_quality(resp, noise, 0.2, use_onoff=onoff)
+    monkeypatch.setattr(quality, "_kernels", None)
+    slow = map_quality(resp, noise, 0.2, use_onoff=onoff)
+    for k in QUALITY_COLUMNS:
+        np.testing.assert_allclose(fast[k], slow[k], rtol=0, atol=1e-6, err_msg=k)
