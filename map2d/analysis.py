@@ -344,19 +344,53 @@ def flashed_signal_p(responses, table, flashed, n_shuffles=199, rng=None, cells=
     g = np.stack([np.ones_like(phi), np.cos(phi), np.sin(phi)], axis=1)    # (P, 3)
     cc2 = np.asarray(flashed.condition_contrast, float) ** 2                # (O, S)
     cols = np.arange(K)
+    # a permutation keeps every condition's count: without missing responses, what depends on the
+    # counts alone (the fit over phase, its noise gain) is computed once
+    cnt_g = np.bincount(lab, minlength=G).astype(float)                     # (G,)
+    if no_nan:
+        den = np.where(cnt_g > 0, cnt_g, 1.0)[:, None, None]
+        empty = cnt_g == 0
+        indptr = np.concatenate([[0], np.cumsum(np.bincount(lab, minlength=G))])
+        ones = np.ones(K)
+        c1 = cnt_g[:n_c, None]                                              # (n_c, 1)
+        vm_den = np.where(c1 > 0, c1, 1.0)
+        avail = (c1.T > 0).reshape(1, n_o, n_s, n_p)
+        a = np.einsum("cosp,pa,pb->cosab", avail.astype(float), g, g)
+        good = np.abs(np.linalg.det(a)) > 1e-9
+        a = np.where(good[..., None, None], a, np.eye(3))
+        lsq = np.linalg.solve(a, np.einsum("pa,cosp->cosap", g, avail.astype(float)))[..., 1:, :]   # (1, O, S, 2, P)
+        lsq_c = np.broadcast_to(lsq, (C,) + lsq.shape[1:])
+        gain = np.sum(lsq**2, axis=-2)                                      # (1, O, S, P)
+        # (C, O, S, P) as when computed per permutation: the sums below run in the same order
+        avail_c = np.ascontiguousarray(np.broadcast_to(avail, (C,) + avail.shape[1:]))
+        shown_c = avail_c.any(axis=-1)
+        finite_cc2 = np.isfinite(cc2)
+        cnt_mc = np.moveaxis(np.broadcast_to(cnt_g[:, None, None], (G, C, 1)), 0, 1)   # (C, G, 1)
 
     def statistic(labels):
-        onehot = sparse.csr_matrix((np.ones(K), (labels, cols)), shape=(G, K))
-        s = np.asarray(onehot @ R0f).reshape(G, C, L)
-        if no_nan:
-            cnt = np.broadcast_to(np.bincount(labels, minlength=G).astype(float)[:, None, None], s.shape)
+        if no_nan:      # one row per condition, its presentations in order (as the triplets give)
+            onehot = sparse.csr_matrix((ones, np.argsort(labels, kind="stable"), indptr), shape=(G, K))
+            s = np.asarray(onehot @ R0f).reshape(G, C, L)
+            m0 = s / den
+            if empty.any():
+                m0[empty] = 0.0
+            if has_blank:       # the blank always has presentations here
+                ref = m0[n_c]
+            else:
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    ref = s[:n_c].sum(axis=0) / cnt_g[:n_c].sum()
+            d = m0[:n_c] - np.nan_to_num(ref)[None]                          # (n_c, C, L)
+            if empty[:n_c].any():
+                d[empty[:n_c]] = 0.0
         else:
+            onehot = sparse.csr_matrix((np.ones(K), (labels, cols)), shape=(G, K))
+            s = np.asarray(onehot @ R0f).reshape(G, C, L)
             cnt = np.asarray(onehot @ Ff).reshape(G, C, L)
-        m0 = np.where(cnt > 0, s / np.where(cnt > 0, cnt, 1.0), 0.0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            all_mean = s[:n_c].sum(axis=0) / cnt[:n_c].sum(axis=0)
-        ref = np.where(cnt[n_c] > 0, m0[n_c], all_mean) if has_blank else all_mean
-        d = np.where(cnt[:n_c] > 0, m0[:n_c] - np.nan_to_num(ref)[None], 0.0)     # (n_c, C, L)
+            m0 = np.where(cnt > 0, s / np.where(cnt > 0, cnt, 1.0), 0.0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                all_mean = s[:n_c].sum(axis=0) / cnt[:n_c].sum(axis=0)
+            ref = np.where(cnt[n_c] > 0, m0[n_c], all_mean) if has_blank else all_mean
+            d = np.where(cnt[:n_c] > 0, m0[:n_c] - np.nan_to_num(ref)[None], 0.0)     # (n_c, C, L)
         # the temporal profile: first right singular vector of (conditions x lags) = top eigenvector
         # of the lags' Gram matrix
         dc = np.moveaxis(d, 0, 1)                                                 # (C, n_c, L)
@@ -366,7 +400,7 @@ def flashed_signal_p(responses, table, flashed, n_shuffles=199, rng=None, cells=
         # noise covariance across lags: residuals about the condition means (as analyze_flashed)
         if no_nan:      # sum of r r' minus sum over groups of n m m'
             mc = np.moveaxis(m0, 0, 1)                                            # (C, G, L)
-            between = np.matmul(mc.transpose(0, 2, 1), mc * np.moveaxis(cnt[..., :1], 0, 1))
+            between = np.matmul(mc.transpose(0, 2, 1), mc * cnt_mc)
             cov = (rr - between) / np.maximum(cnt_ff, 1)
         else:
             e = (R0 - m0[labels]) * F
@@ -376,37 +410,45 @@ def flashed_signal_p(responses, table, flashed, n_shuffles=199, rng=None, cells=
         if no_nan:
             # pooled condition means from the lags' means; their noise from the pooled residual
             # variance w' S w (one variance for all conditions: no pass over the presentations)
-            c1 = np.broadcast_to(cnt[:n_c, :, 0], (n_c, C))
             m = np.einsum("gcl,cl->gc", m0[:n_c], w)
             var_y = np.maximum(np.einsum("cl,clm,cm->c", w, cov, w), 0.0)
             with np.errstate(invalid="ignore", divide="ignore"):
-                vm = np.where(c1 >= 2, var_y[None, :] / np.where(c1 > 0, c1, 1.0), np.nan)
-        else:
-            y = RL[0] * w[None, :, 0]
-            for lag in range(1, L):
-                y += RL[lag] * w[None, :, lag]
-            y_ok = np.all(fin | (w == 0)[None], axis=2).astype(float)             # (K, C)
-            y = np.where(y_ok > 0, y, 0.0)
-            c1 = np.asarray(onehot @ y_ok)[:n_c]                                 # (n_c, C)
-            s1 = np.asarray(onehot @ y)[:n_c]
-            s2 = np.asarray(onehot @ (y * y))[:n_c]
+                vm = np.where(c1 >= 2, var_y[None, :] / vm_den, np.nan)
+            m = m.T.reshape(C, n_o, n_s, n_p)
+            vm = vm.T.reshape(C, n_o, n_s, n_p)
+            coef = np.einsum("cosap,cosp->cosa", lsq_c, m)
+            power = np.sum(coef**2, axis=-1) / cc2                              # |H|^2
+            with np.errstate(invalid="ignore"):
+                v = np.sum(np.where(avail_c, gain * np.nan_to_num(vm), 0.0), axis=-1) / cc2
+                use = good & np.all(~avail_c | np.isfinite(vm), axis=-1) & shown_c & finite_cc2
+            mm = np.sum(np.where(use, power, 0.0), axis=(1, 2))
+            noise = np.sum(np.where(use, v, 0.0), axis=(1, 2))
             with np.errstate(invalid="ignore", divide="ignore"):
-                m = np.where(c1 > 0, s1 / np.where(c1 > 0, c1, 1.0), 0.0)
-                vm = np.where(c1 >= 2, np.maximum(s2 - s1 * m, 0.0) / np.maximum(c1 - 1, 1)
-                              / np.where(c1 > 0, c1, 1), np.nan)
+                return np.where(noise > 0, mm / noise, np.nan)
+        y = RL[0] * w[None, :, 0]
+        for lag in range(1, L):
+            y += RL[lag] * w[None, :, lag]
+        y_ok = np.all(fin | (w == 0)[None], axis=2).astype(float)             # (K, C)
+        y = np.where(y_ok > 0, y, 0.0)
+        c1_ = np.asarray(onehot @ y_ok)[:n_c]                                # (n_c, C)
+        s1 = np.asarray(onehot @ y)[:n_c]
+        s2 = np.asarray(onehot @ (y * y))[:n_c]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            m = np.where(c1_ > 0, s1 / np.where(c1_ > 0, c1_, 1.0), 0.0)
+            vm = np.where(c1_ >= 2, np.maximum(s2 - s1 * m, 0.0) / np.maximum(c1_ - 1, 1)
+                          / np.where(c1_ > 0, c1_, 1), np.nan)
         m = m.T.reshape(C, n_o, n_s, n_p)
         vm = vm.T.reshape(C, n_o, n_s, n_p)
-        avail = (c1.T > 0).reshape(C, n_o, n_s, n_p)
-        wa = avail[:1] if no_nan else avail          # the same presentations for every cell
-        a = np.einsum("cosp,pa,pb->cosab", wa.astype(float), g, g)
-        good = np.abs(np.linalg.det(a)) > 1e-9
-        a = np.where(good[..., None, None], a, np.eye(3))
-        lsq = np.linalg.solve(a, np.einsum("pa,cosp->cosap", g, wa.astype(float)))[..., 1:, :]   # (c, O, S, 2, P)
-        coef = np.einsum("cosap,cosp->cosa", np.broadcast_to(lsq, (C,) + lsq.shape[1:]), m)
+        avail_ = (c1_.T > 0).reshape(C, n_o, n_s, n_p)
+        a_ = np.einsum("cosp,pa,pb->cosab", avail_.astype(float), g, g)
+        good_ = np.abs(np.linalg.det(a_)) > 1e-9
+        a_ = np.where(good_[..., None, None], a_, np.eye(3))
+        lsq_ = np.linalg.solve(a_, np.einsum("pa,cosp->cosap", g, avail_.astype(float)))[..., 1:, :]   # (C, O, S, 2, P)
+        coef = np.einsum("cosap,cosp->cosa", lsq_, m)
         power = np.sum(coef**2, axis=-1) / cc2                                  # |H|^2
         with np.errstate(invalid="ignore"):
-            v = np.sum(np.where(avail, np.sum(lsq**2, axis=-2) * np.nan_to_num(vm), 0.0), axis=-1) / cc2
-            use = good & np.all(~avail | np.isfinite(vm), axis=-1) & avail.any(axis=-1) & np.isfinite(cc2)
+            v = np.sum(np.where(avail_, np.sum(lsq_**2, axis=-2) * np.nan_to_num(vm), 0.0), axis=-1) / cc2
+            use = good_ & np.all(~avail_ | np.isfinite(vm), axis=-1) & avail_.any(axis=-1) & np.isfinite(cc2)
         mm = np.sum(np.where(use, power, 0.0), axis=(1, 2))
         noise = np.sum(np.where(use, v, 0.0), axis=(1, 2))
         with np.errstate(invalid="ignore", divide="ignore"):

@@ -1,5 +1,5 @@
 """The drifting-grating analysis as it was before it was restructured for speed (issue 17), kept
-only as the reference that ``tests/test_drifting_speed.py`` compares :func:`map2d.gratings.analyze_drifting`
+only as the reference that ``tests/test_speed_same_numbers.py`` compares :func:`map2d.gratings.analyze_drifting`
 with: same seeds, same numbers. Not used by map2d.
 
 The functions below are the former ``analyze_drifting``, ``drifting_latency``, ``_spike_f1``,

@@ -1,4 +1,5 @@
-"""The drifting-grating analysis restructured for speed (issue 17) gives the same numbers as before.
+"""The drifting-grating analysis and the flashed-grating signal test, restructured for speed (issue
+17), give the same numbers as before.
 
 :func:`map2d.gratings.analyze_drifting` now reads only the spikes of the drifting block, bins them by
 runs of sorted spikes, draws the DSI resamples of all cells from one stream in the former order and
@@ -6,6 +7,10 @@ takes the bootstrap quantiles of all cells at once. ``tests/reference_drifting.p
 implementation; with the same seeds every field of the result must be equal (bit for bit, NaN where
 NaN; the only tolerance is none). Sessions: the small simulated ones of ``conftest.py``, spikes with
 non-consecutive cell ids and unsorted spike times, traces with missing samples.
+
+:func:`map2d.analysis.flashed_signal_p` computes once what a permutation of the condition sequence
+cannot change (every condition's count: the fit over phase and its noise gain, the group layout);
+``tests/reference_signal_p.py`` keeps the former code, which redid everything per permutation.
 """
 
 from __future__ import annotations
@@ -14,8 +19,10 @@ import numpy as np
 import pytest
 
 import reference_drifting as ref
+import reference_signal_p as ref_p
+from map2d.analysis import flashed_signal_p
 from map2d.contract import Spikes, Traces
-from map2d.gratings import analyze_drifting
+from map2d.gratings import analyze_drifting, analyze_flashed
 
 
 def _assert_same(a, b):
@@ -61,3 +68,21 @@ def test_drifting_traces_equal_the_former_implementation(small_traces_session):
     old = ref.analyze_drifting(tr, s.gratings, n_boot=200, rng=1)
     _assert_same(new, old)
     assert np.isfinite(new.dsi_ci_low).sum() >= 3
+
+
+@pytest.mark.parametrize("kind", ["spikes", "traces with missing samples"])
+def test_flashed_signal_p_equals_the_former_implementation(small_spikes_session, small_traces_session, kind):
+    s, _ = small_spikes_session if kind == "spikes" else small_traces_session
+    resp = s.responses
+    if kind != "spikes":
+        vals = np.array(resp.values, float)
+        vals[1, 5::11] = np.nan
+        t0 = float(s.gratings.onset_s.min())
+        vals[4, (resp.times_s > t0 + 20.0) & (resp.times_s < t0 + 24.0)] = np.nan   # whole frames missing
+        resp = Traces(values=vals, times_s=resp.times_s)
+    fl = analyze_flashed(resp, s.gratings, rng=0)
+    cells = np.arange(resp.cell_ids.size) % 4 != 3
+    new = flashed_signal_p(resp, s.gratings, fl, n_shuffles=40, rng=3, cells=cells)
+    old = ref_p.flashed_signal_p(resp, s.gratings, fl, n_shuffles=40, rng=3, cells=cells)
+    assert np.array_equal(new, old, equal_nan=True)
+    assert np.isfinite(new).sum() >= 6
