@@ -136,6 +136,18 @@ class GratingTable:
         return cls(**arrays, phase_origin_deg=tuple(float(v) for v in phase_origin_deg))
 
 
+def _distinct(values) -> np.ndarray:
+    """``numpy.unique(values)`` of integers, by a count over their range when that range is not much
+    larger than the values (one pass instead of a sort or a hash)."""
+    v = np.asarray(values)
+    if v.dtype.kind in "iu" and v.size > 1024:
+        lo, hi = int(v.min()), int(v.max())
+        if hi - lo <= v.size:
+            return (np.flatnonzero(np.bincount((v - lo).astype(np.intp, copy=False), minlength=hi - lo + 1))
+                    + lo).astype(v.dtype)
+    return np.unique(v)
+
+
 @dataclass
 class Spikes:
     """Spike times (s) and the cell each belongs to."""
@@ -146,7 +158,7 @@ class Spikes:
 
     def __post_init__(self):
         if self.cell_ids is None:
-            self.cell_ids = np.unique(self.cell)
+            self.cell_ids = _distinct(self.cell)
         self.cell_ids = np.asarray(self.cell_ids, dtype=np.int64)
 
     kind = "spikes"
@@ -304,14 +316,14 @@ def _load_npz(folder: Path, rel: str, key: str, members=None, check_headers=None
         with zipfile.ZipFile(path) as zf:
             infos = [i for i in zf.infolist() if i.filename.endswith(".npy")
                      and (members is None or i.filename[:-4] in members)]
-            headers = {}
+            headers, layout = {}, {}
             for info in infos:
                 name = info.filename[:-4]
                 _affordable(info.file_size, path, name, "the array")
                 with zf.open(info) as fh:
                     version = np.lib.format.read_magic(fh)
-                    shape, _, dtype = (np.lib.format.read_array_header_1_0(fh) if version == (1, 0)
-                                       else np.lib.format.read_array_header_2_0(fh))
+                    shape, fortran, dtype = (np.lib.format.read_array_header_1_0(fh) if version == (1, 0)
+                                             else np.lib.format.read_array_header_2_0(fh))
                     if dtype.hasobject:
                         raise BadInput(path, name, "holds Python objects (not read: only plain arrays are)")
                     count = 1
@@ -321,15 +333,26 @@ def _load_npz(folder: Path, rel: str, key: str, members=None, check_headers=None
                     if fh.tell() + data != info.file_size:
                         raise BadInput(path, name, f"not a readable .npz member (its header describes {data} "
                                                    f"bytes of data, the member holds {info.file_size - fh.tell()})")
+                    layout[name] = (fh.tell(), fortran)
                 headers[name] = (tuple(int(n) for n in shape), dtype)
             if check_headers is not None:
                 check_headers(headers)
+            out = {}
             for info in infos:
+                name = info.filename[:-4]
+                if info.compress_type == zipfile.ZIP_STORED:
+                    # stored (np.savez): the array read in one go from where its bytes lie in the
+                    # file, and the member's CRC-32 computed over them
+                    out[name] = _read_stored(path, zf, info, headers[name], *layout[name])
+                    continue
                 with zf.open(info) as fh:
                     while fh.read(_CHUNK_BYTES):   # the CRC-32 is checked when the member ends
                         pass
-        with np.load(path, allow_pickle=False) as z:
-            return {k: z[k] for k in z.files if members is None or k in members}
+        rest = [k for k in headers if k not in out]
+        if rest:
+            with np.load(path, allow_pickle=False) as z:
+                out.update({k: z[k] for k in rest})
+        return out
     except BadInput:
         raise
     except zipfile.BadZipFile as exc:
@@ -337,6 +360,32 @@ def _load_npz(folder: Path, rel: str, key: str, members=None, check_headers=None
         raise BadInput(path, key, f"not a readable .npz file {detail}"[:300]) from None
     except Exception as exc:
         raise BadInput(path, key, f"not a readable .npz file ({type(exc).__name__})") from None
+
+
+def _read_stored(path, zf, info, header, start, fortran) -> np.ndarray:
+    """The array of the stored (uncompressed) ``.npz`` member ``info`` whose ``.npy`` header ends at
+    ``start`` bytes into the member; BadZipFile when its CRC-32 does not match."""
+    import struct
+    import zlib
+
+    shape, dtype = header
+    with open(path, "rb") as fh:
+        fh.seek(info.header_offset)
+        local = fh.read(30)                       # the member's local header: its name and extra field
+        if len(local) != 30 or local[:4] != b"PK\x03\x04":
+            raise zipfile.BadZipFile("bad local file header")
+        n_name, n_extra = struct.unpack("<HH", local[26:30])
+        fh.seek(info.header_offset + 30 + n_name + n_extra)
+        crc = zlib.crc32(fh.read(start))
+        count = 1
+        for n in shape:
+            count *= n
+        arr = np.fromfile(fh, dtype=dtype, count=count)
+    if arr.size != count:
+        raise zipfile.BadZipFile("member is truncated")
+    if zlib.crc32(arr.view(np.uint8), crc) != info.CRC:
+        raise zipfile.BadZipFile(f"Bad CRC-32 for file {info.filename!r}")
+    return arr.reshape(shape[::-1]).T if fortran else arr.reshape(shape)
 
 
 def _require(mapping, key, where):
@@ -426,8 +475,7 @@ def parse_number(text) -> float:
     if not _NUMBER.fullmatch(s):
         raise ValueError(f"'{s}' is not a number (plain decimal or exponent notation, e.g. 0.08 or 8e-2)")
     v = float(s)
-    mantissa = re.split("[eE]", s)[0]
-    if not math.isfinite(v) or (v == 0 and any(c in mantissa for c in "123456789")):
+    if not math.isfinite(v) or (v == 0 and any(c in re.split("[eE]", s)[0] for c in "123456789")):
         raise ValueError(f"'{s}' is beyond the range of a 64-bit float")
     return v
 
@@ -1134,10 +1182,18 @@ def count_spikes_outside(session: "Session") -> int:
         return 0
     order = np.argsort(starts, kind="stable")
     starts, reach = starts[order], np.maximum.accumulate(ends[order])
-    k = np.searchsorted(starts, r.time_s, side="right") - 1
+    t = r.time_s
+    if np.all(t[1:] >= t[:-1]):
+        # sorted spikes (as loaded): a spike is inside when it lies in the union of the windows, runs
+        # of overlapping or touching windows [start of the run, its reach); count per run
+        first = np.flatnonzero(np.concatenate([[True], starts[1:] >= reach[:-1]]))
+        last = np.append(first[1:], starts.size) - 1
+        n_in = np.searchsorted(t, reach[last], side="left") - np.searchsorted(t, starts[first], side="left")
+        return int(t.size - np.maximum(n_in, 0).sum())
+    k = np.searchsorted(starts, t, side="right") - 1
     inside = k >= 0
-    inside[inside] = reach[k[inside]] > r.time_s[inside]
-    return int(r.time_s.size - np.count_nonzero(inside))
+    inside[inside] = reach[k[inside]] > t[inside]
+    return int(t.size - np.count_nonzero(inside))
 
 
 def _read_json_object(path, missing: str = "file not found") -> dict:

@@ -86,3 +86,62 @@ def test_flashed_signal_p_equals_the_former_implementation(small_spikes_session,
     old = ref_p.flashed_signal_p(resp, s.gratings, fl, n_shuffles=40, rng=3, cells=cells)
     assert np.array_equal(new, old, equal_nan=True)
     assert np.isfinite(new).sum() >= 6
+
+
+# ----------------------------------------------------------------------------------------------
+# loading (map2d.contract): the same arrays, counts and ids by cheaper passes
+# ----------------------------------------------------------------------------------------------
+def test_npz_members_read_in_one_go_equal_numpy_and_keep_their_checksum(tmp_path):
+    """Stored members are read straight from their place in the file, their CRC-32 computed over the
+    bytes read (reference: numpy.load; the zip format's CRC-32, PKWARE APPNOTE 4.4.7)."""
+    from map2d.contract import _load_npz
+    from map2d.errors import BadInput
+    rng = np.random.default_rng(0)
+    arrays = {"time_s": rng.random(5000), "cell": rng.integers(0, 9, 5000),
+              "fortran": np.asfortranarray(rng.random((30, 7))), "small": np.arange(3, dtype=np.int16)}
+    np.savez(tmp_path / "a.npz", **arrays)
+    np.savez_compressed(tmp_path / "b.npz", **arrays)
+    for name in ("a.npz", "b.npz"):
+        got = _load_npz(tmp_path, name, "file")
+        assert set(got) == set(arrays)
+        for k, v in arrays.items():
+            assert got[k].dtype == v.dtype and np.array_equal(got[k], v)
+    raw = bytearray((tmp_path / "a.npz").read_bytes())
+    pos = bytes(raw).find(arrays["time_s"][2500:2502].tobytes())
+    assert pos > 0
+    raw[pos] ^= 0x10                                  # one flipped bit in the data of time_s
+    (tmp_path / "c.npz").write_bytes(bytes(raw))
+    with pytest.raises(BadInput, match="checksum"):
+        _load_npz(tmp_path, "c.npz", "file")
+
+
+def test_spikes_outside_counted_per_run_of_windows_as_per_spike():
+    """The count over runs of overlapping windows (sorted spikes) equals the per-spike search (the
+    former code, which unsorted spikes still take), on random windows that overlap, touch and nest."""
+    import map2d.contract as C
+    rng = np.random.default_rng(1)
+    for _ in range(100):
+        starts = np.sort(rng.uniform(0, 100, rng.integers(1, 30)))
+        ends = starts + rng.choice([0.5, 2.0, 8.0], starts.size) * rng.random(starts.size) + 1e-3
+        touch = rng.random(starts.size - 1) < 0.2                  # some windows end where the next starts
+        ends[:-1][touch] = starts[1:][touch]
+        t = np.sort(np.concatenate([rng.uniform(-5, 120, rng.integers(0, 300)), starts[:3], ends[:3]]))
+        counts = []
+        for times in (t, t[::-1].copy()):
+            s = C.Session(responses=C.Spikes(time_s=times, cell=np.zeros(times.size, int), cell_ids=np.array([0])))
+            saved = C._stimulus_windows
+            C._stimulus_windows = lambda session: (starts, ends)
+            try:
+                counts.append(C.count_spikes_outside(s))
+            finally:
+                C._stimulus_windows = saved
+        assert counts[0] == counts[1]
+
+
+def test_cell_ids_by_count_equal_unique():
+    from map2d.contract import _distinct
+    rng = np.random.default_rng(2)
+    for v in (rng.integers(-50, 50, 5000), rng.integers(0, 10**9, 5000), rng.integers(0, 7, 3000).astype(np.uint16),
+              np.array([3, 1, 3]), np.zeros(0, np.int64)):
+        got = _distinct(v)
+        assert got.dtype == np.unique(v).dtype and np.array_equal(got, np.unique(v))
