@@ -742,3 +742,34 @@ def test_vectorised_selectivity_indices_match_the_single_curve_ones():
         assert not some[0] and np.all(prof[0] == 0)
         for i in range(1, shape[0]):
             np.testing.assert_allclose(prof[i], _rank1(s[i])[0], rtol=1e-9, atol=1e-9)
+
+
+def test_bandwidth_refits_agree_with_scipy_least_squares():
+    """The refits behind the bandwidth intervals (:func:`map2d.fit.tuning._refit`: all draws at once,
+    started from the estimate, at most 30 iterations) against ``scipy.optimize.least_squares`` (the
+    reference) run to convergence from the same start on the same noisy surfaces: the SF bandwidth of
+    every draw within 0.01 octave (both surface models: the Gabor spectrum and the separable one)."""
+    from map2d.fit.tuning import (_KINDS, _least_squares, _profile_rows, _refit, _run_jobs, _sf_surface_job,
+                                  fit_orientation, gabor_spectrum_surface, separable_surface)
+    rng = np.random.default_rng(41)
+    th = np.arange(0.0, 180.0, 15.0)
+    f = np.geomspace(0.02, 0.32, 5)
+    T, F = np.meshgrid(th, f, indexing="ij")
+    for truth in (gabor_spectrum_surface(T, F, 0.2, 5.0, 60.0, 0.1, 0.04, 0.03),
+                  separable_surface(T, F, 0.2, 5.0, 2.0, 60.0, np.log2(0.08), 0.9)):
+        surface = truth + 0.2 * rng.standard_normal(truth.shape)
+        ofit = fit_orientation(th, surface.mean(axis=1))
+        (sfit, pfs), = _run_jobs([_sf_surface_job(th, f, surface, ofit)], keep=True)
+        assert sfit.ok
+        lo, hi = np.log2(f.min()), np.log2(f.max())
+        for pr, fit in pfs:
+            draws = pr.y[None] + 0.2 * rng.standard_normal((20, pr.y.size))
+            (p, cost), = _refit(pr.kind, [(pr.x, draws, fit.params, pr.lower, pr.upper)])
+            ref = np.array([_least_squares(_KINDS[pr.kind][0], pr.x, y, [fit.params], pr.lower, pr.upper,
+                                           jac=_KINDS[pr.kind][1]).params for y in draws])
+            ok = np.isfinite(cost)
+            assert ok.sum() >= 18
+            bw, bw_ref = _profile_rows(pr.kind, p[ok], lo, hi)[1], _profile_rows(pr.kind, ref[ok], lo, hi)[1]
+            fin = np.isfinite(bw_ref)
+            assert fin.sum() >= 15 and np.array_equal(np.isfinite(bw), fin), pr.kind
+            np.testing.assert_allclose(bw[fin], bw_ref[fin], atol=0.01, err_msg=pr.kind)
