@@ -165,7 +165,7 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "(the |z|-weighted centroid of the map's significant cluster); empty when not responsive."),
         Column("fit_check", "text", "`passed`, or why the best-ranked fit was rejected: `not above noise`, "
                "`explains too little`, `too narrow`, `elongated`, `no carrier`, `centre off the grid`, "
-               "`no finite interval`, `centre not determined` (its 95 % interval wider than +-1 pixel); empty when "
+               "`no finite interval`, `centre not determined` (its equal-noise 95 % interval wider than +-1 pixel); empty when "
                "not responsive.", "ours; Wilks 1938 (test against noise)"),
         Column("center_x_ci_low_deg", "deg", "Lower end of the 95 % interval of `center_x_deg` (every fitted "
                "parameter's interval: the fit's heteroscedasticity-consistent sandwich covariance, HC3, never "

@@ -211,7 +211,7 @@ def test_stacked_sandwich_covariances_equal_the_one_map_ones():
     J[::7, 4] = 0.0
     r = rng.standard_normal((m, n)) * rng.uniform(0.2, 3.0, (m, n))
     s2 = np.where(np.arange(m) % 3 == 0, 4.0, 0.5)
-    got = B._sandwich_covs(J, r, s2)
-    ref = np.array([S._sandwich_cov(J[i].T, r[i], s2[i]) for i in range(m)])
-    assert np.array_equal(np.isnan(got), np.isnan(ref)) and np.isnan(got[0]).any() and np.isfinite(got[1]).all()
+    got = np.array(B._sandwich_covs(J, r, s2))                       # (sandwich, Wald) x rows
+    ref = np.array([S._sandwich_cov(J[i].T, r[i], s2[i]) for i in range(m)]).swapaxes(0, 1)
+    assert np.array_equal(np.isnan(got), np.isnan(ref)) and np.isnan(got[:, 0]).any() and np.isfinite(got[:, 1]).all()
     np.testing.assert_allclose(got, ref, rtol=1e-9, equal_nan=True)

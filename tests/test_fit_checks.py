@@ -97,9 +97,7 @@ def test_a_model_the_data_decisively_reject_does_not_stand_in(monkeypatch):
     # the best-ranked model (a Gabor) is rejected (its centre not determined across the cut, or no
     # carrier); a difference of Gaussians trailing it by more than MAX_FALLBACK_BIC (10, "very strong"
     # evidence against it: Kass & Raftery 1995) must not give the centre. Negative control: without the
-    # limit it did on 2 of 20 seeds, 0.35 and 1.5 deg off (measured; on 8 of 20, 0.35-2.5 deg off, with the
-    # equal-noise intervals: the sandwich intervals reject most of those difference-of-Gaussians centres
-    # as not determined)
+    # limit it did on 8 of 20 seeds, 0.35-2.5 deg off (measured)
     assert all(m == "" for m, _ in _edge_gabor_choices(monkeypatch, S.MAX_FALLBACK_BIC))
     unlimited = _edge_gabor_choices(monkeypatch, np.inf)
-    assert sum(m == "dog" and e > 1.0 for m, e in unlimited) >= 1, unlimited
+    assert sum(m == "dog" and e > 1.0 for m, e in unlimited) >= 5, unlimited

@@ -259,10 +259,11 @@ def test_sandwich_covariance_is_hc3():
     B = np.linalg.inv(X.T @ X)
     h = np.diag(X @ B @ X.T)
     ref = B @ X.T @ np.diag(e ** 2 / (1 - h) ** 2) @ X @ B
-    np.testing.assert_allclose(_sandwich_cov(X, e, 0.0), ref, rtol=1e-10)
+    np.testing.assert_allclose(_sandwich_cov(X, e, 0.0)[0], ref, rtol=1e-10)
     # no variance below the Wald one s2 (X'X)^-1 given as the floor
-    big = _sandwich_cov(X, e, 100.0)
+    big, wald = _sandwich_cov(X, e, 100.0)
     assert np.all(np.diag(big) >= np.diag(_wald_cov(X.T @ X, 100.0)) * (1 - 1e-12))
+    np.testing.assert_allclose(wald, _wald_cov(X.T @ X, 100.0), rtol=1e-12)
 
 
 def test_hc3_covers_under_unequal_noise_where_the_wald_interval_does_not():
@@ -281,7 +282,7 @@ def test_hc3_covers_under_unequal_noise_where_the_wald_interval_does_not():
         y = X @ [1.0, 2.0] + rng.standard_normal(n) * sd
         b = np.linalg.lstsq(X, y, rcond=None)[0]
         r = X @ b - y
-        for lab, cov in (("wald", _wald_cov(X.T @ X, r @ r / (n - 2))), ("hc3", _sandwich_cov(X, r, 0.0))):
+        for lab, cov in (("wald", _wald_cov(X.T @ X, r @ r / (n - 2))), ("hc3", _sandwich_cov(X, r, 0.0)[0])):
             hits[lab] += abs(b[1] - 2.0) <= S.Z95 * np.sqrt(cov[1, 1])
     assert hits["hc3"] >= 0.92 * reps and hits["wald"] <= 0.85 * reps, hits
 

@@ -275,7 +275,7 @@ def test_centre_intervals_cover_the_truth_where_the_noise_is_unequal(tmp_path_fa
     # the regimes where a map's noise is least equal across pixels: rectified cells with a threshold
     # (their noise is almost all on the field) and fields cut by the grid's edge, seeds 1-6 (seed 0 is
     # the matrix's). The equal-noise Wald boxes covered 15 of 29 here (0.52; the binomial bound is 20);
-    # HC3's 24 of 27 (measured)
+    # HC3's 26 of 29 (measured)
     import warnings
 
     from scipy.stats import binom

@@ -428,7 +428,7 @@ def fit_models(problems, model):
         return [S._empty_fit(model, pr) for pr in problems]
     p_rep = np.array([report(p_int[i]) for i in done])
     X, Y = xs[None, None, :], ys[None, :, None]
-    cov = _covariances(fun, p_rep, X, Y, D[done], W[done], [problems[i] for i in done])
+    cov, wald = _covariances(fun, p_rep, X, Y, D[done], W[done], [problems[i] for i in done])
     pred = fun(X, Y, *[p_rep[:, j, None, None] for j in range(k)])
     names = S._PARAM_NAMES[model]
     for row, i in enumerate(done):
@@ -437,16 +437,19 @@ def fit_models(problems, model):
         fits[i] = S.SpatialFit(model=model, params={nm: float(v) for nm, v in zip(names, p_rep[row])},
                                ci=S._intervals(names, p_rep[row], cov[row]), aic={model: aic},
                                bic={model: bic}, r2=pr.r2(pred[row][pr.ok]), predicted=pred[row],
-                               criterion="none", n_pixels=pr.n)
+                               criterion="none", n_pixels=pr.n,
+                               ci_equal_noise=S._centre_intervals(names, p_rep[row], wald[row]))
     return [f if f is not None else S._empty_fit(model, pr) for f, pr in zip(fits, problems)]
 
 
 def _covariances(fun, p, x, y, d, w, problems):
     """Covariances of the reported parameters ``p`` (m, k), as ``_Problem.covariance`` row by row:
     central differences of ``fun`` (step ``1e-6 (|p| + 1)``) on the grid ``x`` (1, 1, nx), ``y`` (1, ny, 1),
-    weighted by ``w``, and the HC3 sandwich of ``map2d.fit.spatial._sandwich_cov``."""
+    weighted by ``w``, and the HC3 sandwich of ``map2d.fit.spatial._sandwich_cov``; returns them and the
+    Wald covariances."""
     m, k = p.shape
     out = np.full((m, k, k), np.nan)
+    out_wald = np.full((m, k, k), np.nan)
     P = d.shape[1] * d.shape[2]
     size = max(1, int(CHUNK_BYTES // (8 * P * (3 * k + 4))))
     for a in range(0, m, size):
@@ -469,8 +472,8 @@ def _covariances(fun, p, x, y, d, w, problems):
             pr = problems[a + row]
             red = rss[row] / max(pr.n - k, 1)
             s2[row] = max(1.0, red) if pr.known_noise else red
-        out[a:b] = _sandwich_covs(J.reshape(b - a, k, P), r.reshape(b - a, P), s2)
-    return out
+        out[a:b], out_wald[a:b] = _sandwich_covs(J.reshape(b - a, k, P), r.reshape(b - a, P), s2)
+    return out, out_wald
 
 
 def _normal_pinvs(A):
@@ -510,11 +513,12 @@ def _wald_covs(A, s2):
 
 def _sandwich_covs(J, r, s2):
     """``map2d.fit.spatial._sandwich_cov`` of every row: weighted Jacobians ``J`` (m, k, n), weighted
-    residuals ``r`` (m, n), Wald variances' factors ``s2`` (m,)."""
+    residuals ``r`` (m, n), Wald variances' factors ``s2`` (m,) -> (sandwich, Wald) covariances."""
     from . import spatial as S
 
     inv, unknown = _normal_pinvs(J @ J.transpose(0, 2, 1))
     h = np.einsum("mkn,mkn->mn", J, inv @ J)
     e = (r / np.maximum(1.0 - h, 1.0 - S.MAX_LEVERAGE)) ** 2
     cov = inv @ ((J * e[:, None, :]) @ J.transpose(0, 2, 1)) @ inv
-    return _nan_unknown(S._floored(cov, s2[:, None, None] * inv), unknown)
+    wald = s2[:, None, None] * inv
+    return _nan_unknown(S._floored(cov, wald), unknown), _nan_unknown(wald, unknown)
