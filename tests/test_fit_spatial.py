@@ -291,7 +291,7 @@ def test_map_intervals_cover_under_poisson_like_noise():
     # a Gaussian field whose pixel variance grows with the signal (4 x the background's at the peak, as
     # spike counts' does), noise not given: the reported (HC3) centre boxes cover the true centre at
     # about their nominal rate (>= 0.95^2 jointly), the equal-noise Wald ones, from the same fits, do not
-    # (measured: 34 and 26 of 40; over 100 repeats on a 24 x 32 map, 0.91-0.97 and 0.77-0.85 per axis
+    # (measured: 34 and 26 of 40; over 100 repeats on a 24 x 32 map, 0.91-0.97 and 0.77-0.91 per axis
     # for every model)
     from scipy.stats import binom
     rng = np.random.default_rng(8)

@@ -79,9 +79,9 @@ Measured:
   half-width 0.37 pixel instead of 0.24; the plain sandwich (HC0) covered 65 %, HC2 (``1 - h_i``) 78 %;
   on the benchmark session (``benchmarks/bench_maps.py``, 10 minutes, 177 fits) 90 % instead of 69 %;
 - over 100 noisy repeats on a 24 x 32 map (Gaussian, DoG, Gabor at peak signal-to-noise 5 and 20),
-  equal noise: every parameter 91-100 %, as the Wald intervals; noise variance growing with the signal
-  (4 times at the peak, noise not given): centre 91-97 %, other parameters 84-97 % (the Wald: centre
-  77-88 %, amplitude 72-77 %).
+  equal noise: every parameter 92-100 % (the Wald intervals 91-99 %); noise variance growing with the
+  signal (4 times at the peak, noise not given): centre 91-97 %, other parameters 84-97 % (the Wald:
+  centre 77-91 %, amplitude 72-77 %).
 
 A parameter that is not identifiable at the optimum (e.g. the angle of a circular Gaussian, a surround
 of zero strength) has a NaN interval. Angles' and phases' intervals are ``estimate +- 1.96 sd`` and may
