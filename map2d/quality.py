@@ -74,6 +74,7 @@ CELL_CHUNK = 64
 #: Frames (evenly spaced over the session) whose generator and response fit the decile nonlinearity.
 FIT_FRAMES = 24576
 _ROW_CHUNK = 16384         # response frames per streamed block
+_SUB_ROWS = 2048           # frames per step of the elementwise work (kept in cache)
 _N_BINS = 10               # deciles
 
 
@@ -220,7 +221,7 @@ def _lag_rows(B, rows, lags):
     ok = src >= 0
     srcc = np.where(ok, src, 0)
     cnt = np.where(ok, B.indptr[srcc + 1] - B.indptr[srcc], 0).ravel()      # row-major: row, then lag
-    indptr = np.zeros(rows.size + 1, np.int64)
+    indptr = np.zeros(rows.size + 1, B.indices.dtype)
     np.cumsum(cnt.reshape(rows.size, lags.size).sum(axis=1), out=indptr[1:])
     first = np.repeat(B.indptr[srcc].ravel(), cnt)
     within = np.arange(int(cnt.sum())) - np.repeat(np.cumsum(cnt) - cnt, cnt)
@@ -707,30 +708,34 @@ class _Prediction:
             if not active.any():
                 continue
             sel = self.fit_sel[k]
-            g_fit = np.asarray(self.fit_design[k] @ W.reshape(L * P2, C))
+            g_fit = np.zeros((sel.size, C), np.float32)
+            _add_product(self.fit_design[k], W.reshape(L * P2, C), g_fit)
             v_fit = np.broadcast_to(Vf[sel] > 0, g_fit.shape)
             knots = _Knots(*_decile_knots(np.where(v_fit, g_fit, np.nan), Xf[sel]))
             act = active.astype(np.float32)
             all_active = bool(active.all())
             for b in fb:
                 for a, e in _row_chunks(self.edges[b], self.edges[b + 1]):
-                    X, V = src.rows(a, e)
-                    p = knots(_generator(self.B, self.lags, W, a, e))
-                    if all_active and V.min() > 0:          # every cell, every row: no masks
-                        m_n = np.float64(e - a)
-                    else:
-                        m = np.broadcast_to(V * act, p.shape)
-                        m_n = m.sum(0, dtype=np.float64)
-                        mb = m > 0
-                        p = np.where(mb, p, 0.0)
-                        X = np.where(mb, X, 0.0)
-                    # (rows that are not counted: prediction and response 0; min / max over counted)
-                    full = np.ndim(m_n) == 0
-                    p_lo = np.minimum(p_lo, p.min(0) if full else np.where(mb, p, np.inf).min(0))
-                    p_hi = np.maximum(p_hi, p.max(0) if full else np.where(mb, p, -np.inf).max(0))
-                    acc[b, 0] += m_n
-                    acc[b, 1:] += (p.sum(0), np.einsum("fc,fc->c", p, p), np.einsum("fc,fc->c", p, X),
-                                   X.sum(0), np.einsum("fc,fc->c", X, X))
+                    Xa, Va = src.rows(a, e)
+                    ga = _generator(self.B, self.lags, W, a, e)
+                    for s0 in range(0, e - a, _SUB_ROWS):    # the nonlinearity and the sums in cache
+                        X, V = Xa[s0:s0 + _SUB_ROWS], Va[s0:s0 + _SUB_ROWS]
+                        p = knots(ga[s0:s0 + _SUB_ROWS])
+                        if all_active and V.min() > 0:          # every cell, every row: no masks
+                            m_n = np.float64(X.shape[0])
+                        else:
+                            m = np.broadcast_to(V * act, p.shape)
+                            m_n = m.sum(0, dtype=np.float64)
+                            mb = m > 0
+                            p = np.where(mb, p, 0.0)
+                            X = np.where(mb, X, 0.0)
+                        # (rows not counted: prediction and response 0; min / max over those counted)
+                        full = np.ndim(m_n) == 0
+                        p_lo = np.minimum(p_lo, p.min(0) if full else np.where(mb, p, np.inf).min(0))
+                        p_hi = np.maximum(p_hi, p.max(0) if full else np.where(mb, p, -np.inf).max(0))
+                        acc[b, 0] += m_n
+                        acc[b, 1:] += (p.sum(0), np.einsum("fc,fc->c", p, p), np.einsum("fc,fc->c", p, X),
+                                       X.sum(0), np.einsum("fc,fc->c", X, X))
         self.block_stats = acc                                  # kept for diagnostics (sampling error)
         r = np.where(p_hi > p_lo, _pearson(acc.sum(axis=0)), np.nan)   # a constant prediction: no correlation
         return np.where(acc[:, 0].sum(axis=0) >= 10, r, np.nan)
