@@ -145,3 +145,33 @@ def test_cell_ids_by_count_equal_unique():
               np.array([3, 1, 3]), np.zeros(0, np.int64)):
         got = _distinct(v)
         assert got.dtype == np.unique(v).dtype and np.array_equal(got, np.unique(v))
+
+
+def test_all_cells_table_same_page_as_escaping_every_value():
+    """The report's table of every cells.csv value escapes each distinct text once and leaves numbers
+    as printed; the page is the one escaping every value gave (reference: the former loop below,
+    html.escape of the standard library)."""
+    import html
+    from types import SimpleNamespace
+
+    from map2d.report.html import _all_cells_table, _cell_text
+
+    cells = {"cell": [0, 1, 2], "responsive": [True, False, None], "snr": [1.5, float("nan"), -2e-7],
+             "linear_reason": ['a < b & "c"', "x" * 40 + "<", 'a < b & "c"'], "model": ["gabor", "", None],
+             "n": [np.int64(3), np.float32(0.25), np.inf]}
+    an = SimpleNamespace(cells=cells, cell_ids=np.arange(3))
+    got = _all_cells_table(an)
+    esc = lambda v: html.escape(str(v), quote=True)                                   # noqa: E731
+    rows = []
+    for r in range(3):
+        tds = []
+        for col in cells.values():
+            v, t = col[r], _cell_text(col[r])
+            if isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_)):
+                tds.append(f'<td class="num">{esc(t)}</td>')
+            elif len(t) > 30:
+                tds.append(f'<td title="{esc(t)}">{esc(t)}</td>')
+            else:
+                tds.append(f"<td>{esc(t)}</td>")
+        rows.append("<tr>" + "".join(tds) + "</tr>")
+    assert "\n".join(rows) in got and "&lt;" in got and "&quot;" in got

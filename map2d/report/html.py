@@ -285,18 +285,23 @@ def _all_cells_table(an):
     out = ['<div class="scroll"><table id="all-cells">',
            "<tr>" + "".join(f'<th title="{_esc(meaning(c))}">{_esc(c)}</th>' for c in cols) + "</tr>"]
     columns = [an.cells[c] for c in cols]
+    escaped: dict = {}            # texts repeat down a column: each escaped once
     for r in range(n):
         cells = []
         for col in columns:
             v = col[r] if r < len(col) else None
             t = _cell_text(v)
             num = isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_))
-            if num:
-                cells.append(f'<td class="num">{_esc(t)}</td>')
-            elif len(t) > 30:
-                cells.append(f'<td title="{_esc(t)}">{_esc(t)}</td>')
+            if num:             # digits, sign, point, exponent or "inf": nothing to escape
+                cells.append(f'<td class="num">{t}</td>')
+                continue
+            e = escaped.get(t)
+            if e is None:
+                e = escaped[t] = _esc(t)
+            if len(t) > 30:
+                cells.append(f'<td title="{e}">{e}</td>')
             else:
-                cells.append(f"<td>{_esc(t)}</td>")
+                cells.append(f"<td>{e}</td>")
         out.append("<tr>" + "".join(cells) + "</tr>")
     out.append("</table></div>")
     return "\n".join(out)
