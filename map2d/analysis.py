@@ -165,7 +165,9 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
     freedom per condition (tens of them in a few minutes), so the summed noise power is precise; and it
     is per condition, so strongly driven conditions (larger Poisson variance) count as they should.
     Presentations of one condition are rarely neighbours in a random sequence, so they are taken as
-    independent.
+    independent. The pooled responses of the responsive cells' presentations (blanks included) are
+    left on ``flashed`` for the selectivity intervals, which resample them
+    (:func:`map2d.fit.tuning._presentation_draws`; an attribute, not a field: never saved).
 
     Parameters
     ----------
@@ -193,7 +195,7 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
     pres = _flashed_presentations(table, flashed, min_rows=2)
     if pres is None:
         return None
-    onset, offset, _, cond, ok, (n_o, n_s, n_p) = pres
+    onset, offset, contrast, cond, ok, (n_o, n_s, n_p) = pres
     frame, end = _frame_windows(onset, offset)
     L = flashed.lags_s.size
     if not np.isclose(frame, flashed.frame_s):
@@ -215,6 +217,12 @@ def flashed_noise(responses, table, flashed, max_lag_s=0.2, phase_mean=False):
         valid &= np.abs(onset[j] - onset[k] - lag * frame) < 0.5 * frame
         y += w[:, lag:lag + 1] * np.where(w[:, lag:lag + 1] != 0, r[:, j], 0.0)
     use = valid & ok[k]
+    # every pooled presentation (blanks too) of the responsive cells, for the selectivity intervals that
+    # resample presentations (map2d.fit.tuning._draw_surfaces); an attribute, not a field: never saved
+    keep = valid & (ok[k] | (contrast[k] == 0))
+    resp = np.flatnonzero(np.asarray(flashed.responsive, bool))
+    flashed._pooled_presentations = (resp, y[resp][:, keep].astype(np.float32),
+                                     np.where(ok[k[keep]], cond[k[keep]], n_o * n_s * n_p))
     y, labels = y[:, use], cond[k[use]]
     fin = np.isfinite(y)
     y0 = np.where(fin, y, 0.0)

@@ -247,7 +247,7 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
         Column("orientation_hwhh_deg", "deg", "Orientation tuning half-width at half height (von Mises fit).",
                "common practice"),
         Column("orientation_hwhh_ci_low_deg", "deg", "Lower end of the 95 % interval of `orientation_hwhh_deg` "
-               "(the von Mises refitted to resampled data: flashed gratings the measured noise of each condition, "
+               "(the von Mises refitted to resampled data: flashed gratings the presentations of each condition, "
                "drifting gratings the trials of each condition; else from the fit, see `bandwidth_interval_reason`).",
                "Davison & Hinkley 1997"),
         Column("orientation_hwhh_ci_high_deg", "deg", "Upper end of the 95 % interval of `orientation_hwhh_deg`.",
@@ -268,7 +268,7 @@ COLUMNS: tuple[tuple[str, tuple[Column, ...]], ...] = (
                "flashed gratings: the noise floor of |H| removed).",
                "Ringach, Shapley & Hawken 2002"),
         Column("circular_variance_ci_low", "1", "Lower end of the 95 % interval of `circular_variance` "
-               "(flashed gratings: the measured noise of each condition resampled; drifting gratings: the trials of each "
+               "(flashed gratings: the presentations of each condition resampled; drifting gratings: the trials of each "
                "condition resampled).", "Davison & Hinkley 1997"),
         Column("circular_variance_ci_high", "1", "Upper end of the 95 % interval of `circular_variance`.",
                "Davison & Hinkley 1997"),

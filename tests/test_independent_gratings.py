@@ -583,9 +583,10 @@ def test_selectivity_agrees_across_recording_lengths(lengths):
     not drift with length; intervals from resampled surfaces, the widths refitted). Run through
     ``map2d gratings``, which before removed no noise floor and gave no selectivity intervals (the
     circular variance of cell 3 read 0.54, 0.49, 0.48 after 3, 10, 100 minutes; now 0.50, 0.47, 0.48).
-    Measured: 34 of 38 intervals hold the 100-minute value (circular variance 10/10, OSI 10/10,
-    orientation HWHH 8/9, SF bandwidth 6/9: the SF bandwidth intervals are the least well calibrated;
-    the fit-based ones of before held 6/10); the two empty intervals (cell 11 at 3 minutes: 82 and 86
+    Measured: 36 of 38 intervals hold the 100-minute value with the presentations resampled
+    (circular variance 10/10, OSI 10/10, orientation HWHH 8/9, SF bandwidth 8/9; with Gaussian noise of
+    the measured variance added to the surfaces instead 34 of 38, SF bandwidth 6/9; the fit-based ones
+    of before held 6/10); the two empty intervals (cell 11 at 3 minutes: 78 and 73 (before 82 and 86)
     of 100 resampled surfaces with a finite width) say why."""
     cols = [("circular_variance", ""), ("osi", ""), ("orientation_hwhh", "_deg"), ("sf_bandwidth", "_oct")]
     held, total, missed = 0, 0, []
@@ -607,4 +608,4 @@ def test_selectivity_agrees_across_recording_lengths(lengths):
                 else:
                     missed.append((c["id"], minutes, name, round(est, 3), round(lo, 3), round(hi, 3), round(ref, 3)))
     assert total >= 36
-    assert held >= 0.85 * total, missed
+    assert held >= 0.9 * total, missed

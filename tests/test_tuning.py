@@ -558,16 +558,17 @@ def recording_lengths():
                                              ("orientation_hwhh", "_deg", 25), ("sf_bandwidth", "_oct", 35)])
 def test_selectivity_of_3_and_10_minutes_covers_100_minutes(recording_lengths, name, unit, n_min):
     """Issue 14, item 5, for every selectivity column: the 100-minute value of each cell against the
-    95 % intervals of the same cell recorded for 3 and 10 minutes. The intervals resample the measured
-    noise of each condition (circular variance, OSI) and, for the orientation HWHH and the SF bandwidth,
-    refit the models to every resampled surface (before, the bandwidth intervals came from the fit's
-    covariance). Measured (seed 5, 30 cells): circular variance 54/60, OSI 59/60, HWHH 27/31, SF
-    bandwidth 36/42 of the 3- and 10-minute intervals hold the 100-minute value. The 100-minute value
-    has its own noise (about a third, a sixth of the 10-, 3-minute spread), so about 94 % is expected
-    of calibrated intervals; on 80 other cells (seed 6) the shares were 91, 94, 89 and 91 % (the
-    fit-based intervals of before: HWHH 91 %, SF bandwidth 90 %, so resampling widened the SF
-    intervals a little without a measurable gain in coverage). Cells whose interval is empty (too few
-    resampled surfaces with a finite width) say so in ``bandwidth_interval_reason``."""
+    95 % intervals of the same cell recorded for 3 and 10 minutes. The intervals resample the
+    presentations of each condition (circular variance, OSI) and, for the orientation HWHH and the SF
+    bandwidth, refit the models to every resampled surface (before, the bandwidth intervals came from
+    the fit's covariance). Measured (seed 5, 30 cells): circular variance 59/60, OSI 59/60, HWHH 29/31,
+    SF bandwidth 38/42 of the 3- and 10-minute intervals hold the 100-minute value (with Gaussian noise
+    of the measured variance added to the surface instead of resampling presentations: 54/60, 59/60,
+    27/31, 36/42). The 100-minute value has its own noise (about a third, a sixth of the 10-, 3-minute
+    spread), so about 94 % is expected of calibrated intervals; on 80 other cells (seed 6) the shares
+    were 94, 93, 92 and 94 % (Gaussian draws: 91, 94, 89, 91 %; the fit-based intervals of before:
+    HWHH 91 %, SF bandwidth 90 %). Cells whose interval is empty (too few resampled surfaces with a
+    finite width) say so in ``bandwidth_interval_reason``."""
     long = recording_lengths[100.0][name + unit].astype(float)
     held, n = 0, 0
     for minutes in (3.0, 10.0):
@@ -584,7 +585,7 @@ def test_selectivity_of_3_and_10_minutes_covers_100_minutes(recording_lengths, n
             assert all(("finite in only" in r) for r in c["bandwidth_interval_reason"][empty])
             assert not any("from the fit" in r for r in c["bandwidth_interval_reason"])      # all resampled
     assert n >= n_min                                   # most cells have their intervals
-    assert held >= 0.8 * n, (name, held, n)
+    assert held >= 0.88 * n, (name, held, n)
 
 
 def test_drifting_selectivity_intervals_resample_trials():
@@ -773,3 +774,66 @@ def test_bandwidth_refits_agree_with_scipy_least_squares():
             fin = np.isfinite(bw_ref)
             assert fin.sum() >= 15 and np.array_equal(np.isfinite(bw), fin), pr.kind
             np.testing.assert_allclose(bw[fin], bw_ref[fin], atol=0.01, err_msg=pr.kind)
+
+
+def test_resampled_presentations_rebuild_the_surface_of_a_literal_resample():
+    """Issue 14, item 5: each flashed selectivity draw (``_presentation_draws``) is the tuning surface
+    rebuilt from a literal resampled data set. For 3 draws the presentations are repeated as often as
+    the draw took them and everything is recomputed here without the count matrix: condition means
+    less the blank mean, the first harmonic over phase by ``numpy.linalg.lstsq`` on ``[1, cos, sin]``
+    (the reference fit), each condition's noise variance ``s^2 / n`` (``ddof = 1``) carried through the
+    fit's pseudo-inverse (error propagation), ``|H|`` with that noise power removed (the draw's change
+    added to the estimate). Each draw resamples within each condition (counts kept), and the path for
+    finite responses equals the general one (a NaN in another cell) to rounding."""
+    from map2d.analysis import flashed_noise
+    from map2d.fit.tuning import _flashed_view, _presentation_counts, _presentation_draws
+    from map2d.gratings import analyze_flashed
+    from map2d.simulate import simulate_session
+
+    s, _ = simulate_session(n_cells=5, minutes=0, responses="spikes", seed=11, flashed_minutes=2.0, repeats=0,
+                            n_orientations=6, sfs_cpd=[0.04, 0.08, 0.16])
+    fl = analyze_flashed(s.responses, s.gratings, rng=0, n_shuffles=0)
+    fl.responsive[:] = True
+    fl.harmonic_noise_var, fl.phase_mean_noise_var = flashed_noise(s.responses, s.gratings, fl, phase_mean=True)
+    v = _flashed_view(fl)
+    cells = np.arange(5)
+    got = _presentation_draws(v, cells, 200, 3)                          # (cells, draws, O, S)
+    counts, n_g, _ = _presentation_counts(v, 200)
+    y, lab = v.pres_y.astype(float), v.pres_label
+    n_o, n_s, n_p = fl.orientations_deg.size, fl.sfs_cpd.size, fl.phases_deg.size
+    n_c = n_o * n_s * n_p
+    phi = np.deg2rad(fl.phases_deg)
+    x = np.stack([np.ones_like(phi), np.cos(phi), np.sin(phi)], axis=1)
+    pinv = np.linalg.pinv(x)
+    cc = fl.condition_contrast
+
+    def rebuilt(take):
+        yy, ll = y[:, take], lab[take]
+        h = np.zeros((5, n_o, n_s), complex)
+        pm, var = np.zeros((5, n_o, n_s)), np.zeros((5, n_o, n_s))
+        ref = yy[:, ll == n_c].mean(axis=1)
+        for o in range(n_o):
+            for f in range(n_s):
+                grp = [(o * n_s + f) * n_p + p for p in range(n_p)]
+                d = np.stack([yy[:, ll == g].mean(axis=1) - ref for g in grp], axis=1)     # (cells, P)
+                vm = np.stack([yy[:, ll == g].var(axis=1, ddof=1) / np.sum(ll == g) for g in grp], axis=1)
+                coef = np.linalg.lstsq(x, d.T, rcond=None)[0]                              # (3, cells)
+                h[:, o, f] = (coef[1] - 1j * coef[2]) / cc[o, f]
+                pm[:, o, f] = d.mean(axis=1)
+                var[:, o, f] = (vm @ (pinv[1] ** 2 + pinv[2] ** 2)) / cc[o, f] ** 2
+        return h, pm, var
+
+    h_all, pm_all, _ = rebuilt(np.arange(lab.size))
+    dense = counts[:3 * n_g].toarray().reshape(3, n_g, lab.size)
+    for d in range(3):
+        # within each group the draw takes as many presentations as the group has
+        assert np.array_equal(dense[d].sum(axis=1), np.bincount(lab, minlength=n_g))
+        take = np.repeat(np.arange(lab.size), dense[d].sum(axis=0).astype(int))
+        h, pm, var = rebuilt(take)
+        hh = fl.harmonic_combined + (h - h_all)
+        want = fl.phase_mean_combined + (pm - pm_all) + cc * np.sqrt(np.maximum(np.abs(hh) ** 2 - var, 0.0))
+        assert np.allclose(got[:, d], want, rtol=1e-9, atol=1e-9)
+    v2 = _flashed_view(fl)
+    v2.pres_y = v.pres_y.copy()
+    v2.pres_y[0, 7] = np.nan
+    assert np.allclose(_presentation_draws(v2, cells, 200, 3)[1:], got[1:], rtol=1e-9, atol=1e-9)
