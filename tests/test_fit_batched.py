@@ -215,3 +215,39 @@ def test_stacked_sandwich_covariances_equal_the_one_map_ones():
     ref = np.array([S._sandwich_cov(J[i].T, r[i], s2[i]) for i in range(m)]).swapaxes(0, 1)
     assert np.array_equal(np.isnan(got), np.isnan(ref)) and np.isnan(got[:, 0]).any() and np.isfinite(got[:, 1]).all()
     np.testing.assert_allclose(got, ref, rtol=1e-9, equal_nan=True)
+
+
+def test_starts_of_many_maps_equal_the_one_map_starts():
+    # the blob starts (Gaussian, DoG) and the Gabor's starts (energy envelope, spectral peaks, linear
+    # amplitudes) computed for all maps at once equal those computed map by map (spatial.py's functions)
+    maps, _ = _maps(9, np.random.default_rng(4))
+    maps[2, 3:5, 6:9] = np.nan                       # unused pixels
+    maps[5] = np.where(np.arange(GRID.nx) < 4, np.nan, maps[5])
+    prs = [S._Problem(m, GRID, None) for m in maps]
+    ref = np.array([pr.blob_start() for pr in prs])
+    np.testing.assert_allclose(np.array(B._blob_starts(prs)), ref, rtol=1e-12, atol=1e-12)
+    for (st, lo, hi), (st1, lo1, hi1) in zip(B._gabor_setups(prs), [S._gabor_setup(pr) for pr in prs]):
+        assert lo == lo1 and hi == hi1 and len(st) == len(st1) == 3
+        np.testing.assert_allclose(np.array(st), np.array(st1), rtol=1e-9, atol=1e-12)
+
+
+def test_the_noise_scaled_stop_leaves_every_parameter_far_inside_its_interval(monkeypatch):
+    # without the stop at STOP_SDS standard errors (MINPACK's tests only) the answers move by a small
+    # fraction of their 95 % half-widths (angles compared on their circle)
+    maps, _ = _maps(9, np.random.default_rng(6))
+    prs = [S._Problem(m, GRID, None) for m in maps]
+    period = {"theta_deg": 180.0, "orientation_deg": 180.0, "phase_deg": 360.0}
+    got = {m: B.fit_models(prs, m) for m in S.MODELS}
+    lm = B._lm
+    monkeypatch.setattr(B, "_lm", lambda *a, **k: lm(*a, **{**k, "sds": 0.0}))
+    checked = 0
+    for model in S.MODELS:
+        for a, b in zip(got[model], B.fit_models(prs, model)):
+            for name, (lo, hi) in b.ci.items():
+                if np.isfinite(lo) and np.isfinite(hi) and hi > lo:
+                    d = a.params[name] - b.params[name]
+                    if name in period:
+                        d = (d + period[name] / 2) % period[name] - period[name] / 2
+                    assert abs(d) <= 0.05 * (hi - lo) / 2, (model, name)
+                    checked += 1
+    assert checked >= 100

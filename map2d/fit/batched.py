@@ -19,7 +19,13 @@ Bounds are kept by projection with an active set: a parameter at a bound whose g
 is held fixed for that step, the step of the others is solved for, and the new point is clipped to the
 box. Stopping follows MINPACK's tests with the reference's tolerances (1e-8): the relative decrease of
 the cost, the relative size of the step, and the largest cosine between the residual and a free
-Jacobian column (More, Garbow & Hillstrom 1980, User guide for MINPACK-1, ANL-80-74).
+Jacobian column (More, Garbow & Hillstrom 1980, User guide for MINPACK-1, ANL-80-74). A row also stops
+once what is left to gain is below the noise: when the Gauss-Newton step ``delta = -H^-1 g`` (``H = J^T J``,
+free parameters) moves no parameter by more than :data:`STOP_SDS` of its standard error. With the Wald
+covariance ``s^2 H^-1`` (``s^2`` the residual variance), Cauchy-Schwarz gives
+``|delta_i| <= se_i sqrt(delta^T H delta / s^2)`` for every parameter ``i``, so the test is
+``g^T H^-1 g <= STOP_SDS^2 s^2``: one stacked solve per iteration, and the late iterations that only
+polish digits far inside the intervals are not run.
 
 Starts, bounds, the multi-start rule (a short run from every start, the best continued to convergence),
 the reported parameters, the information criteria and the intervals (HC3 sandwich) are those of
@@ -32,6 +38,8 @@ Memory: rows are advanced in chunks so that the Jacobian and its temporaries sta
 """
 
 from __future__ import annotations
+
+import math
 
 import numpy as np
 
@@ -46,6 +54,8 @@ MAX_EVALS = 300
 #: Evaluations of the best start on a window (:data:`WINDOW_SDS`) before it moves to the whole grid.
 WINDOW_EVALS = 50
 TOL = 1e-8
+#: A row also stops when its Gauss-Newton step is at most this many standard errors of each parameter.
+STOP_SDS = 0.01
 
 _N_PARAMS = {"gaussian": 6, "dog": 6, "gabor": 8}
 
@@ -159,11 +169,13 @@ def _sumsq(r):
     return np.einsum("ij,ij->i", r, r)
 
 
-def _lm(model, p, lo, hi, x, y, d, w, max_evals, tol=TOL):
+def _lm(model, p, lo, hi, x, y, d, w, max_evals, tol=TOL, sds=STOP_SDS):
     """Advance every row of ``p`` (n, k) to a local minimum of ``0.5 sum(r^2)`` within ``[lo, hi]``.
 
     ``x`` (n or 1, 1, wx), ``y`` (n or 1, wy, 1): pixel positions; ``d``, ``w`` (n, wy, wx): data and
-    weights (0 at pixels not used); ``max_evals``: (n,) evaluations allowed per row (the first included).
+    weights (0 at pixels not used); ``max_evals``: (n,) evaluations allowed per row (the first included);
+    ``sds``: a row also stops when its Gauss-Newton step is at most this many standard errors of every
+    parameter (module notes; 0: the MINPACK tests only).
     Returns ``p``, ``cost`` (n,) and ``status`` (n,): 1 converged, 0 out of evaluations, -1 failed.
     """
     rj = _RJ[model]
@@ -175,6 +187,9 @@ def _lm(model, p, lo, hi, x, y, d, w, max_evals, tol=TOL):
     del J, r
     status = np.zeros(n, int)
     status[~(np.isfinite(cost) & np.isfinite(H).all(axis=(1, 2)))] = -1
+    # residual degrees of freedom: the pixels of non-zero weight less the parameters
+    dof = np.maximum(np.count_nonzero(w.reshape(w.shape[0], -1), axis=1) - k, 1)
+    dof = np.broadcast_to(dof, (n,))
     diag = np.arange(k) * (k + 1)                     # the diagonal of a flattened (k, k)
     dsq = H.reshape(n, k * k)[:, diag].copy()
     lam = np.full(n, 1e-3)
@@ -186,33 +201,48 @@ def _lm(model, p, lo, hi, x, y, d, w, max_evals, tol=TOL):
         act = np.flatnonzero((status == 0) & (evals < max_evals))
         if act.size == 0:
             break
-        m = act.size
-        pa, ga, Ha, ca, la = p[act], g[act], H[act], cost[act], lam[act]
+        pa, ga, Ha, ca = p[act], g[act], H[act], cost[act]
         loa, hia = lo[act], hi[act]
         fixed = ((pa <= loa) & (ga > 0)) | ((pa >= hia) & (ga < 0))
         D = dsq[act]
         D = np.maximum(D, 1e-12 * D.max(axis=1, keepdims=True) + 1e-300)
         # convergence by the gradient: largest cosine between the residual and a free Jacobian column
         gs = np.abs(ga) / np.sqrt(D)
-        if fixed.any():
+        any_fixed = fixed.any()
+        if any_fixed:
             gs[fixed] = 0.0
-        done_g = gs.max(axis=1) <= tol * np.sqrt(np.maximum(2 * ca, 1e-300))
-        A = Ha.copy()
-        A.reshape(m, k * k)[:, diag] += la[:, None] * D
+        done = gs.max(axis=1) <= tol * np.sqrt(np.maximum(2 * ca, 1e-300))
         rhs = -ga
-        if fixed.any():                               # held at their bound for this step
+        A0 = Ha.copy()
+        if any_fixed:                               # held at their bound for this step
             ff = fixed[:, :, None] | fixed[:, None, :]
-            A[ff] = 0.0
-            A.reshape(m, k * k)[:, diag] += fixed
+            A0[ff] = 0.0
+            A0.reshape(-1, k * k)[:, diag] += fixed
             rhs = np.where(fixed, 0.0, rhs)
-        ok = np.isfinite(A).all(axis=(1, 2)) & np.isfinite(rhs).all(axis=1)
+        ok = np.isfinite(A0).all(axis=(1, 2)) & np.isfinite(rhs).all(axis=1)
         if not ok.all():
-            A[~ok] = eye
+            A0[~ok] = eye
             rhs[~ok] = 0.0
-        try:
-            delta = np.linalg.solve(A, rhs[:, :, None])[:, :, 0]
-        except np.linalg.LinAlgError:                       # a singular row: solve row by row
-            delta = np.stack([np.linalg.lstsq(Ai, bi, rcond=None)[0] for Ai, bi in zip(A, rhs)])
+        if sds > 0:
+            # the Gauss-Newton step's size in standard errors: for every parameter i,
+            # |step_i| <= se_i sqrt(step' H step / s2) (Cauchy-Schwarz), with step' H step = g' H^-1 g
+            A = A0.copy()
+            A.reshape(-1, k * k)[:, diag] += 1e-10 * D
+            gn = _solve_rows(A, rhs)
+            dec = (gn * rhs).sum(axis=1)
+            s2 = 2 * ca / dof[act]
+            done |= ok & (dec <= sds * sds * s2)
+        if done.any():
+            status[act[done]] = 1
+            keep = ~done
+            act, pa, ga, Ha, ca, loa, hia, D, A0, rhs, ok = (v[keep] for v in (act, pa, ga, Ha, ca, loa, hia, D,
+                                                                                A0, rhs, ok))
+            if act.size == 0:
+                continue
+        la = lam[act]
+        A = A0
+        A.reshape(-1, k * k)[:, diag] += la[:, None] * D
+        delta = _solve_rows(A, rhs)
         pn = np.clip(pa + delta, loa, hia)
         step = pn - pa
         if per_row:
@@ -248,11 +278,19 @@ def _lm(model, p, lo, hi, x, y, d, w, max_evals, tol=TOL):
         ir = act[~good]
         lam[ir] *= nu[ir]
         nu[ir] *= 2
-        # the step test (either way), the gradient test (MINPACK), and a damping no step survives
+        # the step test (either way), and a damping no step survives
         small = np.sqrt((step * step).sum(axis=1)) <= tol * (tol + np.sqrt((pa * pa).sum(axis=1)))
-        stop = (small | done_g | (lam[act] > 1e16)) & (status[act] == 0)
+        stop = (small | (lam[act] > 1e16)) & (status[act] == 0)
         status[act[stop]] = 1
     return p, cost, status
+
+
+def _solve_rows(A, b):
+    """Solutions of the stacked systems ``A x = b`` (m, k, k), (m, k); a singular row by least squares."""
+    try:
+        return np.linalg.solve(A, b[:, :, None])[:, :, 0]
+    except np.linalg.LinAlgError:
+        return np.stack([np.linalg.lstsq(Ai, bi, rcond=None)[0] for Ai, bi in zip(A, b)])
 
 
 def _lm_chunked(model, p, lo, hi, x, y, d, w, max_evals, rows_of):
@@ -367,6 +405,180 @@ def _windows(model, setups, grid):
     return out
 
 
+# --------------------------------------------------------------------------------------------------
+# starting points of many problems at once (the same numbers as the one-map functions of spatial.py)
+# --------------------------------------------------------------------------------------------------
+
+#: ``scipy.ndimage.label``'s default (4-connected) structure in each plane of a stack, none across planes.
+_PLANE_CROSS = np.zeros((3, 3, 3), bool)
+_PLANE_CROSS[1] = [[0, 1, 0], [1, 1, 1], [0, 1, 0]]
+
+
+def _stack(problems):
+    """Maps with non-finite pixels zeroed, their finite masks, and the data and weights on the grid."""
+    ok = np.array([pr.ok for pr in problems])
+    maps = np.where(ok, np.array([pr.map for pr in problems]), 0.0)
+    return maps, ok
+
+
+def _peak_blob(field, threshold):
+    """Per plane of ``field`` (m, ny, nx): index of its largest value, and ``field`` kept only above
+    ``threshold`` times that value within the 4-connected blob holding it (as the one-map starts)."""
+    from scipy import ndimage
+
+    m = field.shape[0]
+    flat = field.reshape(m, -1).argmax(axis=1)
+    i, j = np.unravel_index(flat, field.shape[1:])
+    top = field[np.arange(m), i, j]
+    w = np.where(field > threshold * top[:, None, None], field, 0.0)
+    lab, _ = ndimage.label(w > 0, structure=_PLANE_CROSS)
+    w = np.where(lab == lab[np.arange(m), i, j][:, None, None], w, 0.0)
+    return i, j, w
+
+
+def _blob_starts(problems):
+    """:meth:`map2d.fit.spatial._Problem.blob_start` of every problem (one grid), computed together."""
+    from scipy import ndimage
+
+    pr0 = problems[0]
+    maps, ok = _stack(problems)
+    m = len(problems)
+    wts = ndimage.gaussian_filter(ok.astype(float), (0, 0.8, 0.8), mode="constant")
+    sm = ndimage.gaussian_filter(maps, (0, 0.8, 0.8), mode="constant")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sm = np.where(wts > 1e-6, sm / wts, 0.0)
+    flat = np.abs(sm).reshape(m, -1).argmax(axis=1)
+    i, j = np.unravel_index(flat, sm.shape[1:])
+    rows = np.arange(m)
+    peak = sm[rows, i, j]
+    sign = np.where(peak >= 0, 1.0, -1.0)
+    w = np.clip(sign[:, None, None] * sm, 0.0, None)
+    w = np.where(w > 0.3 * np.abs(peak)[:, None, None], w, 0.0)
+    lab, _ = ndimage.label(w > 0, structure=_PLANE_CROSS)
+    w = np.where(lab == lab[rows, i, j][:, None, None], w, 0.0)
+    X, Y = pr0.X[None], pr0.Y[None]
+    tot = w.sum(axis=(1, 2))
+    x0, y0 = pr0.X[i, j].astype(float), pr0.Y[i, j].astype(float)
+    s_maj = np.full(m, 1.5 * min(pr0.dx, pr0.dy))
+    s_min = s_maj.copy()
+    theta = np.zeros(m)
+    has = tot > 0
+    if has.any():
+        wh = w[has]
+        mx = (wh * X).sum(axis=(1, 2)) / tot[has]
+        my = (wh * Y).sum(axis=(1, 2)) / tot[has]
+        cxx = (wh * (X - mx[:, None, None]) ** 2).sum(axis=(1, 2)) / tot[has] + pr0.dx**2 / 12
+        cyy = (wh * (Y - my[:, None, None]) ** 2).sum(axis=(1, 2)) / tot[has] + pr0.dy**2 / 12
+        cxy = (wh * (X - mx[:, None, None]) * (Y - my[:, None, None])).sum(axis=(1, 2)) / tot[has]
+        ev, evec = np.linalg.eigh(np.stack([np.stack([cxx, cxy], -1), np.stack([cxy, cyy], -1)], -2))
+        ev = np.clip(ev / 0.55, pr0.wmin**2 * 4, pr0.wmax**2)
+        s_min[has], s_maj[has] = np.sqrt(ev[:, 0]), np.sqrt(ev[:, 1])
+        theta[has] = np.arctan2(evec[:, 1, 1], evec[:, 0, 1])
+        x0[has], y0[has] = mx, my
+    raw = np.array([pr.map for pr in problems])[rows, i, j]
+    amp = np.where(np.isfinite(raw), raw, peak)
+    return [(float(a), float(b), float(c), float(d), float(e), float(f))
+            for a, b, c, d, e, f in zip(x0, y0, s_maj, s_min, theta, amp)]
+
+
+def _spectral_peaks(problems, n_peaks):
+    """:meth:`map2d.fit.spatial._Problem.spectral_peaks` of every problem (one grid), computed together."""
+    from scipy import ndimage
+
+    pr0 = problems[0]
+    maps, ok = _stack(problems)
+    mean = np.array([np.mean(pr.d) for pr in problems])
+    mc = np.where(ok, maps - mean[:, None, None], 0.0)
+    m, ny, nx = mc.shape
+    Ny, Nx = max(64, 4 * ny), max(64, 4 * nx)
+    # the power of a real map is symmetric, P(-k) = P(k): half the spectrum by the real transform, the
+    # other half (columns of negative x-frequency) read from it
+    half_cols = Nx // 2 + 1
+    P = np.empty((m, Ny, Nx))
+    P[:, :, :half_cols] = np.abs(np.fft.rfft2(mc, s=(Ny, Nx))) ** 2
+    neg_rows = (-np.arange(Ny)) % Ny
+    P[:, :, half_cols:] = P[:, neg_rows, 1:Nx - half_cols + 1][:, :, ::-1]
+    fx = np.fft.fftfreq(Nx, d=pr0.dx)
+    fr = np.fft.fftfreq(Ny, d=pr0.dy)
+    KX, KY = np.meshgrid(fx, -fr)
+    # local maxima (3 x 3, periodic) in the half plane kx >= 0: the columns 0 .. Nx/2 and their neighbours
+    cols = np.arange(-1, half_cols + 1) % Nx
+    Pc = P[:, :, cols]
+    mx = ndimage.maximum_filter(Pc, size=(1, 3, 3), mode="wrap")[:, :, 1:-1]
+    Pc, KX, KY = Pc[:, :, 1:-1], KX[:, cols[1:-1]], KY[:, cols[1:-1]]
+    half = (KX > 0) | ((KX == 0) & (KY > 0))
+    c, t = np.nonzero(((Pc == mx) & half[None] & (Pc > 0)).reshape(m, -1))
+    val = Pc.reshape(m, -1)[c, t]
+    order = np.lexsort((-val, c))                 # by problem, then by power, largest first
+    c, t = c[order], t[order]
+    start = np.searchsorted(c, np.arange(m))
+    end = np.searchsorted(c, np.arange(m), side="right")
+    kx, ky = KX.ravel(), KY.ravel()
+    out = []
+    for i in range(m):
+        sel = t[start[i]:min(end[i], start[i] + n_peaks)]
+        out.append([(float(kx[u]), float(ky[u])) for u in sel] if sel.size else [(0.5 * pr0.nyq_x * 0.2, 0.0)])
+    return out
+
+
+def _gabor_setups(problems, n_peaks=3):
+    """:func:`map2d.fit.spatial._gabor_setup` of every problem (one grid), computed together: the envelope
+    from the local energy, the wave vectors from the spectral peaks, amplitudes by linear least squares."""
+    from scipy import ndimage
+
+    pr0 = problems[0]
+    maps, _ = _stack(problems)
+    m = len(problems)
+    lo = [pr0.xlo, pr0.ylo, pr0.wmin, pr0.wmin, -pr0.nyq_x, -pr0.nyq_y, -np.inf, -np.inf]
+    hi = [pr0.xhi, pr0.yhi, pr0.wmax, pr0.wmax, pr0.nyq_x, pr0.nyq_y, np.inf, np.inf]
+    e2 = ndimage.gaussian_filter(maps ** 2, (0, 1.0, 1.0), mode="constant")
+    _, _, w = _peak_blob(e2, 0.2)
+    X, Y = pr0.X[None], pr0.Y[None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        tot = w.sum(axis=(1, 2))
+        ex = (w * X).sum(axis=(1, 2)) / tot
+        ey = (w * Y).sum(axis=(1, 2)) / tot
+        var = 0.5 * ((w * ((X - ex[:, None, None]) ** 2 + (Y - ey[:, None, None]) ** 2)).sum(axis=(1, 2)) / tot)
+        s0 = np.clip(np.sqrt(2 * var / 0.6), 2 * pr0.wmin, pr0.wmax / 2)
+    peaks = _spectral_peaks(problems, n_peaks)
+    # the best (a, b) of every start: least squares on the carrier's cosine and sine under the envelope
+    owner, K = [], []
+    for c in range(m):
+        for kx, ky in peaks[c]:
+            if math.hypot(kx, ky) != 0:
+                owner.append(c)
+                K.append((kx, ky))
+    if not owner:
+        return [([], lo, hi) for _ in range(m)]
+    owner, K = np.array(owner), np.array(K)
+    starts = [[] for _ in range(m)]
+    for a in range(0, owner.size, 256):
+        o, k = owner[a:a + 256], K[a:a + 256]
+        dx = pr0.X[None] - ex[o, None, None]
+        dy = pr0.Y[None] - ey[o, None, None]
+        E = np.exp(-0.5 * (dx * dx + dy * dy) / s0[o, None, None] ** 2)
+        ph = 2 * np.pi * (k[:, 0, None, None] * dx + k[:, 1, None, None] * dy)
+        wt = _weights_on_grid(problems, o)
+        M = np.stack([E * np.cos(ph) * wt, E * np.sin(ph) * wt], axis=-1).reshape(o.size, -1, 2)
+        b = (maps[o] * wt).reshape(o.size, -1, 1)
+        ab = np.full((o.size, 2), np.nan)
+        fin = np.isfinite(M).all(axis=(1, 2)) & np.isfinite(b).all(axis=(1, 2))
+        if fin.any():
+            ab[fin] = (np.linalg.pinv(M[fin]) @ b[fin])[:, :, 0]
+        for row, c in enumerate(o):
+            starts[c].append((float(ex[c]), float(ey[c]), float(s0[c]), float(s0[c]), float(k[row, 0]),
+                              float(k[row, 1]), float(ab[row, 0]), float(ab[row, 1])))
+    return [(st, lo, hi) for st in starts]
+
+
+def _weights_on_grid(problems, rows):
+    """The weights of problems ``rows`` on the grid (0 at the pixels a problem does not use)."""
+    out = np.zeros((len(rows),) + problems[0].grid.shape)
+    for r, c in enumerate(rows):
+        out[r][problems[c].ok] = problems[c].w
+    return out
+
+
 def fit_models(problems, model):
     """Fit ``model`` to every problem (:class:`map2d.fit.spatial._Problem`, one grid) -> list of SpatialFit.
 
@@ -390,9 +602,18 @@ def fit_models(problems, model):
     ny, nx = grid.shape
     xs, ys = np.asarray(grid.x_deg, float), np.asarray(grid.y_deg, float)
     m = len(problems)
+    enough = [i for i, pr in enumerate(problems) if S._enough(pr, k)]
+    made = {}
+    if model == "gabor":
+        made = dict(zip(enough, _gabor_setups([problems[i] for i in enough]))) if enough else {}
+    else:        # the blob starts of all problems at once, kept on the problems (the Gaussian's and DoG's)
+        todo = [problems[i] for i in enough if getattr(problems[i], "blob", None) is None]
+        for pr, b in zip(todo, _blob_starts(todo) if todo else []):
+            pr.blob = b
+        made = {i: setup(problems[i]) for i in enough}
     setups = []
-    for pr in problems:
-        su = setup(pr) if S._enough(pr, k) else None
+    for i in range(len(problems)):
+        su = made.get(i)
         setups.append(su if su is not None and len(su[0]) else None)
     D = np.zeros((m, ny, nx))
     W = np.zeros((m, ny, nx))

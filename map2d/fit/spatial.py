@@ -266,6 +266,8 @@ class _Problem:
 
     def blob_start(self):
         """(x0, y0, s_major, s_minor, theta_rad, amplitude) from the peak and second moments."""
+        if getattr(self, "blob", None) is not None:     # computed already (map2d.fit.batched, many maps)
+            return self.blob
         sm = self.smoothed()
         i, j = np.unravel_index(np.argmax(np.abs(sm)), sm.shape)
         sign = 1.0 if sm[i, j] >= 0 else -1.0
@@ -1401,20 +1403,25 @@ def _n_workers(n_jobs, n_cells, solver="batched"):
     return max(1, min(int(nj), os.cpu_count() or 1, max(n_cells, 1)))
 
 
-def _in_parts(fn, args_of, n, n_jobs, solver="batched", ex=None):
+def _in_parts(fn, args_of, n, n_jobs, solver="batched", ex=None, lazy=False):
     """``[fn(*args_of(part)) for part in parts]``: ``range(n)`` split into contiguous parts computed by
     ``n_jobs`` worker processes (:func:`map2d._forked.worker_pool`: they die with this process; ``fn`` a
     module-level function, ``args_of(part)`` its arguments for those cells only); one part per worker for
     the batched solver (each a batch), finer chunks for the reference solver. ``ex``: a pool to use (else
-    one is started here)."""
+    one is started here). ``lazy``: submit the parts to ``ex`` now and return one callable per part that
+    waits for its result (so that several stages queue on the same workers without a barrier between
+    them); without a pool the callables compute their part when called."""
     if n == 0:
         return []
     if n_jobs <= 1:
+        if lazy:
+            return [lambda: fn(*args_of(np.arange(n)))]
         return [fn(*args_of(np.arange(n)))]
     per_worker = 1 if solver == "batched" else 4
     parts = [p for p in np.array_split(np.arange(n), n_jobs * per_worker) if p.size]
     if ex is not None:
-        return [f.result() for f in [ex.submit(fn, *args_of(p)) for p in parts]]
+        futs = [ex.submit(fn, *args_of(p)) for p in parts]
+        return [f.result for f in futs] if lazy else [f.result() for f in futs]
     with worker_pool(n_jobs) as pool:   # workers die with this process
         return [f.result() for f in [pool.submit(fn, *args_of(p)) for p in parts]]
 
@@ -1499,16 +1506,32 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batch
 
         maps = np.nan_to_num(ch.spatial)
         check = ch.z * ch.noise_sd                     # the chosen map at the peak lag
+        # every stage's parts are queued on the workers at once (no barrier between stages), then collected
+        pending = []
         for kind, models in (("linear", MODELS), ("on+off", ("gaussian",))):
             idx = np.flatnonzero(ch.kind == kind)
             if idx.size == 0:
                 continue
             nj = _n_workers(n_jobs, idx.size, solver)
+            pending.append((idx, _in_parts(
+                _fit_checked_chunk, lambda part, idx=idx, models=models: (
+                    maps[idx[part]], grid, check[idx[part]], ch.noise_sd[idx[part]], models, pixel_box, alpha, solver),
+                idx.size, nj, solver, pool_for(nj), lazy=True)))
+        overlap = np.full(C, np.nan)
+        if result.stimulus == "sparse":
+            cells = np.flatnonzero(result.peak_lag_index >= 0)
+            nj = _n_workers(n_jobs, cells.size, solver)
+            li = result.peak_lag_index[cells]
+
+            def args_of(part):     # the peak-lag ON and OFF maps of these cells only
+                c, lag = cells[part], li[part]
+                return (result.on[c, lag], result.off[c, lag], result.on_z[c, lag], result.off_z[c, lag], grid,
+                        ch.threshold_z, solver)
+
+            overlap_parts = _in_parts(_overlaps, args_of, cells.size, nj, solver, pool_for(nj), lazy=True)
+        for idx, parts in pending:
             rows, preds, why = [], [], []
-            for r, p, w in _in_parts(_fit_checked_chunk,
-                                     lambda part: (maps[idx[part]], grid, check[idx[part]], ch.noise_sd[idx[part]],
-                                                   models, pixel_box, alpha, solver), idx.size, nj, solver,
-                                     pool_for(nj)):
+            for r, p, w in (get() for get in parts):
                 rows += r
                 preds += p
                 why += w
@@ -1529,18 +1552,8 @@ def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batch
             r, c = grid.pixel_of(out["center_x_deg"][has], out["center_y_deg"][has])
             field_pixel[has, 0] = np.clip(np.rint(r), 0, grid.ny - 1).astype(int)
             field_pixel[has, 1] = np.clip(np.rint(c), 0, grid.nx - 1).astype(int)
-        overlap = np.full(C, np.nan)
         if result.stimulus == "sparse":
-            cells = np.flatnonzero(result.peak_lag_index >= 0)
-            nj = _n_workers(n_jobs, cells.size, solver)
-            li = result.peak_lag_index[cells]
-
-            def args_of(part):     # the peak-lag ON and OFF maps of these cells only
-                c, lag = cells[part], li[part]
-                return (result.on[c, lag], result.off[c, lag], result.on_z[c, lag], result.off_z[c, lag], grid,
-                        ch.threshold_z, solver)
-
-            parts = _in_parts(_overlaps, args_of, cells.size, nj, solver, pool_for(nj))
+            parts = [get() for get in overlap_parts]
             overlap[cells] = np.concatenate(parts) if parts else []
     return CellFields(choice=ch, columns=out, model_maps=model_maps, field_pixel=field_pixel,
                       onoff_overlap=overlap)
