@@ -94,9 +94,16 @@ def test_batched_fits_agree_with_the_reference_on_noisy_maps():
     checked, outside, differ = compare(ref, got, range(len(maps)))
     assert differ == [] and outside == [], (differ, outside)
     assert checked >= 3 * len(maps)
-    # the information criteria (so the model choice) agree to well below one unit
+    # the information criteria (so the model choice) agree to well below one unit, but for a model that
+    # lost by more than REFINE_MARGIN_BIC: its fit is not run to convergence (map2d.fit.batched.fit_choosing),
+    # so its BIC may be higher, by less than the margin, and it still loses by more than the margin
+    chosen = np.array([got[f"bic_{m}"][i] for i, m in enumerate(got["model"])])
     for m in S.MODELS:
-        np.testing.assert_allclose(got[f"bic_{m}"], ref[f"bic_{m}"], atol=0.5)
+        diff = got[f"bic_{m}"] - ref[f"bic_{m}"]
+        far = np.abs(diff) > 0.5
+        assert np.all(diff[far] > 0) and np.all(diff[far] < S.REFINE_MARGIN_BIC), (m, diff)
+        assert np.all(got[f"bic_{m}"][far] > chosen[far] + S.REFINE_MARGIN_BIC), m
+        assert far.sum() <= 2, (m, diff)
 
 
 def test_every_start_and_model_in_one_batch_matches_one_map_at_a_time():

@@ -27,6 +27,15 @@ covariance ``s^2 H^-1`` (``s^2`` the residual variance), Cauchy-Schwarz gives
 ``g^T H^-1 g <= STOP_SDS^2 s^2``: one stacked solve per iteration, and the late iterations that only
 polish digits far inside the intervals are not run.
 
+When several models compete for each map (:func:`fit_choosing`, used by ``locate_fields`` and
+``fit_maps``), every fit first gets :data:`SETTLE_EVALS` evaluations per run to convergence; only the fits
+that can be reported (the chosen model, those ranked before it and rejected by the checks, and any within
+``map2d.fit.spatial.REFINE_MARGIN_BIC`` of it) are then run to convergence. Most of the evaluations of a
+multi-model fit went to models that lose by far: a Gabor fitted to a blob slides toward zero frequency,
+a DoG toward no surround, along valleys where every step gains a millionth of the cost. Their criteria
+come from the shorter run (a few units above convergence at most, measured); the reported fits are
+those of the full budgets.
+
 Starts, bounds, the multi-start rule (a short run from every start, the best continued to convergence),
 the reported parameters, the information criteria and the intervals (HC3 sandwich) are those of
 :mod:`map2d.fit.spatial` (the same functions are called); only the optimiser differs.
@@ -43,7 +52,7 @@ import math
 
 import numpy as np
 
-__all__ = ["fit_models", "CHUNK_BYTES"]
+__all__ = ["fit_models", "fit_choosing", "CHUNK_BYTES"]
 
 #: Memory for one chunk of rows (the Jacobian and the per-pixel temporaries of the residual).
 CHUNK_BYTES = 48 * 2**20
@@ -341,8 +350,9 @@ def _solve_many(model, setups, x, y, d, w, max_evals=MAX_EVALS):
             multi.append(len(starts) > 1)
     out = np.full((m_all, k), np.nan)
     lo_out, hi_out = np.full((m_all, k), -np.inf), np.full((m_all, k), np.inf)
+    settled = np.zeros(m_all, bool)
     if not rows_of:
-        return out, lo_out, hi_out
+        return out, lo_out, hi_out, settled
     rows_of, p0, lo, hi, multi = (np.asarray(rows_of), np.asarray(p0), np.asarray(lo), np.asarray(hi),
                                   np.asarray(multi))
     evals = np.where(multi, SCREEN_EVALS, max_evals)
@@ -356,14 +366,17 @@ def _solve_many(model, setups, x, y, d, w, max_evals=MAX_EVALS):
     best = order[first]
     best = best[np.isfinite(key[best])]
     again = best[multi[best] & (status[best] == 0)]
+    done = status == 1
     if again.size:
         p2, c2, s2 = _lm_chunked(model, p[again], lo[again], hi[again], x, y, d, w,
                                  np.full(again.size, max_evals), rows_of[again])
         keep = (s2 >= 0) & np.isfinite(c2) & (c2 <= cost[again]) & np.all(np.isfinite(p2), axis=1)
         p[again[keep]] = p2[keep]
+        done[again] = keep & (s2 == 1)
     out[rows_of[best]] = p[best]
+    settled[rows_of[best]] = done[best]
     lo_out[rows_of], hi_out[rows_of] = lo, hi
-    return out, lo_out, hi_out
+    return out, lo_out, hi_out, settled
 
 
 #: A problem is first solved on a window around its field: the starts' centre plus this many of the
@@ -587,80 +600,149 @@ def fit_models(problems, model):
     around its field (problems grouped by window shape), then the chosen solution polished on the whole
     grid (the objective of the reference).
     """
-    from . import spatial as S
+    return _ModelFits(problems, model).fits
 
-    setup, report, fun = {
-        "gaussian": (S._gauss_setup, S._gauss_report, S._gauss_model),
-        "dog": (S._dog_setup, S._dog_report, S.dog2d),
-        "gabor": (S._gabor_setup, S._gabor_report, S.gabor2d),
-    }[model]
-    k = _N_PARAMS[model]
-    problems = list(problems)
-    if not problems:
-        return []
-    grid = problems[0].grid
-    ny, nx = grid.shape
-    xs, ys = np.asarray(grid.x_deg, float), np.asarray(grid.y_deg, float)
-    m = len(problems)
-    enough = [i for i, pr in enumerate(problems) if S._enough(pr, k)]
-    made = {}
-    if model == "gabor":
-        made = dict(zip(enough, _gabor_setups([problems[i] for i in enough]))) if enough else {}
-    else:        # the blob starts of all problems at once, kept on the problems (the Gaussian's and DoG's)
-        todo = [problems[i] for i in enough if getattr(problems[i], "blob", None) is None]
-        for pr, b in zip(todo, _blob_starts(todo) if todo else []):
-            pr.blob = b
-        made = {i: setup(problems[i]) for i in enough}
-    setups = []
-    for i in range(len(problems)):
-        su = made.get(i)
-        setups.append(su if su is not None and len(su[0]) else None)
-    D = np.zeros((m, ny, nx))
-    W = np.zeros((m, ny, nx))
-    for i, pr in enumerate(problems):
-        D[i][pr.ok] = pr.d
-        W[i][pr.ok] = pr.w
-    win = _windows(model, setups, grid)
-    p_int = np.full((m, k), np.nan)
-    lo, hi = np.full((m, k), -np.inf), np.full((m, k), np.inf)
-    for shape in sorted({(int(a), int(b)) for a, b in win[:, [1, 3]]}):
-        sel = np.flatnonzero((win[:, 1] == shape[0]) & (win[:, 3] == shape[1]))
-        sel = np.array([i for i in sel if setups[i] is not None], int)
-        if sel.size == 0:
-            continue
-        rr = win[sel, 0, None] + np.arange(shape[0])             # (s, wy)
-        cc = win[sel, 2, None] + np.arange(shape[1])             # (s, wx)
-        d = D[sel[:, None, None], rr[:, :, None], cc[:, None, :]]
-        w = W[sel[:, None, None], rr[:, :, None], cc[:, None, :]]
-        full = shape == (ny, nx)
-        out, l, h = _solve_many(model, [setups[i] for i in sel], xs[cc][:, None, :], ys[rr][:, :, None], d, w,
-                                MAX_EVALS if full else WINDOW_EVALS)
-        p_int[sel], lo[sel], hi[sel] = out, l, h
-    # polish on the whole grid what was solved on a smaller window
-    part = np.flatnonzero(np.all(np.isfinite(p_int), axis=1) & ((win[:, 1] < ny) | (win[:, 3] < nx)))
-    if part.size:
-        p2, c2, s2 = _lm_chunked(model, p_int[part], lo[part], hi[part], xs[None, None, :], ys[None, :, None],
-                                 D, W, np.full(part.size, MAX_EVALS), part)
+
+#: Evaluations of a run to convergence (on a window, the whole grid, or the polish) when the fits of
+#: several models are compared (:func:`fit_choosing`): a row that needs more is continued only if its model
+#: can be the one reported.
+SETTLE_EVALS = 20
+
+
+class _ModelFits:
+    """One model fitted to many problems, with what is needed to continue some of them later.
+
+    ``cap``: evaluations of each run to convergence (None: the reference's budgets). ``settled[i]``: the
+    fit of problem ``i`` met a stopping test (else it ran out of its ``cap``); ``fits``: SpatialFit each.
+    """
+
+    def __init__(self, problems, model, cap=None):
+        from . import spatial as S
+
+        self.model = model
+        self.setup, self.report, self.fun = {
+            "gaussian": (S._gauss_setup, S._gauss_report, S._gauss_model),
+            "dog": (S._dog_setup, S._dog_report, S.dog2d),
+            "gabor": (S._gabor_setup, S._gabor_report, S.gabor2d),
+        }[model]
+        k = self.k = _N_PARAMS[model]
+        problems = self.problems = list(problems)
+        m = len(problems)
+        self.settled = np.ones(m, bool)
+        self.fits = []
+        if not problems:
+            return
+        grid = problems[0].grid
+        ny, nx = grid.shape
+        self.xs, self.ys = xs, ys = np.asarray(grid.x_deg, float), np.asarray(grid.y_deg, float)
+        enough = [i for i, pr in enumerate(problems) if S._enough(pr, k)]
+        made = {}
+        if model == "gabor":
+            made = dict(zip(enough, _gabor_setups([problems[i] for i in enough]))) if enough else {}
+        else:        # the blob starts of all problems at once, kept on the problems (the Gaussian's and DoG's)
+            todo = [problems[i] for i in enough if getattr(problems[i], "blob", None) is None]
+            for pr, b in zip(todo, _blob_starts(todo) if todo else []):
+                pr.blob = b
+            made = {i: self.setup(problems[i]) for i in enough}
+        setups = []
+        for i in range(len(problems)):
+            su = made.get(i)
+            setups.append(su if su is not None and len(su[0]) else None)
+        D = self.D = np.zeros((m, ny, nx))
+        W = self.W = np.zeros((m, ny, nx))
+        for i, pr in enumerate(problems):
+            D[i][pr.ok] = pr.d
+            W[i][pr.ok] = pr.w
+        win = _windows(model, setups, grid)
+        p_int = self.p_int = np.full((m, k), np.nan)
+        lo, hi = self.lo, self.hi = np.full((m, k), -np.inf), np.full((m, k), np.inf)
+        full_evals = MAX_EVALS if cap is None else cap
+        window_evals = WINDOW_EVALS if cap is None else min(cap, WINDOW_EVALS)
+        for shape in sorted({(int(a), int(b)) for a, b in win[:, [1, 3]]}):
+            sel = np.flatnonzero((win[:, 1] == shape[0]) & (win[:, 3] == shape[1]))
+            sel = np.array([i for i in sel if setups[i] is not None], int)
+            if sel.size == 0:
+                continue
+            rr = win[sel, 0, None] + np.arange(shape[0])             # (s, wy)
+            cc = win[sel, 2, None] + np.arange(shape[1])             # (s, wx)
+            d = D[sel[:, None, None], rr[:, :, None], cc[:, None, :]]
+            w = W[sel[:, None, None], rr[:, :, None], cc[:, None, :]]
+            full = shape == (ny, nx)
+            out, l, h, done = _solve_many(model, [setups[i] for i in sel], xs[cc][:, None, :], ys[rr][:, :, None],
+                                          d, w, full_evals if full else window_evals)
+            p_int[sel], lo[sel], hi[sel] = out, l, h
+            if full:
+                self.settled[sel] = done
+        # polish on the whole grid what was solved on a smaller window
+        part = np.flatnonzero(np.all(np.isfinite(p_int), axis=1) & ((win[:, 1] < ny) | (win[:, 3] < nx)))
+        self._polish(part, full_evals)
+        self.fits = [None] * m
+        self._report(np.arange(m))
+
+    def _polish(self, part, evals):
+        """Run the problems ``part`` to convergence on the whole grid (``evals`` evaluations at most)."""
+        if part.size == 0:
+            return
+        xs, ys = self.xs, self.ys
+        p2, c2, s2 = _lm_chunked(self.model, self.p_int[part], self.lo[part], self.hi[part], xs[None, None, :],
+                                 ys[None, :, None], self.D, self.W, np.full(part.size, evals), part)
         ok = (s2 >= 0) & np.all(np.isfinite(p2), axis=1)
-        p_int[part[ok]] = p2[ok]
-    fits = [None] * m
-    done = np.flatnonzero(np.all(np.isfinite(p_int), axis=1))
-    if done.size == 0:
-        return [S._empty_fit(model, pr) for pr in problems]
-    p_rep = np.array([report(p_int[i]) for i in done])
-    X, Y = xs[None, None, :], ys[None, :, None]
-    cov, wald = _covariances(fun, p_rep, X, Y, D[done], W[done], [problems[i] for i in done])
-    pred = fun(X, Y, *[p_rep[:, j, None, None] for j in range(k)])
-    names = S._PARAM_NAMES[model]
-    for row, i in enumerate(done):
-        pr = problems[i]
-        aic, bic = pr.criteria(pred[row][pr.ok], k)
-        fits[i] = S.SpatialFit(model=model, params={nm: float(v) for nm, v in zip(names, p_rep[row])},
-                               ci=S._intervals(names, p_rep[row], cov[row]), aic={model: aic},
-                               bic={model: bic}, r2=pr.r2(pred[row][pr.ok]), predicted=pred[row],
-                               criterion="none", n_pixels=pr.n,
-                               ci_equal_noise=S._centre_intervals(names, p_rep[row], wald[row]))
-    return [f if f is not None else S._empty_fit(model, pr) for f, pr in zip(fits, problems)]
+        self.p_int[part[ok]] = p2[ok]
+        self.settled[part] = s2 != 0
+
+    def refine(self, rows):
+        """Continue the problems ``rows`` to convergence with the reference's budget; their fits again."""
+        rows = np.asarray([i for i in rows if not self.settled[i]], int)
+        part = rows[np.all(np.isfinite(self.p_int[rows]), axis=1)] if rows.size else rows
+        self._polish(part, MAX_EVALS)
+        self.settled[rows] = True
+        self._report(part)
+
+    def _report(self, rows):
+        """The SpatialFit of the problems ``rows`` from their internal parameters."""
+        from . import spatial as S
+
+        model, k, fun = self.model, self.k, self.fun
+        problems = self.problems
+        done = np.asarray([i for i in rows if np.all(np.isfinite(self.p_int[i]))], int)
+        for i in set(np.asarray(rows).tolist()) - set(done.tolist()):
+            self.fits[i] = S._empty_fit(model, problems[i])
+        if done.size == 0:
+            return
+        p_rep = np.array([self.report(self.p_int[i]) for i in done])
+        X, Y = self.xs[None, None, :], self.ys[None, :, None]
+        cov, wald = _covariances(fun, p_rep, X, Y, self.D[done], self.W[done], [problems[i] for i in done])
+        pred = fun(X, Y, *[p_rep[:, j, None, None] for j in range(k)])
+        names = S._PARAM_NAMES[model]
+        for row, i in enumerate(done):
+            pr = problems[i]
+            aic, bic = pr.criteria(pred[row][pr.ok], k)
+            self.fits[i] = S.SpatialFit(model=model, params={nm: float(v) for nm, v in zip(names, p_rep[row])},
+                                        ci=S._intervals(names, p_rep[row], cov[row]), aic={model: aic},
+                                        bic={model: bic}, r2=pr.r2(pred[row][pr.ok]), predicted=pred[row],
+                                        criterion="none", n_pixels=pr.n,
+                                        ci_equal_noise=S._centre_intervals(names, p_rep[row], wald[row]))
+
+
+def fit_choosing(problems, models, needed):
+    """Every model of ``models`` fitted to every problem, run to convergence only where it can matter.
+
+    Each model's fits first get :data:`SETTLE_EVALS` evaluations per run to convergence. ``needed(fits)``
+    (``fits``: ``{model: [SpatialFit, ...]}``) names, per model, the problems whose fit may be reported
+    or may change which fit is (the chosen model and those ranked near it); those that ran out of
+    evaluations are continued with the reference's budget and fitted again, until every fit named is
+    converged. A fit that is never named keeps its criterion from the shorter run (a model that lost by
+    a margin). Returns ``{model: [SpatialFit, ...]}``.
+    """
+    state = {m: _ModelFits(problems, m, cap=SETTLE_EVALS) for m in models}
+    while True:
+        fits = {m: state[m].fits for m in models}
+        todo = {m: [i for i in rows if not state[m].settled[i]] for m, rows in needed(fits).items()}
+        if not any(todo.values()):
+            return fits
+        for m, rows in todo.items():
+            if rows:
+                state[m].refine(rows)
 
 
 def _covariances(fun, p, x, y, d, w, problems):

@@ -852,14 +852,66 @@ def _choose(fits, models, criterion):
 SOLVERS = ("batched", "reference")
 
 
-def _fit_all(problems, models, solver="batched"):
-    """Every model fitted to every problem: ``{model: [SpatialFit, ...]}`` (the problems share a grid)."""
+def _fit_all(problems, models, solver="batched", needed=None):
+    """Every model fitted to every problem: ``{model: [SpatialFit, ...]}`` (the problems share a grid).
+
+    ``needed(fits)``: per model, the problems whose fit can be reported (the batched solver then runs only
+    those to convergence, :func:`map2d.fit.batched.fit_choosing`); None: every fit converged."""
     if solver not in SOLVERS:
         raise ValueError(f"solver must be one of {SOLVERS}, got {solver!r}")
     if solver == "reference":
         return {m: [_FITTERS[m](pr) for pr in problems] for m in models}
-    from .batched import fit_models
+    from .batched import fit_choosing, fit_models
+    if needed is not None and len(models) > 1:
+        return fit_choosing(problems, models, needed)
     return {m: fit_models(problems, m) for m in models}
+
+
+#: A model whose fit was not run to convergence is continued when its BIC is within this many units of
+#: the reported model's (it could still overtake it); beyond, its shorter run decided already
+#: (:func:`map2d.fit.batched.fit_choosing`). Measured on the benchmark's all-responsive session, a simulated
+#: session of 200 cells and the held-out generator's sessions: continuing such fits to convergence lowered
+#: their BIC by at most 2.5 units.
+REFINE_MARGIN_BIC = 6.0
+
+
+def _near(bic, models, ref):
+    """Models whose BIC is finite and at most :data:`REFINE_MARGIN_BIC` above ``ref``."""
+    return [m for m in models if np.isfinite(bic[m]) and bic[m] <= ref + REFINE_MARGIN_BIC]
+
+
+def _needed_choice(fits, models, criterion):
+    """:func:`_fit_all`'s ``needed`` for :func:`_choose`: each problem's best model and those near it."""
+    need = {m: [] for m in models}
+    for c in range(len(fits[models[0]])):
+        score = {m: fits[m][c].aic[m] if criterion == "aic" else fits[m][c].bic[m] for m in models}
+        finite = [score[m] for m in models if np.isfinite(score[m])]
+        for m in _near(score, models, min(finite)) if finite else models:
+            need[m].append(c)
+    return need
+
+
+def _needed_checked(fits, models, check):
+    """:func:`_fit_all`'s ``needed`` for :func:`_checked_choice` (``check(fit, c)``: :func:`fit_check` of
+    problem ``c``): the models ranked up to the accepted one (all when none is), and those near it."""
+    need = {m: [] for m in models}
+    for c in range(len(fits[models[0]])):
+        bic = {m: fits[m][c].bic[m] for m in models}
+        ranked = sorted((m for m in models if np.isfinite(bic[m])), key=lambda m: bic[m])
+        take, accepted = [], False
+        for m in ranked:                      # as _checked_choice walks them
+            if bic[m] - bic[ranked[0]] > MAX_FALLBACK_BIC:
+                break
+            take.append(m)
+            if not check(fits[m][c], c):
+                accepted = True
+                break
+        if not accepted:
+            take = list(models)              # none accepted: every model's fit can change that
+        ref = max((bic[m] for m in take if np.isfinite(bic[m])), default=np.inf)
+        for m in set(take) | set(_near(bic, models, ref)):
+            need[m].append(c)
+    return need
 
 
 # --------------------------------------------------------------------------------------------------
@@ -1109,7 +1161,7 @@ def _fit_chunk(maps, grid, noise_sd, models, criterion, pixel_box=False, solver=
         if sd is not None and not np.all(np.isfinite(sd) & (np.asarray(sd) > 0)):
             sd = None   # unusable noise estimate: fall back to the residuals
         problems.append(_Problem(maps[c], grid, sd))
-    fits = _fit_all(problems, models, solver)
+    fits = _fit_all(problems, models, solver, lambda f: _needed_choice(f, models, criterion))
     rows, predicted = [], []
     for c in range(maps.shape[0]):
         fit = _choose({m: fits[m][c] for m in models}, models, criterion)
@@ -1357,8 +1409,9 @@ def fit_checked(map_yx, grid: Grid, check_map, check_sd, models=MODELS, alpha: f
     return _checked_choice({m: _FITTERS[m](pr) for m in models}, models, check_map, grid, check_sd, alpha)
 
 
-def _checked_choice(fits, models, check_map, grid, check_sd, alpha):
-    """:func:`fit_checked`'s choice among ``fits`` (one per model, one map)."""
+def _checked_choice(fits, models, check_map, grid, check_sd, alpha, check=None):
+    """:func:`fit_checked`'s choice among ``fits`` (one per model, one map); ``check(fit)``: its
+    :func:`fit_check` computed already (else computed here)."""
     aic = {m: f.aic[m] for m, f in fits.items()}
     bic = {m: f.bic[m] for m, f in fits.items()}
     ranked = sorted((m for m in models if np.isfinite(bic[m])), key=lambda m: bic[m])
@@ -1366,7 +1419,7 @@ def _checked_choice(fits, models, check_map, grid, check_sd, alpha):
     for i, m in enumerate(ranked):
         if bic[m] - bic[ranked[0]] > MAX_FALLBACK_BIC:
             break                              # decisively worse than a rejected model: not the map's shape
-        why = fit_check(fits[m], check_map, grid, check_sd, alpha)
+        why = check(fits[m]) if check is not None else fit_check(fits[m], check_map, grid, check_sd, alpha)
         if not why:
             out = fits[m]
             out.aic, out.bic, out.criterion = aic, bic, "bic"
@@ -1379,10 +1432,18 @@ def _checked_choice(fits, models, check_map, grid, check_sd, alpha):
 def _fit_checked_chunk(maps, grid, check_maps, check_sd, models, pixel_box, alpha, solver="batched"):
     """:func:`fit_checked` for each map: (rows or None, predicted maps or None, reasons)."""
     rows, predicted, reasons = [], [], []
-    fits = _fit_all([_Problem(m, grid, None) for m in maps], models, solver)
+    memo = {}
+
+    def check(fit, c):            # fit_check of each fit once (fits refined later are new objects)
+        if id(fit) not in memo:
+            memo[id(fit)] = (fit, fit_check(fit, check_maps[c], grid, check_sd[c], alpha))
+        return memo[id(fit)][1]
+
+    fits = _fit_all([_Problem(m, grid, None) for m in maps], models, solver,
+                    lambda f: _needed_checked(f, models, check))
     for c in range(maps.shape[0]):
         fit, why = _checked_choice({m: fits[m][c] for m in models}, models, check_maps[c], grid, check_sd[c],
-                                   alpha)
+                                   alpha, lambda f, c=c: check(f, c))
         reasons.append(why)
         if fit is None:
             rows.append(None)
