@@ -258,3 +258,19 @@ def test_the_noise_scaled_stop_leaves_every_parameter_far_inside_its_interval(mo
                     assert abs(d) <= 0.05 * (hi - lo) / 2, (model, name)
                     checked += 1
     assert checked >= 100
+
+
+def test_lobes_of_many_maps_equal_the_one_map_lobes():
+    # the ON/OFF subfields' lobes cut for all maps at once equal _lobe map by map (8-connected component
+    # of z >= 2 holding the peak, grown by a pixel of positive z; none below the threshold)
+    rng = np.random.default_rng(3)
+    maps, _ = _maps(8, rng)
+    z = 6 * maps / np.abs(maps).max(axis=(1, 2), keepdims=True) + rng.standard_normal(maps.shape)
+    z[1, 2, 2] = np.nan
+    z[3] *= 0.2                                      # below the threshold: no lobe
+    got = S._lobes(maps, z, 3.0)
+    for m, zz, g in zip(maps, z, got):
+        ref = S._lobe(m, zz, 3.0)
+        assert (ref is None) == (g is None)
+        assert ref is None or np.array_equal(ref, g)
+    assert sum(g is None for g in got) >= 1 and sum(g is not None for g in got) >= 3

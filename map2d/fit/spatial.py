@@ -1674,6 +1674,26 @@ def _lobe(map_yx, z_yx, threshold_z):
     return np.where(lobe, np.nan_to_num(np.asarray(map_yx, float)), 0.0)
 
 
+def _lobes(maps, z, threshold_z):
+    """:func:`_lobe` of every map of ``maps`` and ``z`` (n, ny, nx), computed together (the 8-connected
+    component by one labelling of the stack, planes not connected to each other)."""
+    z = np.nan_to_num(np.asarray(z, float))
+    n = z.shape[0]
+    if n == 0:
+        return []
+    flat = z.reshape(n, -1).argmax(axis=1)
+    i, j = np.unravel_index(flat, z.shape[1:])
+    plane = np.zeros((3, 3, 3), bool)
+    plane[1] = True                                  # 3 x 3 within a plane, nothing across planes
+    lab, _ = ndimage.label(z >= 2.0, structure=plane)
+    peak_lab = lab[np.arange(n), i, j]
+    comp = (lab == peak_lab[:, None, None]) & (peak_lab > 0)[:, None, None]
+    lobe = ndimage.binary_dilation(comp, structure=plane) & (z > 0)
+    vals = np.where(lobe, np.nan_to_num(np.asarray(maps, float)), 0.0)
+    top = z.reshape(n, -1).max(axis=1)
+    return [vals[c] if top[c] >= threshold_z else None for c in range(n)]
+
+
 def _envelope(fit, grid):
     """(centre, covariance) of a Gaussian fitted to a lobe; NaN when the fit is not sane."""
     p = fit.params
@@ -1696,10 +1716,11 @@ def _envelope(fit, grid):
 def _overlaps(on, off, on_z, off_z, grid, threshold_z, solver="batched"):
     """:func:`subfield_overlap` of each cell's maps (``on``, ``off``, ``on_z``, ``off_z``: (n, ny, nx)), every
     subfield fitted in one batch."""
-    lobes = []
-    for c in range(on.shape[0]):
-        lobes.append(_lobe(on[c], on_z[c], threshold_z))
-        lobes.append(_lobe(off[c], off_z[c], threshold_z))
+    n = on.shape[0]
+    both = np.empty((2 * n,) + on.shape[1:])
+    both_z = np.empty_like(both)
+    both[0::2], both[1::2], both_z[0::2], both_z[1::2] = on, off, on_z, off_z
+    lobes = _lobes(both, both_z, threshold_z)
     todo = [i for i, m in enumerate(lobes) if m is not None]
     fits = _fit_all([_Problem(lobes[i], grid, None) for i in todo], ("gaussian",), solver)["gaussian"]
     env = [None] * len(lobes)
