@@ -592,15 +592,16 @@ def _weights_on_grid(problems, rows):
     return out
 
 
-def fit_models(problems, model):
+def fit_models(problems, model, intervals=True):
     """Fit ``model`` to every problem (:class:`map2d.fit.spatial._Problem`, one grid) -> list of SpatialFit.
 
     The same fits as ``map2d.fit.spatial._FITTERS[model]`` (starts, bounds, reported parameters, criteria,
     intervals), the optimiser batched (module notes): every start of every problem first on a window
     around its field (problems grouped by window shape), then the chosen solution polished on the whole
-    grid (the objective of the reference).
+    grid (the objective of the reference). ``intervals=False``: no Wald intervals (NaN), for a caller that
+    uses the parameters only.
     """
-    return _ModelFits(problems, model).fits
+    return _ModelFits(problems, model, intervals=intervals).fits
 
 
 #: Evaluations of a run to convergence (on a window, the whole grid, or the polish) when the fits of
@@ -616,10 +617,11 @@ class _ModelFits:
     fit of problem ``i`` met a stopping test (else it ran out of its ``cap``); ``fits``: SpatialFit each.
     """
 
-    def __init__(self, problems, model, cap=None):
+    def __init__(self, problems, model, cap=None, intervals=True):
         from . import spatial as S
 
         self.model = model
+        self.intervals = intervals
         self.setup, self.report, self.fun = {
             "gaussian": (S._gauss_setup, S._gauss_report, S._gauss_model),
             "dog": (S._dog_setup, S._dog_report, S.dog2d),
@@ -711,7 +713,10 @@ class _ModelFits:
             return
         p_rep = np.array([self.report(self.p_int[i]) for i in done])
         X, Y = self.xs[None, None, :], self.ys[None, :, None]
-        cov, wald = _covariances(fun, p_rep, X, Y, self.D[done], self.W[done], [problems[i] for i in done])
+        if self.intervals:
+            cov, wald = _covariances(fun, p_rep, X, Y, self.D[done], self.W[done], [problems[i] for i in done])
+        else:
+            cov = wald = np.full((done.size, k, k), np.nan)
         pred = fun(X, Y, *[p_rep[:, j, None, None] for j in range(k)])
         names = S._PARAM_NAMES[model]
         for row, i in enumerate(done):

@@ -852,11 +852,13 @@ def _choose(fits, models, criterion):
 SOLVERS = ("batched", "reference")
 
 
-def _fit_all(problems, models, solver="batched", needed=None):
+def _fit_all(problems, models, solver="batched", needed=None, intervals=True):
     """Every model fitted to every problem: ``{model: [SpatialFit, ...]}`` (the problems share a grid).
 
     ``needed(fits)``: per model, the problems whose fit can be reported (the batched solver then runs only
-    those to convergence, :func:`map2d.fit.batched.fit_choosing`); None: every fit converged."""
+    those to convergence, :func:`map2d.fit.batched.fit_choosing`); None: every fit converged.
+    ``intervals=False``: the batched solver leaves the intervals out (NaN; for callers that use the
+    parameters only)."""
     if solver not in SOLVERS:
         raise ValueError(f"solver must be one of {SOLVERS}, got {solver!r}")
     if solver == "reference":
@@ -864,7 +866,7 @@ def _fit_all(problems, models, solver="batched", needed=None):
     from .batched import fit_choosing, fit_models
     if needed is not None and len(models) > 1:
         return fit_choosing(problems, models, needed)
-    return {m: fit_models(problems, m) for m in models}
+    return {m: fit_models(problems, m, intervals) for m in models}
 
 
 #: A model whose fit was not run to convergence is continued when its BIC is within this many units of
@@ -1722,7 +1724,8 @@ def _overlaps(on, off, on_z, off_z, grid, threshold_z, solver="batched"):
     both[0::2], both[1::2], both_z[0::2], both_z[1::2] = on, off, on_z, off_z
     lobes = _lobes(both, both_z, threshold_z)
     todo = [i for i, m in enumerate(lobes) if m is not None]
-    fits = _fit_all([_Problem(lobes[i], grid, None) for i in todo], ("gaussian",), solver)["gaussian"]
+    fits = _fit_all([_Problem(lobes[i], grid, None) for i in todo], ("gaussian",), solver,
+                    intervals=False)["gaussian"]          # the envelopes use the parameters only
     env = [None] * len(lobes)
     for i, fit in zip(todo, fits):
         env[i] = _envelope(fit, grid)
