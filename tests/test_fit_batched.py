@@ -274,3 +274,16 @@ def test_lobes_of_many_maps_equal_the_one_map_lobes():
         assert (ref is None) == (g is None)
         assert ref is None or np.array_equal(ref, g)
     assert sum(g is None for g in got) >= 1 and sum(g is not None for g in got) >= 3
+
+
+def test_one_blas_thread_within_the_block_and_the_former_count_after():
+    # the fit stage runs OpenBLAS on one thread (map2d._blas); the counts are those OpenBLAS reports
+    from map2d import _blas
+
+    before = [n for _, n in _blas._controls()]
+    if not before:
+        pytest.skip("no OpenBLAS with thread functions in this process")
+    with _blas.one_blas_thread():
+        assert [n for _, n in _blas._controls()] == [1] * len(before)
+        np.linalg.svd(np.ones((13, 64)))
+    assert [n for _, n in _blas._controls()] == before

@@ -115,6 +115,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
+from .._blas import with_one_blas_thread
 from .._forked import worker_pool
 from ..geometry import Grid
 from ..models import dog2d, gabor2d, gaussian2d
@@ -1172,6 +1173,7 @@ def _fit_chunk(maps, grid, noise_sd, models, criterion, pixel_box=False, solver=
     return rows, predicted
 
 
+@with_one_blas_thread      # many small matrices: BLAS threads cost more than they compute (map2d._blas)
 def fit_maps(maps, grid, responsive, noise_sd=None, n_jobs=None, models=MODELS,
              criterion="bic", return_predicted=False, pixel_box=False, solver="batched"):
     """Fit every responsive cell's map; columns for ``cells.csv``.
@@ -1517,6 +1519,7 @@ class CellFields:
     onoff_overlap: np.ndarray
 
 
+@with_one_blas_thread      # many small matrices: BLAS threads cost more than they compute (map2d._blas)
 def locate_fields(result, n_jobs=None, alpha=None, pixel_box=True, solver="batched") -> CellFields:
     """Choose each responsive cell's map, fit it, keep the fit only if it earns its place, else use the
     region.
