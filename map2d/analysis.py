@@ -474,6 +474,43 @@ def flashed_signal_p(responses, table, flashed, n_shuffles=199, rng=None, cells=
     return out
 
 
+def grating_trace_decay(responses, trace_decay="auto", decay=None, corrected=None, flashed=True):
+    """The responses the flashed gratings use and the per-cell indicator decay of the drifting ones.
+
+    Traces: one per-cell decay estimate (:func:`map2d.traces.decay_corrected`) serves every stage; when
+    the maps already made it (``decay``, with their ``corrected`` traces) it is reused for the flashed
+    and the drifting gratings. Without a map stage (sessions without sparse noise, ``map2d gratings``)
+    the flashed gratings' traces have the decay removed as the maps would (estimated here), and
+    ``cell_tau`` is None (unless a time constant is given): the drifting analysis then fits each
+    cell's decay to its own trace after the trial offsets (:func:`map2d.gratings.estimate_decay_tau`,
+    ``per_cell``). Spikes pass unchanged.
+
+    Returns
+    -------
+    (flashed_responses, decay or None, cell_tau (C,) or None)
+        ``cell_tau`` is None when no cell has a finite decay (``--trace-decay off``, or no reliable
+        estimate): the drifting analysis then estimates one decay from the trial offsets.
+    """
+    from .traces import decay_corrected
+    if not isinstance(responses, Traces):
+        return responses, decay, None
+    given = isinstance(trace_decay, (int, float)) and not isinstance(trace_decay, bool)
+    if decay is None:
+        # no map stage: the flashed gratings get the traces with the decay removed as the maps would;
+        # the drifting gratings get each cell's decay fitted to its own trace after the trial offsets
+        # (a clean exponential; the estimate from the whole trace is made for sparse noise and reads
+        # the slow drifting modulation as decay), or the given time constant
+        if flashed:
+            corrected, decay = decay_corrected(responses, trace_decay)
+        else:
+            corrected = responses
+        return corrected, decay, (np.full(np.shape(responses.values)[0], float(trace_decay)) if given else None)
+    if corrected is None:
+        corrected = responses
+    tau = np.asarray(decay.tau_s, float)
+    return corrected, decay, (tau if np.isfinite(tau).any() else None)
+
+
 def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None,
                     n_shuffles: int = 200, alpha: float = 0.01, size_radii_deg=None,
                     progress=None, trace_decay="auto", dense_estimate="auto", size_tuning=True,
@@ -609,15 +646,12 @@ def analyze_session(session: Session, max_lag_s: float = 0.2, rng=0, n_jobs=None
 
         an.phase_origin_deg = tuple(g.phase_origin_deg)
         # traces: one per-cell indicator decay for every stage (maps, flashed, drifting)
-        flashed_responses, cell_tau = session.responses, None
-        if isinstance(session.responses, Traces):
-            if an.trace_decay is None and has_flashed(g):
-                flashed_responses, an.trace_decay = decay_corrected(session.responses, trace_decay)
-                an.notes.append(an.trace_decay.note())
-            elif an.trace_decay is not None:
-                flashed_responses = map_responses
-            if an.trace_decay is not None and np.isfinite(an.trace_decay.tau_s).any():
-                cell_tau = np.asarray(an.trace_decay.tau_s, float)
+        had_decay = an.trace_decay is not None
+        flashed_responses, an.trace_decay, cell_tau = grating_trace_decay(
+            session.responses, trace_decay, an.trace_decay, map_responses if had_decay else None,
+            flashed=has_flashed(g))
+        if an.trace_decay is not None and not had_decay:
+            an.notes.append(an.trace_decay.note())
         if has_flashed(g):
             step("flashed gratings")
             an.flashed = analyze_flashed(flashed_responses, g, max_lag_s=max_lag_s, rng=rng, alpha=alpha)

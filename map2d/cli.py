@@ -215,9 +215,9 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--max-lag", type=_LAG, default=0.2, dest="max_lag_s",
                        help="longest lag in seconds (default 0.2)")
         p.add_argument("--seed", type=_SEED, default=0, help="seed for shuffles and bootstraps (default 0)")
-        if name in ("maps", "analyze"):
+        if name in ("maps", "gratings", "analyze"):
             p.add_argument("--trace-decay", default="auto", dest="trace_decay", metavar="auto|off|SECONDS",
-                           help="imaging traces: remove the indicator's decay before the maps, with the "
+                           help="imaging traces: remove the indicator's decay before the maps and gratings, with the "
                                 "time constant estimated per cell (auto, the default), given in seconds, "
                                 "or not at all (off); spikes are never filtered")
         p.add_argument("--config", type=Path, default=None,
@@ -387,7 +387,8 @@ def _dispatch(args) -> int:
                                  dense_estimate=args.dense_estimate)
     if args.command == "gratings":
         return pipeline.run_gratings(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
-                                     quiet=args.quiet, config=args.config, drift_latency=args.drift_latency)
+                                     quiet=args.quiet, config=args.config, drift_latency=args.drift_latency,
+                                     trace_decay=args.trace_decay)
     if args.command == "analyze":
         return pipeline.run_analyze(args.session, args.out, max_lag_s=args.max_lag_s, seed=args.seed,
                                     quiet=args.quiet, config=args.config, trace_decay=args.trace_decay,

@@ -799,7 +799,7 @@ def _nanstd(a, axis):
 
 
 def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: float = 3.0,
-                       skip_s: float = 0.1) -> float:
+                       skip_s: float = 0.1, per_cell: bool = False):
     """Decay time constant of the traces after stimulus offsets (e.g. a calcium indicator), seconds.
 
     The trace of every cell is averaged over offsets (aligned by sample), its late level subtracted
@@ -808,11 +808,22 @@ def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: floa
     response outlasts the stimulus by the response latency; the free ``c`` because with gaps of a few
     ``tau`` the late level still holds some of the decay, and subtracting it as if it were the
     baseline reads ``tau`` short). NaN when no cell has a clear offset response.
+
+    ``per_cell=True`` returns ``(session_tau, cell_tau)``: the pooled value as above and, for every
+    cell with a clear offset response (mean just after the offsets more than 4 standard errors from
+    the late level), the same model fitted to its own curve, kept where it differs from the pooled
+    value by more than 3 of its standard errors (NaN elsewhere: the pooled value serves; also where
+    the fit runs into the bounds).
     """
     from scipy import optimize
 
     times = traces.times_s
     vals = np.asarray(traces.values, dtype=np.float64)
+    nan_cells = np.full(vals.shape[0], np.nan)
+    if per_cell:
+        session_tau = estimate_decay_tau(traces, ends_s, next_onsets_s, max_window_s, skip_s)
+        return session_tau, _cell_decay_taus(traces, ends_s, next_onsets_s, max_window_s, skip_s, nan_cells,
+                                             session_tau)
     ends = np.asarray(ends_s, float)
     gaps = np.asarray(next_onsets_s, float) - ends
     if ends.size == 0 or times.size < 4:
@@ -853,6 +864,65 @@ def estimate_decay_tau(traces: Traces, ends_s, next_onsets_s, max_window_s: floa
         return float("nan")
     tau = float(res.x[1])
     return tau if tau < 0.99 * 10 * win else float("nan")
+
+
+def _cell_decay_taus(traces, ends_s, next_onsets_s, max_window_s, skip_s, out, pooled=np.nan):
+    """Each cell's decay after the offsets (:func:`estimate_decay_tau`, ``per_cell``), into ``out``."""
+    from scipy import optimize
+
+    times = traces.times_s
+    vals = np.asarray(traces.values, dtype=np.float64)
+    ends = np.asarray(ends_s, float)
+    gaps = np.asarray(next_onsets_s, float) - ends
+    if ends.size == 0 or times.size < 4:
+        return out
+    dt = float(np.median(np.diff(times)))
+    win = min(max_window_s, float(np.median(gaps)))
+    nb = int(np.floor(win / dt))
+    i0 = np.searchsorted(times, ends)
+    keep = (i0 + nb < times.size) & (gaps >= win)
+    if nb < 6 or not keep.any():
+        return out
+    idx = i0[keep, None] + np.arange(nb)[None, :]
+    t_rel = np.mean(times[idx] - ends[keep, None], axis=0)
+    with np.errstate(invalid="ignore"):
+        mean = _nanmean(vals[:, idx], axis=1)
+        sem = _nanstd(vals[:, idx], axis=1) / np.sqrt(keep.sum())
+    late = t_rel >= 0.8 * t_rel[-1]
+    first = (t_rel >= skip_s) & (t_rel < skip_s + 2 * dt + 1e-12)
+    if not late.any() or not first.any():
+        return out
+    base = _nanmean(mean[:, late], axis=1)
+    amp = _nanmean(mean[:, first], axis=1) - base
+    noise = _nanmean(sem[:, first], axis=1)
+    use = t_rel >= skip_s
+    t = t_rel[use] - skip_s
+    for c in np.flatnonzero(np.isfinite(amp) & (np.abs(amp) > 4 * noise)):
+        y = (mean[c, use] - base[c]) / amp[c]
+        ok = np.isfinite(y)
+        if ok.sum() < 6:
+            continue
+        try:
+            res = optimize.least_squares(lambda q: q[0] * np.exp(-t[ok] / q[1]) + q[2] - y[ok],
+                                         [1.0, max(win / 4, dt), 0.0],
+                                         bounds=([0.0, dt / 4, -10.0], [10.0, 10 * win, 10.0]))
+        except ValueError:
+            continue
+        tau = float(res.x[1])
+        if not dt / 4 * 1.01 < tau < 0.99 * 10 * win:
+            continue
+        # the cell's own value only where it differs from the pooled one beyond its standard error
+        # (Gauss-Newton covariance of the fit, z > 3): cells sharing an indicator keep the pooled,
+        # less noisy value
+        J, r = res.jac, res.fun
+        dof = max(int(ok.sum()) - 3, 1)
+        try:
+            se = float(np.sqrt(np.linalg.inv(J.T @ J)[1, 1] * (r @ r) / dof))
+        except np.linalg.LinAlgError:
+            continue
+        if np.isfinite(se) and (not np.isfinite(pooled) or abs(tau - pooled) > 3 * se):
+            out[c] = tau
+    return out
 
 
 def _rate_difference_p(trial_rates, trial_len, spont_rates, spont_len, trial_var, min_expected=10.0):
@@ -1076,13 +1146,14 @@ def analyze_drifting(responses: Spikes | Traces, table: GratingTable, alpha: flo
         cell_tau = np.full(responses.cell_ids.size, np.nan)
     else:
         given = None if trace_tau_s is None else np.asarray(trace_tau_s, float)
+        own = None
         if given is None or given.ndim == 1 and not np.isfinite(given).all():
             nxt = np.append(stim_onset[1:], np.inf)
-            session_tau = estimate_decay_tau(responses, table.offset_s[rows], nxt)
+            session_tau, own = estimate_decay_tau(responses, table.offset_s[rows], nxt, per_cell=True)
         else:
             session_tau = float("nan")
-        if given is None:
-            cell_tau = np.full(responses.values.shape[0], session_tau)
+        if given is None:       # each cell's own decay after the offsets, the pooled one where unclear
+            cell_tau = np.where(np.isfinite(own), own, session_tau)
         elif given.ndim == 0:
             cell_tau = np.full(responses.values.shape[0], float(given))
         else:

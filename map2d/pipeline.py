@@ -620,7 +620,8 @@ def _manifest_of(session_path, config):
     return Path(config) if config is not None else Path(session_path) / "session.json"
 
 
-def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None, drift_latency="auto") -> int:
+def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=None, drift_latency="auto",
+                 trace_decay="auto") -> int:
     """``map2d gratings``: grating surfaces and tuning -> ``gratings.npz`` and ``cells.csv``.
 
     ``gratings.npz`` (cells sorted by id, ``cell_ids``): for a flashed sequence ``orientations_deg``,
@@ -633,10 +634,14 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
     ``drift_sfs_cpd``, ``drift_tfs_hz``, ``f0_mean``, ``f0_sem``, ``f1_mean`` (complex), ``f1_sem``,
     ``f1_amp_mean``, ``n_trials`` (cells x direction x SF x TF), ``spontaneous``, ``drifting_p_value``.
     ``cells.csv`` holds :data:`map2d.fit.tuning.TUNING_COLUMNS`. ``session_path`` and ``config`` as for
-    :func:`run_analyze`.
+    :func:`run_analyze`. ``trace_decay`` (traces only, ``--trace-decay``): the per-cell indicator decay
+    removed from the traces before the flashed gratings and modelled in the drifting F1 and F0, estimated
+    once as in ``map2d analyze`` (:func:`map2d.analysis.grating_trace_decay`); ``cells.csv`` then holds
+    ``trace_decay_tau_s``.
     """
     import numpy as np
 
+    from .analysis import grating_trace_decay
     from .contract import write_table
     from .fit.tuning import grating_tuning_columns
     from .gratings import analyze_drifting, analyze_flashed, has_drifting, has_flashed
@@ -644,6 +649,7 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
 
     results_target(out)                       # refuse a bad --out before the work
     drift_latency = _drift_latency_option(drift_latency)
+    trace_decay = _trace_decay_option(trace_decay)
     session = load_source(session_path, config)
     manifest = _manifest_of(session_path, config)
     g = session.gratings
@@ -654,13 +660,17 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
     if not (np.isfinite(max_lag_s) and max_lag_s >= 0):
         raise BadInput("--max-lag", None, f"must be >= 0 seconds, got {max_lag_s}")
     rng = np.random.default_rng(seed)
-    fl = analyze_flashed(session.responses, g, max_lag_s=max_lag_s, rng=rng) if has_flashed(g) else None
+    # traces: one per-cell indicator decay for the flashed and the drifting gratings (as map2d analyze)
+    flashed_responses, decay, cell_tau = grating_trace_decay(session.responses, trace_decay,
+                                                             flashed=has_flashed(g))
+    fl = analyze_flashed(flashed_responses, g, max_lag_s=max_lag_s, rng=rng) if has_flashed(g) else None
     if fl is not None:      # selectivity with the noise floor removed, and its intervals (as map2d analyze)
         from .analysis import flashed_noise
-        noise = flashed_noise(session.responses, g, fl, max_lag_s, phase_mean=True)
+        noise = flashed_noise(flashed_responses, g, fl, max_lag_s, phase_mean=True)
         if noise is not None:
             fl.harmonic_noise_var, fl.phase_mean_noise_var = noise
-    dr = analyze_drifting(session.responses, g, latency_s=drift_latency) if has_drifting(g) else None
+    dr = (analyze_drifting(session.responses, g, latency_s=drift_latency, trace_tau_s=cell_tau)
+          if has_drifting(g) else None)
     ids = np.asarray(session.cell_ids)
     order = np.argsort(ids, kind="stable")
     arrays = {"cell_ids": ids[order]}
@@ -681,6 +691,8 @@ def run_gratings(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=N
             spontaneous=dr.spontaneous[order], drifting_p_value=dr.p_value[order],
             trial_window_s=dr.trial_window_s, drift_latency_s=dr.latency_s[order])
     columns = grating_tuning_columns(fl, dr, cell_ids=ids)
+    if decay is not None:                     # rows sorted by cell id, as the tuning columns
+        columns["trace_decay_tau_s"] = list(np.asarray(decay.tau_s, float)[order])
     with results_folder(out) as tmp:
         np.savez_compressed(tmp / "gratings.npz", **arrays)
         write_table(tmp / "cells.csv", columns)
@@ -809,6 +821,7 @@ def run_analyze(session_path, out, max_lag_s=0.2, seed=0, quiet=False, config=No
     results_target(out)                       # refuse a bad --out before the work
     dense_estimate = _dense_estimate_option(dense_estimate)
     drift_latency = _drift_latency_option(drift_latency)
+    trace_decay = _trace_decay_option(trace_decay)
     session = load_source(session_path, config)
     _check_max_lag(max_lag_s, session.sparse_noise)
     bar = _StageBar(quiet)
