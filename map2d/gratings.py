@@ -193,7 +193,9 @@ class FlashedResult:
     harmonic_noise_var, phase_mean_noise_var : (cells, O, S) or None  noise variances of the lag-pooled
         surfaces, from single presentations (:func:`map2d.analysis.flashed_noise`; set by
         :func:`map2d.analysis.analyze_session`): ``peak_response`` removes the noise floor with the
-        first, and the selectivity intervals resample both.
+        first. The selectivity intervals resample the presentations themselves when
+        :func:`map2d.analysis.flashed_noise` left them on the result; otherwise (a result read back
+        without them) they draw Gaussian noise of these variances.
     """
 
     cell_ids: np.ndarray
