@@ -42,8 +42,16 @@ class BadInput(Exception):
             parts.append(f"field {field}")
         if row is not None:
             parts.append(f"row {row}")
-        super().__init__(": ".join([parts[0], ", ".join(parts[1:])]) + f": {detail}"
-                         if len(parts) > 1 else f"{parts[0]}: {detail}")
+        super().__init__(_one_line(": ".join([parts[0], ", ".join(parts[1:])]) + f": {detail}"
+                                   if len(parts) > 1 else f"{parts[0]}: {detail}"))
+
+
+def _one_line(text: str) -> str:
+    """``text`` with line breaks and other control characters shown as escapes (a file name read from
+    a manifest may hold them), so that the message stays one line."""
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
 
 
 class BadEnvironment(BadInput):

@@ -371,3 +371,11 @@ def test_json_larger_than_the_bound_is_refused(copy, monkeypatch):
     monkeypatch.setattr(contract, "MAX_JSON_BYTES", 64)
     with pytest.raises(BadInput, match="bytes"):
         load_session(copy)
+
+
+def test_a_file_name_with_a_line_break_stays_one_line():
+    """A manifest's file name may hold a line break (found by the property test of random manifest
+    values): the message shows it escaped, on one line."""
+    from map2d.errors import BadInput
+    msg = str(BadInput("/data/s/0\n", "file", "file not found"))
+    assert msg == "/data/s/0\\n: field file: file not found" and "\n" not in msg
